@@ -1,0 +1,546 @@
+//! The command line: parses arguments, loads the config, calls the library, prints results.
+//!
+//! Exit codes are part of the scripting contract: 0 ok, 2 usage or config error (the message
+//! names the flag or key), 1 runtime failure. Nothing here decides anything about drift.
+
+use std::io::Read;
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+use std::sync::Arc;
+
+use anyhow::Context;
+use clap::{Args, Parser, Subcommand};
+use tokio_util::sync::CancellationToken;
+
+use crate::config::{Config, ConfigError, LogFormat, STARTER};
+use crate::daemon;
+use crate::demo;
+use crate::ingest;
+use crate::report;
+use crate::stats;
+use crate::store::Store;
+
+#[derive(Parser, Debug)]
+#[command(
+    name = "lotdrift",
+    version,
+    about = "Watches incoming-inspection lot files and alerts when a source drifts from its baseline"
+)]
+pub struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Args, Debug, Clone)]
+struct ConfigArg {
+    /// The config file (paths in it are relative to it).
+    #[arg(long, value_name = "FILE", default_value = "lotdrift.toml")]
+    config: PathBuf,
+}
+
+#[derive(Subcommand, Debug)]
+enum Command {
+    /// Write DIR/lotdrift.toml (commented) and DIR/inbox, archive, quarantine.
+    Init {
+        dir: PathBuf,
+        /// Overwrite an existing lotdrift.toml.
+        #[arg(long)]
+        force: bool,
+    },
+    /// Run the daemon: watch the inbox, store, evaluate, alert.
+    Run {
+        #[command(flatten)]
+        config: ConfigArg,
+        /// Process what is in the inbox, evaluate, deliver once, and exit.
+        #[arg(long)]
+        once: bool,
+        /// Log as JSON lines (overrides log.format).
+        #[arg(long)]
+        log_json: bool,
+    },
+    /// A self-contained tour on the bundled demo data (SQLite, log alerts).
+    Demo {
+        /// Where to put the demo's config, folders and database.
+        #[arg(long, value_name = "DIR", default_value = "lotdrift-demo")]
+        dir: PathBuf,
+    },
+    /// Print the resolved configuration, or every problem in it.
+    CheckConfig {
+        #[command(flatten)]
+        config: ConfigArg,
+    },
+    /// Counts of what is stored, open alerts and undelivered messages.
+    Status {
+        #[command(flatten)]
+        config: ConfigArg,
+        #[arg(long)]
+        json: bool,
+    },
+    /// Alerts, newest first.
+    Alerts {
+        #[command(flatten)]
+        config: ConfigArg,
+        /// Only open alerts.
+        #[arg(long)]
+        open: bool,
+        #[arg(long)]
+        json: bool,
+    },
+    /// One row per lot of a source, with its summary and decision.
+    History {
+        source: String,
+        characteristic: Option<String>,
+        #[command(flatten)]
+        config: ConfigArg,
+        #[arg(long, conflicts_with = "csv")]
+        json: bool,
+        #[arg(long)]
+        csv: bool,
+    },
+    /// Store a corrected lot file, replacing values already stored for its lots (audited).
+    Replace {
+        file: PathBuf,
+        /// Why the stored values are replaced (kept with the old values).
+        #[arg(long)]
+        reason: String,
+        #[command(flatten)]
+        config: ConfigArg,
+    },
+    /// Two-sample test of two files of numbers.
+    Compare(CompareArgs),
+    /// Adjust p-values for multiplicity.
+    Adjust(AdjustArgs),
+}
+
+#[derive(Args, Debug)]
+struct CompareArgs {
+    /// Sample a: numbers separated by newlines, commas or spaces.
+    #[arg(long, value_name = "FILE")]
+    a: PathBuf,
+    /// Sample b.
+    #[arg(long, value_name = "FILE")]
+    b: PathBuf,
+    /// welch, pooled, mann-whitney, f or brown-forsythe.
+    #[arg(long, default_value = "welch")]
+    test: String,
+    /// two-sided, less or greater (for a − b).
+    #[arg(long, default_value = "two-sided")]
+    alternative: String,
+    /// Hypothesised difference of means a − b (t tests).
+    #[arg(long, default_value_t = 0.0, allow_negative_numbers = true)]
+    delta: f64,
+    /// Significance level for the decision and 1 − confidence of the interval.
+    #[arg(long, default_value_t = 0.05)]
+    alpha: f64,
+    #[arg(long)]
+    json: bool,
+}
+
+#[derive(Args, Debug)]
+struct AdjustArgs {
+    /// bonferroni, holm, hochberg, bh or by.
+    #[arg(long)]
+    method: String,
+    /// Level for the reject decisions.
+    #[arg(long, default_value_t = 0.05)]
+    level: f64,
+    /// File of p-values (newlines, commas or spaces); - or absent for standard input.
+    file: Option<PathBuf>,
+    #[arg(long)]
+    json: bool,
+}
+
+/// A failure with the exit code it maps to.
+#[derive(Debug)]
+pub enum Failure {
+    /// Usage or config error: exit 2.
+    Usage(anyhow::Error),
+    /// Runtime failure: exit 1.
+    Runtime(anyhow::Error),
+}
+
+impl From<anyhow::Error> for Failure {
+    fn from(e: anyhow::Error) -> Self {
+        Failure::Runtime(e)
+    }
+}
+
+impl From<ConfigError> for Failure {
+    fn from(e: ConfigError) -> Self {
+        Failure::Usage(e.into())
+    }
+}
+
+fn usage(msg: impl std::fmt::Display) -> Failure {
+    Failure::Usage(anyhow::anyhow!("{msg}"))
+}
+
+/// Entry point of the binary.
+pub fn main() -> ExitCode {
+    let cli = Cli::parse();
+    let runtime = match tokio::runtime::Builder::new_multi_thread()
+        .enable_all()
+        .build()
+    {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("lotdrift: cannot start the runtime: {e}");
+            return ExitCode::from(1);
+        }
+    };
+    match runtime.block_on(dispatch(cli.command)) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(Failure::Usage(e)) => {
+            eprintln!("lotdrift: {e:#}");
+            ExitCode::from(2)
+        }
+        Err(Failure::Runtime(e)) => {
+            eprintln!("lotdrift: {e:#}");
+            ExitCode::from(1)
+        }
+    }
+}
+
+fn init_tracing(format: LogFormat, level: &str) {
+    let filter = tracing_subscriber::EnvFilter::try_from_env("LOTDRIFT_LOG")
+        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(format!("lotdrift={level},warn")));
+    let builder = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr);
+    let _ = match format {
+        LogFormat::Json => builder.json().try_init(),
+        LogFormat::Text => builder.try_init(),
+    };
+}
+
+fn load(arg: &ConfigArg) -> Result<Config, Failure> {
+    Ok(Config::load(&arg.config)?)
+}
+
+async fn open_store(config: &Config) -> Result<Store, Failure> {
+    Store::open(&config.paths.database)
+        .await
+        .map_err(|e| Failure::Runtime(e.into()))
+}
+
+/// Opens the database for a read command; a database that does not exist yet is an error
+/// rather than silently created in the wrong place.
+async fn open_existing(config: &Config) -> Result<Store, Failure> {
+    if !config.paths.database.exists() {
+        return Err(Failure::Runtime(anyhow::anyhow!(
+            "no database at {} (run `lotdrift run` first, or check paths.database in {})",
+            config.paths.database.display(),
+            config.file.display()
+        )));
+    }
+    open_store(config).await
+}
+
+fn print_json(v: &serde_json::Value) {
+    println!(
+        "{}",
+        serde_json::to_string_pretty(v).expect("JSON values serialise")
+    );
+}
+
+async fn dispatch(command: Command) -> Result<(), Failure> {
+    match command {
+        Command::Init { dir, force } => init(&dir, force),
+        Command::Run {
+            config,
+            once,
+            log_json,
+        } => {
+            let config = load(&config)?;
+            let format = if log_json {
+                LogFormat::Json
+            } else {
+                config.log.format
+            };
+            init_tracing(format, &config.log.level);
+            let store = open_store(&config).await?;
+            if once {
+                let r = daemon::run_once(&store, &config)
+                    .await
+                    .context("run --once")?;
+                tracing::info!(
+                    stored = r.ingest.stored(),
+                    duplicates = r.ingest.duplicates(),
+                    quarantined = r.ingest.quarantined(),
+                    lots_tested = r.engine.evaluations,
+                    alerts_opened = r.engine.opened,
+                    delivered = r.delivery.delivered,
+                    retrying = r.delivery.retrying,
+                    "done"
+                );
+                store.close().await;
+                Ok(())
+            } else {
+                let store = Arc::new(store);
+                let result =
+                    daemon::run(store.clone(), Arc::new(config), CancellationToken::new()).await;
+                if let Ok(store) = Arc::try_unwrap(store) {
+                    store.close().await;
+                }
+                result.context("daemon")?;
+                Ok(())
+            }
+        }
+        Command::Demo { dir } => {
+            init_tracing(LogFormat::Text, "warn");
+            demo::run(&dir).await
+        }
+        Command::CheckConfig { config } => {
+            let c = load(&config)?;
+            println!("{c:#?}");
+            Ok(())
+        }
+        Command::Status { config, json } => {
+            let config = load(&config)?;
+            let store = open_existing(&config).await?;
+            let counts = store.status().await.context("status")?;
+            let undelivered = store.undelivered().await.context("status")?;
+            if json {
+                print_json(&report::status_json(&counts, &undelivered));
+            } else {
+                print!(
+                    "{}",
+                    report::status_text(
+                        &counts,
+                        &undelivered,
+                        &config.paths.database.display().to_string()
+                    )
+                );
+            }
+            Ok(())
+        }
+        Command::Alerts { config, open, json } => {
+            let config = load(&config)?;
+            let store = open_existing(&config).await?;
+            let alerts = store.alerts(open).await.context("alerts")?;
+            if json {
+                print_json(&report::alerts_json(&alerts));
+            } else {
+                print!("{}", report::alerts_text(&alerts));
+            }
+            Ok(())
+        }
+        Command::History {
+            source,
+            characteristic,
+            config,
+            json,
+            csv,
+        } => {
+            let config = load(&config)?;
+            let store = open_existing(&config).await?;
+            if !store.source_exists(&source).await.context("history")? {
+                return Err(Failure::Runtime(anyhow::anyhow!(
+                    "no source named {source:?} is stored"
+                )));
+            }
+            let rows = store
+                .history(&source, characteristic.as_deref())
+                .await
+                .context("history")?;
+            if json {
+                print_json(&report::history_json(&rows));
+            } else if csv {
+                print!("{}", report::history_csv(&rows));
+            } else {
+                print!("{}", report::history_text(&rows));
+            }
+            Ok(())
+        }
+        Command::Replace {
+            file,
+            reason,
+            config,
+        } => {
+            let config = load(&config)?;
+            if reason.trim().is_empty() {
+                return Err(usage("--reason must say why the values are replaced"));
+            }
+            init_tracing(config.log.format, &config.log.level);
+            let store = open_store(&config).await?;
+            replace(&store, &config, &file, &reason).await?;
+            store.close().await;
+            Ok(())
+        }
+        Command::Compare(args) => compare(args),
+        Command::Adjust(args) => adjust(args),
+    }
+}
+
+fn init(dir: &Path, force: bool) -> Result<(), Failure> {
+    let file = dir.join("lotdrift.toml");
+    if file.exists() && !force {
+        return Err(usage(format!(
+            "{} exists already (use --force to overwrite)",
+            file.display()
+        )));
+    }
+    for sub in ["inbox", "archive", "quarantine"] {
+        std::fs::create_dir_all(dir.join(sub))
+            .with_context(|| format!("creating {}", dir.join(sub).display()))?;
+    }
+    std::fs::write(&file, STARTER).with_context(|| format!("writing {}", file.display()))?;
+    println!("wrote {}", file.display());
+    println!(
+        "drop lot files in {}, then run: lotdrift run --config {}",
+        dir.join("inbox").display(),
+        file.display()
+    );
+    Ok(())
+}
+
+async fn replace(store: &Store, config: &Config, file: &Path, reason: &str) -> Result<(), Failure> {
+    let bytes = std::fs::read(file).with_context(|| format!("reading {}", file.display()))?;
+    let name = file
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    let parsed = ingest::build_file(&name, &ingest::content_hash(&bytes), &bytes)
+        .map_err(|e| Failure::Runtime(anyhow::anyhow!("{e}")))?;
+    let outcome = store
+        .ingest_batch(&[parsed], &crate::time::now_rfc3339(), Some(reason))
+        .await
+        .context("replace")?;
+    match &outcome[0] {
+        crate::store::FileOutcome::Stored { samples, .. } => {
+            println!("stored {samples} sample(s) from {}", file.display());
+        }
+        crate::store::FileOutcome::Duplicate { first_name } => {
+            println!(
+                "{} is already stored (as {first_name}); nothing changed",
+                file.display()
+            );
+        }
+        crate::store::FileOutcome::Conflict(_) => {
+            return Err(Failure::Runtime(anyhow::anyhow!(
+                "unexpected conflict while replacing"
+            )));
+        }
+    }
+    crate::engine::evaluate(store, config)
+        .await
+        .context("evaluating after replace")?;
+    // A quarantined copy of the same file has done its job.
+    let quarantined = config.paths.quarantine.join(&name);
+    if quarantined.exists() && std::fs::read(&quarantined).ok().as_deref() == Some(&bytes[..]) {
+        let _ = std::fs::remove_file(ingest::reason_path_for(&quarantined));
+        let _ = std::fs::remove_file(&quarantined);
+    }
+    Ok(())
+}
+
+/// Reads numbers separated by newlines, commas, semicolons, tabs or spaces.
+fn read_numbers(path: Option<&Path>, what: &str) -> Result<Vec<f64>, Failure> {
+    let text = match path {
+        Some(p) if p.as_os_str() != "-" => std::fs::read_to_string(p)
+            .map_err(|e| usage(format!("{what}: cannot read {}: {e}", p.display())))?,
+        _ => {
+            let mut s = String::new();
+            std::io::stdin()
+                .read_to_string(&mut s)
+                .map_err(|e| usage(format!("{what}: cannot read standard input: {e}")))?;
+            s
+        }
+    };
+    let shown = path.map_or("standard input".to_string(), |p| p.display().to_string());
+    let mut out = Vec::new();
+    for (i, line) in text.lines().enumerate() {
+        let line = line.trim();
+        if line.is_empty() || line.starts_with('#') {
+            continue;
+        }
+        for tok in line
+            .split(|c: char| c == ',' || c == ';' || c.is_whitespace())
+            .filter(|t| !t.is_empty())
+        {
+            match tok.parse::<f64>() {
+                Ok(v) if v.is_finite() => out.push(v),
+                _ => {
+                    return Err(usage(format!(
+                        "{what} ({shown}), line {}: {tok:?} is not a finite number",
+                        i + 1
+                    )));
+                }
+            }
+        }
+    }
+    Ok(out)
+}
+
+fn compare(args: CompareArgs) -> Result<(), Failure> {
+    let a = read_numbers(Some(&args.a), "--a")?;
+    let b = read_numbers(Some(&args.b), "--b")?;
+    let test: stats::compare::TestKind = args
+        .test
+        .parse()
+        .map_err(|e| usage(format!("--test: {e}")))?;
+    let alternative: stats::Alternative = args
+        .alternative
+        .parse()
+        .map_err(|e| usage(format!("--alternative: {e}")))?;
+    if !(args.alpha > 0.0 && args.alpha < 1.0) {
+        return Err(usage(format!(
+            "--alpha: must be between 0 and 1 (got {})",
+            args.alpha
+        )));
+    }
+    if !args.delta.is_finite() {
+        return Err(usage("--delta: must be a finite number"));
+    }
+    let result = stats::compare::compare(&a, &b, test, alternative, args.delta, args.alpha)
+        .map_err(|e| Failure::Runtime(anyhow::anyhow!("{e}")))?;
+    if args.json {
+        print_json(&report::compare_json(&result, args.alpha));
+    } else {
+        print!("{}", report::compare_text(&result, args.alpha));
+    }
+    Ok(())
+}
+
+fn adjust(args: AdjustArgs) -> Result<(), Failure> {
+    let method: stats::multiplicity::Method = args
+        .method
+        .parse()
+        .map_err(|e| usage(format!("--method: {e}")))?;
+    if !(args.level > 0.0 && args.level < 1.0) {
+        return Err(usage(format!(
+            "--level: must be between 0 and 1 (got {})",
+            args.level
+        )));
+    }
+    let p = read_numbers(args.file.as_deref(), "p-values")?;
+    let adjusted =
+        stats::multiplicity::adjust(&p, method).map_err(|e| usage(format!("p-values: {e}")))?;
+    let reject = stats::multiplicity::reject(&adjusted, args.level);
+    if args.json {
+        print_json(&serde_json::json!({
+            "method": args.method,
+            "level": args.level,
+            "adjusted": adjusted,
+            "reject": reject,
+        }));
+    } else {
+        let rows: Vec<Vec<String>> = p
+            .iter()
+            .zip(&adjusted)
+            .zip(&reject)
+            .map(|((p, a), r)| {
+                vec![
+                    format!("{p}"),
+                    format!("{a:.6}"),
+                    if *r { "reject".into() } else { "".into() },
+                ]
+            })
+            .collect();
+        print!(
+            "{}",
+            report::table(&["p", "adjusted", &format!("at {}", args.level)], &rows)
+        );
+    }
+    Ok(())
+}

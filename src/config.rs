@@ -1,0 +1,660 @@
+//! Configuration: TOML text into a typed, validated [`Config`].
+//!
+//! Two stages, as the rest of the program relies on: [`RawConfig`] is what serde reads
+//! (unknown keys are an error naming the key), [`Config`] is the validated value with paths
+//! resolved against the config file's folder. Building pools, watchers and transports from a
+//! `Config` happens elsewhere; this module does no I/O beyond reading the one file.
+
+use std::fmt;
+use std::path::{Path, PathBuf};
+use std::time::Duration;
+
+use serde::Deserialize;
+
+/// A configuration problem, always naming the file and the key (or the TOML position).
+#[derive(Debug, thiserror::Error)]
+pub enum ConfigError {
+    #[error("cannot read config file {path}: {source}")]
+    Read {
+        path: PathBuf,
+        source: std::io::Error,
+    },
+    #[error("{path}: {message}")]
+    Parse { path: PathBuf, message: String },
+    #[error("{path}: {}", .problems.join("; "))]
+    Invalid {
+        path: PathBuf,
+        problems: Vec<String>,
+    },
+}
+
+/// The file as written by the user: every section optional, unknown keys refused.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawConfig {
+    #[serde(default)]
+    pub paths: RawPaths,
+    #[serde(default)]
+    pub watch: RawWatch,
+    #[serde(default)]
+    pub monitor: RawMonitor,
+    #[serde(default)]
+    pub alerts: RawAlerts,
+    #[serde(default)]
+    pub log: RawLog,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawPaths {
+    pub inbox: Option<PathBuf>,
+    pub archive: Option<PathBuf>,
+    pub quarantine: Option<PathBuf>,
+    pub database: Option<PathBuf>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawWatch {
+    pub settle_seconds: Option<f64>,
+    pub rescan_seconds: Option<f64>,
+    pub poll: Option<bool>,
+    pub poll_seconds: Option<f64>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawMonitor {
+    pub baseline_lots: Option<i64>,
+    pub level: Option<f64>,
+    pub resolve_after_lots: Option<i64>,
+    pub sources: Option<Vec<String>>,
+    pub characteristics: Option<Vec<String>>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawAlerts {
+    pub channels: Option<Vec<String>>,
+    pub email: Option<RawEmail>,
+    pub retry_initial_seconds: Option<f64>,
+    pub retry_max_seconds: Option<f64>,
+    pub expire_hours: Option<f64>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawEmail {
+    pub smtp_host: Option<String>,
+    pub smtp_port: Option<i64>,
+    pub tls: Option<String>,
+    pub from: Option<String>,
+    pub to: Option<Vec<String>>,
+    pub username: Option<String>,
+    pub password_file: Option<PathBuf>,
+    pub timeout_seconds: Option<f64>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawLog {
+    pub format: Option<String>,
+    pub level: Option<String>,
+}
+
+/// Validated configuration. Every path is absolute or relative to the working directory of
+/// the process (already joined with the config file's folder).
+#[derive(Debug, Clone)]
+pub struct Config {
+    /// The file this came from (for messages).
+    pub file: PathBuf,
+    pub paths: Paths,
+    pub watch: Watch,
+    pub monitor: Monitor,
+    pub alerts: Alerts,
+    pub log: Log,
+}
+
+#[derive(Debug, Clone)]
+pub struct Paths {
+    pub inbox: PathBuf,
+    pub archive: PathBuf,
+    pub quarantine: PathBuf,
+    pub database: PathBuf,
+}
+
+#[derive(Debug, Clone)]
+pub struct Watch {
+    /// How long a written file's size and mtime must stay unchanged before it is taken.
+    pub settle: Duration,
+    /// Full rescans of the inbox, for events that never arrive (network shares, overflow).
+    pub rescan: Duration,
+    /// Use a polling watcher instead of inotify.
+    pub poll: bool,
+    pub poll_interval: Duration,
+}
+
+#[derive(Debug, Clone)]
+pub struct Monitor {
+    pub baseline_lots: usize,
+    /// Family-wise level of the Holm procedure across the characteristics of one lot.
+    pub level: f64,
+    /// Consecutive in-control lots that resolve an open alert.
+    pub resolve_after_lots: usize,
+    /// Sources to monitor; empty means every source.
+    pub sources: Vec<String>,
+    /// Characteristics to monitor; empty means every characteristic.
+    pub characteristics: Vec<String>,
+}
+
+impl Monitor {
+    pub fn monitors(&self, source: &str, characteristic: &str) -> bool {
+        (self.sources.is_empty() || self.sources.iter().any(|s| s == source))
+            && (self.characteristics.is_empty()
+                || self.characteristics.iter().any(|c| c == characteristic))
+    }
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Channel {
+    Log,
+    Email,
+}
+
+impl Channel {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Channel::Log => "log",
+            Channel::Email => "email",
+        }
+    }
+}
+
+impl fmt::Display for Channel {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
+#[derive(Debug, Clone)]
+pub struct Alerts {
+    pub channels: Vec<Channel>,
+    pub email: Option<Email>,
+    pub retry_initial: Duration,
+    pub retry_max: Duration,
+    pub expire_after: Duration,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Tls {
+    None,
+    StartTls,
+    Tls,
+}
+
+#[derive(Debug, Clone)]
+pub struct Email {
+    pub smtp_host: String,
+    pub smtp_port: u16,
+    pub tls: Tls,
+    pub from: String,
+    pub to: Vec<String>,
+    pub username: Option<String>,
+    pub password_file: Option<PathBuf>,
+    pub timeout: Duration,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum LogFormat {
+    Text,
+    Json,
+}
+
+#[derive(Debug, Clone)]
+pub struct Log {
+    pub format: LogFormat,
+    pub level: String,
+}
+
+/// Defaults, stated once.
+pub mod defaults {
+    pub const BASELINE_LOTS: usize = 20;
+    pub const LEVEL: f64 = 0.01;
+    pub const RESOLVE_AFTER_LOTS: usize = 5;
+    pub const SETTLE_SECONDS: f64 = 2.0;
+    pub const RESCAN_SECONDS: f64 = 30.0;
+    pub const POLL_SECONDS: f64 = 5.0;
+    pub const RETRY_INITIAL_SECONDS: f64 = 30.0;
+    pub const RETRY_MAX_SECONDS: f64 = 3600.0;
+    pub const EXPIRE_HOURS: f64 = 72.0;
+    pub const SMTP_TIMEOUT_SECONDS: f64 = 30.0;
+}
+
+impl Config {
+    /// Reads and validates the file at `path`.
+    pub fn load(path: &Path) -> Result<Config, ConfigError> {
+        let text = std::fs::read_to_string(path).map_err(|source| ConfigError::Read {
+            path: path.to_path_buf(),
+            source,
+        })?;
+        Config::from_toml(path, &text)
+    }
+
+    /// Parses `text` as if read from `path` (relative paths resolve against its folder).
+    pub fn from_toml(path: &Path, text: &str) -> Result<Config, ConfigError> {
+        let raw: RawConfig = toml::from_str(text).map_err(|e| ConfigError::Parse {
+            path: path.to_path_buf(),
+            message: describe_toml_error(text, &e),
+        })?;
+        let base = path
+            .parent()
+            .map(Path::to_path_buf)
+            .filter(|p| !p.as_os_str().is_empty())
+            .unwrap_or_else(|| PathBuf::from("."));
+        validate(path, &base, raw)
+    }
+
+    /// The configuration a fresh `lotdrift init DIR` stands for, rooted at `dir`.
+    pub fn defaults_in(dir: &Path) -> Config {
+        validate(&dir.join("lotdrift.toml"), dir, RawConfig::default())
+            .expect("the default configuration is valid")
+    }
+}
+
+fn describe_toml_error(text: &str, e: &toml::de::Error) -> String {
+    let message = e.message().trim().to_string();
+    match e.span() {
+        Some(span) => {
+            let before = &text[..span.start.min(text.len())];
+            let line = before.matches('\n').count() + 1;
+            let column = before.rsplit('\n').next().map_or(0, |l| l.chars().count()) + 1;
+            format!("line {line}, column {column}: {message}")
+        }
+        None => message,
+    }
+}
+
+struct Problems(Vec<String>);
+
+impl Problems {
+    fn push(&mut self, key: &str, message: impl fmt::Display) {
+        self.0.push(format!("{key}: {message}"));
+    }
+
+    fn seconds(&mut self, key: &str, value: Option<f64>, default: f64, min: f64) -> Duration {
+        let v = value.unwrap_or(default);
+        if !v.is_finite() || v < min || v > 1e9 {
+            self.push(
+                key,
+                format!("must be a number of seconds ≥ {min} (got {v})"),
+            );
+            return Duration::from_secs_f64(default);
+        }
+        Duration::from_secs_f64(v)
+    }
+
+    fn count(&mut self, key: &str, value: Option<i64>, default: usize, min: i64) -> usize {
+        match value {
+            None => default,
+            Some(v) if v >= min && v <= 1_000_000 => v as usize,
+            Some(v) => {
+                self.push(key, format!("must be a whole number ≥ {min} (got {v})"));
+                default
+            }
+        }
+    }
+}
+
+fn names(problems: &mut Problems, key: &str, list: Option<Vec<String>>) -> Vec<String> {
+    let list = list.unwrap_or_default();
+    for name in &list {
+        if name.trim().is_empty() || name.chars().any(char::is_control) {
+            problems.push(key, format!("{name:?} is not a valid name"));
+        }
+    }
+    list
+}
+
+fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigError> {
+    let mut p = Problems(Vec::new());
+    let resolve = |value: Option<PathBuf>, default: &str| -> PathBuf {
+        let v = value.unwrap_or_else(|| PathBuf::from(default));
+        if v.is_absolute() { v } else { base.join(v) }
+    };
+    let paths = Paths {
+        inbox: resolve(raw.paths.inbox, "inbox"),
+        archive: resolve(raw.paths.archive, "archive"),
+        quarantine: resolve(raw.paths.quarantine, "quarantine"),
+        database: resolve(raw.paths.database, "lotdrift.db"),
+    };
+    if paths.inbox == paths.archive || paths.inbox == paths.quarantine {
+        p.push(
+            "paths.inbox",
+            "must differ from paths.archive and paths.quarantine",
+        );
+    }
+
+    let watch = Watch {
+        settle: p.seconds(
+            "watch.settle_seconds",
+            raw.watch.settle_seconds,
+            defaults::SETTLE_SECONDS,
+            0.0,
+        ),
+        rescan: p.seconds(
+            "watch.rescan_seconds",
+            raw.watch.rescan_seconds,
+            defaults::RESCAN_SECONDS,
+            0.1,
+        ),
+        poll: raw.watch.poll.unwrap_or(false),
+        poll_interval: p.seconds(
+            "watch.poll_seconds",
+            raw.watch.poll_seconds,
+            defaults::POLL_SECONDS,
+            0.1,
+        ),
+    };
+
+    let level = raw.monitor.level.unwrap_or(defaults::LEVEL);
+    if !(level > 0.0 && level < 1.0) {
+        p.push(
+            "monitor.level",
+            format!("must be between 0 and 1 (got {level})"),
+        );
+    }
+    let monitor = Monitor {
+        baseline_lots: p.count(
+            "monitor.baseline_lots",
+            raw.monitor.baseline_lots,
+            defaults::BASELINE_LOTS,
+            2,
+        ),
+        level,
+        resolve_after_lots: p.count(
+            "monitor.resolve_after_lots",
+            raw.monitor.resolve_after_lots,
+            defaults::RESOLVE_AFTER_LOTS,
+            1,
+        ),
+        sources: names(&mut p, "monitor.sources", raw.monitor.sources),
+        characteristics: names(
+            &mut p,
+            "monitor.characteristics",
+            raw.monitor.characteristics,
+        ),
+    };
+
+    let mut channels = Vec::new();
+    for name in raw.alerts.channels.unwrap_or_else(|| vec!["log".into()]) {
+        let channel = match name.as_str() {
+            "log" => Channel::Log,
+            "email" => Channel::Email,
+            other => {
+                p.push(
+                    "alerts.channels",
+                    format!("unknown channel {other:?} (allowed: \"log\", \"email\")"),
+                );
+                continue;
+            }
+        };
+        if !channels.contains(&channel) {
+            channels.push(channel);
+        }
+    }
+    let email = raw.alerts.email.map(|e| validate_email(&mut p, base, e));
+    if channels.contains(&Channel::Email) && email.is_none() {
+        p.push(
+            "alerts.email",
+            "the \"email\" channel needs an [alerts.email] section",
+        );
+    }
+    let retry_initial = p.seconds(
+        "alerts.retry_initial_seconds",
+        raw.alerts.retry_initial_seconds,
+        defaults::RETRY_INITIAL_SECONDS,
+        0.0,
+    );
+    let retry_max = p.seconds(
+        "alerts.retry_max_seconds",
+        raw.alerts.retry_max_seconds,
+        defaults::RETRY_MAX_SECONDS,
+        0.0,
+    );
+    let expire_hours = raw.alerts.expire_hours.unwrap_or(defaults::EXPIRE_HOURS);
+    let expire_after = p.seconds(
+        "alerts.expire_hours",
+        Some(expire_hours * 3600.0),
+        defaults::EXPIRE_HOURS * 3600.0,
+        1.0,
+    );
+    let alerts = Alerts {
+        channels,
+        email,
+        retry_initial,
+        retry_max,
+        expire_after,
+    };
+
+    let format = match raw.log.format.as_deref() {
+        None | Some("text") => LogFormat::Text,
+        Some("json") => LogFormat::Json,
+        Some(other) => {
+            p.push(
+                "log.format",
+                format!("unknown format {other:?} (allowed: \"text\", \"json\")"),
+            );
+            LogFormat::Text
+        }
+    };
+    let level_name = raw.log.level.unwrap_or_else(|| "info".into());
+    if !["error", "warn", "info", "debug", "trace"].contains(&level_name.as_str()) {
+        p.push(
+            "log.level",
+            format!("unknown level {level_name:?} (allowed: error, warn, info, debug, trace)"),
+        );
+    }
+    let log = Log {
+        format,
+        level: level_name,
+    };
+
+    if !p.0.is_empty() {
+        return Err(ConfigError::Invalid {
+            path: path.to_path_buf(),
+            problems: p.0,
+        });
+    }
+    Ok(Config {
+        file: path.to_path_buf(),
+        paths,
+        watch,
+        monitor,
+        alerts,
+        log,
+    })
+}
+
+fn validate_email(p: &mut Problems, base: &Path, e: RawEmail) -> Email {
+    let smtp_host = e.smtp_host.unwrap_or_default();
+    if smtp_host.trim().is_empty() {
+        p.push("alerts.email.smtp_host", "is required");
+    }
+    let tls = match e.tls.as_deref() {
+        None | Some("starttls") => Tls::StartTls,
+        Some("none") => Tls::None,
+        Some("tls") => Tls::Tls,
+        Some(other) => {
+            p.push(
+                "alerts.email.tls",
+                format!("unknown mode {other:?} (allowed: \"none\", \"starttls\", \"tls\")"),
+            );
+            Tls::StartTls
+        }
+    };
+    let default_port = match tls {
+        Tls::None => 25,
+        Tls::StartTls => 587,
+        Tls::Tls => 465,
+    };
+    let smtp_port = match e.smtp_port {
+        None => default_port,
+        Some(v) if (1..=65535).contains(&v) => v as u16,
+        Some(v) => {
+            p.push(
+                "alerts.email.smtp_port",
+                format!("must be 1 to 65535 (got {v})"),
+            );
+            default_port
+        }
+    };
+    let from = e.from.unwrap_or_default();
+    if !looks_like_address(&from) {
+        p.push(
+            "alerts.email.from",
+            format!("must be an email address (got {from:?})"),
+        );
+    }
+    let to = e.to.unwrap_or_default();
+    if to.is_empty() {
+        p.push("alerts.email.to", "needs at least one recipient");
+    }
+    for address in &to {
+        if !looks_like_address(address) {
+            p.push(
+                "alerts.email.to",
+                format!("{address:?} is not an email address"),
+            );
+        }
+    }
+    let timeout = p.seconds(
+        "alerts.email.timeout_seconds",
+        e.timeout_seconds,
+        defaults::SMTP_TIMEOUT_SECONDS,
+        0.1,
+    );
+    Email {
+        smtp_host,
+        smtp_port,
+        tls,
+        from,
+        to,
+        username: e.username,
+        password_file: e
+            .password_file
+            .map(|f| if f.is_absolute() { f } else { base.join(f) }),
+        timeout,
+    }
+}
+
+fn looks_like_address(s: &str) -> bool {
+    let addr = match (s.rfind('<'), s.rfind('>')) {
+        (Some(a), Some(b)) if a < b => &s[a + 1..b],
+        _ => s,
+    };
+    let mut parts = addr.split('@');
+    matches!((parts.next(), parts.next(), parts.next()), (Some(l), Some(d), None) if !l.is_empty() && !d.is_empty())
+        && !s.chars().any(char::is_control)
+}
+
+/// The commented starter file written by `lotdrift init`.
+pub const STARTER: &str = r#"# lotdrift configuration.
+# Paths are relative to this file. Every key is optional; the values shown are the defaults.
+# Unknown keys are refused, so a typo is reported instead of silently ignored.
+
+[paths]
+inbox = "inbox"            # drop lot files here
+archive = "archive"        # stored files move to archive/<yyyy-mm>/
+quarantine = "quarantine"  # refused files, each with <file>.reason.txt beside it
+database = "lotdrift.db"   # SQLite; read it with any SQLite tool while the daemon runs
+
+[watch]
+settle_seconds = 2.0   # a written file must keep its size and mtime this long before it is taken
+rescan_seconds = 30.0  # full inbox rescan, for events that never arrive (network shares)
+poll = false           # true: poll the inbox instead of using file system events
+poll_seconds = 5.0
+
+[monitor]
+baseline_lots = 20       # the first N lots of a series (in sampling order) form its baseline
+level = 0.01             # family-wise level (Holm) across the characteristics of one lot
+resolve_after_lots = 5   # consecutive in-control lots that resolve an open alert
+sources = []             # only these sources; empty = every source
+characteristics = []     # only these characteristics; empty = every characteristic
+
+[alerts]
+channels = ["log"]       # "log", "email", or both
+
+# [alerts.email]
+# smtp_host = "mail.example.org"
+# smtp_port = 587
+# tls = "starttls"         # "none" | "starttls" | "tls"
+# from = "lotdrift@example.org"
+# to = ["quality@example.org"]
+# username = "lotdrift"    # password from LOTDRIFT_SMTP_PASSWORD or password_file
+# password_file = "smtp-password.txt"
+
+[log]
+format = "text"          # "text" or "json"
+level = "info"
+"#;
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn parse(text: &str) -> Result<Config, ConfigError> {
+        Config::from_toml(Path::new("/etc/lotdrift/lotdrift.toml"), text)
+    }
+
+    #[test]
+    fn starter_file_is_the_defaults() {
+        let c = parse(STARTER).unwrap();
+        assert_eq!(c.monitor.baseline_lots, 20);
+        assert_eq!(c.paths.inbox, PathBuf::from("/etc/lotdrift/inbox"));
+        assert_eq!(c.paths.database, PathBuf::from("/etc/lotdrift/lotdrift.db"));
+        assert_eq!(c.alerts.channels, vec![Channel::Log]);
+        let d = parse("").unwrap();
+        assert_eq!(d.watch.settle, c.watch.settle);
+    }
+
+    #[test]
+    fn unknown_key_is_named_with_position() {
+        let e = parse("[monitor]\nbaseline_lot = 3\n")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("baseline_lot"), "{e}");
+        assert!(e.contains("line 2"), "{e}");
+    }
+
+    #[test]
+    fn invalid_values_name_their_keys() {
+        let e =
+            parse("[monitor]\nbaseline_lots = 1\nlevel = 2.0\n[alerts]\nchannels = [\"pager\"]\n")
+                .unwrap_err()
+                .to_string();
+        for key in ["monitor.baseline_lots", "monitor.level", "alerts.channels"] {
+            assert!(e.contains(key), "{key} missing in {e}");
+        }
+    }
+
+    #[test]
+    fn email_channel_needs_its_section() {
+        let e = parse("[alerts]\nchannels = [\"email\"]\n")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("alerts.email"), "{e}");
+        let ok = parse(
+            "[alerts]\nchannels = [\"email\", \"log\"]\n[alerts.email]\nsmtp_host = \"127.0.0.1\"\nsmtp_port = 2525\ntls = \"none\"\nfrom = \"a@b.c\"\nto = [\"q@b.c\"]\n",
+        )
+        .unwrap();
+        let email = ok.alerts.email.unwrap();
+        assert_eq!(email.smtp_port, 2525);
+        assert_eq!(email.tls, Tls::None);
+    }
+
+    #[test]
+    fn absolute_paths_are_kept() {
+        let c = parse("[paths]\ndatabase = \"/var/lib/lotdrift/x.db\"\n").unwrap();
+        assert_eq!(c.paths.database, PathBuf::from("/var/lib/lotdrift/x.db"));
+    }
+}

@@ -1,0 +1,192 @@
+//! The daemon: wires the stages together and owns their lifetimes.
+//!
+//! Tasks: the watcher (`watch`) sends batches of complete files; the ingest worker stores them
+//! (`ingest`) and then runs an engine pass (`engine`); the notifier (`alert`) drains the outbox
+//! whenever it is woken and on a timer. All share one cancellation token; SIGTERM or SIGINT
+//! cancels it, the file batch in flight completes, and the process exits 0. `run_once` is the
+//! same pipeline run a single time over what is in the inbox.
+
+use std::sync::Arc;
+use std::time::Duration;
+
+use tokio::sync::{Notify, mpsc};
+use tokio_util::sync::CancellationToken;
+use tokio_util::task::TaskTracker;
+
+use crate::alert::{self, DrainReport};
+use crate::config::Config;
+use crate::engine;
+use crate::ingest::{self, IngestReport};
+use crate::store::{PassCounts, Store};
+use crate::watch;
+
+/// Drain time allowed after a stop signal before the process gives up waiting.
+const DRAIN_LIMIT: Duration = Duration::from_secs(20);
+
+#[derive(Debug, thiserror::Error)]
+pub enum DaemonError {
+    #[error(transparent)]
+    Store(#[from] crate::store::StoreError),
+    #[error(transparent)]
+    Ingest(#[from] ingest::IngestError),
+    #[error(transparent)]
+    Engine(#[from] engine::EngineError),
+    #[error(transparent)]
+    Alert(#[from] alert::AlertError),
+    #[error(transparent)]
+    Watch(#[from] watch::WatchError),
+    #[error("cannot create folder {path}: {source}")]
+    Folder {
+        path: std::path::PathBuf,
+        source: std::io::Error,
+    },
+}
+
+/// What one `--once` run did.
+#[derive(Debug, Default)]
+pub struct OnceReport {
+    pub ingest: IngestReport,
+    pub engine: PassCounts,
+    pub delivery: DrainReport,
+}
+
+/// Creates the inbox, archive and quarantine folders if missing.
+pub fn ensure_folders(config: &Config) -> Result<(), DaemonError> {
+    for dir in [
+        &config.paths.inbox,
+        &config.paths.archive,
+        &config.paths.quarantine,
+    ] {
+        std::fs::create_dir_all(dir).map_err(|source| DaemonError::Folder {
+            path: dir.clone(),
+            source,
+        })?;
+    }
+    Ok(())
+}
+
+/// Processes what is in the inbox, evaluates, drains the outbox once.
+pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, DaemonError> {
+    ensure_folders(config)?;
+    let files = watch::settled_files(
+        &config.paths.inbox,
+        config.watch.settle,
+        config.watch.settle * 10 + Duration::from_secs(5),
+    )
+    .await;
+    let cancel = CancellationToken::new();
+    let ingest = ingest::ingest_files(store, &config.paths, files, None, &cancel).await?;
+    let engine = engine::evaluate(store, config).await?;
+    let delivery = alert::drain_once(store, config).await?;
+    Ok(OnceReport {
+        ingest,
+        engine,
+        delivery,
+    })
+}
+
+/// Runs until SIGTERM/SIGINT (or `cancel`).
+pub async fn run(
+    store: Arc<Store>,
+    config: Arc<Config>,
+    cancel: CancellationToken,
+) -> Result<(), DaemonError> {
+    ensure_folders(&config)?;
+    let tracker = TaskTracker::new();
+    let (ready_tx, mut ready_rx) = mpsc::channel::<Vec<std::path::PathBuf>>(16);
+    let wake = Arc::new(Notify::new());
+
+    // Stop signals.
+    {
+        let cancel = cancel.clone();
+        tracker.spawn(async move {
+            shutdown_signal(&cancel).await;
+            cancel.cancel();
+        });
+    }
+
+    // Watcher.
+    let watcher = {
+        let cancel = cancel.clone();
+        let inbox = config.paths.inbox.clone();
+        let cfg = config.watch.clone();
+        tracker.spawn(async move { watch::run(inbox, cfg, ready_tx, cancel).await })
+    };
+
+    // Notifier.
+    {
+        let (store, config, wake, cancel) =
+            (store.clone(), config.clone(), wake.clone(), cancel.clone());
+        tracker.spawn(alert::run(store, config, wake, cancel));
+    }
+
+    // Ingest worker (this task): decisions follow every stored batch. A pass at start picks
+    // up anything decided-but-unevaluated from before a crash.
+    let mut result = Ok(());
+    if let Err(e) = engine::evaluate(&store, &config).await {
+        result = Err(e.into());
+    }
+    wake.notify_one();
+    tracing::info!(inbox = %config.paths.inbox.display(), "watching");
+    while result.is_ok() {
+        let files = tokio::select! {
+            _ = cancel.cancelled() => break,
+            f = ready_rx.recv() => match f { Some(f) => f, None => break },
+        };
+        let mut files = files;
+        while let Ok(more) = ready_rx.try_recv() {
+            files.extend(more);
+        }
+        match ingest::ingest_files(&store, &config.paths, files, None, &cancel).await {
+            Ok(report) => {
+                if report.stored() > 0 {
+                    match engine::evaluate(&store, &config).await {
+                        Ok(_) => wake.notify_one(),
+                        Err(e) => result = Err(e.into()),
+                    }
+                }
+            }
+            Err(e) => {
+                // The files stay in the inbox and are taken again at the next rescan.
+                tracing::error!(error = %e, "ingest failed; files left in the inbox");
+            }
+        }
+    }
+    cancel.cancel();
+    tracker.close();
+    if tokio::time::timeout(DRAIN_LIMIT, tracker.wait())
+        .await
+        .is_err()
+    {
+        tracing::warn!("tasks did not stop within {DRAIN_LIMIT:?}; exiting anyway");
+    } else if let Ok(Err(e)) = watcher.await {
+        return Err(e.into());
+    }
+    result
+}
+
+async fn shutdown_signal(cancel: &CancellationToken) {
+    #[cfg(unix)]
+    {
+        use tokio::signal::unix::{SignalKind, signal};
+        let (Ok(mut term), Ok(mut int)) = (
+            signal(SignalKind::terminate()),
+            signal(SignalKind::interrupt()),
+        ) else {
+            cancel.cancelled().await;
+            return;
+        };
+        tokio::select! {
+            _ = term.recv() => tracing::info!("SIGTERM received; stopping"),
+            _ = int.recv() => tracing::info!("SIGINT received; stopping"),
+            _ = cancel.cancelled() => {}
+        }
+    }
+    #[cfg(not(unix))]
+    {
+        tokio::select! {
+            _ = tokio::signal::ctrl_c() => tracing::info!("interrupt received; stopping"),
+            _ = cancel.cancelled() => {}
+        }
+    }
+}

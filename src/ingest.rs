@@ -1,0 +1,499 @@
+//! Ingest: files from the inbox into the store, end to end.
+//!
+//! For each file: read the bytes, hash them, parse them (`lotfile`), summarise every sample
+//! (`stats::Summary`), store them (`store`), and only after the transaction has committed move
+//! the file to `archive/<yyyy-mm>/` (or `archive/<yyyy-mm>/duplicates/`). A file that cannot be
+//! parsed, or that would change values already stored, goes to `quarantine/` with a
+//! `<file>.reason.txt` beside it. A file is all or nothing, and a crash at any point loses
+//! nothing and doubles nothing: an unmoved file is simply taken again, and a file whose hash is
+//! stored is archived as a duplicate.
+//!
+//! Parsing runs on a blocking thread, one batch ahead of the single writer. This module never
+//! decides anything about drift; that is `engine`.
+
+use std::collections::HashSet;
+use std::path::{Path, PathBuf};
+
+use sha2::{Digest, Sha256};
+use tokio::sync::mpsc;
+use tokio_util::sync::CancellationToken;
+
+use crate::config::Paths;
+use crate::lotfile::{self, Layout};
+use crate::stats::Summary;
+use crate::store::{FileOutcome, NewFile, NewSample, Store, StoreError};
+use crate::time::now_rfc3339;
+
+/// Files per store transaction, and values per transaction, whichever is reached first.
+const BATCH_FILES: usize = 256;
+const BATCH_VALUES: usize = 40_000;
+
+/// A failure that stops ingest (the database); a bad file never does.
+#[derive(Debug, thiserror::Error)]
+pub enum IngestError {
+    #[error(transparent)]
+    Store(#[from] StoreError),
+    #[error("cannot move {from} to {to}: {source}")]
+    Move {
+        from: PathBuf,
+        to: PathBuf,
+        source: std::io::Error,
+    },
+}
+
+/// What happened to one file.
+#[derive(Debug, Clone, PartialEq)]
+pub enum FileResult {
+    Stored {
+        samples: usize,
+        already_stored: usize,
+        archived_to: PathBuf,
+    },
+    Duplicate {
+        first_name: String,
+        archived_to: PathBuf,
+    },
+    Quarantined {
+        reason: String,
+        moved_to: PathBuf,
+    },
+    /// The file disappeared before it could be read (taken by someone else, or already done).
+    Gone,
+    /// Could not be read now (permissions, I/O); left in the inbox to be tried again.
+    Unreadable {
+        error: String,
+    },
+}
+
+/// The results of one ingest run, in the order the files were taken.
+#[derive(Debug, Default)]
+pub struct IngestReport {
+    pub files: Vec<(PathBuf, FileResult)>,
+}
+
+impl IngestReport {
+    pub fn stored(&self) -> usize {
+        self.count(|r| matches!(r, FileResult::Stored { .. }))
+    }
+    pub fn duplicates(&self) -> usize {
+        self.count(|r| matches!(r, FileResult::Duplicate { .. }))
+    }
+    pub fn quarantined(&self) -> usize {
+        self.count(|r| matches!(r, FileResult::Quarantined { .. }))
+    }
+    fn count(&self, f: impl Fn(&FileResult) -> bool) -> usize {
+        self.files.iter().filter(|(_, r)| f(r)).count()
+    }
+}
+
+/// A file read and parsed, waiting for the writer.
+enum Prepared {
+    Good(PathBuf, NewFile),
+    Bad {
+        path: PathBuf,
+        hash: String,
+        reason: String,
+    },
+    Gone(PathBuf),
+    Unreadable(PathBuf, String),
+}
+
+/// True for names the inbox never takes: hidden files and files still being written under a
+/// temporary name.
+pub fn is_ignored_name(path: &Path) -> bool {
+    let Some(name) = path.file_name().and_then(|n| n.to_str()) else {
+        return true;
+    };
+    name.starts_with('.')
+        || name.ends_with(".part")
+        || name.ends_with(".tmp")
+        || name.ends_with(".reason.txt")
+}
+
+/// Ingests `files` (paths inside the inbox). Bad files are quarantined and reported; only a
+/// store or file-move failure is an error, and then nothing of the failing batch is lost (its
+/// files stay in the inbox). Cancellation stops taking new files; the batch in flight
+/// completes.
+pub async fn ingest_files(
+    store: &Store,
+    paths: &Paths,
+    files: Vec<PathBuf>,
+    replace: Option<&str>,
+    cancel: &CancellationToken,
+) -> Result<IngestReport, IngestError> {
+    let mut seen = HashSet::new();
+    let files: Vec<PathBuf> = files
+        .into_iter()
+        .filter(|p| !is_ignored_name(p) && seen.insert(p.clone()))
+        .collect();
+    let mut report = IngestReport::default();
+    if files.is_empty() {
+        return Ok(report);
+    }
+    let (tx, mut rx) = mpsc::channel::<Vec<Prepared>>(2);
+    let parse_cancel = cancel.clone();
+    let parser = tokio::task::spawn_blocking(move || {
+        let mut batch = Vec::new();
+        let mut values = 0usize;
+        for path in files {
+            if parse_cancel.is_cancelled() {
+                break;
+            }
+            let prepared = prepare(&path);
+            if let Prepared::Good(_, f) = &prepared {
+                values += f.samples.iter().map(|s| s.values.len()).sum::<usize>();
+            }
+            batch.push(prepared);
+            if batch.len() >= BATCH_FILES || values >= BATCH_VALUES {
+                if tx.blocking_send(std::mem::take(&mut batch)).is_err() {
+                    return;
+                }
+                values = 0;
+            }
+        }
+        if !batch.is_empty() {
+            let _ = tx.blocking_send(batch);
+        }
+    });
+
+    let mut failure = None;
+    while let Some(batch) = rx.recv().await {
+        match write_batch(store, paths, batch, replace, &mut report).await {
+            Ok(()) => {}
+            Err(e) => {
+                failure = Some(e);
+                break;
+            }
+        }
+    }
+    drop(rx);
+    let _ = parser.await;
+    match failure {
+        Some(e) => Err(e),
+        None => Ok(report),
+    }
+}
+
+async fn write_batch(
+    store: &Store,
+    paths: &Paths,
+    batch: Vec<Prepared>,
+    replace: Option<&str>,
+    report: &mut IngestReport,
+) -> Result<(), IngestError> {
+    let mut good_paths = Vec::new();
+    let mut good = Vec::new();
+    for p in batch {
+        match p {
+            Prepared::Good(path, f) => {
+                good_paths.push(path);
+                good.push(f);
+            }
+            Prepared::Bad { path, hash, reason } => {
+                let result = quarantine(store, paths, &path, &hash, &reason).await?;
+                report.files.push((path, result));
+            }
+            Prepared::Gone(path) => report.files.push((path, FileResult::Gone)),
+            Prepared::Unreadable(path, error) => {
+                tracing::warn!(file = %path.display(), %error, "cannot read lot file; will try again");
+                report.files.push((path, FileResult::Unreadable { error }));
+            }
+        }
+    }
+    if good.is_empty() {
+        return Ok(());
+    }
+    let received_at = now_rfc3339();
+    let outcomes = store.ingest_batch(&good, &received_at, replace).await?;
+    let month = &received_at[..7];
+    for ((path, file), outcome) in good_paths.into_iter().zip(&good).zip(outcomes) {
+        let result = match outcome {
+            FileOutcome::Stored {
+                samples,
+                already_stored,
+                ..
+            } => {
+                let dest = move_into(&path, &paths.archive.join(month))?;
+                tracing::info!(file = %path.display(), samples, already_stored, "stored");
+                FileResult::Stored {
+                    samples,
+                    already_stored,
+                    archived_to: dest,
+                }
+            }
+            FileOutcome::Duplicate { first_name } => {
+                let dest = move_into(&path, &paths.archive.join(month).join("duplicates"))?;
+                tracing::info!(file = %path.display(), first = %first_name, "duplicate of a stored file; archived, not stored again");
+                FileResult::Duplicate {
+                    first_name,
+                    archived_to: dest,
+                }
+            }
+            FileOutcome::Conflict(conflicts) => {
+                let mut reason = String::from(
+                    "values for lots already stored differ from the stored values; nothing of \
+                     this file was stored.\n",
+                );
+                for c in &conflicts {
+                    reason.push_str(&format!(
+                        "  source {:?}, lot {:?}, characteristic {:?}: stored from {}\n",
+                        c.source, c.lot, c.characteristic, c.stored_from
+                    ));
+                }
+                reason.push_str(
+                    "To replace the stored values on purpose, run:\n  lotdrift replace \
+                     <this file> --reason \"<why the values changed>\"\n\
+                     (the old values are kept in the audit table sample_replacement; decisions \
+                     already made are not rewritten). To add other characteristics of the same \
+                     lot, send a file with only those characteristics.\n",
+                );
+                quarantine(store, paths, &path, &file.hash, &reason).await?
+            }
+        };
+        report.files.push((path, result));
+    }
+    Ok(())
+}
+
+fn prepare(path: &Path) -> Prepared {
+    let bytes = match std::fs::read(path) {
+        Ok(b) => b,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Prepared::Gone(path.into()),
+        Err(e) => return Prepared::Unreadable(path.into(), e.to_string()),
+    };
+    let hash = hex(&Sha256::digest(&bytes));
+    let name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    match build_file(&name, &hash, &bytes) {
+        Ok(f) => Prepared::Good(path.into(), f),
+        Err(reason) => Prepared::Bad {
+            path: path.into(),
+            hash,
+            reason,
+        },
+    }
+}
+
+/// Parses and summarises one file's bytes.
+pub fn build_file(name: &str, hash: &str, bytes: &[u8]) -> Result<NewFile, String> {
+    let parsed = lotfile::parse(name, bytes).map_err(|e| e.to_string())?;
+    let mut samples = Vec::with_capacity(parsed.groups.len());
+    for g in parsed.groups {
+        let summary = Summary::from_slice(&g.values).map_err(|e| {
+            format!(
+                "{name}:{}: source {:?}, lot {:?}, characteristic {:?}: {e}",
+                g.first_line, g.source, g.lot, g.characteristic
+            )
+        })?;
+        let sampled_at: Vec<Option<String>> = g
+            .sampled_at
+            .iter()
+            .map(|t| t.as_ref().map(|t| t.to_rfc3339()))
+            .collect();
+        let earliest = sampled_at.iter().flatten().min().cloned();
+        let digest = sample_digest(&g.values, &g.units);
+        samples.push(NewSample {
+            source: g.source,
+            lot: g.lot,
+            characteristic: g.characteristic,
+            values: g.values,
+            units: g.units,
+            sampled_at,
+            summary,
+            digest,
+            earliest,
+        });
+    }
+    Ok(NewFile {
+        name: name.to_string(),
+        hash: hash.to_string(),
+        layout: match parsed.layout {
+            Layout::Long => "long",
+            Layout::Wide => "wide",
+        },
+        rows: parsed.rows,
+        samples,
+    })
+}
+
+/// Order-independent digest of a sample's (unit, value) pairs: a re-export that only reorders
+/// rows or changes comments is recognised as the same content.
+fn sample_digest(values: &[f64], units: &[Option<String>]) -> String {
+    let mut pairs: Vec<(Option<&str>, u64)> = values
+        .iter()
+        .zip(units)
+        .map(|(v, u)| {
+            let v = if *v == 0.0 { 0.0 } else { *v };
+            (u.as_deref(), v.to_bits())
+        })
+        .collect();
+    pairs.sort_unstable();
+    let mut h = Sha256::new();
+    for (u, v) in pairs {
+        match u {
+            Some(u) => {
+                h.update([1u8]);
+                h.update((u.len() as u64).to_le_bytes());
+                h.update(u.as_bytes());
+            }
+            None => h.update([0u8]),
+        }
+        h.update(v.to_le_bytes());
+    }
+    hex(&h.finalize())
+}
+
+fn hex(bytes: &[u8]) -> String {
+    use std::fmt::Write;
+    let mut s = String::with_capacity(bytes.len() * 2);
+    for b in bytes {
+        let _ = write!(s, "{b:02x}");
+    }
+    s
+}
+
+/// Hash of a file's bytes, as stored (for the CLI).
+pub fn content_hash(bytes: &[u8]) -> String {
+    hex(&Sha256::digest(bytes))
+}
+
+async fn quarantine(
+    store: &Store,
+    paths: &Paths,
+    path: &Path,
+    hash: &str,
+    reason: &str,
+) -> Result<FileResult, IngestError> {
+    let name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    let at = now_rfc3339();
+    store.record_quarantine(hash, &name, &at, reason).await?;
+    std::fs::create_dir_all(&paths.quarantine).map_err(|source| IngestError::Move {
+        from: path.into(),
+        to: paths.quarantine.clone(),
+        source,
+    })?;
+    let dest = free_name(&paths.quarantine, &name);
+    let reason_path = reason_path_for(&dest);
+    let text = format!("{name} was refused at {at}:\n{reason}\n");
+    write_atomically(&reason_path, text.as_bytes()).map_err(|source| IngestError::Move {
+        from: path.into(),
+        to: reason_path.clone(),
+        source,
+    })?;
+    match std::fs::rename(path, &dest) {
+        Ok(()) => {}
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(FileResult::Gone),
+        Err(source) => {
+            return Err(IngestError::Move {
+                from: path.into(),
+                to: dest,
+                source,
+            });
+        }
+    }
+    tracing::warn!(file = %path.display(), reason = %reason.lines().next().unwrap_or(""), "quarantined");
+    Ok(FileResult::Quarantined {
+        reason: reason.to_string(),
+        moved_to: dest,
+    })
+}
+
+/// `<file>.reason.txt` beside a quarantined file.
+pub fn reason_path_for(file: &Path) -> PathBuf {
+    let mut s = file.as_os_str().to_owned();
+    s.push(".reason.txt");
+    PathBuf::from(s)
+}
+
+fn write_atomically(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
+    let mut tmp = path.as_os_str().to_owned();
+    tmp.push(".tmp");
+    let tmp = PathBuf::from(tmp);
+    std::fs::write(&tmp, bytes)?;
+    std::fs::rename(&tmp, path)
+}
+
+/// Moves `path` into folder `dir` under its own name (or a free variant of it).
+fn move_into(path: &Path, dir: &Path) -> Result<PathBuf, IngestError> {
+    let err = |source| IngestError::Move {
+        from: path.into(),
+        to: dir.into(),
+        source,
+    };
+    std::fs::create_dir_all(dir).map_err(err)?;
+    let name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    let dest = free_name(dir, &name);
+    match std::fs::rename(path, &dest) {
+        Ok(()) => Ok(dest),
+        // Taken away meanwhile: the store already has it, nothing is lost.
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(dest),
+        Err(source) => Err(IngestError::Move {
+            from: path.into(),
+            to: dest,
+            source,
+        }),
+    }
+}
+
+/// `dir/name`, or `dir/stem-2.ext`, `dir/stem-3.ext`... when taken.
+fn free_name(dir: &Path, name: &str) -> PathBuf {
+    let first = dir.join(name);
+    if !first.exists() {
+        return first;
+    }
+    let (stem, ext) = match name.rfind('.') {
+        Some(i) if i > 0 => (&name[..i], &name[i..]),
+        _ => (name, ""),
+    };
+    (2u32..)
+        .map(|k| dir.join(format!("{stem}-{k}{ext}")))
+        .find(|p| !p.exists())
+        .expect("some free name exists")
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn ignored_names() {
+        for n in [".hidden.csv", "a.csv.part", "a.csv.tmp", "x.csv.reason.txt"] {
+            assert!(is_ignored_name(Path::new(n)), "{n}");
+        }
+        assert!(!is_ignored_name(Path::new("inbox/lot-17.csv")));
+    }
+
+    #[test]
+    fn digest_ignores_row_order_but_not_values() {
+        let u = vec![Some("a".to_string()), Some("b".to_string())];
+        let ur = vec![Some("b".to_string()), Some("a".to_string())];
+        assert_eq!(
+            sample_digest(&[1.0, 2.0], &u),
+            sample_digest(&[2.0, 1.0], &ur)
+        );
+        assert_ne!(
+            sample_digest(&[1.0, 2.0], &u),
+            sample_digest(&[1.0, 2.5], &u)
+        );
+        assert_ne!(
+            sample_digest(&[1.0, 2.0], &u),
+            sample_digest(&[2.0, 1.0], &u)
+        );
+    }
+
+    #[test]
+    fn free_names_do_not_overwrite() {
+        let dir = tempfile::tempdir().unwrap();
+        std::fs::write(dir.path().join("a.csv"), b"x").unwrap();
+        assert_eq!(free_name(dir.path(), "a.csv"), dir.path().join("a-2.csv"));
+        assert_eq!(free_name(dir.path(), "b.csv"), dir.path().join("b.csv"));
+    }
+}

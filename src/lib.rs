@@ -1,0 +1,31 @@
+//! lotdrift: watches a folder for incoming-inspection lot files, stores every measurement in
+//! SQLite, compares each source's new lots with that source's baseline, and alerts (log or
+//! email) when a significant shift appears.
+//!
+//! The crate follows the data flow, one module per stage:
+//!
+//! - [`lotfile`]: pure parsing of lot files (CSV, long and wide layouts) into typed lots.
+//! - [`watch`]: which inbox files are complete (file events, startup scan, periodic rescan).
+//! - [`ingest`]: one file end to end: read, hash, parse, store, then archive or quarantine.
+//! - [`store`]: the only module that speaks SQL (sqlx, SQLite in WAL mode, embedded migrations).
+//! - [`stats`]: pure mathematics (summaries, two-sample tests, multiplicity); no I/O.
+//! - [`engine`]: the monitoring policy: baselines, tests, families, alert decisions.
+//! - [`alert`]: outbox delivery through the channels (log, SMTP email).
+//! - [`report`]: stored state formatted for people and scripts.
+//! - [`config`]: TOML into a typed, validated configuration.
+//! - [`daemon`]: the tasks of `lotdrift run` and their shutdown; [`demo`]: the bundled tour.
+//! - [`cli`]: the commands; `main.rs` only calls [`cli::main`].
+
+pub mod alert;
+pub mod cli;
+pub mod config;
+pub mod daemon;
+pub mod demo;
+pub mod engine;
+pub mod ingest;
+pub mod lotfile;
+pub mod report;
+pub mod stats;
+pub mod store;
+pub mod time;
+pub mod watch;

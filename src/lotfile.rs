@@ -1,0 +1,1907 @@
+//! Parser for lot files: the CSV files that incoming inspection drops for every
+//! lot of a purchased part, one measured value per unit and characteristic.
+//!
+//! This module owns the lot-file format and nothing else: layout detection
+//! (long or wide), header rules, the syntax of numbers and sampling times,
+//! grouping of values by (source, lot, characteristic), physical line numbers
+//! and the wording of every error message.
+//!
+//! It never touches the file system, never does I/O beyond reading the byte
+//! slice it is given, never reads the clock, never logs and never stores
+//! anything. A file is accepted whole or rejected whole (no partial lots), and
+//! [`parse`] never panics, whatever the bytes.
+//!
+//! # Format decisions beyond the written contract
+//!
+//! * A record whose fields are all empty after trimming (`,,,`, a line of
+//!   spaces, `"",""`) is blank and skipped, like an empty line, whatever its
+//!   number of fields.
+//! * A line is a comment only when `#` is its very first byte (after a UTF-8
+//!   BOM on the first line). `  # x` is data, and `"#1",...` is data whose
+//!   first field is `#1`; a `#` inside a quoted field is never a comment.
+//! * Trimming removes ASCII whitespace around a field. Name fields (source,
+//!   lot, characteristic, unit, header cells) are checked for control
+//!   characters before trimming, so a tab or line end anywhere in a name is an
+//!   error, while a quoted value `"2.5\n"` is accepted as 2.5.
+//! * Quoting follows RFC 4180 strictly: a quote inside an unquoted field, text
+//!   after a closing quote and an unterminated quoted field are
+//!   [`ErrorKind::Csv`] errors (the csv crate would silently accept them).
+//! * Line numbers count LF bytes. The csv crate's `Position::line` lags after
+//!   CRLF line ends, blank lines and comments, so the line of a record is
+//!   derived from `Position::byte` instead. Lone-CR line ends are not
+//!   supported.
+//! * `unit` cells may be empty (no serial for that row); the repeated
+//!   measurement check only applies to rows with a unit. `sampled_at` cells
+//!   may be empty too. Both get the same checks as names when present.
+//! * A date-time needs an offset (`Z` or `+02:00`); a bare local time is
+//!   rejected. Timestamps must fall in the years 0000..=9999 in UTC.
+//! * A number that underflows to zero (`1e-400`) is accepted as zero.
+
+use std::collections::HashMap;
+use std::collections::hash_map::Entry;
+use std::fmt;
+
+use chrono::{DateTime, Datelike, NaiveDate, NaiveTime, Utc};
+
+/// Longest accepted name (source, lot, characteristic, unit, header cell), in characters.
+pub const MAX_NAME_CHARS: usize = 200;
+
+/// How much of an offending text an error message quotes, in characters.
+const FOUND_CHARS: usize = 40;
+
+const UTF8_BOM: &[u8] = b"\xEF\xBB\xBF";
+
+/// The two shapes a lot file can have.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum Layout {
+    /// One row per unit and characteristic: `source,characteristic,lot,value[,sampled_at][,unit]`.
+    Long,
+    /// One row per unit, one column per characteristic: `source,lot[,sampled_at][,unit],<characteristic>...`.
+    Wide,
+}
+
+/// A parsed lot file.
+#[derive(Debug, Clone, PartialEq)]
+pub struct LotFile {
+    pub layout: Layout,
+    /// One group per (source, lot, characteristic), in order of first appearance.
+    pub groups: Vec<Group>,
+    /// Number of data rows (not counting the header, comments and blank rows).
+    pub rows: usize,
+    /// Number of measured values over all groups.
+    pub values: usize,
+}
+
+/// All values of one (source, lot, characteristic) in this file, in file order.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Group {
+    pub source: String,
+    pub lot: String,
+    pub characteristic: String,
+    pub values: Vec<f64>,
+    /// Serial of the measured unit per value; `None` without a `unit` column or for an empty cell.
+    pub units: Vec<Option<String>>,
+    /// Sampling time per value; `None` without a `sampled_at` column or for an empty cell.
+    pub sampled_at: Vec<Option<Timestamp>>,
+    /// Line of the row that created this group.
+    pub first_line: u64,
+}
+
+/// A sampling time normalised to UTC, with a flag whether only a date was given.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash, PartialOrd, Ord)]
+pub struct Timestamp {
+    pub utc: DateTime<Utc>,
+    /// True when the file gave only a date; `utc` is then 00:00:00 UTC of that date.
+    pub date_only: bool,
+}
+
+impl Timestamp {
+    /// Fixed-width `YYYY-MM-DDTHH:MM:SS.mmmZ` (milliseconds truncated), so
+    /// that text order equals time order.
+    pub fn to_rfc3339(&self) -> String {
+        self.utc.format("%Y-%m-%dT%H:%M:%S%.3fZ").to_string()
+    }
+}
+
+impl fmt::Display for Timestamp {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(&self.to_rfc3339())
+    }
+}
+
+/// What went wrong, for callers that react by kind rather than by message.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
+pub enum ErrorKind {
+    /// Invalid UTF-8 (or a UTF-16 file).
+    Encoding,
+    /// Malformed RFC 4180 quoting.
+    Csv,
+    /// No header row, or a wide header without characteristic columns.
+    Header,
+    /// A required column is absent from the header.
+    MissingColumn,
+    /// A long-layout header has a column that is not one of the known ones.
+    UnknownColumn,
+    /// Two header cells name the same column (case-insensitive).
+    DuplicateColumn,
+    /// A data row has a different number of fields than the header.
+    FieldCount,
+    /// A required cell (or a header cell) is empty.
+    EmptyField,
+    /// A name contains a control character.
+    ControlCharacter,
+    /// A name is longer than [`MAX_NAME_CHARS`].
+    TooLong,
+    /// A value is not a number in the accepted syntax.
+    BadNumber,
+    /// A value is NaN, an infinity, or overflows f64.
+    NonFiniteNumber,
+    /// A `sampled_at` cell is not an accepted date or date-time.
+    BadTimestamp,
+    /// The same (source, lot, characteristic, unit) appears twice.
+    DuplicateMeasurement,
+    /// A header but no data rows.
+    NoData,
+}
+
+impl ErrorKind {
+    /// A stable snake_case name, for logs and metrics.
+    pub fn as_str(self) -> &'static str {
+        match self {
+            ErrorKind::Encoding => "encoding",
+            ErrorKind::Csv => "csv",
+            ErrorKind::Header => "header",
+            ErrorKind::MissingColumn => "missing_column",
+            ErrorKind::UnknownColumn => "unknown_column",
+            ErrorKind::DuplicateColumn => "duplicate_column",
+            ErrorKind::FieldCount => "field_count",
+            ErrorKind::EmptyField => "empty_field",
+            ErrorKind::ControlCharacter => "control_character",
+            ErrorKind::TooLong => "too_long",
+            ErrorKind::BadNumber => "bad_number",
+            ErrorKind::NonFiniteNumber => "non_finite_number",
+            ErrorKind::BadTimestamp => "bad_timestamp",
+            ErrorKind::DuplicateMeasurement => "duplicate_measurement",
+            ErrorKind::NoData => "no_data",
+        }
+    }
+}
+
+impl fmt::Display for ErrorKind {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.write_str(self.as_str())
+    }
+}
+
+/// Why a lot file was rejected, with its place in the file.
+#[derive(Debug, Clone, PartialEq, Eq, thiserror::Error)]
+#[error("{file}:{line}{}: {message}", ColumnSuffix(.column, .column_name))]
+pub struct LotFileError {
+    pub file: String,
+    /// 1-based physical line; for a record spanning lines, the line where it starts.
+    pub line: u64,
+    /// 1-based field index, when the error is about one field.
+    pub column: Option<u64>,
+    /// The header text of that column, when known.
+    pub column_name: Option<String>,
+    pub kind: ErrorKind,
+    /// What was expected and what was found.
+    pub message: String,
+}
+
+struct ColumnSuffix<'a>(&'a Option<u64>, &'a Option<String>);
+
+impl fmt::Display for ColumnSuffix<'_> {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        match (self.0, self.1) {
+            (Some(n), Some(name)) => write!(f, ":{n} (column {name})"),
+            (Some(n), None) => write!(f, ":{n}"),
+            (None, _) => Ok(()),
+        }
+    }
+}
+
+/// Parses one lot file. `file_name` is only used in error messages.
+pub fn parse(file_name: &str, bytes: &[u8]) -> Result<LotFile, LotFileError> {
+    Parser::new(file_name, bytes).run()
+}
+
+// ---------------------------------------------------------------------------
+// Text helpers
+
+/// Quotes a found text for a message: escaped, at most [`FOUND_CHARS`] characters.
+fn found(text: &str) -> String {
+    let mut out = String::with_capacity(text.len().min(FOUND_CHARS * 2) + 4);
+    out.push('"');
+    let mut chars = text.chars();
+    for c in chars.by_ref().take(FOUND_CHARS) {
+        out.extend(c.escape_debug());
+    }
+    if chars.next().is_some() {
+        out.push('…');
+    }
+    out.push('"');
+    out
+}
+
+/// Trims ASCII whitespace. Name fields are checked for control characters
+/// before trimming, so for them this only removes spaces.
+fn trim(s: &str) -> &str {
+    s.trim_ascii()
+}
+
+fn count_newlines(bytes: &[u8]) -> u64 {
+    bytes.iter().filter(|&&b| b == b'\n').count() as u64
+}
+
+fn to_usize(n: u64) -> usize {
+    usize::try_from(n).unwrap_or(usize::MAX)
+}
+
+/// Where the csv reader really starts its next record when it starts reading
+/// at `i`: it skips line-end bytes and `#` comment lines (which run to LF).
+fn record_start(data: &[u8], mut i: usize) -> usize {
+    loop {
+        while i < data.len() && (data[i] == b'\r' || data[i] == b'\n') {
+            i += 1;
+        }
+        if i < data.len() && data[i] == b'#' {
+            match data[i..].iter().position(|&b| b == b'\n') {
+                Some(k) => i += k + 1,
+                None => return data.len(),
+            }
+        } else {
+            return i.min(data.len());
+        }
+    }
+}
+
+/// A quoting problem in a raw record.
+struct QuoteProblem {
+    /// 1-based field index.
+    col: u64,
+    /// Byte offset of the field's start within the raw record.
+    field_start: usize,
+    /// What was expected, without the found part.
+    expected: &'static str,
+}
+
+/// Checks RFC 4180 quoting of one raw record (its bytes from the start up to
+/// the reader's position after it).
+fn check_quotes(raw: &[u8]) -> Result<(), QuoteProblem> {
+    if !raw.contains(&b'"') {
+        return Ok(());
+    }
+    let n = raw.len();
+    let mut i = 0;
+    let mut col = 1u64;
+    loop {
+        let field_start = i;
+        let problem = |expected| QuoteProblem {
+            col,
+            field_start,
+            expected,
+        };
+        if i < n && raw[i] == b'"' {
+            i += 1;
+            loop {
+                let Some(k) = raw[i.min(n)..].iter().position(|&b| b == b'"') else {
+                    return Err(problem(
+                        "expected a closing quote for the quoted field before the end of the file",
+                    ));
+                };
+                i += k + 1;
+                if i < n && raw[i] == b'"' {
+                    i += 1;
+                } else {
+                    break;
+                }
+            }
+            match raw.get(i) {
+                None | Some(b'\r' | b'\n') => return Ok(()),
+                Some(b',') => {
+                    i += 1;
+                    col += 1;
+                }
+                Some(_) => {
+                    return Err(problem(
+                        "expected ',' or a line end right after the closing quote \
+                         (quote the whole field, double inner quotes)",
+                    ));
+                }
+            }
+        } else {
+            loop {
+                match raw.get(i) {
+                    None | Some(b'\r' | b'\n') => return Ok(()),
+                    Some(b',') => {
+                        i += 1;
+                        col += 1;
+                        break;
+                    }
+                    Some(b'"') => {
+                        return Err(problem(
+                            "expected no '\"' inside an unquoted field \
+                             (quote the whole field, double inner quotes)",
+                        ));
+                    }
+                    Some(_) => i += 1,
+                }
+            }
+        }
+    }
+}
+
+/// Why a value cell was rejected.
+enum NumberError {
+    Empty,
+    Bad,
+    NonFinite,
+    Overflow,
+}
+
+fn parse_number(text: &str) -> Result<f64, NumberError> {
+    let t = trim(text);
+    if t.is_empty() {
+        return Err(NumberError::Empty);
+    }
+    let allowed = t
+        .bytes()
+        .all(|b| b.is_ascii_digit() || matches!(b, b'.' | b'+' | b'-' | b'e' | b'E'));
+    if !allowed {
+        let unsigned = t.strip_prefix(['+', '-']).unwrap_or(t);
+        let non_finite = ["nan", "inf", "infinity"]
+            .iter()
+            .any(|w| unsigned.eq_ignore_ascii_case(w));
+        return Err(if non_finite {
+            NumberError::NonFinite
+        } else {
+            NumberError::Bad
+        });
+    }
+    match t.parse::<f64>() {
+        Ok(v) if v.is_finite() => Ok(v),
+        Ok(_) => Err(NumberError::Overflow),
+        Err(_) => Err(NumberError::Bad),
+    }
+}
+
+fn parse_timestamp(text: &str) -> Option<Timestamp> {
+    let b = text.as_bytes();
+    let ts = if b.len() == 10 {
+        let digits = [0, 1, 2, 3, 5, 6, 8, 9];
+        if b[4] != b'-' || b[7] != b'-' || !digits.iter().all(|&i| b[i].is_ascii_digit()) {
+            return None;
+        }
+        let num = |r: std::ops::Range<usize>| {
+            b[r].iter()
+                .fold(0u32, |acc, &d| acc * 10 + u32::from(d - b'0'))
+        };
+        let date = NaiveDate::from_ymd_opt(i32::try_from(num(0..4)).ok()?, num(5..7), num(8..10))?;
+        Timestamp {
+            utc: date.and_time(NaiveTime::MIN).and_utc(),
+            date_only: true,
+        }
+    } else {
+        let dt = DateTime::parse_from_rfc3339(text).ok()?;
+        Timestamp {
+            utc: dt.with_timezone(&Utc),
+            date_only: false,
+        }
+    };
+    (0..=9999).contains(&ts.utc.year()).then_some(ts)
+}
+
+// ---------------------------------------------------------------------------
+// Parser state
+
+/// Maps each distinct string of one file to a small id, so that repeated
+/// names cost a hash lookup instead of an allocation. Remembers the last
+/// string looked up, since consecutive rows usually repeat it.
+#[derive(Default)]
+struct Interner {
+    ids: FastMap<String, u32>,
+    last: String,
+    last_id: Option<u32>,
+}
+
+impl Interner {
+    fn intern(&mut self, s: &str) -> u32 {
+        if let Some(id) = self.last_id
+            && self.last == s
+        {
+            return id;
+        }
+        let next = u32::try_from(self.ids.len()).unwrap_or(u32::MAX);
+        let id = match self.ids.get(s) {
+            Some(&id) => id,
+            None => {
+                self.ids.insert(s.to_owned(), next);
+                next
+            }
+        };
+        self.last.clear();
+        self.last.push_str(s);
+        self.last_id = Some(id);
+        id
+    }
+}
+
+/// A cheap multiplicative hasher for this parser's per-file maps (interned
+/// names and ids). It is not collision-resistant: a file crafted to collide
+/// can slow parsing down, never make it wrong or panic. Lot files come from
+/// the inspection equipment, and SipHash was a visible share of parse time.
+#[derive(Default, Clone, Copy)]
+struct FastHasher(u64);
+
+impl std::hash::Hasher for FastHasher {
+    fn finish(&self) -> u64 {
+        self.0
+    }
+
+    fn write(&mut self, bytes: &[u8]) {
+        let mut chunks = bytes.chunks_exact(8);
+        for chunk in chunks.by_ref() {
+            let mut word = [0u8; 8];
+            word.copy_from_slice(chunk);
+            self.write_u64(u64::from_le_bytes(word));
+        }
+        let mut tail = [0u8; 8];
+        let rest = chunks.remainder();
+        tail[..rest.len()].copy_from_slice(rest);
+        self.write_u64(u64::from_le_bytes(tail) ^ ((rest.len() as u64) << 59));
+    }
+
+    fn write_u8(&mut self, n: u8) {
+        self.write_u64(u64::from(n));
+    }
+
+    fn write_u32(&mut self, n: u32) {
+        self.write_u64(u64::from(n));
+    }
+
+    fn write_u64(&mut self, n: u64) {
+        self.0 = (self.0.rotate_left(26) ^ n).wrapping_mul(0x9E37_79B9_7F4A_7C15);
+    }
+}
+
+type FastMap<K, V> = HashMap<K, V, std::hash::BuildHasherDefault<FastHasher>>;
+
+/// Column positions (0-based) of a parsed header.
+struct Header {
+    layout: Layout,
+    line: u64,
+    /// Trimmed header cell text, for messages.
+    names: Vec<String>,
+    source: usize,
+    lot: usize,
+    sampled_at: Option<usize>,
+    unit: Option<usize>,
+    /// Long layout only.
+    characteristic: usize,
+    /// Long layout only.
+    value: usize,
+    /// Wide layout only: column and interned characteristic name.
+    wide: Vec<(usize, u32)>,
+}
+
+const LONG_COLUMNS: &str = "source, characteristic, lot, value, sampled_at, unit";
+
+struct Parser<'a> {
+    file: &'a str,
+    /// The input without its BOM.
+    data: &'a [u8],
+    /// Byte offset up to which `line` has counted line ends.
+    line_pos: usize,
+    line: u64,
+    names: Interner,
+    units: Interner,
+    group_ids: FastMap<(u32, u32, u32), u32>,
+    groups: Vec<Group>,
+    /// (group, unit) → line of its first measurement.
+    seen: FastMap<(u32, u32), u64>,
+    rows: usize,
+    values: usize,
+    /// Wide layout: (source, lot) of the previous row and its groups per characteristic column.
+    wide_key: Option<(u32, u32)>,
+    wide_groups: Vec<u32>,
+    /// Wide layout: the values of the current row, reused between rows.
+    wide_values: Vec<f64>,
+}
+
+/// Where an error sits: line and optional 0-based column.
+#[derive(Clone, Copy)]
+struct At {
+    line: u64,
+    col: Option<usize>,
+}
+
+impl<'a> Parser<'a> {
+    fn new(file: &'a str, bytes: &'a [u8]) -> Self {
+        let data = bytes.strip_prefix(UTF8_BOM).unwrap_or(bytes);
+        Parser {
+            file,
+            data,
+            line_pos: 0,
+            line: 1,
+            names: Interner::default(),
+            units: Interner::default(),
+            group_ids: FastMap::default(),
+            groups: Vec::new(),
+            seen: FastMap::default(),
+            rows: 0,
+            values: 0,
+            wide_key: None,
+            wide_groups: Vec::new(),
+            wide_values: Vec::new(),
+        }
+    }
+
+    fn error(
+        &self,
+        at: At,
+        header: Option<&Header>,
+        kind: ErrorKind,
+        message: String,
+    ) -> LotFileError {
+        LotFileError {
+            file: self.file.to_owned(),
+            line: at.line,
+            column: at.col.map(|c| c as u64 + 1),
+            column_name: at
+                .col
+                .and_then(|c| header.and_then(|h| h.names.get(c)).cloned()),
+            kind,
+            message,
+        }
+    }
+
+    /// Physical line of byte offset `off`; offsets must not go backwards.
+    fn line_at(&mut self, off: usize) -> u64 {
+        let off = off.min(self.data.len());
+        if off > self.line_pos {
+            self.line += count_newlines(&self.data[self.line_pos..off]);
+            self.line_pos = off;
+        }
+        self.line
+    }
+
+    fn run(mut self) -> Result<LotFile, LotFileError> {
+        if self.data.starts_with(b"\xFF\xFE") || self.data.starts_with(b"\xFE\xFF") {
+            return Err(self.error(
+                At { line: 1, col: None },
+                None,
+                ErrorKind::Encoding,
+                "expected UTF-8 text, found a UTF-16 byte-order mark (save the file as UTF-8)"
+                    .to_owned(),
+            ));
+        }
+        let data = self.data;
+        let mut reader = csv::ReaderBuilder::new()
+            .has_headers(false)
+            .flexible(true)
+            .comment(Some(b'#'))
+            .from_reader(data);
+        let mut record = csv::ByteRecord::new();
+        let mut header: Option<Header> = None;
+        loop {
+            let before = to_usize(reader.position().byte());
+            match reader.read_byte_record(&mut record) {
+                Ok(true) => {}
+                Ok(false) => break,
+                Err(e) => {
+                    let line = self.line_at(record_start(data, before));
+                    return Err(self.error(
+                        At { line, col: None },
+                        header.as_ref(),
+                        ErrorKind::Csv,
+                        format!("expected a readable CSV record, found an error: {e}"),
+                    ));
+                }
+            }
+            let read_at = record.position().map_or(before, |p| to_usize(p.byte()));
+            let start = record_start(data, read_at);
+            let end = to_usize(reader.position().byte()).clamp(start, data.len());
+            let line = self.line_at(start);
+            let raw = &data[start..end];
+            if let Err(p) = check_quotes(raw) {
+                let col = usize::try_from(p.col - 1).ok();
+                let field = raw.get(p.field_start..).unwrap_or_default();
+                let field = field[..field.len().min(4 * FOUND_CHARS + 4)].trim_ascii_end();
+                return Err(self.error(
+                    At { line, col },
+                    header.as_ref(),
+                    ErrorKind::Csv,
+                    format!(
+                        "{}, found {}",
+                        p.expected,
+                        found(&String::from_utf8_lossy(field))
+                    ),
+                ));
+            }
+            if record.iter().all(|f| f.trim_ascii().is_empty()) {
+                continue;
+            }
+            match &header {
+                None => header = Some(self.header(&record, line)?),
+                Some(h) => {
+                    if record.len() != h.names.len() {
+                        return Err(self.error(
+                            At { line, col: None },
+                            Some(h),
+                            ErrorKind::FieldCount,
+                            format!(
+                                "expected {} fields as in the header on line {}, found {} fields on line {}",
+                                h.names.len(),
+                                h.line,
+                                record.len(),
+                                line
+                            ),
+                        ));
+                    }
+                    self.rows += 1;
+                    match h.layout {
+                        Layout::Long => self.long_row(h, &record, line)?,
+                        Layout::Wide => self.wide_row(h, &record, line)?,
+                    }
+                }
+            }
+        }
+        let Some(h) = header else {
+            return Err(self.error(
+                At { line: 1, col: None },
+                None,
+                ErrorKind::Header,
+                "expected a header row such as source,characteristic,lot,value, found no rows"
+                    .to_owned(),
+            ));
+        };
+        if self.rows == 0 {
+            return Err(self.error(
+                At {
+                    line: h.line,
+                    col: None,
+                },
+                Some(&h),
+                ErrorKind::NoData,
+                "expected at least one data row after the header, found none".to_owned(),
+            ));
+        }
+        Ok(LotFile {
+            layout: h.layout,
+            groups: self.groups,
+            rows: self.rows,
+            values: self.values,
+        })
+    }
+
+    /// The field as UTF-8 text, untrimmed.
+    fn text<'r>(
+        &self,
+        record: &'r csv::ByteRecord,
+        at: At,
+        header: Option<&Header>,
+    ) -> Result<&'r str, LotFileError> {
+        let bytes = at.col.and_then(|c| record.get(c)).unwrap_or(b"");
+        std::str::from_utf8(bytes).map_err(|e| {
+            let bad = bytes.get(e.valid_up_to()).copied().unwrap_or(0);
+            self.error(
+                at,
+                header,
+                ErrorKind::Encoding,
+                format!(
+                    "expected UTF-8 text, found invalid byte 0x{bad:02X} in {}",
+                    found(&String::from_utf8_lossy(bytes))
+                ),
+            )
+        })
+    }
+
+    /// A name field: no control characters, trimmed, at most
+    /// [`MAX_NAME_CHARS`]. `None` when empty and `what` is optional.
+    fn name<'r>(
+        &self,
+        record: &'r csv::ByteRecord,
+        at: At,
+        header: Option<&Header>,
+        what: &str,
+        required: bool,
+    ) -> Result<Option<&'r str>, LotFileError> {
+        let raw = self.text(record, at, header)?;
+        // Cc is U+0000..U+001F, U+007F and U+0080..U+009F (UTF-8 C2 80..C2 9F),
+        // so text without those bytes needs no per-character scan.
+        let maybe_control = raw.bytes().any(|b| b < 0x20 || b == 0x7F || b == 0xC2);
+        if let Some(c) = raw.chars().find(|c| maybe_control && c.is_control()) {
+            return Err(self.error(
+                at,
+                header,
+                ErrorKind::ControlCharacter,
+                format!(
+                    "expected a {what} without control characters, found U+{:04X} in {}",
+                    u32::from(c),
+                    found(raw)
+                ),
+            ));
+        }
+        let t = trim(raw);
+        if t.is_empty() {
+            if !required {
+                return Ok(None);
+            }
+            return Err(self.error(
+                at,
+                header,
+                ErrorKind::EmptyField,
+                format!("expected a non-empty {what}, found an empty cell"),
+            ));
+        }
+        if t.len() > MAX_NAME_CHARS {
+            let n = t.chars().count();
+            if n > MAX_NAME_CHARS {
+                return Err(self.error(
+                    at,
+                    header,
+                    ErrorKind::TooLong,
+                    format!(
+                        "expected a {what} of at most {MAX_NAME_CHARS} characters, found {n} characters: {}",
+                        found(t)
+                    ),
+                ));
+            }
+        }
+        Ok(Some(t))
+    }
+
+    fn number(
+        &self,
+        record: &csv::ByteRecord,
+        at: At,
+        header: &Header,
+    ) -> Result<f64, LotFileError> {
+        let raw = self.text(record, at, Some(header))?;
+        parse_number(raw).map_err(|e| {
+            let (kind, message) = match e {
+                NumberError::Empty => (
+                    ErrorKind::EmptyField,
+                    "expected a number, found an empty cell (a value is missing)".to_owned(),
+                ),
+                NumberError::Bad => (
+                    ErrorKind::BadNumber,
+                    format!(
+                        "expected a number with '.' as decimal separator, found {}",
+                        found(trim(raw))
+                    ),
+                ),
+                NumberError::NonFinite => (
+                    ErrorKind::NonFiniteNumber,
+                    format!("expected a finite number, found {}", found(trim(raw))),
+                ),
+                NumberError::Overflow => (
+                    ErrorKind::NonFiniteNumber,
+                    format!(
+                        "expected a finite number, found {} which overflows a 64-bit float",
+                        found(trim(raw))
+                    ),
+                ),
+            };
+            self.error(at, Some(header), kind, message)
+        })
+    }
+
+    fn sampled_at(
+        &self,
+        record: &csv::ByteRecord,
+        line: u64,
+        header: &Header,
+    ) -> Result<Option<Timestamp>, LotFileError> {
+        let Some(col) = header.sampled_at else {
+            return Ok(None);
+        };
+        let at = At {
+            line,
+            col: Some(col),
+        };
+        let t = trim(self.text(record, at, Some(header))?);
+        if t.is_empty() {
+            return Ok(None);
+        }
+        parse_timestamp(t).map(Some).ok_or_else(|| {
+            self.error(
+                at,
+                Some(header),
+                ErrorKind::BadTimestamp,
+                format!(
+                    "expected an RFC 3339 date (2026-03-01) or date-time with Z or an offset \
+                     (2026-03-01T08:30:00Z, 2026-03-01 08:30:00+02:00) in years 0000-9999, found {}",
+                    found(t)
+                ),
+            )
+        })
+    }
+
+    fn header(&mut self, record: &csv::ByteRecord, line: u64) -> Result<Header, LotFileError> {
+        let mut names = Vec::with_capacity(record.len());
+        for col in 0..record.len() {
+            let at = At {
+                line,
+                col: Some(col),
+            };
+            let name = self
+                .name(record, at, None, "column name", true)?
+                .unwrap_or_default();
+            names.push(name.to_owned());
+        }
+        let mut h = Header {
+            layout: Layout::Wide,
+            line,
+            names,
+            source: usize::MAX,
+            lot: usize::MAX,
+            sampled_at: None,
+            unit: None,
+            characteristic: usize::MAX,
+            value: usize::MAX,
+            wide: Vec::new(),
+        };
+        let mut lower: HashMap<String, usize> = HashMap::with_capacity(h.names.len());
+        for (col, name) in h.names.iter().enumerate() {
+            if let Some(&first) = lower.get(&name.to_lowercase()) {
+                return Err(self.error(
+                    At {
+                        line,
+                        col: Some(col),
+                    },
+                    Some(&h),
+                    ErrorKind::DuplicateColumn,
+                    format!(
+                        "expected each column name once (names are case-insensitive), found {} again after {} in column {}",
+                        found(name),
+                        found(&h.names[first]),
+                        first + 1
+                    ),
+                ));
+            }
+            lower.insert(name.to_lowercase(), col);
+        }
+        let find = |want: &str| h.names.iter().position(|n| n.eq_ignore_ascii_case(want));
+        let characteristic = find("characteristic");
+        let value = find("value");
+        let (source, lot) = (find("source"), find("lot"));
+        h.sampled_at = find("sampled_at");
+        h.unit = find("unit");
+        let header_text = found(&h.names.join(","));
+        if characteristic.is_some() || value.is_some() {
+            h.layout = Layout::Long;
+            for (col, name) in h.names.iter().enumerate() {
+                let known = [
+                    "source",
+                    "characteristic",
+                    "lot",
+                    "value",
+                    "sampled_at",
+                    "unit",
+                ]
+                .iter()
+                .any(|k| name.eq_ignore_ascii_case(k));
+                if !known {
+                    return Err(self.error(
+                        At {
+                            line,
+                            col: Some(col),
+                        },
+                        Some(&h),
+                        ErrorKind::UnknownColumn,
+                        format!(
+                            "expected only the long-layout columns {LONG_COLUMNS}, found unknown column {}",
+                            found(name)
+                        ),
+                    ));
+                }
+            }
+            let missing: Vec<&str> = [
+                ("source", source),
+                ("characteristic", characteristic),
+                ("lot", lot),
+                ("value", value),
+            ]
+            .iter()
+            .filter(|(_, c)| c.is_none())
+            .map(|(n, _)| *n)
+            .collect();
+            match (source, characteristic, lot, value) {
+                (Some(s), Some(c), Some(l), Some(v)) => {
+                    h.source = s;
+                    h.characteristic = c;
+                    h.lot = l;
+                    h.value = v;
+                }
+                _ => {
+                    return Err(self.error(
+                        At { line, col: None },
+                        Some(&h),
+                        ErrorKind::MissingColumn,
+                        format!(
+                            "expected the long-layout columns source, characteristic, lot, value; \
+                             missing {}; found header {header_text}",
+                            missing.join(", ")
+                        ),
+                    ));
+                }
+            }
+        } else {
+            let (Some(s), Some(l)) = (source, lot) else {
+                let missing: Vec<&str> = [("source", source), ("lot", lot)]
+                    .iter()
+                    .filter(|(_, c)| c.is_none())
+                    .map(|(n, _)| *n)
+                    .collect();
+                return Err(self.error(
+                    At { line, col: None },
+                    Some(&h),
+                    ErrorKind::MissingColumn,
+                    format!(
+                        "expected a long header (source,characteristic,lot,value) or a wide header \
+                         (source,lot,<characteristic>...); missing {}; found header {header_text}",
+                        missing.join(", ")
+                    ),
+                ));
+            };
+            h.source = s;
+            h.lot = l;
+            let fixed = [Some(s), Some(l), h.sampled_at, h.unit];
+            let mut wide = Vec::new();
+            for (col, name) in h.names.iter().enumerate() {
+                if !fixed.contains(&Some(col)) {
+                    wide.push((col, self.names.intern(name)));
+                }
+            }
+            if wide.is_empty() {
+                return Err(self.error(
+                    At { line, col: None },
+                    Some(&h),
+                    ErrorKind::Header,
+                    format!(
+                        "expected at least one characteristic column in the wide layout \
+                         (source,lot[,sampled_at][,unit],<characteristic>...), found header {header_text}"
+                    ),
+                ));
+            }
+            h.wide = wide;
+        }
+        Ok(h)
+    }
+
+    /// Returns the group of (source, lot, characteristic), creating it at `line`.
+    fn group(&mut self, ids: (u32, u32, u32), names: (&str, &str, &str), line: u64) -> u32 {
+        let next = u32::try_from(self.groups.len()).unwrap_or(u32::MAX);
+        match self.group_ids.entry(ids) {
+            Entry::Occupied(e) => *e.get(),
+            Entry::Vacant(e) => {
+                e.insert(next);
+                self.groups.push(Group {
+                    source: names.0.to_owned(),
+                    lot: names.1.to_owned(),
+                    characteristic: names.2.to_owned(),
+                    values: Vec::new(),
+                    units: Vec::new(),
+                    sampled_at: Vec::new(),
+                    first_line: line,
+                });
+                next
+            }
+        }
+    }
+
+    /// Records that `group` measured `unit` on `line`; errors on a repeat.
+    fn check_repeat(
+        &mut self,
+        header: &Header,
+        group: u32,
+        unit: (u32, &str),
+        line: u64,
+    ) -> Result<(), LotFileError> {
+        match self.seen.entry((group, unit.0)) {
+            Entry::Vacant(e) => {
+                e.insert(line);
+                Ok(())
+            }
+            Entry::Occupied(e) => {
+                let first = *e.get();
+                let g = &self.groups[group as usize];
+                let what = match header.layout {
+                    Layout::Long => format!("characteristic {}", found(&g.characteristic)),
+                    Layout::Wide => "its characteristics".to_owned(),
+                };
+                Err(self.error(
+                    At {
+                        line,
+                        col: header.unit,
+                    },
+                    Some(header),
+                    ErrorKind::DuplicateMeasurement,
+                    format!(
+                        "expected each unit once per source, lot and characteristic, found unit {} \
+                         of source {}, lot {} measured for {what} on line {first} and again on line {line}",
+                        found(unit.1),
+                        found(&g.source),
+                        found(&g.lot)
+                    ),
+                ))
+            }
+        }
+    }
+
+    fn unit<'r>(
+        &self,
+        record: &'r csv::ByteRecord,
+        line: u64,
+        header: &Header,
+    ) -> Result<Option<&'r str>, LotFileError> {
+        match header.unit {
+            None => Ok(None),
+            Some(col) => self.name(
+                record,
+                At {
+                    line,
+                    col: Some(col),
+                },
+                Some(header),
+                "unit serial",
+                false,
+            ),
+        }
+    }
+
+    fn required<'r>(
+        &self,
+        record: &'r csv::ByteRecord,
+        line: u64,
+        header: &Header,
+        col: usize,
+        what: &str,
+    ) -> Result<&'r str, LotFileError> {
+        let at = At {
+            line,
+            col: Some(col),
+        };
+        Ok(self
+            .name(record, at, Some(header), what, true)?
+            .unwrap_or_default())
+    }
+
+    fn long_row(
+        &mut self,
+        h: &Header,
+        record: &csv::ByteRecord,
+        line: u64,
+    ) -> Result<(), LotFileError> {
+        let source = self.required(record, line, h, h.source, "source")?;
+        let lot = self.required(record, line, h, h.lot, "lot")?;
+        let characteristic = self.required(record, line, h, h.characteristic, "characteristic")?;
+        let at = At {
+            line,
+            col: Some(h.value),
+        };
+        let value = self.number(record, at, h)?;
+        let sampled_at = self.sampled_at(record, line, h)?;
+        let unit = self.unit(record, line, h)?;
+
+        let ids = (
+            self.names.intern(source),
+            self.names.intern(lot),
+            self.names.intern(characteristic),
+        );
+        let g = self.group(ids, (source, lot, characteristic), line);
+        if let Some(u) = unit {
+            let uid = self.units.intern(u);
+            self.check_repeat(h, g, (uid, u), line)?;
+        }
+        let group = &mut self.groups[g as usize];
+        group.values.push(value);
+        group.units.push(unit.map(str::to_owned));
+        group.sampled_at.push(sampled_at);
+        self.values += 1;
+        Ok(())
+    }
+
+    fn wide_row(
+        &mut self,
+        h: &Header,
+        record: &csv::ByteRecord,
+        line: u64,
+    ) -> Result<(), LotFileError> {
+        let source = self.required(record, line, h, h.source, "source")?;
+        let lot = self.required(record, line, h, h.lot, "lot")?;
+        let sampled_at = self.sampled_at(record, line, h)?;
+        let unit = self.unit(record, line, h)?;
+        // Parse every value before storing any, so a row is all or nothing.
+        self.wide_values.clear();
+        for &(col, _) in &h.wide {
+            let at = At {
+                line,
+                col: Some(col),
+            };
+            let value = self.number(record, at, h)?;
+            self.wide_values.push(value);
+        }
+
+        let key = (self.names.intern(source), self.names.intern(lot));
+        if self.wide_key != Some(key) {
+            self.wide_groups.clear();
+            for &(col, cid) in &h.wide {
+                let name = h.names.get(col).map_or("", String::as_str);
+                let g = self.group((key.0, key.1, cid), (source, lot, name), line);
+                self.wide_groups.push(g);
+            }
+            self.wide_key = Some(key);
+        }
+        if let (Some(u), Some(&first)) = (unit, self.wide_groups.first()) {
+            let uid = self.units.intern(u);
+            self.check_repeat(h, first, (uid, u), line)?;
+        }
+        for (&g, &value) in self.wide_groups.iter().zip(&self.wide_values) {
+            let group = &mut self.groups[g as usize];
+            group.values.push(value);
+            group.units.push(unit.map(str::to_owned));
+            group.sampled_at.push(sampled_at);
+        }
+        self.values += h.wide.len();
+        Ok(())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use proptest::prelude::*;
+
+    const LONG: &str = "source,characteristic,lot,value\n";
+
+    fn ok(text: &str) -> LotFile {
+        match parse("t.csv", text.as_bytes()) {
+            Ok(f) => f,
+            Err(e) => panic!("expected success, got {e}"),
+        }
+    }
+
+    fn fail_bytes(bytes: &[u8]) -> LotFileError {
+        match parse("t.csv", bytes) {
+            Ok(f) => panic!("expected an error, got {f:?}"),
+            Err(e) => e,
+        }
+    }
+
+    fn fail(text: &str) -> LotFileError {
+        fail_bytes(text.as_bytes())
+    }
+
+    /// Asserts kind, line and 1-based column of an error.
+    fn assert_err(e: &LotFileError, kind: ErrorKind, line: u64, column: Option<u64>) {
+        assert_eq!(
+            (e.kind, e.line, e.column),
+            (kind, line, column),
+            "unexpected error: {e}"
+        );
+    }
+
+    fn ts(text: &str) -> Timestamp {
+        parse_timestamp(text).unwrap_or_else(|| panic!("bad timestamp {text}"))
+    }
+
+    // --- one test per error kind -------------------------------------------
+
+    #[test]
+    fn error_encoding_names_line_and_column() {
+        let e = fail_bytes(b"source,characteristic,lot,value\nS,C,L,1\nS,C\xff,L,2\n");
+        assert_err(&e, ErrorKind::Encoding, 3, Some(2));
+        assert_eq!(e.column_name.as_deref(), Some("characteristic"));
+        assert!(e.message.contains("0xFF"), "{e}");
+        // In the header, too.
+        let e = fail_bytes(b"source,lot,\xc3(\nS,L,1\n");
+        assert_err(&e, ErrorKind::Encoding, 1, Some(3));
+    }
+
+    #[test]
+    fn error_encoding_utf16_bom() {
+        let e = fail_bytes(b"\xFF\xFEs\0o\0");
+        assert_err(&e, ErrorKind::Encoding, 1, None);
+        assert!(e.message.contains("UTF-16"), "{e}");
+    }
+
+    #[test]
+    fn error_csv_text_after_closing_quote() {
+        let e = fail(&format!("{LONG}S,C,L,1\nS,C,L,\"2\"x\n"));
+        assert_err(&e, ErrorKind::Csv, 3, Some(4));
+        assert_eq!(e.column_name.as_deref(), Some("value"));
+        assert!(e.message.ends_with(r#"found "\"2\"x""#), "{e}");
+    }
+
+    #[test]
+    fn error_csv_quote_inside_unquoted_field() {
+        let e = fail(&format!("{LONG}S,5\" bore,L,1\n"));
+        assert_err(&e, ErrorKind::Csv, 2, Some(2));
+        assert!(e.message.ends_with(r#"found "5\" bore,L,1""#), "{e}");
+    }
+
+    #[test]
+    fn error_csv_unterminated_quote() {
+        let e = fail(&format!("{LONG}S,C,L,1\n\n\"S,C,L,2\nS,C,L,3\n"));
+        assert_err(&e, ErrorKind::Csv, 4, Some(1));
+        assert!(e.message.contains("closing quote"), "{e}");
+    }
+
+    #[test]
+    fn error_header_missing_in_empty_file() {
+        for text in ["", "\n\n", "# only a comment\n", ",,,\n  \n", "\u{feff}"] {
+            let e = fail(text);
+            assert_err(&e, ErrorKind::Header, 1, None);
+        }
+    }
+
+    #[test]
+    fn error_header_wide_without_characteristics() {
+        let e = fail("# c\nsource,lot,sampled_at,unit\nS,L,2026-03-01,U1\n");
+        assert_err(&e, ErrorKind::Header, 2, None);
+        assert!(e.message.contains("at least one characteristic"), "{e}");
+    }
+
+    #[test]
+    fn error_missing_column_long() {
+        let e = fail("source,characteristic,value\nS,C,1\n");
+        assert_err(&e, ErrorKind::MissingColumn, 1, None);
+        assert!(e.message.contains("missing lot"), "{e}");
+        // Only one of characteristic/value still means long layout.
+        let e = fail("source,lot,value\nS,L,1\n");
+        assert_err(&e, ErrorKind::MissingColumn, 1, None);
+        assert!(e.message.contains("missing characteristic"), "{e}");
+    }
+
+    #[test]
+    fn error_missing_column_wide() {
+        let e = fail("supplier,lot,bore\nS,L,1\n");
+        assert_err(&e, ErrorKind::MissingColumn, 1, None);
+        assert!(e.message.contains("missing source"), "{e}");
+    }
+
+    #[test]
+    fn error_unknown_column_long() {
+        let e = fail("source,characteristic,lot,value,operator\nS,C,L,1,Ann\n");
+        assert_err(&e, ErrorKind::UnknownColumn, 1, Some(5));
+        assert_eq!(e.column_name.as_deref(), Some("operator"));
+        assert!(e.message.contains("\"operator\""), "{e}");
+        assert!(e.message.contains(LONG_COLUMNS), "{e}");
+    }
+
+    #[test]
+    fn error_duplicate_column_case_insensitive() {
+        let e = fail("source,lot,Bore,bore\nS,L,1,2\n");
+        assert_err(&e, ErrorKind::DuplicateColumn, 1, Some(4));
+        let e = fail("Source,characteristic,lot,value, SOURCE \nS,C,L,1,S\n");
+        assert_err(&e, ErrorKind::DuplicateColumn, 1, Some(5));
+        assert!(e.message.contains("column 1"), "{e}");
+    }
+
+    #[test]
+    fn error_field_count_names_both_counts() {
+        let e = fail(&format!("{LONG}S,C,L,1\nS,C,L,1,extra\n"));
+        assert_err(&e, ErrorKind::FieldCount, 3, None);
+        assert!(e.message.contains("expected 4 fields"), "{e}");
+        assert!(e.message.contains("found 5 fields on line 3"), "{e}");
+        let e = fail(&format!("{LONG}S,C,L\n"));
+        assert_err(&e, ErrorKind::FieldCount, 2, None);
+    }
+
+    #[test]
+    fn error_empty_required_field() {
+        let e = fail(&format!("{LONG}S,C,  ,1\n"));
+        assert_err(&e, ErrorKind::EmptyField, 2, Some(3));
+        assert_eq!(e.column_name.as_deref(), Some("lot"));
+        let e = fail(&format!("{LONG}S,C,L,\n"));
+        assert_err(&e, ErrorKind::EmptyField, 2, Some(4));
+        assert!(e.message.contains("a value is missing"), "{e}");
+        let e = fail("source,lot,\nS,L,1\n");
+        assert_err(&e, ErrorKind::EmptyField, 1, Some(3));
+    }
+
+    #[test]
+    fn error_empty_cell_in_wide_layout() {
+        let e = fail("source,lot,bore,length\nS,L,1,2\nS,L,3,\n");
+        assert_err(&e, ErrorKind::EmptyField, 3, Some(4));
+        assert_eq!(e.column_name.as_deref(), Some("length"));
+    }
+
+    #[test]
+    fn error_control_character_in_quoted_name() {
+        let e = fail(&format!("{LONG}S,\"Bo\tre\",L,1\n"));
+        assert_err(&e, ErrorKind::ControlCharacter, 2, Some(2));
+        assert!(e.message.contains("U+0009"), "{e}");
+        let e = fail(&format!("{LONG}S,C,\"L\n1\",1\n"));
+        assert_err(&e, ErrorKind::ControlCharacter, 2, Some(3));
+        let e = fail(&format!("{LONG}S\u{85},C,L,1\n"));
+        assert_err(&e, ErrorKind::ControlCharacter, 2, Some(1));
+    }
+
+    #[test]
+    fn error_name_too_long() {
+        let ok_name = "é".repeat(MAX_NAME_CHARS);
+        let f = ok(&format!("{LONG}{ok_name},C,L,1\n"));
+        assert_eq!(f.groups[0].source, ok_name);
+        let long = "x".repeat(MAX_NAME_CHARS + 1);
+        let e = fail(&format!("{LONG}S,C,{long},1\n"));
+        assert_err(&e, ErrorKind::TooLong, 2, Some(3));
+        assert!(e.message.contains("201 characters"), "{e}");
+        assert!(e.message.len() < 200, "found text is truncated: {e}");
+    }
+
+    #[test]
+    fn error_bad_number_message_matches_contract() {
+        let mut text = String::from(LONG);
+        for i in 2..17 {
+            text.push_str(&format!("S,C,L,{i}\n"));
+        }
+        text.push_str("S,C,L,\"2,05\"\n");
+        let e = parse("lots/a.csv", text.as_bytes()).unwrap_err();
+        assert_err(&e, ErrorKind::BadNumber, 17, Some(4));
+        assert_eq!(
+            e.to_string(),
+            "lots/a.csv:17:4 (column value): expected a number with '.' as decimal separator, found \"2,05\""
+        );
+    }
+
+    #[test]
+    fn error_bad_number_variants() {
+        for bad in [
+            "0x1A", "abc", "1.2.3", ".", "-", "e5", "1e", "2 05", "1_000", "١",
+        ] {
+            let e = fail(&format!("{LONG}S,C,L,{bad}\n"));
+            assert_err(&e, ErrorKind::BadNumber, 2, Some(4));
+        }
+    }
+
+    #[test]
+    fn error_non_finite_number() {
+        for bad in ["NaN", "nan", "inf", "-inf", "+Infinity", "1e999", "-2e308"] {
+            let e = fail(&format!("{LONG}S,C,L,{bad}\n"));
+            assert_err(&e, ErrorKind::NonFiniteNumber, 2, Some(4));
+        }
+        let e = fail(&format!("{LONG}S,C,L,1e999\n"));
+        assert!(e.message.contains("overflows"), "{e}");
+    }
+
+    #[test]
+    fn error_bad_timestamp() {
+        for bad in [
+            "2026-03-01T08:30:00",
+            "2026-02-30",
+            "01.03.2026",
+            "2026-3-1",
+            "2026-03-01T25:00:00Z",
+            "2026-03-01T08:30Z",
+            "0000-01-01T00:00:00+01:00",
+            "yesterday",
+        ] {
+            let e = fail(&format!(
+                "source,characteristic,lot,value,sampled_at\nS,C,L,1,{bad}\n"
+            ));
+            assert_err(&e, ErrorKind::BadTimestamp, 2, Some(5));
+            assert_eq!(e.column_name.as_deref(), Some("sampled_at"));
+        }
+    }
+
+    #[test]
+    fn error_duplicate_measurement_names_both_lines() {
+        let e =
+            fail("source,characteristic,lot,value,unit\nS,C,L,1,U1\nS,D,L,1,U1\n# c\nS,C,L,2,U1\n");
+        assert_err(&e, ErrorKind::DuplicateMeasurement, 5, Some(5));
+        assert!(e.message.contains("line 2"), "{e}");
+        assert!(e.message.contains("line 5"), "{e}");
+        let e = fail("source,lot,unit,bore\nS,L,U1,1\nS,L,U2,1\nS,L,U1,1\n");
+        assert_err(&e, ErrorKind::DuplicateMeasurement, 4, Some(3));
+        assert!(e.message.contains("line 2"), "{e}");
+    }
+
+    #[test]
+    fn repeated_rows_without_unit_are_kept() {
+        let f = ok("source,characteristic,lot,value,unit\nS,C,L,1,\nS,C,L,2,\n");
+        assert_eq!(f.groups[0].values, vec![1.0, 2.0]);
+        assert_eq!(f.groups[0].units, vec![None, None]);
+        // Same unit in another lot or source is fine.
+        ok("source,characteristic,lot,value,unit\nS,C,L,1,U\nS,C,M,2,U\nT,C,L,3,U\n");
+    }
+
+    #[test]
+    fn error_no_data() {
+        let e = fail("# comment\nsource,characteristic,lot,value\n\n# more\n,,,\n");
+        assert_err(&e, ErrorKind::NoData, 2, None);
+    }
+
+    #[test]
+    fn display_without_column() {
+        let e = fail("source,characteristic,value\nS,C,1\n");
+        assert!(e.to_string().starts_with("t.csv:1: expected"), "{e}");
+    }
+
+    #[test]
+    fn no_partial_lots_on_late_error() {
+        let e = fail(&format!("{LONG}S,C,L,1\nS,C,L,2\nS,C,L,x\n"));
+        assert_err(&e, ErrorKind::BadNumber, 4, Some(4));
+    }
+
+    // --- accepted files ------------------------------------------------------
+
+    #[test]
+    fn long_layout_basic() {
+        let f = ok(&format!("{LONG}ACME,bore,L1,2.05\nACME,bore,L1,2.06\n"));
+        assert_eq!(f.layout, Layout::Long);
+        assert_eq!((f.rows, f.values), (2, 2));
+        let g = &f.groups[0];
+        assert_eq!((g.source.as_str(), g.lot.as_str()), ("ACME", "L1"));
+        assert_eq!(g.characteristic, "bore");
+        assert_eq!(g.values, vec![2.05, 2.06]);
+        assert_eq!(g.units, vec![None, None]);
+        assert_eq!(g.sampled_at, vec![None, None]);
+        assert_eq!(g.first_line, 2);
+    }
+
+    #[test]
+    fn long_layout_column_order_and_case_free() {
+        let f =
+            ok(" Value ,LOT,Unit,Characteristic,SOURCE,Sampled_At\n1.5,L,U1,bore,S,2026-03-01\n");
+        let g = &f.groups[0];
+        assert_eq!(
+            (g.source.as_str(), g.lot.as_str(), g.characteristic.as_str()),
+            ("S", "L", "bore")
+        );
+        assert_eq!(g.values, vec![1.5]);
+        assert_eq!(g.units, vec![Some("U1".to_owned())]);
+        assert_eq!(g.sampled_at, vec![Some(ts("2026-03-01"))]);
+    }
+
+    #[test]
+    fn wide_layout() {
+        let f = ok("source,lot,unit,sampled_at,Bore Ø,length\n\
+                    S,L1,U1,2026-03-01T08:30:00Z,2.05,10\n\
+                    S,L1,U2,2026-03-01T08:31:00Z,2.06,11\n\
+                    S,L2,U1,,2.07,12\n");
+        assert_eq!(f.layout, Layout::Wide);
+        assert_eq!((f.rows, f.values), (3, 6));
+        let names: Vec<_> = f
+            .groups
+            .iter()
+            .map(|g| (g.lot.as_str(), g.characteristic.as_str(), g.first_line))
+            .collect();
+        assert_eq!(
+            names,
+            vec![
+                ("L1", "Bore Ø", 2),
+                ("L1", "length", 2),
+                ("L2", "Bore Ø", 4),
+                ("L2", "length", 4)
+            ]
+        );
+        assert_eq!(f.groups[1].values, vec![10.0, 11.0]);
+        assert_eq!(
+            f.groups[0].units,
+            vec![Some("U1".to_owned()), Some("U2".to_owned())]
+        );
+        assert_eq!(f.groups[2].sampled_at, vec![None]);
+        assert_eq!(
+            f.groups[0].sampled_at[1].map(|t| t.to_rfc3339()),
+            Some("2026-03-01T08:31:00.000Z".to_owned())
+        );
+    }
+
+    #[test]
+    fn wide_layout_minimal_and_reordered() {
+        let f = ok("bore,LOT,Source\n1,L,S\n2,L,S\n");
+        assert_eq!(f.layout, Layout::Wide);
+        assert_eq!(f.groups.len(), 1);
+        assert_eq!(f.groups[0].values, vec![1.0, 2.0]);
+    }
+
+    #[test]
+    fn bom_crlf_comments_blank_lines_and_line_numbers() {
+        let text = "\u{feff}# exported by CMM\r\nsource,characteristic,lot,value\r\n\r\n   \r\n,,,\r\n# note\r\nS,C,L,1\r\n\r\nS,D,L,2\r\n";
+        let f = ok(text);
+        assert_eq!(f.rows, 2);
+        assert_eq!(f.groups[0].first_line, 7);
+        assert_eq!(f.groups[1].first_line, 9);
+        // Rows of only empty fields are blank whatever their field count.
+        let more = text.replace("S,D,L,2", ",,\r\n\"\",\"\"\r\n ,\t,,,,\r\nS,D,L,2");
+        assert_eq!(ok(&more).groups[1].first_line, 12);
+        let bad = text.replace("S,D,L,2", "S,D,L,z");
+        assert_err(&fail(&bad), ErrorKind::BadNumber, 9, Some(4));
+        let header_bad = "\u{feff}# c\r\nsource,characteristic,lot,value,x\r\nS,C,L,1\r\n";
+        assert_err(&fail(header_bad), ErrorKind::UnknownColumn, 2, Some(5));
+    }
+
+    #[test]
+    fn bom_directly_before_header() {
+        let f = ok("\u{feff}source,characteristic,lot,value\nS,C,L,1");
+        assert_eq!(f.groups[0].source, "S");
+    }
+
+    #[test]
+    fn hash_is_only_a_comment_at_line_start() {
+        let f = ok(&format!("{LONG}\"#1\",C,L,1\n#S,C,L,2\n  #S,C,L,3\n"));
+        let names: Vec<_> = f
+            .groups
+            .iter()
+            .map(|g| (g.source.as_str(), g.first_line, g.values.clone()))
+            .collect();
+        assert_eq!(names, vec![("#1", 2, vec![1.0]), ("#S", 4, vec![3.0])]);
+        // A '#' line inside a quoted field is field content, not a comment.
+        let e = fail(&format!("{LONG}S,C,L,\"2\n# not a comment\"\nS,C,L,3\n"));
+        assert_err(&e, ErrorKind::BadNumber, 2, Some(4));
+        assert!(e.message.contains("# not a comment"), "{e}");
+    }
+
+    #[test]
+    fn quoted_fields_with_commas_quotes_and_newlines() {
+        let f = ok(&format!(
+            "{LONG}\"ACME, Inc.\",\"Bore \"\"A\"\"\",\"L,1\",\" 2.5 \"\nS,C,L,\"\r\n3\r\n\"\nS,C,L,4\n"
+        ));
+        let g = &f.groups[0];
+        assert_eq!(g.source, "ACME, Inc.");
+        assert_eq!(g.characteristic, "Bore \"A\"");
+        assert_eq!(g.lot, "L,1");
+        assert_eq!(g.values, vec![2.5]);
+        assert_eq!(f.groups[1].values, vec![3.0, 4.0]);
+        assert_eq!(f.groups[1].first_line, 3);
+        let e = fail(&format!("{LONG}S,C,L,\"\n5\n\"\nS,C,L,x\n"));
+        assert_err(&e, ErrorKind::BadNumber, 5, Some(4));
+    }
+
+    #[test]
+    fn newline_inside_a_quoted_name_is_a_control_character() {
+        let e = fail(&format!("{LONG}S,C,L,1\n\"multi\nline\",C,L,3\nS,C,L,x\n"));
+        assert_err(&e, ErrorKind::ControlCharacter, 3, Some(1));
+        assert!(e.message.contains("U+000A"), "{e}");
+    }
+
+    #[test]
+    fn quoted_multiline_record_line_numbers() {
+        let e = fail(&format!("{LONG}S,\"C\",\"L\",1\nS,C,L,\"1\n\",2\n"));
+        assert_err(&e, ErrorKind::FieldCount, 3, None);
+        let f = ok("source,lot,unit,bore\nS,L,\"U\"\"1\",1\nS,L,U2,2\n");
+        assert_eq!(f.groups[0].units[0].as_deref(), Some("U\"1"));
+    }
+
+    #[test]
+    fn numbers_plain_and_scientific() {
+        let cases = [
+            ("2.05", 2.05),
+            ("-1.5", -1.5),
+            ("2.05e-3", 2.05e-3),
+            ("+3", 3.0),
+            (".5", 0.5),
+            ("5.", 5.0),
+            ("  7.25  ", 7.25),
+            ("1E+3", 1000.0),
+            ("-0", -0.0),
+            ("1e-400", 0.0),
+            ("1.7976931348623157e308", f64::MAX),
+        ];
+        for (text, want) in cases {
+            let f = ok(&format!("{LONG}S,C,L,{text}\n"));
+            assert_eq!(
+                f.groups[0].values[0].to_bits(),
+                want.to_bits(),
+                "parsing {text:?}"
+            );
+        }
+    }
+
+    #[test]
+    fn timestamps() {
+        let z = ts("2026-03-01T08:30:00Z");
+        assert!(!z.date_only);
+        assert_eq!(z.to_rfc3339(), "2026-03-01T08:30:00.000Z");
+        let off = ts("2026-03-01T08:30:00+02:00");
+        assert_eq!(off.to_rfc3339(), "2026-03-01T06:30:00.000Z");
+        let space = ts("2026-03-01 08:30:00.1234-01:30");
+        assert_eq!(space.to_rfc3339(), "2026-03-01T10:00:00.123Z");
+        let date = ts("2026-03-01");
+        assert!(date.date_only);
+        assert_eq!(date.to_rfc3339(), "2026-03-01T00:00:00.000Z");
+        assert_eq!(ts("2026-03-01t08:30:00z"), z);
+        assert!(ts("2026-03-01T00:30:00+01:00") < date);
+        let f = ok(
+            "source,characteristic,lot,value,sampled_at\nS,C,L,1, 2026-03-01 08:30:00Z \nS,C,L,2,\n",
+        );
+        assert_eq!(f.groups[0].sampled_at, vec![Some(z), None]);
+    }
+
+    #[test]
+    fn rfc3339_text_order_is_time_order() {
+        let texts = [
+            "0001-01-01",
+            "2026-03-01T00:00:00.999Z",
+            "2026-03-01T00:00:01Z",
+            "2026-03-01T23:59:59+23:59",
+            "9999-12-31T23:59:59.999Z",
+        ];
+        let stamps: Vec<_> = texts.iter().map(|t| ts(t)).collect();
+        for w in stamps.windows(2) {
+            assert!(w[0] <= w[1]);
+            assert!(w[0].to_rfc3339() <= w[1].to_rfc3339());
+            assert_eq!(w[1].to_rfc3339().len(), 24);
+        }
+    }
+
+    #[test]
+    fn groups_in_order_of_first_appearance() {
+        let f = ok(&format!(
+            "{LONG}S,b,L1,1\nS,a,L1,2\nT,b,L1,3\nS,b,L1,4\nS,b,L2,5\nS,a,L1,6\n"
+        ));
+        let got: Vec<_> = f
+            .groups
+            .iter()
+            .map(|g| {
+                (
+                    g.source.as_str(),
+                    g.characteristic.as_str(),
+                    g.lot.as_str(),
+                    g.values.clone(),
+                )
+            })
+            .collect();
+        assert_eq!(
+            got,
+            vec![
+                ("S", "b", "L1", vec![1.0, 4.0]),
+                ("S", "a", "L1", vec![2.0, 6.0]),
+                ("T", "b", "L1", vec![3.0]),
+                ("S", "b", "L2", vec![5.0]),
+            ]
+        );
+        assert_eq!((f.rows, f.values), (6, 6));
+    }
+
+    #[test]
+    fn names_are_case_sensitive_and_trimmed() {
+        let f = ok(&format!("{LONG} S ,Bore,L,1\nS,bore,L,2\n"));
+        assert_eq!(f.groups.len(), 2);
+        assert_eq!(f.groups[0].source, "S");
+    }
+
+    #[test]
+    fn error_kind_names_are_distinct() {
+        let kinds = [
+            ErrorKind::Encoding,
+            ErrorKind::Csv,
+            ErrorKind::Header,
+            ErrorKind::MissingColumn,
+            ErrorKind::UnknownColumn,
+            ErrorKind::DuplicateColumn,
+            ErrorKind::FieldCount,
+            ErrorKind::EmptyField,
+            ErrorKind::ControlCharacter,
+            ErrorKind::TooLong,
+            ErrorKind::BadNumber,
+            ErrorKind::NonFiniteNumber,
+            ErrorKind::BadTimestamp,
+            ErrorKind::DuplicateMeasurement,
+            ErrorKind::NoData,
+        ];
+        let names: std::collections::HashSet<_> = kinds.iter().map(|k| k.as_str()).collect();
+        assert_eq!(names.len(), kinds.len());
+    }
+
+    // --- throughput ------------------------------------------------------------
+
+    fn generated_long_file(rows: usize) -> String {
+        let mut text = String::with_capacity(rows * 64);
+        text.push_str("source,characteristic,lot,value,sampled_at,unit\n");
+        let chars = ["bore", "length", "flatness", "hardness"];
+        for i in 0..rows {
+            let unit = i / chars.len();
+            let ch = chars[i % chars.len()];
+            let lot = unit / 500;
+            let value = 2.0 + (i % 97) as f64 * 0.001;
+            text.push_str(&format!(
+                "ACME-{},{ch},LOT-{lot},{value:?},2026-03-01T08:{:02}:00Z,SN{unit:06}\n",
+                lot % 3,
+                unit % 60
+            ));
+        }
+        text
+    }
+
+    #[test]
+    fn throughput_40k_rows() {
+        let text = generated_long_file(40_000);
+        let start = std::time::Instant::now();
+        let f = ok(&text);
+        let secs = start.elapsed().as_secs_f64();
+        assert_eq!((f.rows, f.values), (40_000, 40_000));
+        println!(
+            "parsed {} rows ({} bytes) in {:.3} s: {:.0} rows/s, {:.1} MB/s",
+            f.rows,
+            text.len(),
+            secs,
+            f.rows as f64 / secs,
+            text.len() as f64 / secs / 1e6
+        );
+    }
+
+    // --- properties ------------------------------------------------------------
+
+    fn csvish() -> impl Strategy<Value = String> {
+        let pieces = prop::sample::select(vec![
+            "source",
+            "lot",
+            "characteristic",
+            "value",
+            "unit",
+            "sampled_at",
+            "S",
+            "L",
+            "C",
+            ",",
+            ",",
+            "\"",
+            "\"\"",
+            "\n",
+            "\r\n",
+            "\r",
+            "#",
+            " ",
+            "\t",
+            "1",
+            "2.5",
+            "-",
+            "e",
+            ".",
+            "1e999",
+            "NaN",
+            "2026-03-01",
+            "T08:30:00Z",
+            "+02:00",
+            "\u{feff}",
+            "\u{0}",
+            "é",
+            "U1",
+        ]);
+        prop::collection::vec(pieces, 0..80).prop_map(|v| v.concat())
+    }
+
+    fn headed_csvish() -> impl Strategy<Value = String> {
+        let header = prop::sample::select(vec![
+            "source,characteristic,lot,value\n",
+            "source,characteristic,lot,value,sampled_at,unit\n",
+            "source,lot,unit,bore,len\n",
+            "source,lot,sampled_at,x\n",
+        ]);
+        (header, csvish()).prop_map(|(h, body)| format!("{h}{body}"))
+    }
+
+    #[derive(Debug, Clone)]
+    struct Row {
+        source: String,
+        lot: String,
+        characteristic: String,
+        value: f64,
+    }
+
+    fn name() -> impl Strategy<Value = String> {
+        let piece = prop::sample::select(vec![
+            "a", "B", "7", "-", "_", "é", "Ø", " ", ",", "\"", "#", "x y",
+        ]);
+        prop::collection::vec(piece, 1..6).prop_map(|v| {
+            let s = v.concat();
+            let t = s.trim_matches([' ', '\t']);
+            if t.is_empty() {
+                "n".to_owned()
+            } else {
+                t.to_owned()
+            }
+        })
+    }
+
+    fn finite() -> impl Strategy<Value = f64> {
+        prop::num::f64::NORMAL | prop::num::f64::SUBNORMAL | prop::num::f64::ZERO
+    }
+
+    fn rows() -> impl Strategy<Value = Vec<Row>> {
+        let pool = || prop::collection::vec(name(), 1..4);
+        (pool(), pool(), pool()).prop_flat_map(|(s, l, c)| {
+            let row = (
+                prop::sample::select(s),
+                prop::sample::select(l),
+                prop::sample::select(c),
+                finite(),
+            )
+                .prop_map(|(source, lot, characteristic, value)| Row {
+                    source,
+                    lot,
+                    characteristic,
+                    value,
+                });
+            prop::collection::vec(row, 1..40)
+        })
+    }
+
+    fn quoted(s: &str) -> String {
+        format!("\"{}\"", s.replace('"', "\"\""))
+    }
+
+    proptest! {
+        #[test]
+        fn never_panics_on_bytes(bytes in prop::collection::vec(any::<u8>(), 0..600)) {
+            let _ = parse("fuzz.csv", &bytes);
+        }
+
+        #[test]
+        fn timestamp_parser_never_panics(text in any::<String>()) {
+            let _ = parse_timestamp(&text);
+            let _ = parse_number(&text);
+        }
+
+        #[test]
+        fn never_panics_on_csvish_text(text in csvish()) {
+            let _ = parse("fuzz.csv", text.as_bytes());
+        }
+
+        #[test]
+        fn never_panics_on_headed_csvish_text(text in headed_csvish()) {
+            if let Err(e) = parse("fuzz.csv", text.as_bytes()) {
+                prop_assert!(e.line >= 1);
+                prop_assert!(!e.message.is_empty());
+            }
+        }
+
+        #[test]
+        fn long_round_trip(
+            rows in rows(),
+            order in Just(vec![0usize, 1, 2, 3, 4]).prop_shuffle(),
+            crlf in any::<bool>(),
+            bom in any::<bool>(),
+        ) {
+            let eol = if crlf { "\r\n" } else { "\n" };
+            let headers = ["source", "Characteristic", "LOT", "value", "unit"];
+            let mut text = String::from(if bom { "\u{feff}" } else { "" });
+            text.push_str(&order.iter().map(|&i| headers[i]).collect::<Vec<_>>().join(","));
+            text.push_str(eol);
+            for (i, r) in rows.iter().enumerate() {
+                if i % 7 == 3 {
+                    text.push_str("# comment");
+                    text.push_str(eol);
+                    text.push_str(eol);
+                }
+                let cells = [
+                    quoted(&r.source),
+                    quoted(&r.characteristic),
+                    quoted(&r.lot),
+                    format!("{:?}", r.value),
+                    format!("U{i}"),
+                ];
+                text.push_str(&order.iter().map(|&c| cells[c].as_str()).collect::<Vec<_>>().join(","));
+                text.push_str(eol);
+            }
+            let f = parse("rt.csv", text.as_bytes()).map_err(|e| TestCaseError::fail(e.to_string()))?;
+
+            let mut want: Vec<((String, String, String), Vec<String>)> = Vec::new();
+            for r in &rows {
+                let key = (r.source.clone(), r.lot.clone(), r.characteristic.clone());
+                match want.iter_mut().find(|(k, _)| *k == key) {
+                    Some((_, v)) => v.push(format!("{:?}", r.value)),
+                    None => want.push((key, vec![format!("{:?}", r.value)])),
+                }
+            }
+            let got: Vec<((String, String, String), Vec<String>)> = f
+                .groups
+                .iter()
+                .map(|g| {
+                    (
+                        (g.source.clone(), g.lot.clone(), g.characteristic.clone()),
+                        g.values.iter().map(|v| format!("{v:?}")).collect(),
+                    )
+                })
+                .collect();
+            prop_assert_eq!(got, want);
+            prop_assert_eq!(f.rows, rows.len());
+            prop_assert_eq!(f.values, rows.len());
+        }
+    }
+}

@@ -1,0 +1,1642 @@
+//! Storage: the only module that speaks SQL.
+//!
+//! Owns the sqlx pool, the embedded migrations (`migrations/`), and every statement the
+//! program runs. Callers hand in typed values and get typed rows back; no SQL text leaves this
+//! file. SQLite runs in WAL mode with a busy timeout, and every write transaction begins
+//! `IMMEDIATE`, so readers (the CLI, the user's own SQL tools) never block the daemon and a
+//! second writer waits instead of failing. The SQL is kept to what PostgreSQL also accepts
+//! where that costs nothing (upserts with `ON CONFLICT`, `RETURNING`, no SQLite-only functions),
+//! for the multi-site backend to come.
+
+use std::collections::{HashMap, HashSet};
+use std::path::Path;
+use std::str::FromStr;
+use std::sync::Mutex;
+use std::time::Duration;
+
+use sqlx::sqlite::{
+    SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteRow,
+    SqliteSynchronous,
+};
+use sqlx::{QueryBuilder, Row, Sqlite, Transaction};
+
+use crate::stats::Summary;
+
+/// A storage failure. Constraint violations that mean something to the domain are turned into
+/// their own variants; everything else is the database's error with what we were doing.
+#[derive(Debug, thiserror::Error)]
+pub enum StoreError {
+    #[error("cannot open database {path}: {source}")]
+    Open { path: String, source: sqlx::Error },
+    #[error("cannot migrate database {path}: {source}")]
+    Migrate {
+        path: String,
+        source: sqlx::migrate::MigrateError,
+    },
+    #[error("database error while {doing}: {source}")]
+    Sql {
+        doing: &'static str,
+        source: sqlx::Error,
+    },
+    #[error("stored data is inconsistent: {0}")]
+    Corrupt(String),
+}
+
+type Result<T> = std::result::Result<T, StoreError>;
+
+trait Doing<T> {
+    fn doing(self, what: &'static str) -> Result<T>;
+}
+
+impl<T> Doing<T> for std::result::Result<T, sqlx::Error> {
+    fn doing(self, what: &'static str) -> Result<T> {
+        self.map_err(|source| StoreError::Sql {
+            doing: what,
+            source,
+        })
+    }
+}
+
+/// Rows per multi-row INSERT: large enough to amortise the per-statement cost, small enough
+/// to stay far below SQLite's bound-parameter limit (5 parameters a row here).
+const ROWS_PER_INSERT: usize = 500;
+
+/// Ids of names already stored, so a batch does not look up the same source again for every
+/// file. Only committed ids enter the cache.
+#[derive(Default)]
+struct NameCache {
+    sources: HashMap<String, i64>,
+    characteristics: HashMap<String, i64>,
+    series: HashMap<(i64, i64), i64>,
+}
+
+/// The database handle. Cheap to share by reference; one per process.
+pub struct Store {
+    pool: SqlitePool,
+    names: Mutex<NameCache>,
+}
+
+/// One parsed file, ready to be stored.
+#[derive(Debug, Clone)]
+pub struct NewFile {
+    pub name: String,
+    /// SHA-256 of the file's bytes, lower-case hex.
+    pub hash: String,
+    pub layout: &'static str,
+    pub rows: usize,
+    pub samples: Vec<NewSample>,
+}
+
+/// The values of one (source, lot, characteristic) in a file.
+#[derive(Debug, Clone)]
+pub struct NewSample {
+    pub source: String,
+    pub lot: String,
+    pub characteristic: String,
+    pub values: Vec<f64>,
+    pub units: Vec<Option<String>>,
+    /// Per value, RFC 3339 UTC text (fixed width) or None.
+    pub sampled_at: Vec<Option<String>>,
+    pub summary: Summary,
+    /// Order-independent digest of (unit, value) pairs: equal digests mean equal content.
+    pub digest: String,
+    /// Earliest sampling time of the values.
+    pub earliest: Option<String>,
+}
+
+/// What became of one file of a batch.
+#[derive(Debug, Clone, PartialEq)]
+pub enum FileOutcome {
+    /// Stored: `samples` new samples; `already_stored` samples were identical to stored ones.
+    Stored {
+        file_id: i64,
+        samples: usize,
+        already_stored: usize,
+    },
+    /// The same bytes were stored before, from `first_name`.
+    Duplicate { first_name: String },
+    /// Values for lots already stored differ from what is stored; nothing of the file stored.
+    Conflict(Vec<Conflict>),
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub struct Conflict {
+    pub source: String,
+    pub lot: String,
+    pub characteristic: String,
+    /// The file the stored values came from ("this batch" when an earlier file of the same
+    /// batch sent them).
+    pub stored_from: String,
+}
+
+/// A stored sample of a series, in the order the engine uses.
+#[derive(Debug, Clone)]
+pub struct SeriesSample {
+    pub sample_id: i64,
+    pub lot_id: i64,
+    pub lot: String,
+    /// `COALESCE(lot.sampled_at, lot.first_seen_at)`, RFC 3339 text.
+    pub order_time: String,
+    pub summary: Summary,
+    pub evaluated: bool,
+}
+
+/// A frozen baseline.
+#[derive(Debug, Clone)]
+pub struct BaselineRow {
+    pub id: i64,
+    pub lot_count: usize,
+    pub summary: Summary,
+    pub definition: String,
+}
+
+/// An open alert's state as the engine needs it.
+#[derive(Debug, Clone)]
+pub struct OpenAlert {
+    pub id: i64,
+    pub in_control_run: i64,
+}
+
+/// Everything the engine needs to decide one series.
+#[derive(Debug, Clone)]
+pub struct SeriesWork {
+    pub series_id: i64,
+    pub source: String,
+    pub characteristic: String,
+    pub baseline: Option<BaselineRow>,
+    /// Samples not in the baseline and not yet evaluated, in order (when no baseline is frozen
+    /// yet: every sample of the series, in order).
+    pub pending: Vec<SeriesSample>,
+    pub open_alert: Option<OpenAlert>,
+}
+
+/// A baseline to freeze.
+#[derive(Debug, Clone)]
+pub struct NewBaseline {
+    pub series_id: i64,
+    pub definition: String,
+    pub sample_ids: Vec<i64>,
+    pub summary: Summary,
+    pub last_order_time: String,
+}
+
+/// One decision to record.
+#[derive(Debug, Clone)]
+pub struct NewEvaluation {
+    pub sample_id: i64,
+    pub series_id: i64,
+    pub test: String,
+    pub alternative: String,
+    pub statistic: Option<f64>,
+    pub df: Option<f64>,
+    pub p_value: Option<f64>,
+    pub p_adjusted: Option<f64>,
+    pub method: String,
+    pub family_size: i64,
+    pub level: f64,
+    pub significant: bool,
+    pub baseline: Summary,
+    pub lot: Summary,
+    pub estimate: Option<f64>,
+    pub ci: Option<(f64, f64)>,
+    pub note: Option<String>,
+}
+
+/// What an evaluation does to its series' alert.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+/// The alert concerned is always the open alert of the evaluation's series (opened earlier or
+/// in the same pass).
+pub enum AlertAction {
+    None,
+    Open,
+    Attach,
+    /// In control while an alert is open; `run` is the new count of consecutive such lots.
+    InControl {
+        run: i64,
+    },
+    Resolve,
+}
+
+/// A decision and its consequence, written together.
+#[derive(Debug, Clone)]
+pub struct Decision {
+    pub evaluation: NewEvaluation,
+    pub action: AlertAction,
+}
+
+/// All the writes of one engine pass.
+#[derive(Debug, Clone, Default)]
+pub struct EnginePass {
+    pub baselines: Vec<NewBaseline>,
+    /// In decision order.
+    pub decisions: Vec<Decision>,
+    /// Outbox rows to write for every alert event of kind opened or resolved.
+    pub recipients: Vec<(String, String)>,
+}
+
+/// Counts of what one engine pass wrote.
+#[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
+pub struct PassCounts {
+    pub baselines: usize,
+    pub evaluations: usize,
+    pub opened: usize,
+    pub resolved: usize,
+}
+
+/// One message to deliver, with everything a channel needs to render it.
+#[derive(Debug, Clone)]
+pub struct OutboxItem {
+    pub id: i64,
+    pub channel: String,
+    pub recipient: String,
+    pub attempts: i64,
+    pub created_at: String,
+    pub event_id: i64,
+    pub event_kind: String,
+    pub event_at: String,
+    pub alert: AlertRow,
+}
+
+/// An alert with the numbers of the evaluation that opened it.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct AlertRow {
+    pub id: i64,
+    pub source: String,
+    pub characteristic: String,
+    pub state: String,
+    pub opened_at: String,
+    pub resolved_at: Option<String>,
+    pub lot: String,
+    pub lot_sampled_at: Option<String>,
+    pub test: String,
+    pub alternative: String,
+    pub statistic: Option<f64>,
+    pub df: Option<f64>,
+    pub p_value: Option<f64>,
+    pub p_adjusted: Option<f64>,
+    pub method: String,
+    pub level: f64,
+    pub family_size: i64,
+    pub baseline_n: i64,
+    pub baseline_mean: f64,
+    pub baseline_sd: Option<f64>,
+    pub lot_n: i64,
+    pub lot_mean: f64,
+    pub lot_sd: Option<f64>,
+    pub estimate: Option<f64>,
+    pub ci: Option<[f64; 2]>,
+    /// Significant lots attached to the alert, the opening one included.
+    pub lots: i64,
+}
+
+/// Counts for `lotdrift status`.
+#[derive(Debug, Clone, Default, serde::Serialize)]
+pub struct StatusCounts {
+    pub sources: i64,
+    pub series: i64,
+    pub files: i64,
+    pub lots: i64,
+    pub measurements: i64,
+    pub quarantined: i64,
+    pub evaluations: i64,
+    pub open_alerts: i64,
+    pub alerts: i64,
+    pub outbox_pending: i64,
+    pub outbox_failed: i64,
+    pub outbox_expired: i64,
+}
+
+/// A failed or expired outbox message, for `status`.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct UndeliveredRow {
+    pub id: i64,
+    pub channel: String,
+    pub recipient: String,
+    pub state: String,
+    pub attempts: i64,
+    pub last_error: Option<String>,
+}
+
+/// One lot of a series, for `lotdrift history`.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct HistoryRow {
+    pub source: String,
+    pub characteristic: String,
+    pub lot: String,
+    pub sampled_at: Option<String>,
+    pub n: i64,
+    pub mean: f64,
+    pub sd: Option<f64>,
+    pub min: f64,
+    pub max: f64,
+    /// "baseline", "tested" or "pending".
+    pub role: String,
+    pub p_value: Option<f64>,
+    pub p_adjusted: Option<f64>,
+    pub significant: Option<bool>,
+    pub alert_id: Option<i64>,
+}
+
+fn summary_from_row(row: &SqliteRow, first: usize) -> Result<Summary> {
+    let n: i64 = row.get(first);
+    let mean: f64 = row.get(first + 1);
+    let m2: f64 = row.get(first + 2);
+    let min: f64 = row.get(first + 3);
+    let max: f64 = row.get(first + 4);
+    Summary::from_parts(n as u64, mean, m2, min, max)
+        .map_err(|e| StoreError::Corrupt(format!("stored summary n={n} mean={mean}: {e}")))
+}
+
+impl Store {
+    /// Opens (creating if needed) the SQLite database at `path` and applies migrations.
+    pub async fn open(path: &Path) -> Result<Store> {
+        let shown = path.display().to_string();
+        if let Some(dir) = path.parent().filter(|d| !d.as_os_str().is_empty()) {
+            std::fs::create_dir_all(dir).map_err(|e| StoreError::Open {
+                path: shown.clone(),
+                source: sqlx::Error::Io(e),
+            })?;
+        }
+        let options = SqliteConnectOptions::from_str("sqlite:")
+            .map_err(|source| StoreError::Open {
+                path: shown.clone(),
+                source,
+            })?
+            .filename(path)
+            .create_if_missing(true)
+            .journal_mode(SqliteJournalMode::Wal)
+            .synchronous(SqliteSynchronous::Normal)
+            .busy_timeout(Duration::from_secs(30))
+            .foreign_keys(true);
+        let pool = SqlitePoolOptions::new()
+            .max_connections(4)
+            .connect_with(options)
+            .await
+            .map_err(|source| StoreError::Open {
+                path: shown.clone(),
+                source,
+            })?;
+        sqlx::migrate!()
+            .run(&pool)
+            .await
+            .map_err(|source| StoreError::Migrate {
+                path: shown,
+                source,
+            })?;
+        Ok(Store {
+            pool,
+            names: Mutex::new(NameCache::default()),
+        })
+    }
+
+    /// Closes the pool, checkpointing the WAL.
+    pub async fn close(self) {
+        self.pool.close().await;
+    }
+
+    async fn begin(&self) -> Result<Transaction<'static, Sqlite>> {
+        self.pool
+            .begin_with("BEGIN IMMEDIATE")
+            .await
+            .doing("beginning a write transaction")
+    }
+
+    /// True when a file with this content hash is stored.
+    pub async fn file_known(&self, hash: &str) -> Result<Option<String>> {
+        let row = sqlx::query("SELECT file_name FROM ingested_file WHERE content_hash = ?")
+            .bind(hash)
+            .fetch_optional(&self.pool)
+            .await
+            .doing("looking up a content hash")?;
+        Ok(row.map(|r| r.get(0)))
+    }
+
+    /// Stores a batch of files in one transaction. Each file is all or nothing: a file is
+    /// either stored whole, recognised as a duplicate, or refused with its conflicts; the
+    /// decision is made before anything of it is written. With `replace` set, values that
+    /// differ from stored ones replace them (kept in `sample_replacement` with the reason)
+    /// instead of refusing the file.
+    pub async fn ingest_batch(
+        &self,
+        files: &[NewFile],
+        received_at: &str,
+        replace: Option<&str>,
+    ) -> Result<Vec<FileOutcome>> {
+        let mut tx = self.begin().await?;
+        let mut created = NameCache::default();
+        let outcomes = self
+            .ingest_in(&mut tx, files, received_at, replace, &mut created)
+            .await?;
+        tx.commit().await.doing("committing a batch of files")?;
+        let mut cache = self.names.lock().expect("name cache lock");
+        cache.sources.extend(created.sources);
+        cache.characteristics.extend(created.characteristics);
+        cache.series.extend(created.series);
+        Ok(outcomes)
+    }
+
+    async fn ingest_in(
+        &self,
+        tx: &mut Transaction<'static, Sqlite>,
+        files: &[NewFile],
+        received_at: &str,
+        replace: Option<&str>,
+        created: &mut NameCache,
+    ) -> Result<Vec<FileOutcome>> {
+        // 1. Duplicates by content hash (stored before, or twice in this batch).
+        let mut known: HashMap<String, String> = HashMap::new();
+        for chunk in files.chunks(ROWS_PER_INSERT) {
+            let mut q = QueryBuilder::<Sqlite>::new(
+                "SELECT content_hash, file_name FROM ingested_file WHERE content_hash IN (",
+            );
+            let mut sep = q.separated(", ");
+            for f in chunk {
+                sep.push_bind(&f.hash);
+            }
+            q.push(")");
+            for row in q
+                .build()
+                .fetch_all(&mut **tx)
+                .await
+                .doing("looking up content hashes")?
+            {
+                known.insert(row.get(0), row.get(1));
+            }
+        }
+
+        // 2. Ids of sources, characteristics and series (created where new).
+        let mut source_ids: HashMap<String, i64> = HashMap::new();
+        let mut series_ids: HashMap<(String, String), i64> = HashMap::new();
+        for f in files {
+            for s in &f.samples {
+                if !series_ids.contains_key(&(s.source.clone(), s.characteristic.clone())) {
+                    let source_id = self.source_id(tx, &s.source, created).await?;
+                    let ch_id = self
+                        .characteristic_id(tx, &s.characteristic, created)
+                        .await?;
+                    let series_id = self.series_id(tx, source_id, ch_id, created).await?;
+                    source_ids.insert(s.source.clone(), source_id);
+                    series_ids.insert((s.source.clone(), s.characteristic.clone()), series_id);
+                }
+            }
+        }
+
+        // 3. Lots that exist already, and their stored samples.
+        let mut lot_ids: HashMap<(i64, String), i64> = HashMap::new();
+        let mut wanted: Vec<(i64, &str)> = Vec::new();
+        let mut seen: HashSet<(i64, &str)> = HashSet::new();
+        for f in files {
+            for s in &f.samples {
+                let key = (source_ids[&s.source], s.lot.as_str());
+                if seen.insert(key) {
+                    wanted.push(key);
+                }
+            }
+        }
+        for chunk in wanted.chunks(ROWS_PER_INSERT) {
+            let mut q =
+                QueryBuilder::<Sqlite>::new("SELECT id, source_id, code FROM lot WHERE code IN (");
+            let mut sep = q.separated(", ");
+            for (_, code) in chunk {
+                sep.push_bind(*code);
+            }
+            q.push(")");
+            for row in q
+                .build()
+                .fetch_all(&mut **tx)
+                .await
+                .doing("looking up lots")?
+            {
+                let key = (row.get::<i64, _>(1), row.get::<String, _>(2));
+                if seen.contains(&(key.0, key.1.as_str())) {
+                    lot_ids.insert(key, row.get(0));
+                }
+            }
+        }
+        // (lot_id, series_id) -> (sample_id, digest, file name, n, mean, m2, file_id)
+        let mut stored: HashMap<(i64, i64), StoredSample> = HashMap::new();
+        let existing: Vec<i64> = lot_ids.values().copied().collect();
+        for chunk in existing.chunks(ROWS_PER_INSERT) {
+            let mut q = QueryBuilder::<Sqlite>::new(
+                "SELECT s.id, s.lot_id, s.series_id, s.content_digest, f.file_name, s.n, s.mean, \
+                 s.m2, s.file_id FROM sample s JOIN ingested_file f ON f.id = s.file_id \
+                 WHERE s.lot_id IN (",
+            );
+            let mut sep = q.separated(", ");
+            for id in chunk {
+                sep.push_bind(*id);
+            }
+            q.push(")");
+            for row in q
+                .build()
+                .fetch_all(&mut **tx)
+                .await
+                .doing("looking up stored samples")?
+            {
+                stored.insert(
+                    (row.get(1), row.get(2)),
+                    StoredSample {
+                        id: row.get(0),
+                        digest: row.get(3),
+                        file_name: row.get(4),
+                        n: row.get(5),
+                        mean: row.get(6),
+                        m2: row.get(7),
+                        file_id: row.get(8),
+                    },
+                );
+            }
+        }
+
+        // 4. Decide every file before writing anything of it.
+        let mut outcomes: Vec<Option<FileOutcome>> = vec![None; files.len()];
+        // Samples claimed by earlier files of this batch: (source, lot, characteristic) -> digest.
+        let mut claimed: HashMap<(&str, &str, &str), (&str, &str)> = HashMap::new();
+        let mut batch_hashes: HashMap<&str, &str> = HashMap::new();
+        // Per file: which samples to write (index) and which replace a stored sample.
+        let mut plans: Vec<Vec<(usize, Option<StoredSample>)>> = vec![Vec::new(); files.len()];
+        for (i, f) in files.iter().enumerate() {
+            if let Some(first) = known.get(&f.hash) {
+                outcomes[i] = Some(FileOutcome::Duplicate {
+                    first_name: first.clone(),
+                });
+                continue;
+            }
+            if let Some(first) = batch_hashes.get(f.hash.as_str()) {
+                outcomes[i] = Some(FileOutcome::Duplicate {
+                    first_name: (*first).to_string(),
+                });
+                continue;
+            }
+            let mut conflicts = Vec::new();
+            let mut plan = Vec::new();
+            let mut already = 0usize;
+            for (j, s) in f.samples.iter().enumerate() {
+                let key = (s.source.as_str(), s.lot.as_str(), s.characteristic.as_str());
+                if let Some((digest, from)) = claimed.get(&key) {
+                    if *digest != s.digest {
+                        conflicts.push(Conflict {
+                            source: s.source.clone(),
+                            lot: s.lot.clone(),
+                            characteristic: s.characteristic.clone(),
+                            stored_from: format!("{from} (same batch)"),
+                        });
+                    } else {
+                        already += 1;
+                    }
+                    continue;
+                }
+                let source_id = source_ids[&s.source];
+                let series_id = series_ids[&(s.source.clone(), s.characteristic.clone())];
+                let existing = lot_ids
+                    .get(&(source_id, s.lot.clone()))
+                    .and_then(|lot_id| stored.get(&(*lot_id, series_id)));
+                match existing {
+                    Some(st) if st.digest == s.digest => already += 1,
+                    Some(st) if replace.is_some() => plan.push((j, Some(st.clone()))),
+                    Some(st) => conflicts.push(Conflict {
+                        source: s.source.clone(),
+                        lot: s.lot.clone(),
+                        characteristic: s.characteristic.clone(),
+                        stored_from: st.file_name.clone(),
+                    }),
+                    None => plan.push((j, None)),
+                }
+            }
+            if !conflicts.is_empty() {
+                outcomes[i] = Some(FileOutcome::Conflict(conflicts));
+                continue;
+            }
+            for s in &f.samples {
+                claimed.insert(
+                    (s.source.as_str(), s.lot.as_str(), s.characteristic.as_str()),
+                    (s.digest.as_str(), f.name.as_str()),
+                );
+            }
+            batch_hashes.insert(f.hash.as_str(), f.name.as_str());
+            outcomes[i] = Some(FileOutcome::Stored {
+                file_id: 0,
+                samples: plan.len(),
+                already_stored: already,
+            });
+            plans[i] = plan;
+        }
+
+        // 5. Write: files, lots, samples, measurements.
+        let to_store: Vec<usize> = (0..files.len())
+            .filter(|i| matches!(outcomes[*i], Some(FileOutcome::Stored { .. })))
+            .collect();
+        let mut file_ids: HashMap<usize, i64> = HashMap::new();
+        for chunk in to_store.chunks(ROWS_PER_INSERT) {
+            let mut q = QueryBuilder::<Sqlite>::new(
+                "INSERT INTO ingested_file (content_hash, file_name, received_at, layout, row_count) ",
+            );
+            q.push_values(chunk, |mut b, i| {
+                let f = &files[*i];
+                b.push_bind(&f.hash)
+                    .push_bind(&f.name)
+                    .push_bind(received_at)
+                    .push_bind(f.layout)
+                    .push_bind(f.rows as i64);
+            });
+            q.push(" RETURNING id, content_hash");
+            let by_hash: HashMap<String, i64> = q
+                .build()
+                .fetch_all(&mut **tx)
+                .await
+                .doing("recording files")?
+                .iter()
+                .map(|r| (r.get(1), r.get(0)))
+                .collect();
+            for i in chunk {
+                file_ids.insert(*i, by_hash[&files[*i].hash]);
+            }
+        }
+
+        // Lots: earliest sampling time per lot across the batch; new lots inserted, existing
+        // lots get an earlier sampled_at if a file brings one.
+        let mut lot_times: HashMap<(i64, &str), Option<&str>> = HashMap::new();
+        for i in &to_store {
+            for (j, _) in &plans[*i] {
+                let s = &files[*i].samples[*j];
+                let key = (source_ids[&s.source], s.lot.as_str());
+                let entry = lot_times.entry(key).or_insert(None);
+                *entry = earlier(*entry, s.earliest.as_deref());
+            }
+        }
+        let mut new_lots: Vec<((i64, &str), Option<&str>)> = Vec::new();
+        for (key, time) in &lot_times {
+            match lot_ids.get(&(key.0, key.1.to_string())) {
+                Some(id) => {
+                    if let Some(t) = time {
+                        sqlx::query(
+                            "UPDATE lot SET sampled_at = ? WHERE id = ? \
+                             AND (sampled_at IS NULL OR sampled_at > ?)",
+                        )
+                        .bind(*t)
+                        .bind(id)
+                        .bind(*t)
+                        .execute(&mut **tx)
+                        .await
+                        .doing("updating a lot's sampling time")?;
+                    }
+                }
+                None => new_lots.push((*key, *time)),
+            }
+        }
+        new_lots.sort();
+        for chunk in new_lots.chunks(ROWS_PER_INSERT) {
+            let mut q = QueryBuilder::<Sqlite>::new(
+                "INSERT INTO lot (source_id, code, sampled_at, first_seen_at) ",
+            );
+            q.push_values(chunk, |mut b, ((source_id, code), time)| {
+                b.push_bind(*source_id)
+                    .push_bind(*code)
+                    .push_bind(*time)
+                    .push_bind(received_at);
+            });
+            q.push(" RETURNING id, source_id, code");
+            for row in q
+                .build()
+                .fetch_all(&mut **tx)
+                .await
+                .doing("recording lots")?
+            {
+                lot_ids.insert((row.get(1), row.get(2)), row.get(0));
+            }
+        }
+
+        // Samples: replacements update in place (decisions keep the numbers they stored).
+        struct Pending<'a> {
+            sample: &'a NewSample,
+            lot_id: i64,
+            series_id: i64,
+            file_id: i64,
+        }
+        let mut inserts: Vec<Pending> = Vec::new();
+        let mut sample_ids: Vec<(i64, &NewSample)> = Vec::new();
+        for i in &to_store {
+            let file_id = file_ids[i];
+            for (j, replaced) in &plans[*i] {
+                let s = &files[*i].samples[*j];
+                let source_id = source_ids[&s.source];
+                let series_id = series_ids[&(s.source.clone(), s.characteristic.clone())];
+                let lot_id = lot_ids[&(source_id, s.lot.clone())];
+                match replaced {
+                    Some(old) => {
+                        self.replace_sample(tx, old, s, file_id, received_at, replace)
+                            .await?;
+                        sample_ids.push((old.id, s));
+                    }
+                    None => inserts.push(Pending {
+                        sample: s,
+                        lot_id,
+                        series_id,
+                        file_id,
+                    }),
+                }
+            }
+        }
+        for chunk in inserts.chunks(ROWS_PER_INSERT / 2) {
+            let mut q = QueryBuilder::<Sqlite>::new(
+                "INSERT INTO sample (lot_id, series_id, file_id, n, mean, m2, min_value, \
+                 max_value, sampled_at, content_digest) ",
+            );
+            q.push_values(chunk, |mut b, p| {
+                let s = &p.sample.summary;
+                b.push_bind(p.lot_id)
+                    .push_bind(p.series_id)
+                    .push_bind(p.file_id)
+                    .push_bind(s.n() as i64)
+                    .push_bind(s.mean())
+                    .push_bind(s.m2())
+                    .push_bind(s.min())
+                    .push_bind(s.max())
+                    .push_bind(p.sample.earliest.as_deref())
+                    .push_bind(&p.sample.digest);
+            });
+            q.push(" RETURNING id, lot_id, series_id");
+            let ids: HashMap<(i64, i64), i64> = q
+                .build()
+                .fetch_all(&mut **tx)
+                .await
+                .doing("recording samples")?
+                .iter()
+                .map(|r| ((r.get(1), r.get(2)), r.get(0)))
+                .collect();
+            for p in chunk {
+                sample_ids.push((ids[&(p.lot_id, p.series_id)], p.sample));
+            }
+        }
+        self.insert_measurements(tx, &sample_ids).await?;
+
+        Ok(outcomes
+            .into_iter()
+            .enumerate()
+            .map(|(i, o)| match o.expect("every file decided") {
+                FileOutcome::Stored {
+                    samples,
+                    already_stored,
+                    ..
+                } => FileOutcome::Stored {
+                    file_id: file_ids[&i],
+                    samples,
+                    already_stored,
+                },
+                other => other,
+            })
+            .collect())
+    }
+
+    async fn insert_measurements(
+        &self,
+        tx: &mut Transaction<'static, Sqlite>,
+        samples: &[(i64, &NewSample)],
+    ) -> Result<()> {
+        let rows = samples.iter().flat_map(|(id, s)| {
+            (0..s.values.len()).map(move |k| {
+                (
+                    *id,
+                    k as i64,
+                    s.units[k].as_deref(),
+                    s.values[k],
+                    s.sampled_at[k].as_deref(),
+                )
+            })
+        });
+        let mut buf = Vec::with_capacity(ROWS_PER_INSERT);
+        for row in rows {
+            buf.push(row);
+            if buf.len() == ROWS_PER_INSERT {
+                insert_measurement_rows(tx, &buf).await?;
+                buf.clear();
+            }
+        }
+        if !buf.is_empty() {
+            insert_measurement_rows(tx, &buf).await?;
+        }
+        Ok(())
+    }
+
+    async fn replace_sample(
+        &self,
+        tx: &mut Transaction<'static, Sqlite>,
+        old: &StoredSample,
+        new: &NewSample,
+        file_id: i64,
+        at: &str,
+        reason: Option<&str>,
+    ) -> Result<()> {
+        sqlx::query(
+            "INSERT INTO sample_replacement (sample_id, replaced_at, reason, old_file_id, \
+             new_file_id, old_n, old_mean, old_m2, old_digest) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+        )
+        .bind(old.id)
+        .bind(at)
+        .bind(reason.unwrap_or(""))
+        .bind(old.file_id)
+        .bind(file_id)
+        .bind(old.n)
+        .bind(old.mean)
+        .bind(old.m2)
+        .bind(&old.digest)
+        .execute(&mut **tx)
+        .await
+        .doing("recording a replacement")?;
+        sqlx::query("DELETE FROM measurement WHERE sample_id = ?")
+            .bind(old.id)
+            .execute(&mut **tx)
+            .await
+            .doing("removing replaced values")?;
+        let s = &new.summary;
+        sqlx::query(
+            "UPDATE sample SET file_id = ?, n = ?, mean = ?, m2 = ?, min_value = ?, \
+             max_value = ?, sampled_at = ?, content_digest = ? WHERE id = ?",
+        )
+        .bind(file_id)
+        .bind(s.n() as i64)
+        .bind(s.mean())
+        .bind(s.m2())
+        .bind(s.min())
+        .bind(s.max())
+        .bind(new.earliest.as_deref())
+        .bind(&new.digest)
+        .bind(old.id)
+        .execute(&mut **tx)
+        .await
+        .doing("replacing a sample")?;
+        Ok(())
+    }
+
+    async fn source_id(
+        &self,
+        tx: &mut Transaction<'static, Sqlite>,
+        name: &str,
+        created: &mut NameCache,
+    ) -> Result<i64> {
+        if let Some(id) = self.names.lock().expect("name cache").sources.get(name) {
+            return Ok(*id);
+        }
+        if let Some(id) = created.sources.get(name) {
+            return Ok(*id);
+        }
+        let id = upsert_name(tx, "source", name).await?;
+        created.sources.insert(name.to_string(), id);
+        Ok(id)
+    }
+
+    async fn characteristic_id(
+        &self,
+        tx: &mut Transaction<'static, Sqlite>,
+        name: &str,
+        created: &mut NameCache,
+    ) -> Result<i64> {
+        if let Some(id) = self
+            .names
+            .lock()
+            .expect("name cache")
+            .characteristics
+            .get(name)
+        {
+            return Ok(*id);
+        }
+        if let Some(id) = created.characteristics.get(name) {
+            return Ok(*id);
+        }
+        let id = upsert_name(tx, "characteristic", name).await?;
+        created.characteristics.insert(name.to_string(), id);
+        Ok(id)
+    }
+
+    async fn series_id(
+        &self,
+        tx: &mut Transaction<'static, Sqlite>,
+        source_id: i64,
+        characteristic_id: i64,
+        created: &mut NameCache,
+    ) -> Result<i64> {
+        let key = (source_id, characteristic_id);
+        if let Some(id) = self.names.lock().expect("name cache").series.get(&key) {
+            return Ok(*id);
+        }
+        if let Some(id) = created.series.get(&key) {
+            return Ok(*id);
+        }
+        sqlx::query(
+            "INSERT INTO series (source_id, characteristic_id) VALUES (?, ?) \
+             ON CONFLICT (source_id, characteristic_id) DO NOTHING",
+        )
+        .bind(source_id)
+        .bind(characteristic_id)
+        .execute(&mut **tx)
+        .await
+        .doing("recording a series")?;
+        let id: i64 = sqlx::query_scalar(
+            "SELECT id FROM series WHERE source_id = ? AND characteristic_id = ?",
+        )
+        .bind(source_id)
+        .bind(characteristic_id)
+        .fetch_one(&mut **tx)
+        .await
+        .doing("looking up a series")?;
+        created.series.insert(key, id);
+        Ok(id)
+    }
+
+    /// Records a refused file (idempotent on its content hash).
+    pub async fn record_quarantine(
+        &self,
+        hash: &str,
+        file_name: &str,
+        at: &str,
+        reason: &str,
+    ) -> Result<()> {
+        let mut tx = self.begin().await?;
+        sqlx::query(
+            "INSERT INTO quarantined_file (content_hash, file_name, quarantined_at, reason) \
+             VALUES (?, ?, ?, ?) ON CONFLICT (content_hash) DO UPDATE SET \
+             file_name = excluded.file_name, quarantined_at = excluded.quarantined_at, \
+             reason = excluded.reason",
+        )
+        .bind(hash)
+        .bind(file_name)
+        .bind(at)
+        .bind(reason)
+        .execute(&mut *tx)
+        .await
+        .doing("recording a quarantined file")?;
+        tx.commit().await.doing("committing a quarantine record")
+    }
+
+    /// Everything the engine needs for the series that have undecided samples, or no frozen
+    /// baseline yet. Series are returned by source, then characteristic.
+    pub async fn pending_work(&self) -> Result<Vec<SeriesWork>> {
+        let rows = sqlx::query(
+            "SELECT s.id, src.name, ch.name FROM series s \
+             JOIN source src ON src.id = s.source_id \
+             JOIN characteristic ch ON ch.id = s.characteristic_id \
+             WHERE EXISTS (SELECT 1 FROM sample sm \
+                 LEFT JOIN evaluation e ON e.sample_id = sm.id \
+                 LEFT JOIN baseline_lot bl ON bl.sample_id = sm.id \
+                 WHERE sm.series_id = s.id AND e.id IS NULL AND bl.sample_id IS NULL) \
+             ORDER BY src.name, ch.name",
+        )
+        .fetch_all(&self.pool)
+        .await
+        .doing("finding series with new lots")?;
+        let mut work: Vec<SeriesWork> = rows
+            .iter()
+            .map(|r| SeriesWork {
+                series_id: r.get(0),
+                source: r.get(1),
+                characteristic: r.get(2),
+                baseline: None,
+                pending: Vec::new(),
+                open_alert: None,
+            })
+            .collect();
+        if work.is_empty() {
+            return Ok(work);
+        }
+        let index: HashMap<i64, usize> = work
+            .iter()
+            .enumerate()
+            .map(|(i, w)| (w.series_id, i))
+            .collect();
+
+        for r in sqlx::query(
+            "SELECT series_id, id, lot_count, n, mean, m2, min_value, max_value, definition \
+             FROM baseline",
+        )
+        .fetch_all(&self.pool)
+        .await
+        .doing("loading baselines")?
+        {
+            if let Some(i) = index.get(&r.get::<i64, _>(0)) {
+                work[*i].baseline = Some(BaselineRow {
+                    id: r.get(1),
+                    lot_count: r.get::<i64, _>(2) as usize,
+                    summary: summary_from_row(&r, 3)?,
+                    definition: r.get(8),
+                });
+            }
+        }
+        for r in sqlx::query("SELECT series_id, id, in_control_run FROM alert WHERE state = 'open'")
+            .fetch_all(&self.pool)
+            .await
+            .doing("loading open alerts")?
+        {
+            if let Some(i) = index.get(&r.get::<i64, _>(0)) {
+                work[*i].open_alert = Some(OpenAlert {
+                    id: r.get(1),
+                    in_control_run: r.get(2),
+                });
+            }
+        }
+        for r in sqlx::query(
+            "SELECT sm.series_id, sm.id, l.id, l.code, COALESCE(l.sampled_at, l.first_seen_at), \
+                    sm.n, sm.mean, sm.m2, sm.min_value, sm.max_value \
+             FROM sample sm JOIN lot l ON l.id = sm.lot_id \
+             LEFT JOIN evaluation e ON e.sample_id = sm.id \
+             LEFT JOIN baseline_lot bl ON bl.sample_id = sm.id \
+             WHERE e.id IS NULL AND bl.sample_id IS NULL \
+             ORDER BY sm.series_id, COALESCE(l.sampled_at, l.first_seen_at), l.code",
+        )
+        .fetch_all(&self.pool)
+        .await
+        .doing("loading new lots")?
+        {
+            if let Some(i) = index.get(&r.get::<i64, _>(0)) {
+                work[*i].pending.push(SeriesSample {
+                    sample_id: r.get(1),
+                    lot_id: r.get(2),
+                    lot: r.get(3),
+                    order_time: r.get(4),
+                    summary: summary_from_row(&r, 5)?,
+                    evaluated: false,
+                });
+            }
+        }
+        Ok(work)
+    }
+
+    /// Writes one engine pass (baselines, decisions, alert changes, outbox rows) in one
+    /// transaction, so an alert is never decided without its message queued.
+    pub async fn write_pass(&self, pass: &EnginePass, at: &str) -> Result<PassCounts> {
+        let mut counts = PassCounts::default();
+        if pass.baselines.is_empty() && pass.decisions.is_empty() {
+            return Ok(counts);
+        }
+        let mut tx = self.begin().await?;
+        let mut baseline_ids: HashMap<i64, i64> = HashMap::new();
+        for b in &pass.baselines {
+            let s = &b.summary;
+            let id: i64 = sqlx::query_scalar(
+                "INSERT INTO baseline (series_id, frozen_at, definition, lot_count, n, mean, m2, \
+                 min_value, max_value, last_order_key) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?) \
+                 RETURNING id",
+            )
+            .bind(b.series_id)
+            .bind(at)
+            .bind(&b.definition)
+            .bind(b.sample_ids.len() as i64)
+            .bind(s.n() as i64)
+            .bind(s.mean())
+            .bind(s.m2())
+            .bind(s.min())
+            .bind(s.max())
+            .bind(&b.last_order_time)
+            .fetch_one(&mut *tx)
+            .await
+            .doing("freezing a baseline")?;
+            for chunk in b.sample_ids.chunks(ROWS_PER_INSERT) {
+                let mut q = QueryBuilder::<Sqlite>::new(
+                    "INSERT INTO baseline_lot (baseline_id, sample_id) ",
+                );
+                q.push_values(chunk, |mut r, sid| {
+                    r.push_bind(id).push_bind(*sid);
+                });
+                q.build()
+                    .execute(&mut *tx)
+                    .await
+                    .doing("recording baseline lots")?;
+            }
+            baseline_ids.insert(b.series_id, id);
+            counts.baselines += 1;
+        }
+        // Baselines frozen in earlier passes.
+        let missing: Vec<i64> = pass
+            .decisions
+            .iter()
+            .map(|d| d.evaluation.series_id)
+            .filter(|s| !baseline_ids.contains_key(s))
+            .collect::<HashSet<_>>()
+            .into_iter()
+            .collect();
+        for chunk in missing.chunks(ROWS_PER_INSERT) {
+            let mut q = QueryBuilder::<Sqlite>::new(
+                "SELECT series_id, id FROM baseline WHERE series_id IN (",
+            );
+            let mut sep = q.separated(", ");
+            for id in chunk {
+                sep.push_bind(*id);
+            }
+            q.push(")");
+            for r in q
+                .build()
+                .fetch_all(&mut *tx)
+                .await
+                .doing("looking up baselines")?
+            {
+                baseline_ids.insert(r.get(0), r.get(1));
+            }
+        }
+
+        // Evaluations, many rows per statement.
+        let mut eval_ids: HashMap<i64, i64> = HashMap::new();
+        for chunk in pass.decisions.chunks(ROWS_PER_INSERT / 5) {
+            let mut q = QueryBuilder::<Sqlite>::new(
+                "INSERT INTO evaluation (sample_id, series_id, baseline_id, decided_at, test, \
+                 alternative, statistic, df, p_value, p_adjusted, method, family_size, level, \
+                 significant, baseline_n, baseline_mean, baseline_sd, lot_n, lot_mean, lot_sd, \
+                 estimate, ci_low, ci_high, note) ",
+            );
+            let mut bad = None;
+            q.push_values(chunk, |mut r, d| {
+                let e = &d.evaluation;
+                let baseline_id = match baseline_ids.get(&e.series_id) {
+                    Some(id) => *id,
+                    None => {
+                        bad = Some(e.series_id);
+                        0
+                    }
+                };
+                r.push_bind(e.sample_id)
+                    .push_bind(e.series_id)
+                    .push_bind(baseline_id)
+                    .push_bind(at)
+                    .push_bind(&e.test)
+                    .push_bind(&e.alternative)
+                    .push_bind(e.statistic)
+                    .push_bind(e.df)
+                    .push_bind(e.p_value)
+                    .push_bind(e.p_adjusted)
+                    .push_bind(&e.method)
+                    .push_bind(e.family_size)
+                    .push_bind(e.level)
+                    .push_bind(e.significant as i64)
+                    .push_bind(e.baseline.n() as i64)
+                    .push_bind(e.baseline.mean())
+                    .push_bind(e.baseline.sd())
+                    .push_bind(e.lot.n() as i64)
+                    .push_bind(e.lot.mean())
+                    .push_bind(e.lot.sd())
+                    .push_bind(e.estimate)
+                    .push_bind(e.ci.map(|c| c.0).filter(|v| v.is_finite()))
+                    .push_bind(e.ci.map(|c| c.1).filter(|v| v.is_finite()))
+                    .push_bind(e.note.as_deref());
+            });
+            if let Some(series) = bad {
+                return Err(StoreError::Corrupt(format!(
+                    "decision for series {series} without a baseline"
+                )));
+            }
+            q.push(" RETURNING id, sample_id");
+            for r in q
+                .build()
+                .fetch_all(&mut *tx)
+                .await
+                .doing("recording decisions")?
+            {
+                eval_ids.insert(r.get(1), r.get(0));
+            }
+            counts.evaluations += chunk.len();
+        }
+
+        // Alert changes, in decision order. The open alert of each series is looked up once and
+        // followed through the pass.
+        let mut open: HashMap<i64, Option<i64>> = HashMap::new();
+        for d in &pass.decisions {
+            let eval_id = eval_ids[&d.evaluation.sample_id];
+            let series_id = d.evaluation.series_id;
+            if d.action != AlertAction::None
+                && d.action != AlertAction::Open
+                && !open.contains_key(&series_id)
+            {
+                let id: Option<i64> = sqlx::query_scalar(
+                    "SELECT id FROM alert WHERE series_id = ? AND state = 'open'",
+                )
+                .bind(series_id)
+                .fetch_optional(&mut *tx)
+                .await
+                .doing("looking up an open alert")?;
+                open.insert(series_id, id);
+            }
+            let current = || {
+                open.get(&series_id).copied().flatten().ok_or_else(|| {
+                    StoreError::Corrupt(format!("series {series_id} has no open alert to update"))
+                })
+            };
+            let event = match d.action {
+                AlertAction::None => None,
+                AlertAction::Open => {
+                    let alert_id: i64 = sqlx::query_scalar(
+                        "INSERT INTO alert (series_id, state, opened_at, opening_evaluation) \
+                         VALUES (?, 'open', ?, ?) RETURNING id",
+                    )
+                    .bind(d.evaluation.series_id)
+                    .bind(at)
+                    .bind(eval_id)
+                    .fetch_one(&mut *tx)
+                    .await
+                    .doing("opening an alert")?;
+                    counts.opened += 1;
+                    open.insert(series_id, Some(alert_id));
+                    Some((alert_id, "opened"))
+                }
+                AlertAction::Attach => {
+                    let alert_id = current()?;
+                    sqlx::query("UPDATE alert SET in_control_run = 0 WHERE id = ?")
+                        .bind(alert_id)
+                        .execute(&mut *tx)
+                        .await
+                        .doing("updating an alert")?;
+                    Some((alert_id, "attached"))
+                }
+                AlertAction::InControl { run } => {
+                    let alert_id = current()?;
+                    sqlx::query("UPDATE alert SET in_control_run = ? WHERE id = ?")
+                        .bind(run)
+                        .bind(alert_id)
+                        .execute(&mut *tx)
+                        .await
+                        .doing("updating an alert")?;
+                    None
+                }
+                AlertAction::Resolve => {
+                    let alert_id = current()?;
+                    open.insert(series_id, None);
+                    sqlx::query(
+                        "UPDATE alert SET state = 'resolved', resolved_at = ?, \
+                         in_control_run = 0 WHERE id = ?",
+                    )
+                    .bind(at)
+                    .bind(alert_id)
+                    .execute(&mut *tx)
+                    .await
+                    .doing("resolving an alert")?;
+                    counts.resolved += 1;
+                    Some((alert_id, "resolved"))
+                }
+            };
+            if let Some((alert_id, kind)) = event {
+                let event_id: i64 = sqlx::query_scalar(
+                    "INSERT INTO alert_event (alert_id, kind, at, evaluation_id) \
+                     VALUES (?, ?, ?, ?) RETURNING id",
+                )
+                .bind(alert_id)
+                .bind(kind)
+                .bind(at)
+                .bind(eval_id)
+                .fetch_one(&mut *tx)
+                .await
+                .doing("recording an alert event")?;
+                if kind != "attached" {
+                    for (channel, recipient) in &pass.recipients {
+                        sqlx::query(
+                            "INSERT INTO outbox (alert_event_id, channel, recipient, state, \
+                             created_at, next_attempt_at) VALUES (?, ?, ?, 'pending', ?, ?)",
+                        )
+                        .bind(event_id)
+                        .bind(channel)
+                        .bind(recipient)
+                        .bind(at)
+                        .bind(at)
+                        .execute(&mut *tx)
+                        .await
+                        .doing("queueing a message")?;
+                    }
+                }
+            }
+        }
+        tx.commit().await.doing("committing decisions")?;
+        Ok(counts)
+    }
+
+    /// Outbox messages due at `now`, oldest first.
+    pub async fn due_outbox(&self, now: &str, limit: i64) -> Result<Vec<OutboxItem>> {
+        let rows = sqlx::query(&format!(
+            "SELECT o.id, o.channel, o.recipient, o.attempts, o.created_at, ev.id, ev.kind, ev.at, \
+             {ALERT_COLUMNS} FROM outbox o \
+             JOIN alert_event ev ON ev.id = o.alert_event_id \
+             JOIN alert a ON a.id = ev.alert_id {ALERT_JOINS} \
+             WHERE o.state = 'pending' AND o.next_attempt_at <= ? \
+             ORDER BY o.next_attempt_at, o.id LIMIT ?"
+        ))
+        .bind(now)
+        .bind(limit)
+        .fetch_all(&self.pool)
+        .await
+        .doing("reading the outbox")?;
+        rows.iter()
+            .map(|r| {
+                Ok(OutboxItem {
+                    id: r.get(0),
+                    channel: r.get(1),
+                    recipient: r.get(2),
+                    attempts: r.get(3),
+                    created_at: r.get(4),
+                    event_id: r.get(5),
+                    event_kind: r.get(6),
+                    event_at: r.get(7),
+                    alert: alert_from_row(r, 8),
+                })
+            })
+            .collect()
+    }
+
+    /// Records the outcome of one delivery attempt.
+    pub async fn outbox_attempted(
+        &self,
+        id: i64,
+        outcome: &DeliveryOutcome,
+        now: &str,
+    ) -> Result<()> {
+        let (state, next, error) = match outcome {
+            DeliveryOutcome::Delivered => ("delivered", None, None),
+            DeliveryOutcome::Retry { next_at, error } => {
+                ("pending", Some(next_at.as_str()), Some(error.as_str()))
+            }
+            DeliveryOutcome::Failed { error } => ("failed", None, Some(error.as_str())),
+            DeliveryOutcome::Expired { error } => ("expired", None, Some(error.as_str())),
+        };
+        let mut tx = self.begin().await?;
+        sqlx::query(
+            "UPDATE outbox SET state = ?, attempts = attempts + 1, \
+             next_attempt_at = COALESCE(?, next_attempt_at), \
+             delivered_at = CASE WHEN ? = 'delivered' THEN ? ELSE delivered_at END, \
+             last_error = COALESCE(?, last_error) WHERE id = ?",
+        )
+        .bind(state)
+        .bind(next)
+        .bind(state)
+        .bind(now)
+        .bind(error)
+        .bind(id)
+        .execute(&mut *tx)
+        .await
+        .doing("recording a delivery attempt")?;
+        tx.commit().await.doing("committing a delivery attempt")
+    }
+
+    /// Alerts, newest first.
+    pub async fn alerts(&self, open_only: bool) -> Result<Vec<AlertRow>> {
+        let filter = if open_only {
+            "WHERE a.state = 'open'"
+        } else {
+            ""
+        };
+        let rows = sqlx::query(&format!(
+            "SELECT {ALERT_COLUMNS} FROM alert a {ALERT_JOINS} {filter} ORDER BY a.id DESC"
+        ))
+        .fetch_all(&self.pool)
+        .await
+        .doing("listing alerts")?;
+        Ok(rows.iter().map(|r| alert_from_row(r, 0)).collect())
+    }
+
+    pub async fn status(&self) -> Result<StatusCounts> {
+        let r = sqlx::query(
+            "SELECT (SELECT COUNT(*) FROM source), (SELECT COUNT(*) FROM series), \
+             (SELECT COUNT(*) FROM ingested_file), (SELECT COUNT(*) FROM lot), \
+             (SELECT COUNT(*) FROM measurement), (SELECT COUNT(*) FROM quarantined_file), \
+             (SELECT COUNT(*) FROM evaluation), \
+             (SELECT COUNT(*) FROM alert WHERE state = 'open'), (SELECT COUNT(*) FROM alert), \
+             (SELECT COUNT(*) FROM outbox WHERE state = 'pending'), \
+             (SELECT COUNT(*) FROM outbox WHERE state = 'failed'), \
+             (SELECT COUNT(*) FROM outbox WHERE state = 'expired')",
+        )
+        .fetch_one(&self.pool)
+        .await
+        .doing("counting")?;
+        Ok(StatusCounts {
+            sources: r.get(0),
+            series: r.get(1),
+            files: r.get(2),
+            lots: r.get(3),
+            measurements: r.get(4),
+            quarantined: r.get(5),
+            evaluations: r.get(6),
+            open_alerts: r.get(7),
+            alerts: r.get(8),
+            outbox_pending: r.get(9),
+            outbox_failed: r.get(10),
+            outbox_expired: r.get(11),
+        })
+    }
+
+    /// Messages that could not be delivered (failed permanently or expired).
+    pub async fn undelivered(&self) -> Result<Vec<UndeliveredRow>> {
+        let rows = sqlx::query(
+            "SELECT id, channel, recipient, state, attempts, last_error FROM outbox \
+             WHERE state IN ('failed', 'expired') ORDER BY id",
+        )
+        .fetch_all(&self.pool)
+        .await
+        .doing("listing undelivered messages")?;
+        Ok(rows
+            .iter()
+            .map(|r| UndeliveredRow {
+                id: r.get(0),
+                channel: r.get(1),
+                recipient: r.get(2),
+                state: r.get(3),
+                attempts: r.get(4),
+                last_error: r.get(5),
+            })
+            .collect())
+    }
+
+    /// Lots stored per source (for summaries).
+    pub async fn lots_per_source(&self) -> Result<Vec<(String, i64)>> {
+        let rows = sqlx::query(
+            "SELECT s.name, COUNT(l.id) FROM source s LEFT JOIN lot l ON l.source_id = s.id \
+             GROUP BY s.name ORDER BY s.name",
+        )
+        .fetch_all(&self.pool)
+        .await
+        .doing("counting lots per source")?;
+        Ok(rows.iter().map(|r| (r.get(0), r.get(1))).collect())
+    }
+
+    /// Quarantined files with their reasons, oldest first.
+    pub async fn quarantined(&self) -> Result<Vec<(String, String)>> {
+        let rows = sqlx::query(
+            "SELECT file_name, reason FROM quarantined_file ORDER BY quarantined_at, id",
+        )
+        .fetch_all(&self.pool)
+        .await
+        .doing("listing quarantined files")?;
+        Ok(rows.iter().map(|r| (r.get(0), r.get(1))).collect())
+    }
+
+    /// One row per lot of a source (optionally one characteristic), in series order.
+    pub async fn history(
+        &self,
+        source: &str,
+        characteristic: Option<&str>,
+    ) -> Result<Vec<HistoryRow>> {
+        let rows = sqlx::query(
+            "SELECT src.name, ch.name, l.code, l.sampled_at, sm.n, sm.mean, sm.m2, sm.min_value, \
+                    sm.max_value, \
+                    CASE WHEN bl.sample_id IS NOT NULL THEN 'baseline' \
+                         WHEN e.id IS NOT NULL THEN 'tested' ELSE 'pending' END, \
+                    e.p_value, e.p_adjusted, e.significant, \
+                    (SELECT ev.alert_id FROM alert_event ev WHERE ev.evaluation_id = e.id \
+                     AND ev.kind IN ('opened', 'attached') LIMIT 1) \
+             FROM sample sm JOIN lot l ON l.id = sm.lot_id \
+             JOIN series se ON se.id = sm.series_id \
+             JOIN source src ON src.id = se.source_id \
+             JOIN characteristic ch ON ch.id = se.characteristic_id \
+             LEFT JOIN evaluation e ON e.sample_id = sm.id \
+             LEFT JOIN baseline_lot bl ON bl.sample_id = sm.id \
+             WHERE src.name = ? AND (? IS NULL OR ch.name = ?) \
+             ORDER BY ch.name, COALESCE(l.sampled_at, l.first_seen_at), l.code",
+        )
+        .bind(source)
+        .bind(characteristic)
+        .bind(characteristic)
+        .fetch_all(&self.pool)
+        .await
+        .doing("reading history")?;
+        Ok(rows
+            .iter()
+            .map(|r| {
+                let n: i64 = r.get(4);
+                let m2: f64 = r.get(6);
+                HistoryRow {
+                    source: r.get(0),
+                    characteristic: r.get(1),
+                    lot: r.get(2),
+                    sampled_at: r.get(3),
+                    n,
+                    mean: r.get(5),
+                    sd: (n > 1).then(|| (m2 / (n - 1) as f64).sqrt()),
+                    min: r.get(7),
+                    max: r.get(8),
+                    role: r.get(9),
+                    p_value: r.get(10),
+                    p_adjusted: r.get(11),
+                    significant: r.get::<Option<i64>, _>(12).map(|v| v != 0),
+                    alert_id: r.get(13),
+                }
+            })
+            .collect())
+    }
+
+    /// True when a source of that name is stored.
+    pub async fn source_exists(&self, name: &str) -> Result<bool> {
+        let n: i64 = sqlx::query_scalar("SELECT COUNT(*) FROM source WHERE name = ?")
+            .bind(name)
+            .fetch_one(&self.pool)
+            .await
+            .doing("looking up a source")?;
+        Ok(n > 0)
+    }
+}
+
+/// What a channel reports for one message.
+#[derive(Debug, Clone, PartialEq)]
+pub enum DeliveryOutcome {
+    Delivered,
+    Retry { next_at: String, error: String },
+    Failed { error: String },
+    Expired { error: String },
+}
+
+#[derive(Debug, Clone)]
+struct StoredSample {
+    id: i64,
+    digest: String,
+    file_name: String,
+    n: i64,
+    mean: f64,
+    m2: f64,
+    file_id: i64,
+}
+
+const ALERT_COLUMNS: &str = "a.id, src.name, ch.name, a.state, a.opened_at, a.resolved_at, \
+     l.code, l.sampled_at, e.test, e.alternative, e.statistic, e.df, e.p_value, e.p_adjusted, \
+     e.method, e.level, e.family_size, e.baseline_n, e.baseline_mean, e.baseline_sd, e.lot_n, \
+     e.lot_mean, e.lot_sd, e.estimate, e.ci_low, e.ci_high, \
+     (SELECT COUNT(*) FROM alert_event x WHERE x.alert_id = a.id \
+      AND x.kind IN ('opened', 'attached'))";
+
+const ALERT_JOINS: &str = "JOIN evaluation e ON e.id = a.opening_evaluation \
+     JOIN sample sm ON sm.id = e.sample_id JOIN lot l ON l.id = sm.lot_id \
+     JOIN series se ON se.id = a.series_id JOIN source src ON src.id = se.source_id \
+     JOIN characteristic ch ON ch.id = se.characteristic_id";
+
+fn alert_from_row(r: &SqliteRow, o: usize) -> AlertRow {
+    let ci_low: Option<f64> = r.get(o + 24);
+    let ci_high: Option<f64> = r.get(o + 25);
+    AlertRow {
+        id: r.get(o),
+        source: r.get(o + 1),
+        characteristic: r.get(o + 2),
+        state: r.get(o + 3),
+        opened_at: r.get(o + 4),
+        resolved_at: r.get(o + 5),
+        lot: r.get(o + 6),
+        lot_sampled_at: r.get(o + 7),
+        test: r.get(o + 8),
+        alternative: r.get(o + 9),
+        statistic: r.get(o + 10),
+        df: r.get(o + 11),
+        p_value: r.get(o + 12),
+        p_adjusted: r.get(o + 13),
+        method: r.get(o + 14),
+        level: r.get(o + 15),
+        family_size: r.get(o + 16),
+        baseline_n: r.get(o + 17),
+        baseline_mean: r.get(o + 18),
+        baseline_sd: r.get(o + 19),
+        lot_n: r.get(o + 20),
+        lot_mean: r.get(o + 21),
+        lot_sd: r.get(o + 22),
+        estimate: r.get(o + 23),
+        ci: match (ci_low, ci_high) {
+            (Some(a), Some(b)) => Some([a, b]),
+            _ => None,
+        },
+        lots: r.get(o + 26),
+    }
+}
+
+async fn insert_measurement_rows(
+    tx: &mut Transaction<'static, Sqlite>,
+    rows: &[(i64, i64, Option<&str>, f64, Option<&str>)],
+) -> Result<()> {
+    let mut q = QueryBuilder::<Sqlite>::new(
+        "INSERT INTO measurement (sample_id, seq, unit, value, sampled_at) ",
+    );
+    q.push_values(rows, |mut b, (sample, seq, unit, value, at)| {
+        b.push_bind(*sample)
+            .push_bind(*seq)
+            .push_bind(*unit)
+            .push_bind(*value)
+            .push_bind(*at);
+    });
+    q.build()
+        .execute(&mut **tx)
+        .await
+        .doing("recording measurements")?;
+    Ok(())
+}
+
+async fn upsert_name(
+    tx: &mut Transaction<'static, Sqlite>,
+    table: &'static str,
+    name: &str,
+) -> Result<i64> {
+    sqlx::query(&format!(
+        "INSERT INTO {table} (name) VALUES (?) ON CONFLICT (name) DO NOTHING"
+    ))
+    .bind(name)
+    .execute(&mut **tx)
+    .await
+    .doing("recording a name")?;
+    sqlx::query_scalar(&format!("SELECT id FROM {table} WHERE name = ?"))
+        .bind(name)
+        .fetch_one(&mut **tx)
+        .await
+        .doing("looking up a name")
+}
+
+fn earlier<'a>(a: Option<&'a str>, b: Option<&'a str>) -> Option<&'a str> {
+    match (a, b) {
+        (Some(x), Some(y)) => Some(if y < x { y } else { x }),
+        (x, None) => x,
+        (None, y) => y,
+    }
+}
