@@ -205,6 +205,11 @@ async fn write_batch(
     }
     let received_at = now_rfc3339();
     let outcomes = store.ingest_batch(&good, &received_at, replace).await?;
+    // Fault injection for the crash tests: die between commit and move, the window that
+    // exactly-once handling exists for.
+    if std::env::var_os("LOTDRIFT_FAULT_ABORT_AFTER_COMMIT").is_some() {
+        std::process::abort();
+    }
     let month = &received_at[..7];
     for ((path, file), outcome) in good_paths.into_iter().zip(&good).zip(outcomes) {
         let result = match outcome {
@@ -214,7 +219,7 @@ async fn write_batch(
                 ..
             } => {
                 let dest = move_into(&path, &paths.archive.join(month))?;
-                tracing::info!(file = %path.display(), samples, already_stored, "stored");
+                tracing::debug!(file = %path.display(), samples, already_stored, "stored");
                 FileResult::Stored {
                     samples,
                     already_stored,
@@ -252,6 +257,7 @@ async fn write_batch(
         };
         report.files.push((path, result));
     }
+    tracing::info!(files = good.len(), "batch stored");
     Ok(())
 }
 

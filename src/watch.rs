@@ -12,7 +12,7 @@ use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant, SystemTime};
 
-use notify::event::{EventKind, ModifyKind, RenameMode};
+use notify::event::{AccessKind, AccessMode, EventKind, ModifyKind, RenameMode};
 use notify::{Event, RecursiveMode};
 use tokio::sync::mpsc;
 use tokio_util::sync::CancellationToken;
@@ -218,6 +218,7 @@ pub async fn run(
         }
     };
     full_scan(&mut tracker, &mut out);
+    tracing::debug!(files = out.len(), "startup scan");
     let mut ticker = tokio::time::interval(tick(cfg.settle));
     ticker.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
     let mut rescan = tokio::time::interval(cfg.rescan);
@@ -240,6 +241,7 @@ pub async fn run(
             _ = cancel.cancelled() => return Ok(()),
             ev = ev_rx.recv() => {
                 let Some(ev) = ev else { return Ok(()) };
+                tracing::trace!(?ev, "file event");
                 let now = Instant::now();
                 match ev {
                     Ok(ev) => {
@@ -282,14 +284,30 @@ fn handle_event(tracker: &mut Tracker, out: &mut Vec<PathBuf>, ev: &Event, now: 
                 tracker.forget(p);
             }
         }
-        EventKind::Create(_) | EventKind::Modify(_) | EventKind::Access(_) | EventKind::Any => {
+        // Reading a folder or a file opens it too: only writes count, or every scan of ours
+        // would report itself.
+        EventKind::Access(AccessKind::Close(AccessMode::Write)) => {
+            for p in &ev.paths {
+                tracker.touched(p, now);
+            }
+        }
+        EventKind::Access(_) => {}
+        EventKind::Create(_) => {
             for p in &ev.paths {
                 if p.is_dir() {
-                    // A folder created or moved in: its files may have no events of their own.
+                    // A folder created in the inbox: files written before its watch was added
+                    // have no events of their own.
                     for f in scan(p) {
                         tracker.touched(&f, now);
                     }
                 } else {
+                    tracker.touched(p, now);
+                }
+            }
+        }
+        EventKind::Modify(_) | EventKind::Any => {
+            for p in &ev.paths {
+                if !p.is_dir() {
                     tracker.touched(p, now);
                 }
             }

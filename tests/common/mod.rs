@@ -1,0 +1,269 @@
+//! Shared helpers of the integration tests: a fresh folder per test, the real `lotdrift`
+//! binary run in it with a clean environment, and lot files written the way a lab PC would.
+#![allow(dead_code)]
+
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Output, Stdio};
+use std::time::{Duration, Instant};
+
+pub const BIN: &str = env!("CARGO_BIN_EXE_lotdrift");
+
+/// A temp folder with `lotdrift init` done in it.
+pub struct Site {
+    pub dir: tempfile::TempDir,
+}
+
+impl Site {
+    /// `lotdrift init`, then `extra` appended to the config (TOML sections).
+    pub fn new(extra: &str) -> Site {
+        let dir = tempfile::tempdir().unwrap();
+        let out = cmd(dir.path()).args(["init", "."]).output().unwrap();
+        assert!(out.status.success(), "init failed: {}", text(&out.stderr));
+        if !extra.is_empty() {
+            let cfg = dir.path().join("lotdrift.toml");
+            // Replace sections the starter file has with the test's own.
+            let mut starter = std::fs::read_to_string(&cfg).unwrap();
+            for section in extra.lines().filter(|l| l.starts_with('[')) {
+                starter = remove_section(&starter, section.trim());
+            }
+            std::fs::write(&cfg, format!("{starter}\n{extra}\n")).unwrap();
+        }
+        Site { dir }
+    }
+
+    pub fn path(&self) -> &Path {
+        self.dir.path()
+    }
+
+    pub fn inbox(&self) -> PathBuf {
+        self.path().join("inbox")
+    }
+
+    pub fn config(&self) -> PathBuf {
+        self.path().join("lotdrift.toml")
+    }
+
+    /// Runs `lotdrift ARGS --config <site config>` to completion.
+    pub fn run(&self, args: &[&str]) -> Output {
+        let mut c = cmd(self.path());
+        c.args(args).arg("--config").arg(self.config());
+        c.output().unwrap()
+    }
+
+    /// `run --once`, asserting success.
+    pub fn once(&self) -> Output {
+        let out = self.run(&["run", "--once"]);
+        assert!(
+            out.status.success(),
+            "run --once failed: {}",
+            text(&out.stderr)
+        );
+        out
+    }
+
+    /// `CMD --json` parsed.
+    pub fn json(&self, args: &[&str]) -> serde_json::Value {
+        let mut a = args.to_vec();
+        a.push("--json");
+        let out = self.run(&a);
+        assert!(
+            out.status.success(),
+            "{args:?} failed: {}",
+            text(&out.stderr)
+        );
+        serde_json::from_slice(&out.stdout).unwrap()
+    }
+
+    pub fn status(&self) -> serde_json::Value {
+        self.json(&["status"])
+    }
+
+    pub fn alerts(&self) -> Vec<serde_json::Value> {
+        self.json(&["alerts"]).as_array().unwrap().clone()
+    }
+
+    /// Starts the daemon.
+    pub fn spawn_daemon(&self) -> Child {
+        cmd(self.path())
+            .args(["run", "--config"])
+            .arg(self.config())
+            .stdout(Stdio::null())
+            .stderr(std::fs::File::create(self.path().join("daemon.log")).unwrap())
+            .spawn()
+            .unwrap()
+    }
+
+    /// Files (recursively) below a folder of the site.
+    pub fn files_in(&self, sub: &str) -> Vec<PathBuf> {
+        let mut out = Vec::new();
+        let mut stack = vec![self.path().join(sub)];
+        while let Some(d) = stack.pop() {
+            for e in std::fs::read_dir(&d).into_iter().flatten().flatten() {
+                let p = e.path();
+                if p.is_dir() {
+                    stack.push(p);
+                } else {
+                    out.push(p);
+                }
+            }
+        }
+        out.sort();
+        out
+    }
+}
+
+fn remove_section(text: &str, header: &str) -> String {
+    let mut out = String::new();
+    let mut skipping = false;
+    for line in text.lines() {
+        if line.starts_with('[') {
+            skipping = line.trim() == header;
+        }
+        if !skipping {
+            out.push_str(line);
+            out.push('\n');
+        }
+    }
+    out
+}
+
+/// The binary with a clean environment, run in `dir`.
+pub fn cmd(dir: &Path) -> Command {
+    let mut c = Command::new(BIN);
+    c.current_dir(dir)
+        .env_clear()
+        .env("PATH", std::env::var("PATH").unwrap_or_default())
+        .env("LOTDRIFT_LOG", "lotdrift=info");
+    c
+}
+
+pub fn text(b: &[u8]) -> String {
+    String::from_utf8_lossy(b).into_owned()
+}
+
+/// Polls `f` until it returns true or `limit` passes.
+pub fn wait_until(limit: Duration, mut f: impl FnMut() -> bool) -> bool {
+    let start = Instant::now();
+    while start.elapsed() < limit {
+        if f() {
+            return true;
+        }
+        std::thread::sleep(Duration::from_millis(50));
+    }
+    f()
+}
+
+/// Sends SIGTERM to a child (by the system's `kill`, to keep the tests free of libc).
+pub fn sigterm(child: &Child) {
+    let ok = Command::new("kill")
+        .args(["-TERM", &child.id().to_string()])
+        .status()
+        .unwrap()
+        .success();
+    assert!(ok, "kill -TERM failed");
+}
+
+/// Waits for a child to exit, at most `limit`; kills it and fails otherwise.
+pub fn wait_exit(child: &mut Child, limit: Duration) -> std::process::ExitStatus {
+    let start = Instant::now();
+    loop {
+        if let Some(status) = child.try_wait().unwrap() {
+            return status;
+        }
+        if start.elapsed() > limit {
+            let _ = child.kill();
+            panic!("process did not exit within {limit:?}");
+        }
+        std::thread::sleep(Duration::from_millis(20));
+    }
+}
+
+/// Unit values of one lot: a fixed symmetric pattern (mean 0, sd about 1) scaled and shifted.
+/// The pattern is rotated per lot so lots are not identical. Deterministic plumbing data, not
+/// a statistical fixture: the statistics are checked against published values elsewhere.
+pub fn lot_values(n: usize, mean: f64, sd: f64, lot: usize) -> Vec<f64> {
+    let pattern: Vec<f64> = (0..n)
+        .map(|i| {
+            let u = (i as f64 + 0.5) / n as f64;
+            // A logistic quantile approximates a normal one well enough for plumbing tests.
+            (u / (1.0 - u)).ln() / 1.702
+        })
+        .collect();
+    (0..n)
+        .map(|i| mean + sd * pattern[(i + lot) % n])
+        .collect()
+}
+
+/// A long-layout lot file: one row per unit and characteristic.
+pub fn long_file(
+    source: &str,
+    lot: &str,
+    sampled_at: &str,
+    characteristics: &[(&str, Vec<f64>)],
+) -> String {
+    let mut s = String::from("source,characteristic,lot,value,sampled_at,unit\n");
+    for (ch, values) in characteristics {
+        for (i, v) in values.iter().enumerate() {
+            s.push_str(&format!(
+                "{source},{ch},{lot},{v:.6},{sampled_at},{lot}-U{:03}\n",
+                i + 1
+            ));
+        }
+    }
+    s
+}
+
+/// Writes `text` into `dir/name` the way a careful lab PC does: a temporary name, then rename.
+pub fn drop_file(dir: &Path, name: &str, text: &str) {
+    let tmp = dir.join(format!("{name}.part"));
+    std::fs::write(&tmp, text).unwrap();
+    std::fs::rename(&tmp, dir.join(name)).unwrap();
+}
+
+/// Sampling date of lot `i` (0-based): one lot every 3 days from 2026-01-05.
+pub fn lot_date(i: usize) -> String {
+    let d = chrono::NaiveDate::from_ymd_opt(2026, 1, 5).unwrap() + chrono::Days::new(3 * i as u64);
+    d.format("%Y-%m-%d").to_string()
+}
+
+/// A standard scenario: `sources` x `chars` series, `lots` lots of `n` units each; `shift`
+/// names (source index, characteristic index, first shifted lot, shift in sd).
+pub struct Scenario {
+    pub sources: Vec<String>,
+    pub chars: Vec<String>,
+    pub lots: usize,
+    pub n: usize,
+    pub shift: Option<(usize, usize, usize, f64)>,
+}
+
+impl Scenario {
+    /// (file name, content, sampling order index) of every lot file.
+    pub fn files(&self) -> Vec<(String, String, usize)> {
+        let mut out = Vec::new();
+        for (si, s) in self.sources.iter().enumerate() {
+            for lot in 0..self.lots {
+                let code = format!("{}-{:03}", &s[..2].to_uppercase(), lot + 1);
+                let chars: Vec<(&str, Vec<f64>)> = self
+                    .chars
+                    .iter()
+                    .enumerate()
+                    .map(|(ci, c)| {
+                        let mut mean = 100.0 * (ci + 1) as f64;
+                        if let Some((ss, sc, from, size)) = self.shift {
+                            if ss == si && sc == ci && lot >= from {
+                                mean += size;
+                            }
+                        }
+                        (c.as_str(), lot_values(self.n, mean, 1.0, lot * 7 + ci))
+                    })
+                    .collect();
+                out.push((
+                    format!("{s}_{code}.csv"),
+                    long_file(s, &code, &lot_date(lot), &chars),
+                    lot,
+                ));
+            }
+        }
+        out
+    }
+}

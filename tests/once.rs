@@ -1,0 +1,196 @@
+//! `lotdrift run --once` end to end: the real binary against a temp folder.
+
+mod common;
+
+use common::*;
+
+fn scenario(shift: Option<(usize, usize, usize, f64)>) -> Scenario {
+    Scenario {
+        sources: vec!["alder-cells".into(), "birchworks".into()],
+        chars: vec!["capacity_mah".into(), "mass_g".into()],
+        lots: 26,
+        n: 12,
+        shift,
+    }
+}
+
+#[test]
+fn a_drifting_series_alerts_and_no_other_does() {
+    let site = Site::new("");
+    // birchworks mass_g shifts by 3 sd from lot 23 on.
+    for (name, text, _) in scenario(Some((1, 1, 22, 3.0))).files() {
+        drop_file(&site.inbox(), &name, &text);
+    }
+    site.once();
+    let status = site.status();
+    assert_eq!(status["lots"], 52);
+    assert_eq!(status["measurements"], 52 * 2 * 12);
+    assert_eq!(status["quarantined"], 0);
+    assert_eq!(status["open_alerts"], 1);
+    assert_eq!(status["outbox_pending"], 0, "the log channel delivered");
+    let alerts = site.alerts();
+    assert_eq!(alerts.len(), 1, "{alerts:#?}");
+    let a = &alerts[0];
+    assert_eq!(a["source"], "birchworks");
+    assert_eq!(a["characteristic"], "mass_g");
+    assert_eq!(a["state"], "open");
+    assert_eq!(a["lot"], "BI-023");
+    assert_eq!(a["test"], "welch");
+    assert!(a["p_value"].as_f64().unwrap() < 1e-6);
+    assert!(a["p_adjusted"].as_f64().unwrap() >= a["p_value"].as_f64().unwrap());
+    assert!(a["id"].is_i64());
+    assert!(a["opened_at"].as_str().unwrap().ends_with('Z'));
+    // Every later shifted lot attached to the same alert.
+    assert_eq!(a["lots"], 4);
+    // Inbox emptied into the archive.
+    assert!(site.files_in("inbox").is_empty());
+    assert_eq!(site.files_in("archive").len(), 52);
+}
+
+#[test]
+fn malformed_files_are_quarantined_with_a_reason_and_nothing_is_stored() {
+    let site = Site::new("");
+    let good = long_file("alder-cells", "AC-1", "2026-02-01", &[("mass_g", vec![46.5, 46.6])]);
+    drop_file(&site.inbox(), "good.csv", &good);
+    let bad = "source,characteristic,lot,value\nalder-cells,mass_g,AC-2,46.5\nalder-cells,mass_g,AC-2,\"46,7\"\n";
+    drop_file(&site.inbox(), "bad-number.csv", bad);
+    drop_file(&site.inbox(), "no-rows.csv", "source,characteristic,lot,value\n# nothing yet\n");
+    site.once();
+    let status = site.status();
+    assert_eq!(status["lots"], 1);
+    assert_eq!(status["measurements"], 2, "no partial lot from the bad file");
+    assert_eq!(status["quarantined"], 2);
+    let reason = std::fs::read_to_string(site.path().join("quarantine/bad-number.csv.reason.txt")).unwrap();
+    assert!(reason.contains("bad-number.csv:3:4"), "{reason}");
+    assert!(reason.contains("column value"), "{reason}");
+    assert!(site.path().join("quarantine/bad-number.csv").exists());
+    assert!(site.path().join("quarantine/no-rows.csv.reason.txt").exists());
+    // The daemon went on: the good file was archived.
+    assert!(site.files_in("inbox").is_empty());
+}
+
+#[test]
+fn duplicates_are_archived_and_conflicting_resends_quarantined_until_replaced() {
+    let site = Site::new("");
+    let first = long_file("cedar-energy", "CE-7", "2026-02-01", &[("mass_g", vec![46.5, 46.6, 46.4])]);
+    drop_file(&site.inbox(), "ce-7.csv", &first);
+    site.once();
+    // Same bytes again under another name, and a conflicting re-send, and a second station's
+    // file that adds a characteristic to the same lot.
+    drop_file(&site.inbox(), "ce-7-again.csv", &first);
+    let changed = first.replace("46.600000", "46.900000");
+    drop_file(&site.inbox(), "ce-7-corrected.csv", &changed);
+    let station2 = long_file("cedar-energy", "CE-7", "2026-02-01", &[("capacity_mah", vec![3001.0, 2999.5])]);
+    drop_file(&site.inbox(), "ce-7-capacity.csv", &station2);
+    site.once();
+
+    let status = site.status();
+    assert_eq!(status["lots"], 1);
+    assert_eq!(status["measurements"], 5);
+    assert_eq!(status["quarantined"], 1);
+    let dups: Vec<_> = site
+        .files_in("archive")
+        .into_iter()
+        .filter(|p| p.parent().unwrap().ends_with("duplicates"))
+        .collect();
+    assert_eq!(dups.len(), 1, "{dups:?}");
+    let reason = std::fs::read_to_string(site.path().join("quarantine/ce-7-corrected.csv.reason.txt")).unwrap();
+    assert!(reason.contains("lotdrift replace"), "{reason}");
+    assert!(reason.contains("\"CE-7\""), "{reason}");
+
+    // Replacing on purpose: audited, and the stored values change.
+    let out = site.run(&[
+        "replace",
+        site.path().join("quarantine/ce-7-corrected.csv").to_str().unwrap(),
+        "--reason",
+        "transcription error in unit 2",
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let hist = site.json(&["history", "cedar-energy", "mass_g"]);
+    let mean = hist[0]["mean"].as_f64().unwrap();
+    assert!((mean - (46.5 + 46.9 + 46.4) / 3.0).abs() < 1e-9, "{hist}");
+    assert_eq!(site.status()["measurements"], 5);
+}
+
+#[test]
+fn a_backfill_decides_like_files_arriving_one_by_one() {
+    let files = scenario(Some((0, 0, 21, 2.5))).files();
+    // All at once, with file names in an order unrelated to sampling order.
+    let fast = "[watch]\nsettle_seconds = 0.0\n";
+    let all = Site::new(fast);
+    for (name, text, _) in &files {
+        drop_file(&all.inbox(), &format!("z{}", name.chars().rev().collect::<String>()), text);
+    }
+    all.once();
+    // One by one, in sampling order.
+    let single = Site::new(fast);
+    let mut ordered = files.clone();
+    ordered.sort_by_key(|f| f.2);
+    for (name, text, _) in &ordered {
+        drop_file(&single.inbox(), name, text);
+        single.once();
+    }
+    let key = |site: &Site| {
+        let mut rows = Vec::new();
+        for s in ["alder-cells", "birchworks"] {
+            for r in site.json(&["history", s]).as_array().unwrap() {
+                rows.push((
+                    r["characteristic"].to_string(),
+                    r["lot"].to_string(),
+                    r["role"].to_string(),
+                    r["p_value"].to_string(),
+                    r["p_adjusted"].to_string(),
+                    r["significant"].to_string(),
+                ));
+            }
+        }
+        rows
+    };
+    assert_eq!(key(&all), key(&single));
+    let strip = |site: &Site| {
+        site.alerts()
+            .iter()
+            .map(|a| (a["source"].to_string(), a["characteristic"].to_string(), a["lot"].to_string(), a["lots"].to_string()))
+            .collect::<Vec<_>>()
+    };
+    assert_eq!(strip(&all), strip(&single));
+    assert_eq!(strip(&all).len(), 1);
+}
+
+#[test]
+fn config_and_usage_errors_exit_2_naming_the_key_or_flag() {
+    let site = Site::new("[monitor]\nbaseline_lotz = 5\n");
+    let out = site.run(&["run", "--once"]);
+    assert_eq!(out.status.code(), Some(2));
+    let err = text(&out.stderr);
+    assert!(err.contains("baseline_lotz"), "{err}");
+
+    let site = Site::new("[monitor]\nbaseline_lots = 1\n");
+    let out = site.run(&["status"]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(text(&out.stderr).contains("monitor.baseline_lots"));
+
+    let out = cmd(site.path()).args(["run", "--bogus"]).output().unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    assert!(text(&out.stderr).contains("--bogus"));
+
+    let out = cmd(site.path()).args(["status", "--config", "missing.toml"]).output().unwrap();
+    assert_eq!(out.status.code(), Some(2));
+    assert!(text(&out.stderr).contains("missing.toml"));
+}
+
+#[test]
+fn init_writes_a_config_that_accepts_anything() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = cmd(dir.path()).args(["init", "site"]).output().unwrap();
+    assert!(out.status.success());
+    for sub in ["inbox", "archive", "quarantine"] {
+        assert!(dir.path().join("site").join(sub).is_dir());
+    }
+    // Running from another folder: paths resolve against the config file.
+    let out = cmd(dir.path()).args(["run", "--once", "--config", "site/lotdrift.toml"]).output().unwrap();
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    assert!(dir.path().join("site/lotdrift.db").exists());
+    let out = cmd(dir.path()).args(["init", "site"]).output().unwrap();
+    assert_eq!(out.status.code(), Some(2), "init does not overwrite");
+}
