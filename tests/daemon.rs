@@ -24,13 +24,21 @@ fn lots(site: &Site) -> i64 {
 fn picks_up_a_renamed_file_and_exits_cleanly_on_sigterm() {
     let site = Site::new("[watch]\nsettle_seconds = 30.0\nrescan_seconds = 3600.0\n");
     let mut daemon = site.spawn_daemon();
-    assert!(wait_until(LIMIT, || site.path().join("lotdrift.db").exists()));
+    assert!(wait_until(LIMIT, || site
+        .path()
+        .join("lotdrift.db")
+        .exists()));
     // A rename into the inbox is complete by declaration: taken at once, well before the
     // 30 s settle interval that a written file would need.
     let outside = site.path().join("staging.csv");
     std::fs::write(
         &outside,
-        long_file("alder-cells", "AC-1", "2026-02-01", &[("mass_g", vec![46.5, 46.6])]),
+        long_file(
+            "alder-cells",
+            "AC-1",
+            "2026-02-01",
+            &[("mass_g", vec![46.5, 46.6])],
+        ),
     )
     .unwrap();
     // Give the watcher a moment to be installed before the event happens.
@@ -95,7 +103,10 @@ fn a_killed_daemon_loses_nothing_and_doubles_nothing() {
         let reached = wait_until(LIMIT, || lots(&site) >= kill_after);
         daemon.kill().unwrap(); // SIGKILL
         let _ = daemon.wait();
-        assert!(reached, "round {round}: ingest never reached {kill_after} lots");
+        assert!(
+            reached,
+            "round {round}: ingest never reached {kill_after} lots"
+        );
         let at_kill = lots(&site);
         if at_kill < total {
             killed_midway += 1;
@@ -104,19 +115,35 @@ fn a_killed_daemon_loses_nothing_and_doubles_nothing() {
         site.once();
         let status = site.status();
         assert_eq!(status["lots"], total, "round {round}: {status}");
-        assert_eq!(status["measurements"], total * 3 * 16, "round {round}: {status}");
+        assert_eq!(
+            status["measurements"],
+            total * 3 * 16,
+            "round {round}: {status}"
+        );
         assert_eq!(status["quarantined"], 0, "round {round}");
         assert!(site.files_in("inbox").is_empty(), "round {round}");
-        assert_eq!(site.files_in("archive").len() as i64, total, "round {round}");
+        assert_eq!(
+            site.files_in("archive").len() as i64,
+            total,
+            "round {round}"
+        );
         assert!(site.files_in("quarantine").is_empty());
     }
-    assert!(killed_midway > 0, "no round was killed before the ingest finished");
+    assert!(
+        killed_midway > 0,
+        "no round was killed before the ingest finished"
+    );
 }
 
 #[test]
 fn a_crash_between_commit_and_move_archives_the_file_as_a_duplicate() {
     let site = Site::new("[watch]\nsettle_seconds = 0.0\n");
-    let text = long_file("alder-cells", "AC-3", "2026-02-01", &[("mass_g", vec![46.5, 46.6])]);
+    let text = long_file(
+        "alder-cells",
+        "AC-3",
+        "2026-02-01",
+        &[("mass_g", vec![46.5, 46.6])],
+    );
     drop_file(&site.inbox(), "ac-3.csv", &text);
     let out = cmd(site.path())
         .args(["run", "--once", "--config"])
@@ -124,7 +151,10 @@ fn a_crash_between_commit_and_move_archives_the_file_as_a_duplicate() {
         .env("LOTDRIFT_FAULT_ABORT_AFTER_COMMIT", "1")
         .output()
         .unwrap();
-    assert!(!out.status.success(), "the fault should have aborted the run");
+    assert!(
+        !out.status.success(),
+        "the fault should have aborted the run"
+    );
     // Stored, but still in the inbox.
     assert_eq!(site.status()["measurements"], 2);
     assert_eq!(site.files_in("inbox").len(), 1);

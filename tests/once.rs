@@ -50,21 +50,38 @@ fn a_drifting_series_alerts_and_no_other_does() {
 #[test]
 fn malformed_files_are_quarantined_with_a_reason_and_nothing_is_stored() {
     let site = Site::new("");
-    let good = long_file("alder-cells", "AC-1", "2026-02-01", &[("mass_g", vec![46.5, 46.6])]);
+    let good = long_file(
+        "alder-cells",
+        "AC-1",
+        "2026-02-01",
+        &[("mass_g", vec![46.5, 46.6])],
+    );
     drop_file(&site.inbox(), "good.csv", &good);
     let bad = "source,characteristic,lot,value\nalder-cells,mass_g,AC-2,46.5\nalder-cells,mass_g,AC-2,\"46,7\"\n";
     drop_file(&site.inbox(), "bad-number.csv", bad);
-    drop_file(&site.inbox(), "no-rows.csv", "source,characteristic,lot,value\n# nothing yet\n");
+    drop_file(
+        &site.inbox(),
+        "no-rows.csv",
+        "source,characteristic,lot,value\n# nothing yet\n",
+    );
     site.once();
     let status = site.status();
     assert_eq!(status["lots"], 1);
-    assert_eq!(status["measurements"], 2, "no partial lot from the bad file");
+    assert_eq!(
+        status["measurements"], 2,
+        "no partial lot from the bad file"
+    );
     assert_eq!(status["quarantined"], 2);
-    let reason = std::fs::read_to_string(site.path().join("quarantine/bad-number.csv.reason.txt")).unwrap();
+    let reason =
+        std::fs::read_to_string(site.path().join("quarantine/bad-number.csv.reason.txt")).unwrap();
     assert!(reason.contains("bad-number.csv:3:4"), "{reason}");
     assert!(reason.contains("column value"), "{reason}");
     assert!(site.path().join("quarantine/bad-number.csv").exists());
-    assert!(site.path().join("quarantine/no-rows.csv.reason.txt").exists());
+    assert!(
+        site.path()
+            .join("quarantine/no-rows.csv.reason.txt")
+            .exists()
+    );
     // The daemon went on: the good file was archived.
     assert!(site.files_in("inbox").is_empty());
 }
@@ -72,7 +89,12 @@ fn malformed_files_are_quarantined_with_a_reason_and_nothing_is_stored() {
 #[test]
 fn duplicates_are_archived_and_conflicting_resends_quarantined_until_replaced() {
     let site = Site::new("");
-    let first = long_file("cedar-energy", "CE-7", "2026-02-01", &[("mass_g", vec![46.5, 46.6, 46.4])]);
+    let first = long_file(
+        "cedar-energy",
+        "CE-7",
+        "2026-02-01",
+        &[("mass_g", vec![46.5, 46.6, 46.4])],
+    );
     drop_file(&site.inbox(), "ce-7.csv", &first);
     site.once();
     // Same bytes again under another name, and a conflicting re-send, and a second station's
@@ -80,7 +102,12 @@ fn duplicates_are_archived_and_conflicting_resends_quarantined_until_replaced() 
     drop_file(&site.inbox(), "ce-7-again.csv", &first);
     let changed = first.replace("46.600000", "46.900000");
     drop_file(&site.inbox(), "ce-7-corrected.csv", &changed);
-    let station2 = long_file("cedar-energy", "CE-7", "2026-02-01", &[("capacity_mah", vec![3001.0, 2999.5])]);
+    let station2 = long_file(
+        "cedar-energy",
+        "CE-7",
+        "2026-02-01",
+        &[("capacity_mah", vec![3001.0, 2999.5])],
+    );
     drop_file(&site.inbox(), "ce-7-capacity.csv", &station2);
     site.once();
 
@@ -94,14 +121,19 @@ fn duplicates_are_archived_and_conflicting_resends_quarantined_until_replaced() 
         .filter(|p| p.parent().unwrap().ends_with("duplicates"))
         .collect();
     assert_eq!(dups.len(), 1, "{dups:?}");
-    let reason = std::fs::read_to_string(site.path().join("quarantine/ce-7-corrected.csv.reason.txt")).unwrap();
+    let reason =
+        std::fs::read_to_string(site.path().join("quarantine/ce-7-corrected.csv.reason.txt"))
+            .unwrap();
     assert!(reason.contains("lotdrift replace"), "{reason}");
     assert!(reason.contains("\"CE-7\""), "{reason}");
 
     // Replacing on purpose: audited, and the stored values change.
     let out = site.run(&[
         "replace",
-        site.path().join("quarantine/ce-7-corrected.csv").to_str().unwrap(),
+        site.path()
+            .join("quarantine/ce-7-corrected.csv")
+            .to_str()
+            .unwrap(),
         "--reason",
         "transcription error in unit 2",
     ]);
@@ -119,7 +151,11 @@ fn a_backfill_decides_like_files_arriving_one_by_one() {
     let fast = "[watch]\nsettle_seconds = 0.0\n";
     let all = Site::new(fast);
     for (name, text, _) in &files {
-        drop_file(&all.inbox(), &format!("z{}", name.chars().rev().collect::<String>()), text);
+        drop_file(
+            &all.inbox(),
+            &format!("z{}", name.chars().rev().collect::<String>()),
+            text,
+        );
     }
     all.once();
     // One by one, in sampling order.
@@ -150,7 +186,14 @@ fn a_backfill_decides_like_files_arriving_one_by_one() {
     let strip = |site: &Site| {
         site.alerts()
             .iter()
-            .map(|a| (a["source"].to_string(), a["characteristic"].to_string(), a["lot"].to_string(), a["lots"].to_string()))
+            .map(|a| {
+                (
+                    a["source"].to_string(),
+                    a["characteristic"].to_string(),
+                    a["lot"].to_string(),
+                    a["lots"].to_string(),
+                )
+            })
             .collect::<Vec<_>>()
     };
     assert_eq!(strip(&all), strip(&single));
@@ -174,7 +217,10 @@ fn config_and_usage_errors_exit_2_naming_the_key_or_flag() {
     assert_eq!(out.status.code(), Some(2));
     assert!(text(&out.stderr).contains("--bogus"));
 
-    let out = cmd(site.path()).args(["status", "--config", "missing.toml"]).output().unwrap();
+    let out = cmd(site.path())
+        .args(["status", "--config", "missing.toml"])
+        .output()
+        .unwrap();
     assert_eq!(out.status.code(), Some(2));
     assert!(text(&out.stderr).contains("missing.toml"));
 }
@@ -188,7 +234,10 @@ fn init_writes_a_config_that_accepts_anything() {
         assert!(dir.path().join("site").join(sub).is_dir());
     }
     // Running from another folder: paths resolve against the config file.
-    let out = cmd(dir.path()).args(["run", "--once", "--config", "site/lotdrift.toml"]).output().unwrap();
+    let out = cmd(dir.path())
+        .args(["run", "--once", "--config", "site/lotdrift.toml"])
+        .output()
+        .unwrap();
     assert!(out.status.success(), "{}", text(&out.stderr));
     assert!(dir.path().join("site/lotdrift.db").exists());
     let out = cmd(dir.path()).args(["init", "site"]).output().unwrap();

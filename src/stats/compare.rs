@@ -6,19 +6,29 @@ use std::str::FromStr;
 
 use super::StatsError;
 use super::ttest::{self, Alternative, TTestOptions};
+use super::{rank, variance};
 
 /// The tests `compare` offers.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum TestKind {
     Welch,
     Pooled,
+    MannWhitney,
+    F,
+    BrownForsythe,
 }
+
+/// The names `FromStr` accepts, for messages.
+pub const TEST_NAMES: &str = "welch|pooled|mann-whitney|f|brown-forsythe";
 
 impl TestKind {
     pub fn as_str(self) -> &'static str {
         match self {
             TestKind::Welch => "welch",
             TestKind::Pooled => "pooled",
+            TestKind::MannWhitney => "mann-whitney",
+            TestKind::F => "f",
+            TestKind::BrownForsythe => "brown-forsythe",
         }
     }
 }
@@ -35,9 +45,12 @@ impl FromStr for TestKind {
         match s.trim().to_ascii_lowercase().as_str() {
             "welch" => Ok(TestKind::Welch),
             "pooled" | "student" => Ok(TestKind::Pooled),
+            "mann-whitney" | "mann_whitney" | "wilcoxon-rank-sum" => Ok(TestKind::MannWhitney),
+            "f" => Ok(TestKind::F),
+            "brown-forsythe" | "brown_forsythe" => Ok(TestKind::BrownForsythe),
             _ => Err(StatsError::UnknownMethod {
                 name: s.to_string(),
-                allowed: "welch|pooled",
+                allowed: TEST_NAMES,
             }),
         }
     }
@@ -79,35 +92,112 @@ pub fn compare(
     delta: f64,
     alpha: f64,
 ) -> Result<Comparison, StatsError> {
+    let conf_level = 1.0 - alpha;
     let opts = TTestOptions {
         delta,
         alternative,
-        conf_level: 1.0 - alpha,
+        conf_level,
     };
-    let (r, assumption) = match test {
-        TestKind::Welch => (
-            ttest::welch_samples(a, b, &opts)?,
-            "independent samples from normal populations (variances may differ); robust to \
-             moderate non-normality for larger samples",
-        ),
-        TestKind::Pooled => (
-            ttest::pooled_samples(a, b, &opts)?,
-            "independent samples from normal populations with equal variances",
-        ),
-    };
-    Ok(Comparison {
+    let base = |statistic, df, p_value, estimate, estimate_label, ci, assumption| Comparison {
         test,
         alternative,
-        statistic: r.statistic,
-        df: Some(Df::One(r.df)),
-        p_value: r.p_value,
-        estimate: r.estimate,
-        estimate_label: "difference of means (a − b)",
-        ci: Some(r.ci),
-        conf_level: 1.0 - alpha,
+        statistic,
+        df,
+        p_value,
+        estimate,
+        estimate_label,
+        ci,
+        conf_level,
         assumption,
         n_a: a.len(),
         n_b: b.len(),
         delta,
+    };
+    let only_t = |name: &'static str| -> Result<(), StatsError> {
+        if delta != 0.0 {
+            Err(StatsError::InvalidParameter { name, value: delta })
+        } else {
+            Ok(())
+        }
+    };
+    Ok(match test {
+        TestKind::Welch | TestKind::Pooled => {
+            let (r, assumption) = if test == TestKind::Welch {
+                (
+                    ttest::welch_samples(a, b, &opts)?,
+                    "independent samples from normal populations (variances may differ); \
+                     robust to moderate non-normality for larger samples",
+                )
+            } else {
+                (
+                    ttest::pooled_samples(a, b, &opts)?,
+                    "independent samples from normal populations with equal variances",
+                )
+            };
+            base(
+                r.statistic,
+                Some(Df::One(r.df)),
+                r.p_value,
+                r.estimate,
+                "difference of means (a − b)",
+                Some(r.ci),
+                assumption,
+            )
+        }
+        TestKind::MannWhitney => {
+            only_t("delta (only the t tests take --delta)")?;
+            let r = rank::mann_whitney(a, b, alternative)?;
+            base(
+                r.statistic,
+                None,
+                r.p_value,
+                rank::hodges_lehmann(a, b)?,
+                "Hodges–Lehmann shift (median of a_i − b_j)",
+                None,
+                match r.method {
+                    rank::MannWhitneyMethod::Exact => {
+                        "independent samples; exact distribution of U (no ties)"
+                    }
+                    _ => {
+                        "independent samples; normal approximation of U with tie and \
+                         continuity correction"
+                    }
+                },
+            )
+        }
+        TestKind::F => {
+            only_t("delta (only the t tests take --delta)")?;
+            let r = variance::f_test_samples(a, b, alternative, conf_level)?;
+            base(
+                r.statistic,
+                Some(Df::Two(r.df1, r.df2)),
+                r.p_value,
+                r.estimate,
+                "ratio of variances (a / b)",
+                r.ci,
+                "independent samples from normal populations (the F test is sensitive to \
+                 non-normality; prefer brown-forsythe when in doubt)",
+            )
+        }
+        TestKind::BrownForsythe => {
+            only_t("delta (only the t tests take --delta)")?;
+            if alternative != Alternative::TwoSided {
+                return Err(StatsError::InvalidParameter {
+                    name: "alternative (brown-forsythe is two-sided only)",
+                    value: f64::NAN,
+                });
+            }
+            let r = variance::brown_forsythe(a, b)?;
+            base(
+                r.statistic,
+                Some(Df::Two(r.df1, r.df2)),
+                r.p_value,
+                r.estimate.unwrap_or(0.0),
+                "difference of mean absolute deviations from the medians (a − b)",
+                None,
+                "independent samples; robust to non-normality (Levene's test on deviations \
+                 from the group medians)",
+            )
+        }
     })
 }

@@ -4,8 +4,8 @@
 //! Owns the numerical kernels the tests rely on; does no I/O.
 //!
 //! * The regularized incomplete beta function `I_x(a, b)` is evaluated by the
-//!   classical continued fraction (Abramowitz & Stegun 26.5.8) with the modified
-//!   Lentz method, always on the side where the fraction converges and the
+//!   classical continued fraction (Abramowitz & Stegun 26.5.8), evaluated by
+//!   the forward recurrence of its convergents, always on the side where the fraction converges and the
 //!   wanted tail is small, so upper tails are computed directly, never as
 //!   `1 - cdf`. The prefactor `x^a (1-x)^b / B(a, b)` is formed in logarithms
 //!   from Stirling-series corrections and Loader's (2000) deviance function
@@ -67,6 +67,10 @@ fn check_x(x: f64) -> Result<(), StatsError> {
 
 /// Stirling error δ(z) = ln Γ(z) − [(z − ½) ln z − z + ½ ln 2π], z > 0.
 fn stirling_err(z: f64) -> f64 {
+    if z == 0.5 {
+        // δ(½) = ½ ln π + ½ − ½ ln 2π = ½ − ½ ln 2.
+        return 0.5 - 0.5 * LN_2;
+    }
     if z >= 10.0 {
         let r = 1.0 / z;
         let r2 = r * r;
@@ -98,11 +102,9 @@ fn bd0(x: f64, m: f64, ln_ratio: f64) -> f64 {
         let v2 = v * v;
         let mut sum = (x - m) * v;
         let mut pow = 2.0 * x * v;
-        let mut j = 1.0;
-        for _ in 0..200 {
+        for inv in INV_ODD.iter().skip(1) {
             pow *= v2;
-            j += 2.0;
-            let next = sum + pow / j;
+            let next = sum + pow * inv;
             if next == sum {
                 break;
             }
@@ -114,50 +116,140 @@ fn bd0(x: f64, m: f64, ln_ratio: f64) -> f64 {
     }
 }
 
-/// ln of the incomplete-beta prefactor `x^a y^b / B(a, b)` (y = 1 − x).
-fn ln_beta_prefactor(a: f64, b: f64, x: f64, y: f64, ln_x: f64, ln_y: f64) -> f64 {
-    let s = a + b;
-    let big_a = x * s;
-    let big_b = y * s;
-    let ln_ra = -(b / a).ln_1p() - ln_x; // ln(a / (x s))
-    let ln_rb = -(a / b).ln_1p() - ln_y; // ln(b / (y s))
-    let half_ln_h = if a >= b {
-        0.5 * (b.ln() - (b / a).ln_1p())
-    } else {
-        0.5 * (a.ln() - (a / b).ln_1p())
-    };
-    -bd0(a, big_a, ln_ra) - bd0(b, big_b, ln_rb) + half_ln_h
-        - HALF_LN_2PI
-        - stirling_err(a)
-        - stirling_err(b)
-        + stirling_err(s)
+/// ln(1 − e^l) for l ≤ 0.
+fn ln_1m_exp(l: f64) -> f64 {
+    (-l.exp()).ln_1p()
 }
 
-/// Continued fraction of I_x(a, b) (A&S 26.5.8) by modified Lentz:
-/// I_x(a, b) = prefactor · cf / a. Converges well for x < (a+1)/(a+b+2).
+/// Per-(a, b) constants of the incomplete-beta prefactor
+/// `x^a y^b / B(a, b)`, computed once per distribution.
+#[derive(Debug, Clone, Copy)]
+struct BetaKernel {
+    a: f64,
+    b: f64,
+    /// ½ ln(ab/(a+b)) − ½ ln 2π − δ(a) − δ(b) + δ(a+b).
+    c0: f64,
+    /// ln(1 + b/a).
+    l_ba: f64,
+    /// ln(1 + a/b).
+    l_ab: f64,
+}
+
+/// Both tails of the beta distribution at x: the one on the side where the
+/// continued fraction converges is computed directly, the other on demand.
+struct BetaTails {
+    ln_direct: f64,
+    direct_is_lower: bool,
+    /// ln (x^a y^b / B(a, b)).
+    ln_pref: f64,
+}
+
+impl BetaTails {
+    /// ln I_x(a, b).
+    fn ln_lower(&self) -> f64 {
+        if self.direct_is_lower {
+            self.ln_direct
+        } else {
+            ln_1m_exp(self.ln_direct)
+        }
+    }
+
+    /// ln (1 − I_x(a, b)).
+    fn ln_upper(&self) -> f64 {
+        if self.direct_is_lower {
+            ln_1m_exp(self.ln_direct)
+        } else {
+            self.ln_direct
+        }
+    }
+}
+
+impl BetaKernel {
+    fn new(a: f64, b: f64) -> BetaKernel {
+        let half_ln_h = if a >= b {
+            0.5 * (b.ln() - (b / a).ln_1p())
+        } else {
+            0.5 * (a.ln() - (a / b).ln_1p())
+        };
+        BetaKernel {
+            a,
+            b,
+            c0: half_ln_h - HALF_LN_2PI - stirling_err(a) - stirling_err(b) + stirling_err(a + b),
+            l_ba: (b / a).ln_1p(),
+            l_ab: (a / b).ln_1p(),
+        }
+    }
+
+    /// ln (x^a y^b / B(a, b)) = −bd0(a, x(a+b)) − bd0(b, y(a+b)) + c0.
+    fn ln_pref(&self, x: f64, y: f64, ln_x: f64, ln_y: f64) -> f64 {
+        let s = self.a + self.b;
+        -bd0(self.a, x * s, -self.l_ba - ln_x) - bd0(self.b, y * s, -self.l_ab - ln_y) + self.c0
+    }
+
+    fn tails(&self, x: f64, y: f64, ln_x: f64, ln_y: f64) -> Result<BetaTails, StatsError> {
+        let (a, b) = (self.a, self.b);
+        if ln_x == f64::NEG_INFINITY || ln_y == f64::NEG_INFINITY {
+            return Ok(BetaTails {
+                ln_direct: f64::NEG_INFINITY,
+                direct_is_lower: ln_x == f64::NEG_INFINITY,
+                ln_pref: f64::NEG_INFINITY,
+            });
+        }
+        let ln_pref = self.ln_pref(x, y, ln_x, ln_y);
+        let lower_side = x * (a + b + 2.0) < a + 1.0;
+        let ln_direct = if lower_side {
+            ln_pref + (beta_cf(a, b, x)? / a).ln()
+        } else {
+            ln_pref + (beta_cf(b, a, y)? / b).ln()
+        };
+        Ok(BetaTails {
+            ln_direct: ln_direct.min(0.0),
+            direct_is_lower: lower_side,
+            ln_pref,
+        })
+    }
+}
+
+/// Continued fraction of I_x(a, b) (A&S 26.5.8):
+/// I_x(a, b) = prefactor · cf / a with cf = 1/(1 + d₁/(1 + d₂/(1 + …))).
+/// Converges well for x < (a+1)/(a+b+2). Evaluated by the forward
+/// three-term recurrence of numerators and denominators with rescaling,
+/// which keeps divisions off the serial dependency chain.
 fn beta_cf(a: f64, b: f64, x: f64) -> Result<f64, StatsError> {
-    let fix = |v: f64| {
-        if v.abs() < LENTZ_TINY { LENTZ_TINY } else { v }
-    };
-    let mut c = 1.0;
-    let mut d = 1.0 / fix(1.0 - (a + b) * x / (a + 1.0));
-    let mut h = d;
+    const BIG: f64 = 1e100;
+    /// Convergents as [A_{n−1}, A_n, B_{n−1}, B_n].
+    fn apply(st: &mut [f64; 4], d: f64) {
+        let a2 = st[1] + d * st[0];
+        let b2 = st[3] + d * st[2];
+        *st = [st[1], a2, st[3], b2];
+    }
+    // (A₀, A₁) = (0, 1), (B₀, B₁) = (1, 1); then d₁ = −(a+b)x/(a+1).
+    let mut st = [0.0_f64, 1.0, 1.0, 1.0];
+    apply(&mut st, -(a + b) * x / (a + 1.0));
     let max_iter = 100_000 + (50.0 * a.max(b).sqrt()).min(1.0e7) as u64;
     let mut m = 0.0_f64;
     for _ in 0..max_iter {
         m += 1.0;
         let m2 = 2.0 * m;
-        let even = m * (b - m) * x / ((a + m2 - 1.0) * (a + m2));
-        d = 1.0 / fix(1.0 + even * d);
-        c = fix(1.0 + even / c);
-        h *= d * c;
-        let odd = -(a + m) * (a + b + m) * x / ((a + m2) * (a + m2 + 1.0));
-        d = 1.0 / fix(1.0 + odd * d);
-        c = fix(1.0 + odd / c);
-        let del = d * c;
-        h *= del;
-        if (del - 1.0).abs() <= f64::EPSILON {
-            return Ok(h);
+        let (p, q, r) = (a + m2 - 1.0, a + m2, a + m2 + 1.0);
+        // One division for both coefficients of this pair.
+        let inv = x / (p * q * r);
+        apply(&mut st, m * (b - m) * r * inv);
+        apply(&mut st, -(a + m) * (a + b + m) * p * inv);
+        let scale = st[3].abs();
+        if !(1.0 / BIG..=BIG).contains(&scale) {
+            if scale == 0.0 || !scale.is_finite() {
+                break;
+            }
+            let inv_scale = 1.0 / scale;
+            for v in st.iter_mut() {
+                *v *= inv_scale;
+            }
+        }
+        // Consecutive convergents agree: |A_n B_{n−1} − A_{n−1} B_n| ≤ ε |A_n B_{n−1}|.
+        let cross = st[1] * st[2];
+        if (cross - st[0] * st[3]).abs() <= f64::EPSILON * cross.abs() {
+            return Ok(st[1] / st[3]);
         }
     }
     Err(StatsError::NoConvergence {
@@ -165,63 +257,9 @@ fn beta_cf(a: f64, b: f64, x: f64) -> Result<f64, StatsError> {
     })
 }
 
-/// Both tails of the beta distribution at x, in logarithms.
-struct BetaTails {
-    /// ln I_x(a, b).
-    ln_lower: f64,
-    /// ln (1 − I_x(a, b)).
-    ln_upper: f64,
-    /// ln (x^a y^b / B(a, b)).
-    ln_pref: f64,
-}
-
-fn beta_tails(
-    a: f64,
-    b: f64,
-    x: f64,
-    y: f64,
-    ln_x: f64,
-    ln_y: f64,
-) -> Result<BetaTails, StatsError> {
-    if ln_x == f64::NEG_INFINITY {
-        return Ok(BetaTails {
-            ln_lower: f64::NEG_INFINITY,
-            ln_upper: 0.0,
-            ln_pref: f64::NEG_INFINITY,
-        });
-    }
-    if ln_y == f64::NEG_INFINITY {
-        return Ok(BetaTails {
-            ln_lower: 0.0,
-            ln_upper: f64::NEG_INFINITY,
-            ln_pref: f64::NEG_INFINITY,
-        });
-    }
-    let ln_pref = ln_beta_prefactor(a, b, x, y, ln_x, ln_y);
-    if x * (a + b + 2.0) < a + 1.0 {
-        let cf = beta_cf(a, b, x)?;
-        let ln_lower = (ln_pref + (cf / a).ln()).min(0.0);
-        let ln_upper = (-ln_lower.exp()).ln_1p();
-        Ok(BetaTails {
-            ln_lower,
-            ln_upper,
-            ln_pref,
-        })
-    } else {
-        let cf = beta_cf(b, a, y)?;
-        let ln_upper = (ln_pref + (cf / b).ln()).min(0.0);
-        let ln_lower = (-ln_upper.exp()).ln_1p();
-        Ok(BetaTails {
-            ln_lower,
-            ln_upper,
-            ln_pref,
-        })
-    }
-}
-
-/// (x, y, ln x, ln y) with x = 1/(1+r), y = r/(1+r), given r ≥ 0 by value
-/// and by logarithm (the logarithm is used when r is out of range).
-fn split_ratio(r: f64, ln_r: f64) -> (f64, f64, f64, f64) {
+/// (x, y, ln x, ln y) with x = 1/(1+r), y = r/(1+r), for r ≥ 0 given by
+/// value; `ln_r` is only evaluated when r is out of range.
+fn split_ratio(r: f64, ln_r: impl Fn() -> f64) -> (f64, f64, f64, f64) {
     if r > 1e-300 && r < 1e300 {
         (
             1.0 / (1.0 + r),
@@ -229,12 +267,15 @@ fn split_ratio(r: f64, ln_r: f64) -> (f64, f64, f64, f64) {
             -r.ln_1p(),
             -(1.0 / r).ln_1p(),
         )
-    } else if ln_r > 0.0 {
-        let inv = (-ln_r).exp();
-        (inv, 1.0, -ln_r - inv.ln_1p(), -inv.ln_1p())
     } else {
-        let rr = ln_r.exp();
-        (1.0, rr, -rr.ln_1p(), ln_r - rr.ln_1p())
+        let ln_r = ln_r();
+        if ln_r > 0.0 {
+            let inv = (-ln_r).exp();
+            (inv, 1.0, -ln_r - inv.ln_1p(), -inv.ln_1p())
+        } else {
+            let rr = ln_r.exp();
+            (1.0, rr, -rr.ln_1p(), ln_r - rr.ln_1p())
+        }
     }
 }
 
@@ -242,9 +283,25 @@ fn split_ratio(r: f64, ln_r: f64) -> (f64, f64, f64, f64) {
 // Normal distribution
 // ---------------------------------------------------------------------------
 
+/// 1/(2k+1) for k = 0..N_ODD (the series below needs about 60 terms at z = 3).
+const N_ODD: usize = 96;
+const INV_ODD: [f64; N_ODD] = {
+    let mut t = [0.0; N_ODD];
+    let mut k = 0;
+    while k < N_ODD {
+        t[k] = 1.0 / (2 * k + 1) as f64;
+        k += 1;
+    }
+    t
+};
+
 /// exp(−z²/2) with the square formed from an exact split of z.
 fn exp_neg_half_sq(z: f64) -> f64 {
     let z = z.abs();
+    if z < 4.0 {
+        // Rounding of z² costs at most ~1e-15 relative here.
+        return (-0.5 * z * z).exp();
+    }
     let hi = (z * 65_536.0).floor() / 65_536.0;
     let lo = z - hi;
     (-0.5 * hi * hi).exp() * (-lo * (hi + 0.5 * lo)).exp()
@@ -265,22 +322,30 @@ pub(crate) fn norm_sf_raw(z: f64) -> f64 {
     if z == f64::INFINITY || z > 40.0 {
         return 0.0;
     }
-    if z < 3.0 {
-        // Φ(z) − ½ = φ(z) Σ z^{2n+1} / (2n+1)!!   (A&S 26.2.11)
-        let z2 = z * z;
-        let mut term = z;
-        let mut sum = z;
-        let mut k = 1.0;
-        for _ in 0..200 {
-            k += 2.0;
-            term *= z2 / k;
-            let next = sum + term;
-            if next == sum {
-                break;
-            }
-            sum = next;
+    norm_tail_with_pdf(z, norm_pdf(z))
+}
+
+/// S(z) = Σ z^{2n+1} / (2n+1)!!, so that Φ(z) − ½ = φ(z) S(z) (A&S 26.2.11);
+/// used for |z| < 3.
+fn central_series(z: f64) -> f64 {
+    let z2 = z * z;
+    let mut term = z;
+    let mut sum = z;
+    for inv in INV_ODD.iter().skip(1) {
+        term *= z2 * inv;
+        let next = sum + term;
+        if next == sum {
+            break;
         }
-        return 0.5 - norm_pdf(z) * sum;
+        sum = next;
+    }
+    sum
+}
+
+/// Q(z) for 0 ≤ z ≤ 40 given pdf = φ(z).
+fn norm_tail_with_pdf(z: f64, pdf: f64) -> f64 {
+    if z < 3.0 {
+        return 0.5 - pdf * central_series(z);
     }
     // Laplace continued fraction Q(z) = φ(z) / (z + 1/(z + 2/(z + 3/(z + …))))
     let mut f = z;
@@ -300,7 +365,7 @@ pub(crate) fn norm_sf_raw(z: f64) -> f64 {
             break;
         }
     }
-    norm_pdf(z) / f
+    pdf / f
 }
 
 /// Standard normal cdf Φ(x).
@@ -315,22 +380,45 @@ pub fn normal_sf(x: f64) -> Result<f64, StatsError> {
     Ok(norm_sf_raw(x))
 }
 
-/// Lower-tail normal quantile for 0 < p ≤ ½ (result ≤ 0).
-fn norm_lower_quantile(p: f64) -> f64 {
+/// Lower-tail normal quantile for 0 < p ≤ ½ (result ≤ 0), with at most
+/// `max_iter` Halley refinements of the A&S 26.2.23 start.
+fn norm_lower_quantile(p: f64, max_iter: usize) -> f64 {
     if p == 0.5 {
         return 0.0;
+    }
+    if p > 0.25 {
+        // Near the centre solve φ(z) S(z) = ½ − p (exact by Sterbenz) for
+        // z > 0 with relative accuracy, instead of Φ(x) = p.
+        let c = 0.5 - p;
+        let mut z = c * (2.0 * std::f64::consts::PI).sqrt();
+        for _ in 0..max_iter.max(2) + 4 {
+            let pdf = norm_pdf(z);
+            let u = (pdf * central_series(z) - c) / pdf;
+            let step = u / (1.0 + 0.5 * z * u);
+            z -= step;
+            if step.abs() <= 1e-15 * z.abs() {
+                break;
+            }
+        }
+        return -z.max(0.0);
     }
     // A&S 26.2.23 starting value (|error| < 4.5e-4).
     let t = (-2.0 * p.ln()).sqrt();
     let num = 2.515_517 + t * (0.802_853 + t * 0.010_328);
     let den = 1.0 + t * (1.432_788 + t * (0.189_269 + t * 0.001_308));
     let mut x = -(t - num / den);
-    for _ in 0..12 {
+    for _ in 0..max_iter {
         let pdf = norm_pdf(x);
         if pdf == 0.0 {
             break;
         }
-        let u = (norm_sf_raw(-x) - p) / pdf;
+        // Φ(x) = Q(−x) for x ≤ 0, reusing φ(x).
+        let cdf = if x < -40.0 {
+            0.0
+        } else {
+            norm_tail_with_pdf(-x, pdf)
+        };
+        let u = (cdf - p) / pdf;
         let step = u / (1.0 + 0.5 * x * u);
         x -= step;
         if step.abs() <= 1e-15 * x.abs().max(1e-300) {
@@ -352,9 +440,9 @@ fn norm_quantile_raw(p: f64) -> f64 {
     } else if p == 1.0 {
         f64::INFINITY
     } else if p <= 0.5 {
-        norm_lower_quantile(p)
+        norm_lower_quantile(p, 12)
     } else {
-        -norm_lower_quantile(1.0 - p)
+        -norm_lower_quantile(1.0 - p, 12)
     }
 }
 
@@ -368,75 +456,160 @@ pub fn normal_isf(q: f64) -> Result<f64, StatsError> {
 // Student t
 // ---------------------------------------------------------------------------
 
-/// Logarithms of the tails of Student t at t: (ln sf, ln cdf, ln P) with
-/// d sf / d ln|t| = −P (for t > 0).
-pub(crate) fn t_ln_tails(t: f64, df: f64) -> Result<(f64, f64, f64), StatsError> {
-    if t == 0.0 {
-        return Ok((-LN_2, -LN_2, f64::NEG_INFINITY));
+/// Student t distribution with its prefactor constants precomputed.
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct TDist {
+    df: f64,
+    /// `None` for df = +inf (standard normal).
+    kernel: Option<BetaKernel>,
+}
+
+impl TDist {
+    /// Validated df > 0 (may be +inf).
+    pub(crate) fn new(df: f64) -> TDist {
+        TDist {
+            df,
+            kernel: if df.is_finite() {
+                Some(BetaKernel::new(0.5 * df, 0.5))
+            } else {
+                None
+            },
+        }
     }
-    if t.is_infinite() {
-        return Ok(if t > 0.0 {
-            (f64::NEG_INFINITY, 0.0, f64::NEG_INFINITY)
+
+    /// For t > 0 (finite): (ln P(T > t), ln P, d ln P / d ln t) with
+    /// P = t·pdf(t) = −d sf / d ln t.
+    fn upper(&self, t: f64) -> Result<(f64, f64, f64), StatsError> {
+        let Some(k) = self.kernel else {
+            let q = norm_sf_raw(t);
+            return Ok((q.ln(), (t * norm_pdf(t)).ln(), 1.0 - t * t));
+        };
+        let df = self.df;
+        let (x, y, ln_x, ln_y) = split_ratio(t * t / df, || 2.0 * t.ln() - df.ln());
+        let tails = k.tails(x, y, ln_x, ln_y)?;
+        // sf(t) = ½ I_x(ν/2, ½)
+        Ok((tails.ln_lower() - LN_2, tails.ln_pref, 1.0 - (df + 1.0) * y))
+    }
+
+    /// ln P(T > t).
+    pub(crate) fn ln_sf(&self, t: f64) -> Result<f64, StatsError> {
+        if t == 0.0 {
+            Ok(-LN_2)
+        } else if t == f64::INFINITY {
+            Ok(f64::NEG_INFINITY)
+        } else if t == f64::NEG_INFINITY {
+            Ok(0.0)
+        } else if t > 0.0 {
+            Ok(self.upper(t)?.0)
         } else {
-            (0.0, f64::NEG_INFINITY, f64::NEG_INFINITY)
-        });
+            Ok(ln_1m_exp(self.upper(-t)?.0))
+        }
     }
-    if df == f64::INFINITY {
-        let q = norm_sf_raw(t.abs());
-        let ln_small = q.ln();
-        let ln_big = (-q).ln_1p();
-        let ln_pref = t.abs().ln() + norm_pdf(t).ln();
-        return Ok(if t > 0.0 {
-            (ln_small, ln_big, ln_pref)
+
+    /// ln P(T ≤ t).
+    pub(crate) fn ln_cdf(&self, t: f64) -> Result<f64, StatsError> {
+        self.ln_sf(-t)
+    }
+
+    /// 2·P(T > |t|), capped at 1.
+    pub(crate) fn two_sided(&self, t: f64) -> Result<f64, StatsError> {
+        Ok((self.ln_sf(t.abs())? + LN_2).exp().min(1.0))
+    }
+
+    /// Upper-tail quantile for 0 < q < ½ (positive result).
+    fn upper_quantile(&self, q: f64) -> Result<f64, StatsError> {
+        let df = self.df;
+        if self.kernel.is_none() {
+            return Ok(-norm_lower_quantile(q, 12));
+        }
+        // Starting value: Cornish–Fisher type expansion (A&S 26.7.5) for
+        // moderate z²/ν, the power-law tail of the density otherwise.
+        let z = -norm_lower_quantile(q, 1);
+        let z2 = z * z;
+        let guess = if z2 < df {
+            let g1 = (z2 + 1.0) * z / 4.0;
+            let g2 = ((5.0 * z2 + 16.0) * z2 + 3.0) * z / 96.0;
+            let g3 = (((3.0 * z2 + 19.0) * z2 + 17.0) * z2 - 15.0) * z / 384.0;
+            let g4 =
+                ((((79.0 * z2 + 776.0) * z2 + 1482.0) * z2 - 1920.0) * z2 - 945.0) * z / 92_160.0;
+            z + (g1 + (g2 + (g3 + g4 / df) / df) / df) / df
         } else {
-            (ln_big, ln_small, ln_pref)
-        });
+            let ln_k = ln_gamma_pos(0.5 * (df + 1.0))
+                - ln_gamma_pos(0.5 * df)
+                - 0.5 * (df * std::f64::consts::PI).ln();
+            ((ln_k + 0.5 * (df - 1.0) * df.ln() - q.ln()) / df).exp()
+        };
+        if q > 0.25 {
+            return self.central_quantile(0.5 - q, guess);
+        }
+        let eval = |u: f64| self.upper(u.exp());
+        let u = solve_decreasing(q.ln(), guess.ln(), U_MIN, U_MAX, &eval)?;
+        from_log_root(u, q.ln(), U_MIN, U_MAX, &eval)
     }
-    let at = t.abs();
-    let r = (at * at) / df;
-    let ln_r = 2.0 * at.ln() - df.ln();
-    let (x, y, ln_x, ln_y) = split_ratio(r, ln_r);
-    let tails = beta_tails(0.5 * df, 0.5, x, y, ln_x, ln_y)?;
-    // sf(|t|) = ½ I_x(ν/2, ½)
-    let ln_small = tails.ln_lower - LN_2;
-    let ln_big = (-0.5 * tails.ln_lower.exp()).ln_1p();
-    Ok(if t > 0.0 {
-        (ln_small, ln_big, tails.ln_pref)
-    } else {
-        (ln_big, ln_small, tails.ln_pref)
-    })
+
+    /// The t > 0 with P(0 < T ≤ t) = c, 0 < c < ¼, solved with relative
+    /// accuracy in c (the central mass is the directly computed beta tail).
+    fn central_quantile(&self, c: f64, guess: f64) -> Result<f64, StatsError> {
+        let Some(k) = self.kernel else {
+            return Ok(-norm_lower_quantile(0.5 - c, 12));
+        };
+        let df = self.df;
+        // v = −ln t; central mass ½ (1 − I_x(ν/2, ½)) decreases in v.
+        let eval = |v: f64| -> Result<(f64, f64, f64), StatsError> {
+            let t = (-v).exp();
+            let (x, y, ln_x, ln_y) = split_ratio(t * t / df, || 2.0 * t.ln() - df.ln());
+            let tails = k.tails(x, y, ln_x, ln_y)?;
+            Ok((
+                tails.ln_upper() - LN_2,
+                tails.ln_pref,
+                -(1.0 - (df + 1.0) * y),
+            ))
+        };
+        let v = solve_decreasing(c.ln(), -guess.ln(), -U_MAX, -U_MIN, &eval)?;
+        Ok(1.0 / from_log_root(v, c.ln(), -U_MAX, -U_MIN, &eval)?)
+    }
+
+    /// Quantile: the t with P(T ≤ t) = p, for validated p in [0, 1].
+    pub(crate) fn quantile(&self, p: f64) -> Result<f64, StatsError> {
+        if p == 0.0 {
+            Ok(f64::NEG_INFINITY)
+        } else if p == 1.0 {
+            Ok(f64::INFINITY)
+        } else if p == 0.5 {
+            Ok(0.0)
+        } else if p < 0.5 {
+            Ok(-self.upper_quantile(p)?)
+        } else {
+            self.upper_quantile(1.0 - p)
+        }
+    }
 }
 
 /// Student t cdf P(T ≤ x) with `df` degrees of freedom (df > 0, may be +inf).
 pub fn t_cdf(x: f64, df: f64) -> Result<f64, StatsError> {
     check_x(x)?;
     check_df("df", df, true)?;
-    Ok(t_ln_tails(x, df)?.1.exp())
+    Ok(TDist::new(df).ln_cdf(x)?.exp())
 }
 
 /// Student t survival function P(T > x), computed directly in the upper tail.
 pub fn t_sf(x: f64, df: f64) -> Result<f64, StatsError> {
     check_x(x)?;
     check_df("df", df, true)?;
-    Ok(t_ln_tails(x, df)?.0.exp())
+    Ok(TDist::new(df).ln_sf(x)?.exp())
 }
 
-/// Two-sided p-value 2·P(T > |t|), capped at 1 (validated inputs).
-pub(crate) fn t_two_sided_raw(t: f64, df: f64) -> Result<f64, StatsError> {
-    let (ln_sf, _, _) = t_ln_tails(t.abs(), df)?;
-    Ok((ln_sf + LN_2).exp().min(1.0))
-}
-
-/// Safeguarded Newton iteration in u for h(u) = ln tail(u) − target, tail
-/// decreasing in u, on [u_min, u_max]. `eval(u)` returns (ln tail, ln P) with
-/// d tail / du = −P. Returns u (clamped to the bounds when the root lies
-/// outside them).
+/// Safeguarded Halley/Newton iteration in u for h(u) = ln T(u) − target,
+/// with T decreasing in u, on [u_min, u_max]. `eval(u)` returns
+/// (ln T, ln P, d ln P / du) where dT/du = −P. Falls back to bisection when a
+/// step leaves the bracket; at most 400 evaluations. Returns u (clamped to the
+/// bounds when the root lies outside them).
 fn solve_decreasing(
     target: f64,
     u0: f64,
     u_min: f64,
     u_max: f64,
-    eval: &dyn Fn(f64) -> Result<(f64, f64), StatsError>,
+    eval: &dyn Fn(f64) -> Result<(f64, f64, f64), StatsError>,
 ) -> Result<f64, StatsError> {
     let mut lo = u_min;
     let mut hi = u_max;
@@ -446,7 +619,7 @@ fn solve_decreasing(
         0.0_f64.clamp(u_min, u_max)
     };
     for _ in 0..400 {
-        let (lt, lp) = eval(u)?;
+        let (lt, lp, dlp) = eval(u)?;
         let h = lt - target;
         if h == 0.0 {
             return Ok(u);
@@ -456,21 +629,28 @@ fn solve_decreasing(
         } else {
             hi = u;
         }
-        let slope = -(lp - lt).exp();
-        let newton = u - h / slope;
-        let (next, newton_ok) = if newton.is_finite() && newton > lo && newton < hi {
-            (newton, true)
+        // h' = −g, h'' = −g·dlp − g², with g = P / T.
+        let g = (lp - lt).exp();
+        let h1 = -g;
+        let h2 = -g * dlp - g * g;
+        let newton = -h / h1;
+        let corr = 1.0 + 0.5 * newton * h2 / h1;
+        let halley = corr.is_finite() && corr > 0.5 && corr < 2.0;
+        let step = if halley { newton / corr } else { newton };
+        let cand = u + step;
+        let (next, in_bracket) = if cand.is_finite() && cand > lo && cand < hi {
+            (cand, true)
         } else {
             (0.5 * (lo + hi), false)
         };
-        let step = (next - u).abs();
-        let scale = next.abs().max(1.0);
-        u = next;
-        // Once a Newton step is below 1e-9 (relative), the quadratic
-        // convergence makes the error after it negligible.
-        if (newton_ok && step <= 1e-9 * scale) || hi - lo <= 4.0 * f64::EPSILON * scale {
-            return Ok(u);
+        let moved = (next - u).abs();
+        // Halley converges cubically, Newton quadratically: after a step this
+        // small the remaining error (≈ step³ resp. step²) is far below 1e-13.
+        let done = in_bracket && ((halley && moved <= 1e-5) || moved <= 1e-8);
+        if done || hi - lo <= 4.0 * f64::EPSILON * next.abs().max(1.0) {
+            return Ok(next);
         }
+        u = next;
     }
     Ok(u)
 }
@@ -478,87 +658,128 @@ fn solve_decreasing(
 const U_MAX: f64 = 709.0;
 const U_MIN: f64 = -744.0;
 
-/// Upper-tail t quantile for 0 < q < ½ (positive result).
-fn t_upper_quantile(q: f64, df: f64) -> Result<f64, StatsError> {
-    let z = -norm_lower_quantile(q);
-    if df == f64::INFINITY {
-        return Ok(z);
+/// e^u for a root u of `solve_decreasing` on [u_min, u_max]. When u sits at
+/// a bound, the bound is checked: if the root lies beyond it the result is
+/// +inf (beyond u_max) or 0 (beyond u_min) instead of the clamped value.
+fn from_log_root(
+    u: f64,
+    target: f64,
+    u_min: f64,
+    u_max: f64,
+    eval: &dyn Fn(f64) -> Result<(f64, f64, f64), StatsError>,
+) -> Result<f64, StatsError> {
+    let near = |b: f64| (u - b).abs() <= 1e-6 * b.abs().max(1.0);
+    if near(u_max) && eval(u_max)?.0 > target {
+        return Ok(f64::INFINITY);
     }
-    // Starting value: Cornish–Fisher type expansion (A&S 26.7.5) for moderate
-    // z²/ν, the power-law tail of the density otherwise.
-    let z2 = z * z;
-    let guess = if z2 < df {
-        let g1 = (z2 + 1.0) * z / 4.0;
-        let g2 = ((5.0 * z2 + 16.0) * z2 + 3.0) * z / 96.0;
-        let g3 = (((3.0 * z2 + 19.0) * z2 + 17.0) * z2 - 15.0) * z / 384.0;
-        let g4 = ((((79.0 * z2 + 776.0) * z2 + 1482.0) * z2 - 1920.0) * z2 - 945.0) * z / 92_160.0;
-        z + (g1 + (g2 + (g3 + g4 / df) / df) / df) / df
-    } else {
-        let ln_k = ln_gamma_pos(0.5 * (df + 1.0))
-            - ln_gamma_pos(0.5 * df)
-            - 0.5 * (df * std::f64::consts::PI).ln();
-        ((ln_k + 0.5 * (df - 1.0) * df.ln() - q.ln()) / df).exp()
-    };
-    let eval = |u: f64| -> Result<(f64, f64), StatsError> {
-        let (ln_sf, _, ln_pref) = t_ln_tails(u.exp(), df)?;
-        Ok((ln_sf, ln_pref))
-    };
-    let u = solve_decreasing(q.ln(), guess.ln(), U_MIN, U_MAX, &eval)?;
-    Ok(if u >= U_MAX {
-        f64::INFINITY
-    } else if u <= U_MIN {
-        0.0
-    } else {
-        u.exp()
-    })
+    if near(u_min) && eval(u_min)?.0 < target {
+        return Ok(0.0);
+    }
+    Ok(u.exp())
 }
 
 /// Student t quantile: the x with P(T ≤ x) = p (df > 0, may be +inf).
 pub fn t_quantile(p: f64, df: f64) -> Result<f64, StatsError> {
     check_prob("p", p)?;
     check_df("df", df, true)?;
-    t_quantile_raw(p, df)
-}
-
-pub(crate) fn t_quantile_raw(p: f64, df: f64) -> Result<f64, StatsError> {
-    if p == 0.0 {
-        Ok(f64::NEG_INFINITY)
-    } else if p == 1.0 {
-        Ok(f64::INFINITY)
-    } else if p == 0.5 {
-        Ok(0.0)
-    } else if p < 0.5 {
-        Ok(-t_upper_quantile(p, df)?)
-    } else {
-        t_upper_quantile(1.0 - p, df)
-    }
+    TDist::new(df).quantile(p)
 }
 
 /// Inverse survival function of Student t: the x with P(T > x) = q.
 pub fn t_isf(q: f64, df: f64) -> Result<f64, StatsError> {
     check_prob("q", q)?;
     check_df("df", df, true)?;
-    Ok(-t_quantile_raw(q, df)?)
+    Ok(-TDist::new(df).quantile(q)?)
 }
 
 // ---------------------------------------------------------------------------
 // Fisher F
 // ---------------------------------------------------------------------------
 
-/// (ln cdf, ln sf, ln P) of F(df1, df2) at x > 0, with d cdf / d ln x = P.
-fn f_ln_tails(x: f64, df1: f64, df2: f64) -> Result<(f64, f64, f64), StatsError> {
-    if x <= 0.0 {
-        return Ok((f64::NEG_INFINITY, 0.0, f64::NEG_INFINITY));
+/// F distribution with its prefactor constants precomputed.
+#[derive(Debug, Clone, Copy)]
+pub(crate) struct FDist {
+    df1: f64,
+    df2: f64,
+    kernel: BetaKernel,
+}
+
+impl FDist {
+    /// Validated finite df1, df2 > 0.
+    pub(crate) fn new(df1: f64, df2: f64) -> FDist {
+        FDist {
+            df1,
+            df2,
+            kernel: BetaKernel::new(0.5 * df1, 0.5 * df2),
+        }
     }
-    if x == f64::INFINITY {
-        return Ok((0.0, f64::NEG_INFINITY, f64::NEG_INFINITY));
+
+    /// (ln cdf, ln sf, ln P, d ln P / d ln x) at x, with d cdf / d ln x = P.
+    fn tails(&self, x: f64) -> Result<(f64, f64, f64, f64), StatsError> {
+        if x <= 0.0 {
+            return Ok((f64::NEG_INFINITY, 0.0, f64::NEG_INFINITY, 0.0));
+        }
+        if x == f64::INFINITY {
+            return Ok((0.0, f64::NEG_INFINITY, f64::NEG_INFINITY, 0.0));
+        }
+        let (df1, df2) = (self.df1, self.df2);
+        // With r = df2 / (df1 x): cdf = I_{1/(1+r)}(df1/2, df2/2).
+        let (bx, by, ln_x, ln_y) = split_ratio(df2 / (df1 * x), || df2.ln() - df1.ln() - x.ln());
+        let t = self.kernel.tails(bx, by, ln_x, ln_y)?;
+        let dlp = self.kernel.a * by - self.kernel.b * bx;
+        Ok((t.ln_lower(), t.ln_upper(), t.ln_pref, dlp))
     }
-    // With r = df2 / (df1 x): cdf = I_{1/(1+r)}(df1/2, df2/2).
-    let r = df2 / (df1 * x);
-    let ln_r = df2.ln() - df1.ln() - x.ln();
-    let (xx, yy, ln_x, ln_y) = split_ratio(r, ln_r);
-    let tails = beta_tails(0.5 * df1, 0.5 * df2, xx, yy, ln_x, ln_y)?;
-    Ok((tails.ln_lower, tails.ln_upper, tails.ln_pref))
+
+    /// (cdf, sf) at x.
+    pub(crate) fn cdf_sf(&self, x: f64) -> Result<(f64, f64), StatsError> {
+        let (lc, ls, _, _) = self.tails(x)?;
+        Ok((lc.exp(), ls.exp()))
+    }
+
+    fn quantile_lower(&self, p: f64) -> Result<f64, StatsError> {
+        // Solve ln cdf(e^{-v}) = ln p, decreasing in v.
+        let eval = |v: f64| -> Result<(f64, f64, f64), StatsError> {
+            let (lc, _, lp, dlp) = self.tails((-v).exp())?;
+            Ok((lc, lp, -dlp))
+        };
+        let v = solve_decreasing(p.ln(), 0.0, -U_MAX, -U_MIN, &eval)?;
+        Ok(1.0 / from_log_root(v, p.ln(), -U_MAX, -U_MIN, &eval)?)
+    }
+
+    fn quantile_upper(&self, q: f64) -> Result<f64, StatsError> {
+        let eval = |u: f64| -> Result<(f64, f64, f64), StatsError> {
+            let (_, ls, lp, dlp) = self.tails(u.exp())?;
+            Ok((ls, lp, dlp))
+        };
+        let u = solve_decreasing(q.ln(), 0.0, U_MIN, U_MAX, &eval)?;
+        from_log_root(u, q.ln(), U_MIN, U_MAX, &eval)
+    }
+
+    /// The x with P(F ≤ x) = p, for validated p in [0, 1].
+    pub(crate) fn quantile(&self, p: f64) -> Result<f64, StatsError> {
+        if p == 0.0 {
+            Ok(0.0)
+        } else if p == 1.0 {
+            Ok(f64::INFINITY)
+        } else if p <= 0.5 {
+            self.quantile_lower(p)
+        } else {
+            self.quantile_upper(1.0 - p)
+        }
+    }
+
+    /// The x with P(F > x) = q, for validated q in [0, 1].
+    pub(crate) fn isf(&self, q: f64) -> Result<f64, StatsError> {
+        if q == 0.0 {
+            Ok(f64::INFINITY)
+        } else if q == 1.0 {
+            Ok(0.0)
+        } else if q <= 0.5 {
+            self.quantile_upper(q)
+        } else {
+            self.quantile_lower(1.0 - q)
+        }
+    }
 }
 
 fn check_f_dfs(df1: f64, df2: f64) -> Result<(), StatsError> {
@@ -570,83 +791,31 @@ fn check_f_dfs(df1: f64, df2: f64) -> Result<(), StatsError> {
 pub fn f_cdf(x: f64, df1: f64, df2: f64) -> Result<f64, StatsError> {
     check_x(x)?;
     check_f_dfs(df1, df2)?;
-    Ok(f_ln_tails(x, df1, df2)?.0.exp())
+    Ok(FDist::new(df1, df2).cdf_sf(x)?.0)
 }
 
 /// F distribution survival function P(F > x), computed directly.
 pub fn f_sf(x: f64, df1: f64, df2: f64) -> Result<f64, StatsError> {
     check_x(x)?;
     check_f_dfs(df1, df2)?;
-    Ok(f_ln_tails(x, df1, df2)?.1.exp())
-}
-
-/// Pair (cdf, sf) of F for validated inputs.
-pub(crate) fn f_tails_raw(x: f64, df1: f64, df2: f64) -> Result<(f64, f64), StatsError> {
-    let (lc, ls, _) = f_ln_tails(x, df1, df2)?;
-    Ok((lc.exp(), ls.exp()))
-}
-
-fn f_quantile_lower(p: f64, df1: f64, df2: f64) -> Result<f64, StatsError> {
-    // Solve ln cdf(e^{-v}) = ln p, decreasing in v.
-    let eval = |v: f64| -> Result<(f64, f64), StatsError> {
-        let (lc, _, lp) = f_ln_tails((-v).exp(), df1, df2)?;
-        Ok((lc, lp))
-    };
-    let v = solve_decreasing(p.ln(), 0.0, -U_MAX, -U_MIN, &eval)?;
-    Ok(if v >= -U_MIN {
-        0.0
-    } else if v <= -U_MAX {
-        f64::INFINITY
-    } else {
-        (-v).exp()
-    })
-}
-
-fn f_quantile_upper(q: f64, df1: f64, df2: f64) -> Result<f64, StatsError> {
-    let eval = |u: f64| -> Result<(f64, f64), StatsError> {
-        let (_, ls, lp) = f_ln_tails(u.exp(), df1, df2)?;
-        Ok((ls, lp))
-    };
-    let u = solve_decreasing(q.ln(), 0.0, U_MIN, U_MAX, &eval)?;
-    Ok(if u >= U_MAX {
-        f64::INFINITY
-    } else if u <= U_MIN {
-        0.0
-    } else {
-        u.exp()
-    })
-}
-
-pub(crate) fn f_quantile_raw(p: f64, df1: f64, df2: f64) -> Result<f64, StatsError> {
-    if p == 0.0 {
-        Ok(0.0)
-    } else if p == 1.0 {
-        Ok(f64::INFINITY)
-    } else if p <= 0.5 {
-        f_quantile_lower(p, df1, df2)
-    } else {
-        f_quantile_upper(1.0 - p, df1, df2)
-    }
+    Ok(FDist::new(df1, df2).cdf_sf(x)?.1)
 }
 
 /// F quantile: the x with P(F ≤ x) = p.
 pub fn f_quantile(p: f64, df1: f64, df2: f64) -> Result<f64, StatsError> {
     check_prob("p", p)?;
     check_f_dfs(df1, df2)?;
-    f_quantile_raw(p, df1, df2)
+    FDist::new(df1, df2).quantile(p)
 }
 
 /// Inverse survival function of F: the x with P(F > x) = q.
 pub fn f_isf(q: f64, df1: f64, df2: f64) -> Result<f64, StatsError> {
     check_prob("q", q)?;
     check_f_dfs(df1, df2)?;
-    if q == 0.0 {
-        Ok(f64::INFINITY)
-    } else if q == 1.0 {
-        Ok(0.0)
-    } else if q <= 0.5 {
-        f_quantile_upper(q, df1, df2)
-    } else {
-        f_quantile_lower(1.0 - q, df1, df2)
-    }
+    FDist::new(df1, df2).isf(q)
+}
+
+/// Normal quantile for Shapiro–Wilk plotting positions (0 < p < 1).
+pub(crate) fn norm_quantile_for_sw(p: f64) -> f64 {
+    norm_quantile_raw(p)
 }

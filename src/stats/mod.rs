@@ -6,20 +6,31 @@
 //! validates its input and reports problems as a typed [`StatsError`]; no
 //! function panics on user input and no result field is ever NaN.
 
+pub mod compare;
 pub mod dist;
 pub mod effect;
 pub mod multiplicity;
+pub mod normality;
+pub mod rank;
 pub mod summary;
 pub mod ttest;
+pub mod variance;
 
 pub use dist::{
     f_cdf, f_isf, f_quantile, f_sf, normal_cdf, normal_isf, normal_quantile, normal_sf, t_cdf,
     t_isf, t_quantile, t_sf,
 };
 pub use multiplicity::{Method, adjust, reject};
+pub use normality::{ShapiroWilkResult, shapiro_wilk};
+pub use rank::{
+    MannWhitneyMethod, MannWhitneyResult, hodges_lehmann, mann_whitney, mann_whitney_with,
+};
 pub use summary::Summary;
 pub use ttest::{
     Alternative, TTestOptions, TTestResult, pooled, pooled_samples, welch, welch_samples,
+};
+pub use variance::{
+    Center, FTestResult, LeveneResult, brown_forsythe, f_test, f_test_samples, levene,
 };
 
 /// Everything that can go wrong in the statistics core.
@@ -75,4 +86,3 @@ pub enum StatsError {
         what: &'static str,
     },
 }
-pub mod compare;

@@ -7,7 +7,7 @@
 //! functions. Pure computation, no I/O.
 
 use super::StatsError;
-use super::dist::{t_ln_tails, t_quantile_raw, t_two_sided_raw};
+use super::dist::TDist;
 use super::effect::hedges_correction;
 use super::summary::Summary;
 use std::fmt;
@@ -141,32 +141,32 @@ fn check_options(opts: &TTestOptions) -> Result<(), StatsError> {
 }
 
 /// p-value of a t statistic for an alternative (validated inputs).
-pub(crate) fn t_p_value(t: f64, df: f64, alternative: Alternative) -> Result<f64, StatsError> {
+pub(crate) fn t_p_value(t: f64, dist: &TDist, alternative: Alternative) -> Result<f64, StatsError> {
     Ok(match alternative {
-        Alternative::TwoSided => t_two_sided_raw(t, df)?,
-        Alternative::Less => t_ln_tails(t, df)?.1.exp(),
-        Alternative::Greater => t_ln_tails(t, df)?.0.exp(),
+        Alternative::TwoSided => dist.two_sided(t)?,
+        Alternative::Less => dist.ln_cdf(t)?.exp(),
+        Alternative::Greater => dist.ln_sf(t)?.exp(),
     })
 }
 
 fn t_interval(
     estimate: f64,
     se: f64,
-    df: f64,
+    dist: &TDist,
     opts: &TTestOptions,
 ) -> Result<(f64, f64), StatsError> {
     let alpha = 1.0 - opts.conf_level;
     Ok(match opts.alternative {
         Alternative::TwoSided => {
-            let q = -t_quantile_raw(0.5 * alpha, df)?;
+            let q = -dist.quantile(0.5 * alpha)?;
             (estimate - q * se, estimate + q * se)
         }
         Alternative::Less => {
-            let q = -t_quantile_raw(alpha, df)?;
+            let q = -dist.quantile(alpha)?;
             (f64::NEG_INFINITY, estimate + q * se)
         }
         Alternative::Greater => {
-            let q = -t_quantile_raw(alpha, df)?;
+            let q = -dist.quantile(alpha)?;
             (estimate - q * se, f64::INFINITY)
         }
     })
@@ -190,7 +190,6 @@ fn hedges_g(a: &Summary, b: &Summary, diff: f64) -> f64 {
     }
 }
 
-#[allow(clippy::too_many_arguments)]
 fn finish(
     a: &Summary,
     b: &Summary,
@@ -203,8 +202,9 @@ fn finish(
     if !statistic.is_finite() || !diff.is_finite() || !se.is_finite() || !df.is_finite() {
         return Err(StatsError::NonFinite);
     }
-    let p_value = t_p_value(statistic, df, opts.alternative)?.clamp(0.0, 1.0);
-    let ci = t_interval(diff, se, df, opts)?;
+    let dist = TDist::new(df);
+    let p_value = t_p_value(statistic, &dist, opts.alternative)?.clamp(0.0, 1.0);
+    let ci = t_interval(diff, se, &dist, opts)?;
     Ok(TTestResult {
         statistic,
         df,

@@ -189,9 +189,7 @@ pub fn lot_values(n: usize, mean: f64, sd: f64, lot: usize) -> Vec<f64> {
             (u / (1.0 - u)).ln() / 1.702
         })
         .collect();
-    (0..n)
-        .map(|i| mean + sd * pattern[(i + lot) % n])
-        .collect()
+    (0..n).map(|i| mean + sd * pattern[(i + lot) % n]).collect()
 }
 
 /// A long-layout lot file: one row per unit and characteristic.
