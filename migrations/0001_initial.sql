@@ -116,6 +116,7 @@ CREATE TABLE baseline_lot (
     sample_id   INTEGER NOT NULL REFERENCES sample (id),
     PRIMARY KEY (baseline_id, sample_id)
 );
+CREATE INDEX baseline_lot_sample ON baseline_lot (sample_id);
 
 -- Every decision: one tested sample against its baseline, with the numbers behind it.
 CREATE TABLE evaluation (

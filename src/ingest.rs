@@ -293,10 +293,21 @@ pub fn build_file(name: &str, hash: &str, bytes: &[u8]) -> Result<NewFile, Strin
                 g.first_line, g.source, g.lot, g.characteristic
             )
         })?;
+        // Units of a lot usually share one sampling time: format each distinct time once.
+        let mut last: Option<(lotfile::Timestamp, String)> = None;
         let sampled_at: Vec<Option<String>> = g
             .sampled_at
             .iter()
-            .map(|t| t.as_ref().map(|t| t.to_rfc3339()))
+            .map(|t| {
+                t.as_ref().map(|t| match &last {
+                    Some((prev, text)) if prev == t => text.clone(),
+                    _ => {
+                        let text = t.to_rfc3339();
+                        last = Some((*t, text.clone()));
+                        text
+                    }
+                })
+            })
             .collect();
         let earliest = sampled_at.iter().flatten().min().cloned();
         let digest = sample_digest(&g.values, &g.units);

@@ -14,11 +14,12 @@ use std::str::FromStr;
 use std::sync::Mutex;
 use std::time::Duration;
 
+use futures_util::TryStreamExt;
 use sqlx::sqlite::{
     SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteRow,
     SqliteSynchronous,
 };
-use sqlx::{QueryBuilder, Row, Sqlite, Transaction};
+use sqlx::{ConnectOptions, QueryBuilder, Row, Sqlite, Transaction};
 
 use crate::stats::Summary;
 
@@ -367,7 +368,12 @@ impl Store {
             .journal_mode(SqliteJournalMode::Wal)
             .synchronous(SqliteSynchronous::Normal)
             .busy_timeout(Duration::from_secs(30))
-            .foreign_keys(true);
+            .foreign_keys(true)
+            // 32 MiB of page cache (negative = KiB): a backfill touches the indexes of lots,
+            // files and samples at random; the default 2 MiB makes it read pages back.
+            .pragma("cache_size", "-32768")
+            // A backfill's large statements are expected; only report them at debug level.
+            .log_slow_statements(tracing::log::LevelFilter::Debug, Duration::from_secs(5));
         let pool = SqlitePoolOptions::new()
             .max_connections(4)
             .connect_with(options)
@@ -465,18 +471,18 @@ impl Store {
         }
 
         // 2. Ids of sources, characteristics and series (created where new).
-        let mut source_ids: HashMap<String, i64> = HashMap::new();
-        let mut series_ids: HashMap<(String, String), i64> = HashMap::new();
+        let mut source_ids: HashMap<&str, i64> = HashMap::new();
+        let mut series_ids: HashMap<(&str, &str), i64> = HashMap::new();
         for f in files {
             for s in &f.samples {
-                if !series_ids.contains_key(&(s.source.clone(), s.characteristic.clone())) {
+                let key = (s.source.as_str(), s.characteristic.as_str());
+                if let std::collections::hash_map::Entry::Vacant(slot) = series_ids.entry(key) {
                     let source_id = self.source_id(tx, &s.source, created).await?;
                     let ch_id = self
                         .characteristic_id(tx, &s.characteristic, created)
                         .await?;
-                    let series_id = self.series_id(tx, source_id, ch_id, created).await?;
-                    source_ids.insert(s.source.clone(), source_id);
-                    series_ids.insert((s.source.clone(), s.characteristic.clone()), series_id);
+                    slot.insert(self.series_id(tx, source_id, ch_id, created).await?);
+                    source_ids.insert(&s.source, source_id);
                 }
             }
         }
@@ -487,29 +493,34 @@ impl Store {
         let mut seen: HashSet<(i64, &str)> = HashSet::new();
         for f in files {
             for s in &f.samples {
-                let key = (source_ids[&s.source], s.lot.as_str());
+                let key = (source_ids[s.source.as_str()], s.lot.as_str());
                 if seen.insert(key) {
                     wanted.push(key);
                 }
             }
         }
-        for chunk in wanted.chunks(ROWS_PER_INSERT) {
-            let mut q =
-                QueryBuilder::<Sqlite>::new("SELECT id, source_id, code FROM lot WHERE code IN (");
-            let mut sep = q.separated(", ");
-            for (_, code) in chunk {
-                sep.push_bind(*code);
-            }
-            q.push(")");
-            for row in q
-                .build()
-                .fetch_all(&mut **tx)
-                .await
-                .doing("looking up lots")?
-            {
-                let key = (row.get::<i64, _>(1), row.get::<String, _>(2));
-                if seen.contains(&(key.0, key.1.as_str())) {
-                    lot_ids.insert(key, row.get(0));
+        // One query per source and chunk, so the (source_id, code) index serves it.
+        let mut by_source: HashMap<i64, Vec<&str>> = HashMap::new();
+        for (source_id, code) in &wanted {
+            by_source.entry(*source_id).or_default().push(code);
+        }
+        for (source_id, codes) in &by_source {
+            for chunk in codes.chunks(ROWS_PER_INSERT) {
+                let mut q =
+                    QueryBuilder::<Sqlite>::new("SELECT id, code FROM lot WHERE source_id = ");
+                q.push_bind(*source_id).push(" AND code IN (");
+                let mut sep = q.separated(", ");
+                for code in chunk {
+                    sep.push_bind(*code);
+                }
+                q.push(")");
+                for row in q
+                    .build()
+                    .fetch_all(&mut **tx)
+                    .await
+                    .doing("looking up lots")?
+                {
+                    lot_ids.insert((*source_id, row.get(1)), row.get(0));
                 }
             }
         }
@@ -586,8 +597,8 @@ impl Store {
                     }
                     continue;
                 }
-                let source_id = source_ids[&s.source];
-                let series_id = series_ids[&(s.source.clone(), s.characteristic.clone())];
+                let source_id = source_ids[s.source.as_str()];
+                let series_id = series_ids[&(s.source.as_str(), s.characteristic.as_str())];
                 let existing = lot_ids
                     .get(&(source_id, s.lot.clone()))
                     .and_then(|lot_id| stored.get(&(*lot_id, series_id)));
@@ -659,7 +670,7 @@ impl Store {
         for i in &to_store {
             for (j, _) in &plans[*i] {
                 let s = &files[*i].samples[*j];
-                let key = (source_ids[&s.source], s.lot.as_str());
+                let key = (source_ids[s.source.as_str()], s.lot.as_str());
                 let entry = lot_times.entry(key).or_insert(None);
                 *entry = earlier(*entry, s.earliest.as_deref());
             }
@@ -719,8 +730,8 @@ impl Store {
             let file_id = file_ids[i];
             for (j, replaced) in &plans[*i] {
                 let s = &files[*i].samples[*j];
-                let source_id = source_ids[&s.source];
-                let series_id = series_ids[&(s.source.clone(), s.characteristic.clone())];
+                let source_id = source_ids[s.source.as_str()];
+                let series_id = series_ids[&(s.source.as_str(), s.characteristic.as_str())];
                 let lot_id = lot_ids[&(source_id, s.lot.clone())];
                 match replaced {
                     Some(old) => {
@@ -1033,7 +1044,9 @@ impl Store {
                 });
             }
         }
-        for r in sqlx::query(
+        // Streamed, not collected: a backfill has every sample of every series pending, and a
+        // materialised row costs far more memory than the few numbers kept from it.
+        let mut rows = sqlx::query(
             "SELECT sm.series_id, sm.id, l.id, l.code, COALESCE(l.sampled_at, l.first_seen_at), \
                     sm.n, sm.mean, sm.m2, sm.min_value, sm.max_value \
              FROM sample sm JOIN lot l ON l.id = sm.lot_id \
@@ -1042,10 +1055,8 @@ impl Store {
              WHERE e.id IS NULL AND bl.sample_id IS NULL \
              ORDER BY sm.series_id, COALESCE(l.sampled_at, l.first_seen_at), l.code",
         )
-        .fetch_all(&self.pool)
-        .await
-        .doing("loading new lots")?
-        {
+        .fetch(&self.pool);
+        while let Some(r) = rows.try_next().await.doing("loading new lots")? {
             if let Some(i) = index.get(&r.get::<i64, _>(0)) {
                 work[*i].pending.push(SeriesSample {
                     sample_id: r.get(1),
@@ -1593,9 +1604,12 @@ fn alert_from_row(r: &SqliteRow, o: usize) -> AlertRow {
     }
 }
 
+/// (sample id, sequence number, unit, value, sampled_at) of one measurement row.
+type MeasurementRow<'a> = (i64, i64, Option<&'a str>, f64, Option<&'a str>);
+
 async fn insert_measurement_rows(
     tx: &mut Transaction<'static, Sqlite>,
-    rows: &[(i64, i64, Option<&str>, f64, Option<&str>)],
+    rows: &[MeasurementRow<'_>],
 ) -> Result<()> {
     let mut q = QueryBuilder::<Sqlite>::new(
         "INSERT INTO measurement (sample_id, seq, unit, value, sampled_at) ",

@@ -247,10 +247,12 @@ impl Scenario {
                     .enumerate()
                     .map(|(ci, c)| {
                         let mut mean = 100.0 * (ci + 1) as f64;
-                        if let Some((ss, sc, from, size)) = self.shift {
-                            if ss == si && sc == ci && lot >= from {
-                                mean += size;
-                            }
+                        if let Some((ss, sc, from, size)) = self.shift
+                            && ss == si
+                            && sc == ci
+                            && lot >= from
+                        {
+                            mean += size;
                         }
                         (c.as_str(), lot_values(self.n, mean, 1.0, lot * 7 + ci))
                     })
