@@ -83,7 +83,7 @@ impl Tracker {
         let age = mtime
             .and_then(|m| SystemTime::now().duration_since(m).ok())
             .unwrap_or_default();
-        if age >= settle {
+        if age >= settle_for(size, settle) {
             return true;
         }
         self.candidates.insert(
@@ -112,7 +112,7 @@ impl Tracker {
                     c.mtime = mtime;
                     c.stable_since = now;
                     true
-                } else if now.duration_since(c.stable_since) >= settle {
+                } else if now.duration_since(c.stable_since) >= settle_for(size, settle) {
                     ready.push(path.clone());
                     false
                 } else {
@@ -126,6 +126,16 @@ impl Tracker {
 
     pub fn pending(&self) -> usize {
         self.candidates.len()
+    }
+}
+
+/// How long a file must stay unchanged: an empty file is usually one whose writer has only
+/// created it, so it gets much longer (and is then taken, to be quarantined as empty).
+fn settle_for(size: u64, settle: Duration) -> Duration {
+    if size == 0 {
+        (settle * 10).max(Duration::from_secs(30))
+    } else {
+        settle
     }
 }
 

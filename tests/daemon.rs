@@ -56,7 +56,7 @@ fn picks_up_a_renamed_file_and_exits_cleanly_on_sigterm() {
 
 #[test]
 fn a_file_written_slowly_in_chunks_is_not_taken_half_written() {
-    let site = Site::new("[watch]\nsettle_seconds = 1.0\nrescan_seconds = 0.5\n");
+    let site = Site::new("[watch]\nsettle_seconds = 2.0\nrescan_seconds = 0.5\n");
     let mut daemon = site.spawn_daemon();
     assert!(wait_until(LIMIT, || lots(&site) == 0));
     let values: Vec<f64> = (0..40).map(|i| 46.0 + i as f64 / 100.0).collect();
@@ -70,7 +70,7 @@ fn a_file_written_slowly_in_chunks_is_not_taken_half_written() {
             f.write_all(l.as_bytes()).unwrap();
         }
         f.flush().unwrap();
-        std::thread::sleep(Duration::from_millis(250));
+        std::thread::sleep(Duration::from_millis(200));
     }
     drop(f);
     assert!(wait_until(LIMIT, || lots(&site) == 1));
