@@ -653,6 +653,14 @@ mod tests {
     }
 
     #[test]
+    fn bundled_configs_are_valid() {
+        let example = parse(include_str!("../config/lotdrift.example.toml")).unwrap();
+        assert_eq!(example.alerts.channels, vec![Channel::Log, Channel::Email]);
+        let demo = parse(include_str!("../config/demo.toml")).unwrap();
+        assert_eq!(demo.watch.settle, Duration::ZERO);
+    }
+
+    #[test]
     fn absolute_paths_are_kept() {
         let c = parse("[paths]\ndatabase = \"/var/lib/lotdrift/x.db\"\n").unwrap();
         assert_eq!(c.paths.database, PathBuf::from("/var/lib/lotdrift/x.db"));
