@@ -97,19 +97,39 @@ CREATE TABLE sample_replacement (
     old_digest   TEXT NOT NULL
 );
 
--- The frozen baseline of a series: the lots it was built from and their merged summary.
+-- The frozen baseline of a series: the lots it was built from, their merged summary, the
+-- one-way random-effects analysis of its lots, and the monitoring design derived from it.
 CREATE TABLE baseline (
-    id          INTEGER PRIMARY KEY,
-    series_id   INTEGER NOT NULL UNIQUE REFERENCES series (id),
-    frozen_at   TEXT NOT NULL,
-    definition  TEXT NOT NULL,
-    lot_count   INTEGER NOT NULL,
-    n           INTEGER NOT NULL,
-    mean        REAL NOT NULL,
-    m2          REAL NOT NULL,
-    min_value   REAL NOT NULL,
-    max_value   REAL NOT NULL,
-    last_order_key TEXT NOT NULL
+    id             INTEGER PRIMARY KEY,
+    series_id      INTEGER NOT NULL UNIQUE REFERENCES series (id),
+    frozen_at      TEXT NOT NULL,
+    definition     TEXT NOT NULL,
+    lot_count      INTEGER NOT NULL,
+    n              INTEGER NOT NULL,
+    mean           REAL NOT NULL,
+    m2             REAL NOT NULL,
+    min_value      REAL NOT NULL,
+    max_value      REAL NOT NULL,
+    last_order_key TEXT NOT NULL,
+    -- random-effects analysis (see stats::monitoring::random_effects)
+    mean_of_means  REAL NOT NULL,
+    msb            REAL NOT NULL,
+    msw            REAL NOT NULL,
+    df_between     REAL NOT NULL,
+    df_within      REAL NOT NULL,
+    n0             REAL NOT NULL,
+    n_harmonic     REAL NOT NULL,
+    var_between    REAL NOT NULL,
+    var_within     REAL NOT NULL,
+    between_p      REAL NOT NULL,
+    -- Shapiro-Wilk p of the within-lot residuals (NULL when not computed)
+    normality_p    REAL,
+    -- design: per-lot levels of the mean and spread tests, CUSUM k and h (z units)
+    level_mean     REAL NOT NULL,
+    level_spread   REAL NOT NULL,
+    cusum_k        REAL,
+    cusum_h        REAL,
+    design_note    TEXT NOT NULL
 );
 CREATE TABLE baseline_lot (
     baseline_id INTEGER NOT NULL REFERENCES baseline (id),
@@ -118,17 +138,22 @@ CREATE TABLE baseline_lot (
 );
 CREATE INDEX baseline_lot_sample ON baseline_lot (sample_id);
 
--- Every decision: one tested sample against its baseline, with the numbers behind it.
+-- Every decision: one test of one sample against its baseline, with the numbers behind it.
+-- kind 'mean' (location: the lot test and the CUSUM) or 'spread' (within-lot variance).
 CREATE TABLE evaluation (
     id              INTEGER PRIMARY KEY,
-    sample_id       INTEGER NOT NULL UNIQUE REFERENCES sample (id),
+    sample_id       INTEGER NOT NULL REFERENCES sample (id),
     series_id       INTEGER NOT NULL REFERENCES series (id),
     baseline_id     INTEGER NOT NULL REFERENCES baseline (id),
+    kind            TEXT NOT NULL CHECK (kind IN ('mean', 'spread')),
     decided_at      TEXT NOT NULL,
     test            TEXT NOT NULL,
+    model           TEXT,
     alternative     TEXT NOT NULL,
+    delta           REAL NOT NULL DEFAULT 0,
     statistic       REAL,
     df              REAL,
+    df2             REAL,
     p_value         REAL,
     p_adjusted      REAL,
     method          TEXT NOT NULL,
@@ -144,21 +169,35 @@ CREATE TABLE evaluation (
     estimate        REAL,
     ci_low          REAL,
     ci_high         REAL,
-    note            TEXT
+    std_error       REAL,
+    cusum_upper     REAL,
+    cusum_lower     REAL,
+    cusum_h         REAL,
+    cusum_signal    INTEGER NOT NULL DEFAULT 0,
+    note            TEXT,
+    UNIQUE (sample_id, kind)
 );
 CREATE INDEX evaluation_series ON evaluation (series_id);
 
--- An alert: a series that shifted. At most one open alert per series.
+-- Running state of a series' monitoring (CUSUM sums), after its latest decided lot.
+CREATE TABLE series_state (
+    series_id   INTEGER PRIMARY KEY REFERENCES series (id),
+    cusum_upper REAL NOT NULL DEFAULT 0,
+    cusum_lower REAL NOT NULL DEFAULT 0
+);
+
+-- An alert: a series that shifted. At most one open alert per series and kind of shift.
 CREATE TABLE alert (
     id                 INTEGER PRIMARY KEY,
     series_id          INTEGER NOT NULL REFERENCES series (id),
+    kind               TEXT NOT NULL CHECK (kind IN ('mean', 'spread')),
     state              TEXT NOT NULL CHECK (state IN ('open', 'resolved')),
     opened_at          TEXT NOT NULL,
     opening_evaluation INTEGER NOT NULL REFERENCES evaluation (id),
     resolved_at        TEXT,
     in_control_run     INTEGER NOT NULL DEFAULT 0
 );
-CREATE UNIQUE INDEX alert_one_open_per_series ON alert (series_id) WHERE state = 'open';
+CREATE UNIQUE INDEX alert_one_open_per_series ON alert (series_id, kind) WHERE state = 'open';
 
 -- Every state change of an alert: opened, attached (a later significant lot), resolved.
 CREATE TABLE alert_event (

@@ -38,6 +38,9 @@ pub struct RawConfig {
     pub watch: RawWatch,
     #[serde(default)]
     pub monitor: RawMonitor,
+    /// Per-characteristic settings, `[characteristic.NAME]`.
+    #[serde(default)]
+    pub characteristic: std::collections::BTreeMap<String, RawCharacteristic>,
     #[serde(default)]
     pub alerts: RawAlerts,
     #[serde(default)]
@@ -66,10 +69,23 @@ pub struct RawWatch {
 #[serde(deny_unknown_fields)]
 pub struct RawMonitor {
     pub baseline_lots: Option<i64>,
+    pub false_alert_lots: Option<f64>,
     pub level: Option<f64>,
+    pub family: Option<String>,
+    pub cusum: Option<bool>,
+    pub cusum_shift: Option<f64>,
+    pub spread: Option<bool>,
     pub resolve_after_lots: Option<i64>,
     pub sources: Option<Vec<String>>,
     pub characteristics: Option<Vec<String>>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawCharacteristic {
+    pub direction: Option<String>,
+    pub min_shift: Option<f64>,
+    pub spread: Option<bool>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -134,20 +150,110 @@ pub struct Watch {
     pub poll_interval: Duration,
 }
 
+/// Which shifts of a characteristic matter.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Direction {
+    /// Both directions are a problem.
+    TwoSided,
+    /// Only a decrease is a problem (an increase is an improvement, never an alert).
+    HigherIsBetter,
+    /// Only an increase is a problem.
+    LowerIsBetter,
+}
+
+impl Direction {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Direction::TwoSided => "two-sided",
+            Direction::HigherIsBetter => "higher-is-better",
+            Direction::LowerIsBetter => "lower-is-better",
+        }
+    }
+}
+
+/// Settings of one characteristic (defaults for any characteristic not named in the file).
+#[derive(Debug, Clone, PartialEq)]
+pub struct CharacteristicPolicy {
+    pub direction: Direction,
+    /// Practical significance, in the characteristic's unit: alert only when the shift is
+    /// significantly larger than this. 0 = any shift.
+    pub min_shift: f64,
+    /// Whether to test the lot's spread (within-lot variance) against the baseline.
+    pub spread: bool,
+}
+
+/// How the tests of one lot's characteristics are adjusted together.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Family {
+    Holm,
+    BenjaminiHochberg,
+}
+
+impl Family {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Family::Holm => "holm",
+            Family::BenjaminiHochberg => "bh",
+        }
+    }
+}
+
 #[derive(Debug, Clone)]
 pub struct Monitor {
     pub baseline_lots: usize,
-    /// Family-wise level of the Holm procedure across the characteristics of one lot.
-    pub level: f64,
+    /// The false-alert budget: at most one false alert per this many in-control lots of a
+    /// series (in-control average run length).
+    pub false_alert_lots: f64,
+    /// Explicit per-lot level of the mean tests (overrides the level derived from the budget).
+    pub level: Option<f64>,
+    pub family: Family,
+    /// CUSUM on standardised lot means, for sustained small shifts.
+    pub cusum: bool,
+    /// The shift the CUSUM is tuned for, in standard deviations of a lot mean (k = shift / 2).
+    pub cusum_shift: f64,
+    /// Default for testing spread.
+    pub spread: bool,
     /// Consecutive in-control lots that resolve an open alert.
     pub resolve_after_lots: usize,
     /// Sources to monitor; empty means every source.
     pub sources: Vec<String>,
     /// Characteristics to monitor; empty means every characteristic.
     pub characteristics: Vec<String>,
+    /// Settings per characteristic name; others get [`Monitor::policy`]'s defaults.
+    pub per_characteristic: std::collections::BTreeMap<String, CharacteristicPolicy>,
+}
+
+/// How the false-alert budget is shared between the tests of a series (fractions of
+/// 1 / false_alert_lots), stated once.
+pub mod budget {
+    pub const MEAN: f64 = 0.4;
+    pub const SPREAD: f64 = 0.2;
+    pub const CUSUM: f64 = 0.4;
 }
 
 impl Monitor {
+    /// The settings of a characteristic.
+    pub fn policy(&self, characteristic: &str) -> CharacteristicPolicy {
+        self.per_characteristic
+            .get(characteristic)
+            .cloned()
+            .unwrap_or(CharacteristicPolicy {
+                direction: Direction::TwoSided,
+                min_shift: 0.0,
+                spread: self.spread,
+            })
+    }
+
+    /// Shares of the per-lot false-alert rate 1 / false_alert_lots: (mean test, spread test,
+    /// CUSUM). A disabled part's share goes to the mean test.
+    pub fn shares(&self, spread: bool) -> (f64, f64, f64) {
+        let rate = 1.0 / self.false_alert_lots;
+        let cusum = if self.cusum { budget::CUSUM } else { 0.0 };
+        let spread_share = if spread { budget::SPREAD } else { 0.0 };
+        let mean = 1.0 - cusum - spread_share;
+        (rate * mean, rate * spread_share, rate * cusum)
+    }
+
     pub fn monitors(&self, source: &str, characteristic: &str) -> bool {
         (self.sources.is_empty() || self.sources.iter().any(|s| s == source))
             && (self.characteristics.is_empty()
@@ -219,7 +325,8 @@ pub struct Log {
 /// Defaults, stated once.
 pub mod defaults {
     pub const BASELINE_LOTS: usize = 20;
-    pub const LEVEL: f64 = 0.01;
+    pub const FALSE_ALERT_LOTS: f64 = 500.0;
+    pub const CUSUM_SHIFT: f64 = 1.0;
     pub const RESOLVE_AFTER_LOTS: usize = 5;
     pub const SETTLE_SECONDS: f64 = 2.0;
     pub const RESCAN_SECONDS: f64 = 30.0;
@@ -356,11 +463,76 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
         ),
     };
 
-    let level = raw.monitor.level.unwrap_or(defaults::LEVEL);
-    if !(level > 0.0 && level < 1.0) {
+    let level = raw.monitor.level;
+    if let Some(l) = level
+        && !(l > 0.0 && l < 0.5)
+    {
         p.push(
             "monitor.level",
-            format!("must be between 0 and 1 (got {level})"),
+            format!("must be between 0 and 0.5 (got {l})"),
+        );
+    }
+    let false_alert_lots = raw
+        .monitor
+        .false_alert_lots
+        .unwrap_or(defaults::FALSE_ALERT_LOTS);
+    if !(false_alert_lots.is_finite() && (10.0..=1e9).contains(&false_alert_lots)) {
+        p.push(
+            "monitor.false_alert_lots",
+            format!("must be a number of lots from 10 to 1e9 (got {false_alert_lots})"),
+        );
+    }
+    let family = match raw.monitor.family.as_deref() {
+        None | Some("holm") => Family::Holm,
+        Some("bh") => Family::BenjaminiHochberg,
+        Some(other) => {
+            p.push(
+                "monitor.family",
+                format!("unknown method {other:?} (allowed: \"holm\", \"bh\")"),
+            );
+            Family::Holm
+        }
+    };
+    let cusum_shift = raw.monitor.cusum_shift.unwrap_or(defaults::CUSUM_SHIFT);
+    if !(cusum_shift.is_finite() && (0.1..=5.0).contains(&cusum_shift)) {
+        p.push(
+            "monitor.cusum_shift",
+            format!("must be between 0.1 and 5 standard deviations (got {cusum_shift})"),
+        );
+    }
+    let spread_default = raw.monitor.spread.unwrap_or(true);
+    let mut per_characteristic = std::collections::BTreeMap::new();
+    for (name, c) in raw.characteristic {
+        let key = |k: &str| format!("characteristic.{name}.{k}");
+        let direction = match c.direction.as_deref() {
+            None | Some("two-sided") => Direction::TwoSided,
+            Some("higher-is-better") => Direction::HigherIsBetter,
+            Some("lower-is-better") => Direction::LowerIsBetter,
+            Some(other) => {
+                p.push(
+                    &key("direction"),
+                    format!(
+                        "unknown direction {other:?} (allowed: \"two-sided\", \
+                         \"higher-is-better\", \"lower-is-better\")"
+                    ),
+                );
+                Direction::TwoSided
+            }
+        };
+        let min_shift = c.min_shift.unwrap_or(0.0);
+        if !(min_shift.is_finite() && min_shift >= 0.0) {
+            p.push(
+                &key("min_shift"),
+                format!("must be a number ≥ 0 in the characteristic's unit (got {min_shift})"),
+            );
+        }
+        per_characteristic.insert(
+            name,
+            CharacteristicPolicy {
+                direction,
+                min_shift,
+                spread: c.spread.unwrap_or(spread_default),
+            },
         );
     }
     let monitor = Monitor {
@@ -368,9 +540,14 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
             "monitor.baseline_lots",
             raw.monitor.baseline_lots,
             defaults::BASELINE_LOTS,
-            2,
+            3,
         ),
+        false_alert_lots,
         level,
+        family,
+        cusum: raw.monitor.cusum.unwrap_or(true),
+        cusum_shift,
+        spread: spread_default,
         resolve_after_lots: p.count(
             "monitor.resolve_after_lots",
             raw.monitor.resolve_after_lots,
@@ -383,6 +560,7 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
             "monitor.characteristics",
             raw.monitor.characteristics,
         ),
+        per_characteristic,
     };
 
     let mut channels = Vec::new();
@@ -576,10 +754,21 @@ poll_seconds = 5.0
 
 [monitor]
 baseline_lots = 20       # the first N lots of a series (in sampling order) form its baseline
-level = 0.01             # family-wise level (Holm) across the characteristics of one lot
+false_alert_lots = 500   # budget: at most one false alert per this many in-control lots per series
+family = "holm"          # across the characteristics of one lot: "holm" (FWER) or "bh" (FDR)
+cusum = true             # CUSUM on standardised lot means, for small sustained shifts
+cusum_shift = 1.0        # the shift the CUSUM is tuned for, in sd of a lot mean
+spread = true            # also alert when a lot's spread grows
 resolve_after_lots = 5   # consecutive in-control lots that resolve an open alert
 sources = []             # only these sources; empty = every source
 characteristics = []     # only these characteristics; empty = every characteristic
+# level = 0.001          # fix the per-lot level of the mean tests instead of deriving it
+
+# Per characteristic (any name; others are two-sided, min_shift 0):
+# [characteristic.capacity_mah]
+# direction = "higher-is-better"   # "two-sided" | "higher-is-better" | "lower-is-better"
+# min_shift = 5.0                  # alert only on shifts significantly larger than this (its unit)
+# spread = true
 
 [alerts]
 channels = ["log"]       # "log", "email", or both
@@ -628,11 +817,19 @@ mod tests {
 
     #[test]
     fn invalid_values_name_their_keys() {
-        let e =
-            parse("[monitor]\nbaseline_lots = 1\nlevel = 2.0\n[alerts]\nchannels = [\"pager\"]\n")
-                .unwrap_err()
-                .to_string();
-        for key in ["monitor.baseline_lots", "monitor.level", "alerts.channels"] {
+        let e = parse(
+            "[monitor]\nbaseline_lots = 1\nlevel = 2.0\n[alerts]\nchannels = [\"pager\"]\n\
+             [characteristic.mass_g]\ndirection = \"up\"\nmin_shift = -1\n",
+        )
+        .unwrap_err()
+        .to_string();
+        for key in [
+            "monitor.baseline_lots",
+            "monitor.level",
+            "alerts.channels",
+            "characteristic.mass_g.direction",
+            "characteristic.mass_g.min_shift",
+        ] {
             assert!(e.contains(key), "{key} missing in {e}");
         }
     }

@@ -70,9 +70,10 @@ pub async fn run(dir: &Path) -> Result<(), Failure> {
     }
     println!();
     println!(
-        "Evaluation: baselines of the first {} lots per series; {} later lots tested with \
-         Welch's t, Holm across each lot's characteristics at level {}.",
-        config.monitor.baseline_lots, r.engine.evaluations, config.monitor.level
+        "Evaluation: each series' first {} lots form its baseline; {} later tests (lot mean \
+         against the baseline lot means, spread, CUSUM) under a budget of one false alert per \
+         {} lots per series.",
+        config.monitor.baseline_lots, r.engine.evaluations, config.monitor.false_alert_lots
     );
     let alerts = store.alerts(false).await.context("demo alerts")?;
     println!("Alerts ({} opened):", alerts.len());

@@ -2,26 +2,50 @@
 //!
 //! A series is one source × one characteristic. Its lots are ordered by sampling time (the
 //! lot's earliest `sampled_at`, else the arrival of its first file), then lot code. The first
-//! `monitor.baseline_lots` lots in that order form the baseline, frozen once complete; every
-//! later lot is tested against it with Welch's t (two-sided) on the unit values, and the tests
-//! of one lot's characteristics form a family adjusted by Holm at `monitor.level`. A
-//! significant lot opens an alert (one open alert per series; later significant lots attach to
-//! it); `monitor.resolve_after_lots` consecutive in-control lots resolve it. Decisions, alert
-//! changes and outbox rows are written in one transaction by `store::write_pass`.
+//! `monitor.baseline_lots` lots in that order form the baseline, frozen once complete.
 //!
-//! Because decisions follow lot order and a baseline is frozen once, a backfill dropped at once
-//! gives the same baseline and decisions as the same files arriving one by one in sampling
-//! order. A lot that arrives late is tested and recorded; earlier decisions are not rewritten.
+//! **Lots are clusters.** The baseline is analysed as a one-way random-effects model (lots as
+//! groups): the within-lot variance and the between-lot variance component. A new lot's mean is
+//! compared with the mean of the baseline lot means, with a standard error that includes the
+//! between-lot component (`stats::monitoring::lot_vs_baseline`); when the baseline shows no
+//! between-lot component, this reduces to a comparison on units. The model used is recorded
+//! with every decision.
+//!
+//! **A false-alert budget over time.** The user states at most one false alert per
+//! `monitor.false_alert_lots` in-control lots of a series. The per-lot rate 1/L is shared
+//! between the mean test, the spread test and the CUSUM (`config::budget`); within one lot, the
+//! tests of its characteristics are adjusted together (Holm or Benjamini–Hochberg) at that
+//! share, so every series gets at most its share. The mean test's false-alarm probability is
+//! exact with the baseline's estimated parameters (a prediction-type t test); the CUSUM's
+//! decision interval is calibrated for a baseline of m estimated lot means
+//! (`cusum_h_for_rate_estimated`).
+//!
+//! **Sustained small drifts.** A CUSUM on the standardised lot means, tuned for
+//! `monitor.cusum_shift` (k = shift/2), signals drifts no single lot shows; it restarts after
+//! each signal and when an alert resolves.
+//!
+//! **What matters.** Per characteristic: a direction (an improvement is never an alert) and a
+//! minimum shift (alert only when the shift is significantly larger). Spread: the lot's
+//! variance against the baseline's within-lot variance, one-sided (an increase).
+//!
+//! An alert is opened per series and kind (mean, spread) by the first significant lot; later
+//! significant lots attach to it; `monitor.resolve_after_lots` consecutive in-control lots
+//! resolve it. Decisions, alert changes and outbox rows are written in one transaction by
+//! `store::write_pass`. A backfill dropped at once gives the same decisions as the files
+//! arriving one by one in sampling order; a late lot is tested and recorded, and earlier
+//! decisions are never rewritten.
 
 use std::collections::BTreeMap;
 
-use crate::config::{Channel, Config, Monitor};
+use crate::config::{Channel, Config, Direction, Family, Monitor};
 use crate::stats::Summary;
+use crate::stats::dist::f_sf;
+use crate::stats::monitoring::{self, RandomEffects};
 use crate::stats::multiplicity::{self, Method};
-use crate::stats::ttest::{self, Alternative, TTestOptions};
+use crate::stats::ttest::Alternative;
 use crate::store::{
-    AlertAction, Decision, EnginePass, NewBaseline, NewEvaluation, PassCounts, SeriesWork, Store,
-    StoreError,
+    AlertAction, Decision, Design, EnginePass, NewBaseline, NewEvaluation, PassCounts, SeriesWork,
+    Store, StoreError,
 };
 use crate::time::now_rfc3339;
 
@@ -33,14 +57,24 @@ pub enum EngineError {
 
 /// Loads the undecided lots, decides them, and writes the decisions.
 pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, EngineError> {
-    let work = store.pending_work().await?;
+    let mut work = store.pending_work().await?;
+    // Baselines about to be frozen get their residuals' normality checked.
+    for w in &mut work {
+        if w.baseline.is_none() && w.pending.len() >= config.monitor.baseline_lots {
+            let ids: Vec<i64> = w.pending[..config.monitor.baseline_lots]
+                .iter()
+                .map(|s| s.sample_id)
+                .collect();
+            w.baseline_residuals = Some(store.residuals(&ids, 5000).await?);
+        }
+    }
     let mut pass = decide(&work, &config.monitor);
     pass.recipients = recipients(config);
     let counts = store.write_pass(&pass, &now_rfc3339()).await?;
     if counts.evaluations > 0 || counts.baselines > 0 {
         tracing::info!(
             baselines = counts.baselines,
-            lots_tested = counts.evaluations,
+            tests = counts.evaluations,
             alerts_opened = counts.opened,
             alerts_resolved = counts.resolved,
             "evaluated"
@@ -67,171 +101,458 @@ pub fn recipients(config: &Config) -> Vec<(String, String)> {
     out
 }
 
-/// A test computed for one pending lot of one series, before the family adjustment.
+/// Below this Shapiro–Wilk p the baseline residuals count as clearly non-normal (common
+/// practice for a screening check).
+const NON_NORMAL_P: f64 = 0.001;
+
+/// CUSUM decision intervals already computed in this pass, by (k, rate, m, df, two-sided):
+/// a backfill designs hundreds of series with the same few parameters.
+type HCache = std::collections::HashMap<(u64, u64, usize, u64, bool), f64>;
+
+/// Designs a series from its baseline lots.
+pub fn design(
+    lots: &[Summary],
+    residuals: Option<&[f64]>,
+    monitor: &Monitor,
+    characteristic: &str,
+    cache: &mut HCache,
+) -> Result<Design, String> {
+    let re = monitoring::random_effects(lots).map_err(|e| format!("baseline: {e}"))?;
+    let policy = monitor.policy(characteristic);
+    let (mean_share, spread_share, cusum_share) = monitor.shares(policy.spread);
+    let level_mean = monitor.level.unwrap_or(mean_share);
+    let two_sided = policy.direction == Direction::TwoSided;
+    let cusum = if monitor.cusum {
+        let k = monitor.cusum_shift / 2.0;
+        // The z of a lot mean is standardised by the baseline's estimate of a lot mean's sd:
+        // with lot-to-lot variation that rests on the m lot means (m - 1 df), otherwise on the
+        // within-lot variance (N - m df).
+        let df_sd = if re.var_between > 0.0 {
+            re.df_between
+        } else {
+            re.df_within
+        };
+        // df rounded to a whole number: the calibration changes far less than its own
+        // tolerance between neighbouring df.
+        let df_sd = df_sd.round().max(1.0);
+        let key = (
+            k.to_bits(),
+            cusum_share.to_bits(),
+            re.m,
+            df_sd as u64,
+            two_sided,
+        );
+        let h = match cache.get(&key) {
+            Some(h) => *h,
+            None => {
+                let h = monitoring::cusum_h_for_rate_estimated(
+                    k,
+                    cusum_share,
+                    re.m as f64,
+                    df_sd,
+                    two_sided,
+                )
+                .map_err(|e| format!("CUSUM design: {e}"))?;
+                cache.insert(key, h);
+                h
+            }
+        };
+        Some((k, h))
+    } else {
+        None
+    };
+    let normality_p = residuals
+        .filter(|r| r.len() >= 3)
+        .and_then(|r| crate::stats::normality::shapiro_wilk(r).ok())
+        .map(|w| w.p_value);
+    Ok(Design {
+        re,
+        level_mean,
+        level_spread: spread_share,
+        cusum,
+        normality_p,
+    })
+}
+
+/// The alternative and the hypothesised difference (lot − baseline) of a characteristic's
+/// mean test.
+fn mean_hypothesis(direction: Direction, min_shift: f64) -> (Alternative, f64) {
+    match direction {
+        Direction::TwoSided => (Alternative::TwoSided, 0.0),
+        Direction::HigherIsBetter => (Alternative::Less, -min_shift),
+        Direction::LowerIsBetter => (Alternative::Greater, min_shift),
+    }
+}
+
+/// The decisions for one lot of one series before the family adjustment.
 struct Tested {
     series: usize,
     sample: usize,
     lot_id: i64,
-    result: Result<ttest::TTestResult, String>,
+    mean: Result<monitoring::LotTest, String>,
+    /// Two-sided tests with a minimum shift: p of |d| > min_shift.
+    mean_p: Option<f64>,
+    spread: Option<(f64, f64, f64, f64)>,
+    /// The lot mean standardised by the baseline: (mean − baseline mean) / sd of a lot mean.
+    z: Option<f64>,
 }
 
 /// The decisions for `work`, a pure function of the stored state and the policy.
 pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
     let mut pass = EnginePass::default();
-    // Baselines (frozen now or earlier) by series index.
-    let mut baselines: Vec<Option<Summary>> = vec![None; work.len()];
-    // Index into `pending` of the first lot to test, per series.
-    let mut first_tested = vec![0usize; work.len()];
+    let mut cache = HCache::new();
+    let mut designs: Vec<Option<(Design, Summary)>> = vec![None; work.len()];
     let mut tested: Vec<Tested> = Vec::new();
     for (i, w) in work.iter().enumerate() {
         if !monitor.monitors(&w.source, &w.characteristic) {
             continue;
         }
-        let baseline = match &w.baseline {
-            Some(b) => b.summary,
+        let policy = monitor.policy(&w.characteristic);
+        let (design, merged, first) = match &w.baseline {
+            Some(b) => (b.design, b.summary, 0),
             None => {
                 if w.pending.len() < monitor.baseline_lots {
                     continue;
                 }
                 let lots = &w.pending[..monitor.baseline_lots];
-                let mut summary = lots[0].summary;
-                for l in &lots[1..] {
-                    summary = summary.merge(&l.summary);
-                }
+                let summaries: Vec<Summary> = lots.iter().map(|l| l.summary).collect();
+                let merged = summaries[1..]
+                    .iter()
+                    .fold(summaries[0], |acc, s| acc.merge(s));
+                let d = match design(
+                    &summaries,
+                    w.baseline_residuals.as_deref(),
+                    monitor,
+                    &w.characteristic,
+                    &mut cache,
+                ) {
+                    Ok(d) => d,
+                    Err(e) => {
+                        tracing::warn!(source = %w.source, characteristic = %w.characteristic, error = %e, "cannot build a baseline yet");
+                        continue;
+                    }
+                };
                 pass.baselines.push(NewBaseline {
                     series_id: w.series_id,
                     definition: format!("first {} lots", monitor.baseline_lots),
                     sample_ids: lots.iter().map(|l| l.sample_id).collect(),
-                    summary,
+                    summary: merged,
                     last_order_time: lots[lots.len() - 1].order_time.clone(),
+                    design: d,
+                    note: design_note(&d, monitor),
                 });
-                first_tested[i] = monitor.baseline_lots;
-                summary
+                (d, merged, monitor.baseline_lots)
             }
         };
-        baselines[i] = Some(baseline);
-        let opts = TTestOptions {
-            delta: 0.0,
-            alternative: Alternative::TwoSided,
-            conf_level: 0.95,
-        };
-        for (j, s) in w.pending.iter().enumerate().skip(first_tested[i]) {
+        designs[i] = Some((design, merged));
+        let (alternative, delta) = mean_hypothesis(policy.direction, policy.min_shift);
+        for (j, s) in w.pending.iter().enumerate().skip(first) {
+            let mean =
+                monitoring::lot_vs_baseline(&design.re, &s.summary, alternative, delta, 0.95)
+                    .map_err(|e| e.to_string());
+            // A minimum shift in both directions: the smaller of the two one-sided p-values,
+            // doubled.
+            let mean_p = match (&mean, policy.direction) {
+                (Ok(_), Direction::TwoSided) if policy.min_shift > 0.0 => {
+                    let lo = monitoring::lot_vs_baseline(
+                        &design.re,
+                        &s.summary,
+                        Alternative::Less,
+                        -policy.min_shift,
+                        0.95,
+                    );
+                    let hi = monitoring::lot_vs_baseline(
+                        &design.re,
+                        &s.summary,
+                        Alternative::Greater,
+                        policy.min_shift,
+                        0.95,
+                    );
+                    match (lo, hi) {
+                        (Ok(a), Ok(b)) => Some((2.0 * a.p_value.min(b.p_value)).min(1.0)),
+                        _ => None,
+                    }
+                }
+                (Ok(m), _) => Some(m.p_value),
+                _ => None,
+            };
+            let spread = if policy.spread {
+                spread_test(&design.re, &s.summary)
+            } else {
+                None
+            };
+            // CUSUM on z = (lot mean − baseline mean) / sd of a lot mean.
+            let z = mean.as_ref().ok().and_then(|_| {
+                let sd =
+                    (design.re.var_between + design.re.var_within / s.summary.n() as f64).sqrt();
+                (sd > 0.0).then(|| (s.summary.mean() - design.re.mean_of_means) / sd)
+            });
             tested.push(Tested {
                 series: i,
                 sample: j,
                 lot_id: s.lot_id,
-                result: ttest::welch(&s.summary, &baseline, &opts).map_err(|e| e.to_string()),
+                mean,
+                mean_p,
+                spread,
+                z,
             });
         }
     }
 
-    // Families: the tests of one lot (all its characteristics decided in this pass).
-    let mut families: BTreeMap<i64, Vec<usize>> = BTreeMap::new();
+    // Families: the mean tests of one lot, and the spread tests of one lot.
+    let method = match monitor.family {
+        Family::Holm => Method::Holm,
+        Family::BenjaminiHochberg => Method::BenjaminiHochberg,
+    };
+    let adjust = |members: &[(usize, f64)]| -> Vec<(usize, f64, usize)> {
+        let p: Vec<f64> = members.iter().map(|m| m.1).collect();
+        let adj = multiplicity::adjust(&p, method).unwrap_or(p);
+        members
+            .iter()
+            .zip(adj)
+            .map(|(m, a)| (m.0, a, members.len()))
+            .collect()
+    };
+    let mut mean_family: BTreeMap<i64, Vec<(usize, f64)>> = BTreeMap::new();
+    let mut spread_family: BTreeMap<i64, Vec<(usize, f64)>> = BTreeMap::new();
     for (k, t) in tested.iter().enumerate() {
-        if t.result.is_ok() {
-            families.entry(t.lot_id).or_default().push(k);
+        if let Some(p) = t.mean_p {
+            mean_family.entry(t.lot_id).or_default().push((k, p));
+        }
+        if let Some((_, _, _, p)) = t.spread {
+            spread_family.entry(t.lot_id).or_default().push((k, p));
         }
     }
-    let mut adjusted: Vec<Option<(f64, usize)>> = vec![None; tested.len()];
-    for members in families.values() {
-        let p: Vec<f64> = members
-            .iter()
-            .map(|k| tested[*k].result.as_ref().map(|r| r.p_value).unwrap_or(1.0))
-            .collect();
-        let adj = multiplicity::adjust(&p, Method::Holm).unwrap_or(p);
-        for (m, k) in members.iter().enumerate() {
-            adjusted[*k] = Some((adj[m], members.len()));
+    let mut mean_adj: Vec<Option<(f64, usize)>> = vec![None; tested.len()];
+    let mut spread_adj: Vec<Option<(f64, usize)>> = vec![None; tested.len()];
+    for members in mean_family.values() {
+        for (k, a, size) in adjust(members) {
+            mean_adj[k] = Some((a, size));
+        }
+    }
+    for members in spread_family.values() {
+        for (k, a, size) in adjust(members) {
+            spread_adj[k] = Some((a, size));
         }
     }
 
-    // Alert lifecycle, series by series in lot order.
+    // Alert lifecycle, series by series in lot order, per kind.
     let mut by_series: BTreeMap<usize, Vec<usize>> = BTreeMap::new();
     for (k, t) in tested.iter().enumerate() {
         by_series.entry(t.series).or_default().push(k);
     }
     for (i, ks) in by_series {
         let w = &work[i];
-        let baseline = baselines[i].expect("tested series have a baseline");
-        // Consecutive in-control lots of the open alert, None when no alert is open.
-        let mut open_run = w.open_alert.as_ref().map(|a| a.in_control_run);
+        let (design, merged) = designs[i].expect("tested series have a design");
+        let policy = monitor.policy(&w.characteristic);
+        let (alternative, delta) = mean_hypothesis(policy.direction, policy.min_shift);
+        let mut mean_run = w.open_mean.map(|a| a.in_control_run);
+        let mut spread_run = w.open_spread.map(|a| a.in_control_run);
+        let (mut upper, mut lower) = w.cusum;
         for k in ks {
             let t = &tested[k];
             let s = &w.pending[t.sample];
-            let (evaluation, significant) = match (&t.result, adjusted[k]) {
-                (Ok(r), Some((p_adj, family))) => {
-                    let significant = p_adj <= monitor.level;
-                    (
-                        NewEvaluation {
-                            sample_id: s.sample_id,
-                            series_id: w.series_id,
-                            test: "welch".into(),
-                            alternative: "two-sided".into(),
-                            statistic: Some(r.statistic),
-                            df: Some(r.df),
-                            p_value: Some(r.p_value),
-                            p_adjusted: Some(p_adj),
-                            method: "holm".into(),
-                            family_size: family as i64,
-                            level: monitor.level,
-                            significant,
-                            baseline,
-                            lot: s.summary,
-                            estimate: Some(r.estimate),
-                            ci: Some(r.ci),
-                            note: None,
-                        },
-                        Some(significant),
-                    )
-                }
-                (result, _) => (
-                    NewEvaluation {
-                        sample_id: s.sample_id,
-                        series_id: w.series_id,
-                        test: "welch".into(),
-                        alternative: "two-sided".into(),
-                        statistic: None,
-                        df: None,
-                        p_value: None,
-                        p_adjusted: None,
-                        method: "holm".into(),
-                        family_size: 0,
-                        level: monitor.level,
-                        significant: false,
-                        baseline,
-                        lot: s.summary,
-                        estimate: None,
-                        ci: None,
-                        note: Some(format!(
-                            "not tested: {}",
-                            result.as_ref().err().cloned().unwrap_or_default()
-                        )),
-                    },
-                    None,
-                ),
-            };
-            let action = match (significant, open_run) {
-                (None, _) | (Some(false), None) => AlertAction::None,
-                (Some(true), None) => {
-                    open_run = Some(0);
-                    AlertAction::Open
-                }
-                (Some(true), Some(_)) => {
-                    open_run = Some(0);
-                    AlertAction::Attach
-                }
-                (Some(false), Some(run)) => {
-                    let run = run + 1;
-                    if run as usize >= monitor.resolve_after_lots {
-                        open_run = None;
-                        AlertAction::Resolve
-                    } else {
-                        open_run = Some(run);
-                        AlertAction::InControl { run }
+            // CUSUM sums after this lot and whether they crossed h; they restart after a
+            // signal and when the mean alert resolves.
+            let cusum = match (design.cusum, t.z) {
+                (Some((k, h)), Some(z)) => {
+                    // A minimum shift moves both reference values outwards by its z size.
+                    let dz = policy.min_shift
+                        / (design.re.var_between + design.re.var_within / s.summary.n() as f64)
+                            .sqrt();
+                    let (mut up, mut lo) = (upper, lower);
+                    // Only the side that matters accumulates.
+                    if policy.direction != Direction::HigherIsBetter {
+                        up = (up + z - dz - k).max(0.0);
                     }
+                    if policy.direction != Direction::LowerIsBetter {
+                        lo = (lo - z - dz - k).max(0.0);
+                    }
+                    let signal = up > h || lo > h;
+                    (upper, lower) = if signal { (0.0, 0.0) } else { (up, lo) };
+                    Some((up, lo, signal))
+                }
+                _ => None,
+            };
+            let base = NewEvaluation {
+                sample_id: s.sample_id,
+                series_id: w.series_id,
+                kind: "mean",
+                test: "lot-mean-t".into(),
+                model: None,
+                alternative: alternative.as_str().into(),
+                delta,
+                statistic: None,
+                df: None,
+                df2: None,
+                p_value: None,
+                p_adjusted: None,
+                method: monitor.family.as_str().into(),
+                family_size: 0,
+                level: design.level_mean,
+                significant: false,
+                baseline: merged,
+                baseline_mean: design.re.mean_of_means,
+                lot: s.summary,
+                estimate: None,
+                ci: None,
+                std_error: None,
+                cusum: None,
+                cusum_signal: false,
+                note: None,
+            };
+            // Mean (the lot test and the CUSUM).
+            let mut ev = base.clone();
+            let mean_signal = match (&t.mean, mean_adj[k]) {
+                (Ok(r), Some((p_adj, size))) => {
+                    ev.model = Some(r.method.as_str().into());
+                    ev.statistic = Some(r.statistic);
+                    ev.df = Some(r.df);
+                    ev.p_value = t.mean_p;
+                    ev.p_adjusted = Some(p_adj);
+                    ev.family_size = size as i64;
+                    ev.estimate = Some(r.estimate);
+                    ev.ci = Some(r.ci);
+                    ev.std_error = Some(r.std_error);
+                    let lot_significant = p_adj <= design.level_mean;
+                    let cusum_signal = cusum.is_some_and(|c| c.2);
+                    if let (Some((up, lo, sig)), Some((_, h))) = (cusum, design.cusum) {
+                        ev.cusum = Some((up, lo, h));
+                        ev.cusum_signal = sig;
+                    }
+                    ev.significant = lot_significant || cusum_signal;
+                    if cusum_signal && !lot_significant {
+                        ev.test = "cusum".into();
+                    }
+                    let mut notes = Vec::new();
+                    if let Some(z) = t.z {
+                        notes.push(format!("z = {z:.3}"));
+                    }
+                    if design.normality_p.is_some_and(|p| p < NON_NORMAL_P) {
+                        notes.push(format!(
+                            "baseline residuals fail the normality check (Shapiro–Wilk p = \
+                             {:.2e}); the test rests on lot means of {} units being close to \
+                             normal",
+                            design.normality_p.unwrap_or(0.0),
+                            s.summary.n()
+                        ));
+                    }
+                    ev.note = (!notes.is_empty()).then(|| notes.join("; "));
+                    Some(ev.significant)
+                }
+                (result, _) => {
+                    ev.note = Some(format!(
+                        "not tested: {}",
+                        result.as_ref().err().cloned().unwrap_or_default()
+                    ));
+                    None
                 }
             };
-            pass.decisions.push(Decision { evaluation, action });
+            let action = lifecycle(mean_signal, &mut mean_run, monitor.resolve_after_lots);
+            if action == AlertAction::Resolve {
+                (upper, lower) = (0.0, 0.0);
+            }
+            pass.decisions.push(Decision {
+                evaluation: ev,
+                action,
+            });
+
+            // Spread.
+            if let Some((f, df1, df2, p)) = t.spread {
+                let (p_adj, size) = spread_adj[k].unwrap_or((p, 1));
+                let mut ev = base.clone();
+                ev.kind = "spread";
+                ev.test = "f-variance".into();
+                ev.model = Some("within-lot".into());
+                ev.alternative = "greater".into();
+                ev.delta = 0.0;
+                ev.statistic = Some(f);
+                ev.df = Some(df1);
+                ev.df2 = Some(df2);
+                ev.p_value = Some(p);
+                ev.p_adjusted = Some(p_adj);
+                ev.family_size = size as i64;
+                ev.level = design.level_spread;
+                ev.significant = p_adj <= design.level_spread;
+                ev.estimate = Some(f);
+                let action = lifecycle(
+                    Some(ev.significant),
+                    &mut spread_run,
+                    monitor.resolve_after_lots,
+                );
+                pass.decisions.push(Decision {
+                    evaluation: ev,
+                    action,
+                });
+            }
         }
+        pass.states.push((w.series_id, upper, lower));
     }
     pass
+}
+
+/// One-sided F test of the lot's variance against the baseline's within-lot variance:
+/// (F, df1, df2, p). None when the lot has a single unit.
+fn spread_test(re: &RandomEffects, lot: &Summary) -> Option<(f64, f64, f64, f64)> {
+    let var = lot.variance()?;
+    let df1 = (lot.n() - 1) as f64;
+    let f = var / re.var_within;
+    let p = f_sf(f, df1, re.df_within).ok()?;
+    Some((f, df1, re.df_within, p.clamp(0.0, 1.0)))
+}
+
+/// The alert change for one decision of a kind, updating the open alert's in-control run
+/// (`None` = no alert open).
+fn lifecycle(signal: Option<bool>, run: &mut Option<i64>, resolve_after: usize) -> AlertAction {
+    match (signal, *run) {
+        (None, _) | (Some(false), None) => AlertAction::None,
+        (Some(true), None) => {
+            *run = Some(0);
+            AlertAction::Open
+        }
+        (Some(true), Some(_)) => {
+            *run = Some(0);
+            AlertAction::Attach
+        }
+        (Some(false), Some(r)) => {
+            let r = r + 1;
+            if r as usize >= resolve_after {
+                *run = None;
+                AlertAction::Resolve
+            } else {
+                *run = Some(r);
+                AlertAction::InControl { run: r }
+            }
+        }
+    }
+}
+
+/// Human-readable summary of a design, stored with the baseline.
+pub fn design_note(d: &Design, monitor: &Monitor) -> String {
+    let model = if d.re.var_between > 0.0 {
+        "lot means (between-lot variance material)"
+    } else {
+        "units (no between-lot variance component)"
+    };
+    let mut s = format!(
+        "{model}; between-lot sd {:.4e}, within-lot sd {:.4e} (F = {:.3}, p = {:.3e}); \
+         per-lot level {:.2e} (mean) / {:.2e} (spread) for one false alert per {} lots",
+        d.re.var_between.sqrt(),
+        d.re.var_within.sqrt(),
+        d.re.f_statistic,
+        d.re.p_value,
+        d.level_mean,
+        d.level_spread,
+        monitor.false_alert_lots
+    );
+    if let Some((k, h)) = d.cusum {
+        s.push_str(&format!(
+            "; CUSUM k = {k:.3}, h = {h:.3} (calibrated for {} estimated lot means)",
+            d.re.m
+        ));
+    }
+    if let Some(p) = d.normality_p {
+        s.push_str(&format!("; Shapiro–Wilk p of residuals {p:.3e}"));
+    }
+    s
 }

@@ -22,6 +22,7 @@ use sqlx::sqlite::{
 use sqlx::{ConnectOptions, QueryBuilder, Row, Sqlite, Transaction};
 
 use crate::stats::Summary;
+use crate::stats::monitoring::RandomEffects;
 
 /// A storage failure. Constraint violations that mean something to the domain are turned into
 /// their own variants; everything else is the database's error with what we were doing.
@@ -142,6 +143,21 @@ pub struct SeriesSample {
     pub evaluated: bool,
 }
 
+/// The monitoring design of a series, fixed when its baseline is frozen (built by `engine`,
+/// stored with the baseline).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Design {
+    pub re: RandomEffects,
+    /// Per-lot level of the mean test (before the family adjustment).
+    pub level_mean: f64,
+    /// Per-lot level of the spread test; 0 when spread is not tested.
+    pub level_spread: f64,
+    /// CUSUM reference value and decision interval in z units; None when disabled.
+    pub cusum: Option<(f64, f64)>,
+    /// Shapiro–Wilk p of the baseline's within-lot residuals.
+    pub normality_p: Option<f64>,
+}
+
 /// A frozen baseline.
 #[derive(Debug, Clone)]
 pub struct BaselineRow {
@@ -149,10 +165,11 @@ pub struct BaselineRow {
     pub lot_count: usize,
     pub summary: Summary,
     pub definition: String,
+    pub design: Design,
 }
 
 /// An open alert's state as the engine needs it.
-#[derive(Debug, Clone)]
+#[derive(Debug, Clone, Copy)]
 pub struct OpenAlert {
     pub id: i64,
     pub in_control_run: i64,
@@ -168,7 +185,13 @@ pub struct SeriesWork {
     /// Samples not in the baseline and not yet evaluated, in order (when no baseline is frozen
     /// yet: every sample of the series, in order).
     pub pending: Vec<SeriesSample>,
-    pub open_alert: Option<OpenAlert>,
+    pub open_mean: Option<OpenAlert>,
+    pub open_spread: Option<OpenAlert>,
+    /// CUSUM sums (upper, lower) after the latest decided lot.
+    pub cusum: (f64, f64),
+    /// Within-lot residuals of the lots about to form the baseline (filled by the engine's
+    /// caller when a baseline is to be frozen).
+    pub baseline_residuals: Option<Vec<f64>>,
 }
 
 /// A baseline to freeze.
@@ -179,6 +202,8 @@ pub struct NewBaseline {
     pub sample_ids: Vec<i64>,
     pub summary: Summary,
     pub last_order_time: String,
+    pub design: Design,
+    pub note: String,
 }
 
 /// One decision to record.
@@ -186,10 +211,16 @@ pub struct NewBaseline {
 pub struct NewEvaluation {
     pub sample_id: i64,
     pub series_id: i64,
+    /// "mean" or "spread".
+    pub kind: &'static str,
     pub test: String,
+    /// The variance model of the test ("lot-means", "units", "within-lot").
+    pub model: Option<String>,
     pub alternative: String,
+    pub delta: f64,
     pub statistic: Option<f64>,
     pub df: Option<f64>,
+    pub df2: Option<f64>,
     pub p_value: Option<f64>,
     pub p_adjusted: Option<f64>,
     pub method: String,
@@ -197,9 +228,15 @@ pub struct NewEvaluation {
     pub level: f64,
     pub significant: bool,
     pub baseline: Summary,
+    /// The baseline mean the test compares with (the mean of the baseline lot means).
+    pub baseline_mean: f64,
     pub lot: Summary,
     pub estimate: Option<f64>,
     pub ci: Option<(f64, f64)>,
+    pub std_error: Option<f64>,
+    /// CUSUM sums after this lot and the decision interval: (upper, lower, h).
+    pub cusum: Option<(f64, f64, f64)>,
+    pub cusum_signal: bool,
     pub note: Option<String>,
 }
 
@@ -233,6 +270,8 @@ pub struct EnginePass {
     pub decisions: Vec<Decision>,
     /// Outbox rows to write for every alert event of kind opened or resolved.
     pub recipients: Vec<(String, String)>,
+    /// CUSUM sums per series after the pass: (series id, upper, lower).
+    pub states: Vec<(i64, f64, f64)>,
 }
 
 /// Counts of what one engine pass wrote.
@@ -264,6 +303,8 @@ pub struct AlertRow {
     pub id: i64,
     pub source: String,
     pub characteristic: String,
+    /// "mean" or "spread".
+    pub kind: String,
     pub state: String,
     pub opened_at: String,
     pub resolved_at: Option<String>,
@@ -288,6 +329,10 @@ pub struct AlertRow {
     pub ci: Option<[f64; 2]>,
     /// Significant lots attached to the alert, the opening one included.
     pub lots: i64,
+    /// The variance model of the opening test ("lot-means", "units", "within-lot").
+    pub model: Option<String>,
+    /// What the opening decision recorded beside the numbers (CUSUM z, normality).
+    pub note: Option<String>,
 }
 
 /// Counts for `lotdrift status`.
@@ -983,11 +1028,13 @@ impl Store {
     /// baseline yet. Series are returned by source, then characteristic.
     pub async fn pending_work(&self) -> Result<Vec<SeriesWork>> {
         let rows = sqlx::query(
-            "SELECT s.id, src.name, ch.name FROM series s \
+            "SELECT s.id, src.name, ch.name, COALESCE(st.cusum_upper, 0.0), \
+                    COALESCE(st.cusum_lower, 0.0) FROM series s \
              JOIN source src ON src.id = s.source_id \
              JOIN characteristic ch ON ch.id = s.characteristic_id \
+             LEFT JOIN series_state st ON st.series_id = s.id \
              WHERE EXISTS (SELECT 1 FROM sample sm \
-                 LEFT JOIN evaluation e ON e.sample_id = sm.id \
+                 LEFT JOIN evaluation e ON e.sample_id = sm.id AND e.kind = 'mean' \
                  LEFT JOIN baseline_lot bl ON bl.sample_id = sm.id \
                  WHERE sm.series_id = s.id AND e.id IS NULL AND bl.sample_id IS NULL) \
              ORDER BY src.name, ch.name",
@@ -1003,7 +1050,10 @@ impl Store {
                 characteristic: r.get(2),
                 baseline: None,
                 pending: Vec::new(),
-                open_alert: None,
+                open_mean: None,
+                open_spread: None,
+                cusum: (r.get(3), r.get(4)),
+                baseline_residuals: None,
             })
             .collect();
         if work.is_empty() {
@@ -1016,32 +1066,69 @@ impl Store {
             .collect();
 
         for r in sqlx::query(
-            "SELECT series_id, id, lot_count, n, mean, m2, min_value, max_value, definition \
-             FROM baseline",
+            "SELECT series_id, id, lot_count, n, mean, m2, min_value, max_value, definition, \
+                    mean_of_means, msb, msw, df_between, df_within, n0, n_harmonic, var_between, \
+                    var_within, between_p, normality_p, level_mean, level_spread, cusum_k, \
+                    cusum_h FROM baseline",
         )
         .fetch_all(&self.pool)
         .await
         .doing("loading baselines")?
         {
             if let Some(i) = index.get(&r.get::<i64, _>(0)) {
+                let summary = summary_from_row(&r, 3)?;
+                let msb: f64 = r.get(10);
+                let msw: f64 = r.get(11);
+                let re = RandomEffects {
+                    m: r.get::<i64, _>(2) as usize,
+                    n_total: summary.n(),
+                    grand_mean: summary.mean(),
+                    mean_of_means: r.get(9),
+                    msb,
+                    msw,
+                    df_between: r.get(12),
+                    df_within: r.get(13),
+                    n0: r.get(14),
+                    n_harmonic: r.get(15),
+                    var_within: r.get(17),
+                    var_between: r.get(16),
+                    f_statistic: msb / msw,
+                    p_value: r.get(18),
+                };
+                let k: Option<f64> = r.get(22);
+                let h: Option<f64> = r.get(23);
                 work[*i].baseline = Some(BaselineRow {
                     id: r.get(1),
                     lot_count: r.get::<i64, _>(2) as usize,
-                    summary: summary_from_row(&r, 3)?,
+                    summary,
                     definition: r.get(8),
+                    design: Design {
+                        re,
+                        level_mean: r.get(20),
+                        level_spread: r.get(21),
+                        cusum: k.zip(h),
+                        normality_p: r.get(19),
+                    },
                 });
             }
         }
-        for r in sqlx::query("SELECT series_id, id, in_control_run FROM alert WHERE state = 'open'")
-            .fetch_all(&self.pool)
-            .await
-            .doing("loading open alerts")?
+        for r in sqlx::query(
+            "SELECT series_id, id, in_control_run, kind FROM alert WHERE state = 'open'",
+        )
+        .fetch_all(&self.pool)
+        .await
+        .doing("loading open alerts")?
         {
             if let Some(i) = index.get(&r.get::<i64, _>(0)) {
-                work[*i].open_alert = Some(OpenAlert {
+                let open = Some(OpenAlert {
                     id: r.get(1),
                     in_control_run: r.get(2),
                 });
+                if r.get::<String, _>(3) == "spread" {
+                    work[*i].open_spread = open;
+                } else {
+                    work[*i].open_mean = open;
+                }
             }
         }
         // Streamed, not collected: a backfill has every sample of every series pending, and a
@@ -1050,7 +1137,7 @@ impl Store {
             "SELECT sm.series_id, sm.id, l.id, l.code, COALESCE(l.sampled_at, l.first_seen_at), \
                     sm.n, sm.mean, sm.m2, sm.min_value, sm.max_value \
              FROM sample sm JOIN lot l ON l.id = sm.lot_id \
-             LEFT JOIN evaluation e ON e.sample_id = sm.id \
+             LEFT JOIN evaluation e ON e.sample_id = sm.id AND e.kind = 'mean' \
              LEFT JOIN baseline_lot bl ON bl.sample_id = sm.id \
              WHERE e.id IS NULL AND bl.sample_id IS NULL \
              ORDER BY sm.series_id, COALESCE(l.sampled_at, l.first_seen_at), l.code",
@@ -1071,8 +1158,40 @@ impl Store {
         Ok(work)
     }
 
-    /// Writes one engine pass (baselines, decisions, alert changes, outbox rows) in one
-    /// transaction, so an alert is never decided without its message queued.
+    /// Within-lot residuals (value − its lot's mean) of the given samples, at most `limit`
+    /// of them (taken evenly through the samples when there are more).
+    pub async fn residuals(&self, sample_ids: &[i64], limit: usize) -> Result<Vec<f64>> {
+        let mut out = Vec::new();
+        for chunk in sample_ids.chunks(ROWS_PER_INSERT) {
+            let mut q = QueryBuilder::<Sqlite>::new(
+                "SELECT m.value - s.mean FROM measurement m JOIN sample s ON s.id = m.sample_id \
+                 WHERE m.sample_id IN (",
+            );
+            let mut sep = q.separated(", ");
+            for id in chunk {
+                sep.push_bind(*id);
+            }
+            q.push(") ORDER BY m.sample_id, m.seq");
+            for r in q
+                .build()
+                .fetch_all(&self.pool)
+                .await
+                .doing("reading baseline residuals")?
+            {
+                out.push(r.get::<f64, _>(0));
+            }
+        }
+        if out.len() > limit {
+            let step = out.len() as f64 / limit as f64;
+            out = (0..limit)
+                .map(|i| out[(i as f64 * step) as usize])
+                .collect();
+        }
+        Ok(out)
+    }
+
+    /// Writes one engine pass (baselines, decisions, alert changes, outbox rows, CUSUM state)
+    /// in one transaction, so an alert is never decided without its message queued.
     pub async fn write_pass(&self, pass: &EnginePass, at: &str) -> Result<PassCounts> {
         let mut counts = PassCounts::default();
         if pass.baselines.is_empty() && pass.decisions.is_empty() {
@@ -1082,10 +1201,14 @@ impl Store {
         let mut baseline_ids: HashMap<i64, i64> = HashMap::new();
         for b in &pass.baselines {
             let s = &b.summary;
+            let d = &b.design;
             let id: i64 = sqlx::query_scalar(
                 "INSERT INTO baseline (series_id, frozen_at, definition, lot_count, n, mean, m2, \
-                 min_value, max_value, last_order_key) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?) \
-                 RETURNING id",
+                 min_value, max_value, last_order_key, mean_of_means, msb, msw, df_between, \
+                 df_within, n0, n_harmonic, var_between, var_within, between_p, normality_p, \
+                 level_mean, level_spread, cusum_k, cusum_h, design_note) \
+                 VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, \
+                 ?, ?) RETURNING id",
             )
             .bind(b.series_id)
             .bind(at)
@@ -1097,6 +1220,22 @@ impl Store {
             .bind(s.min())
             .bind(s.max())
             .bind(&b.last_order_time)
+            .bind(d.re.mean_of_means)
+            .bind(d.re.msb)
+            .bind(d.re.msw)
+            .bind(d.re.df_between)
+            .bind(d.re.df_within)
+            .bind(d.re.n0)
+            .bind(d.re.n_harmonic)
+            .bind(d.re.var_between)
+            .bind(d.re.var_within)
+            .bind(d.re.p_value)
+            .bind(d.normality_p)
+            .bind(d.level_mean)
+            .bind(d.level_spread)
+            .bind(d.cusum.map(|c| c.0))
+            .bind(d.cusum.map(|c| c.1))
+            .bind(&b.note)
             .fetch_one(&mut *tx)
             .await
             .doing("freezing a baseline")?;
@@ -1144,13 +1283,14 @@ impl Store {
         }
 
         // Evaluations, many rows per statement.
-        let mut eval_ids: HashMap<i64, i64> = HashMap::new();
-        for chunk in pass.decisions.chunks(ROWS_PER_INSERT / 5) {
+        let mut eval_ids: HashMap<(i64, String), i64> = HashMap::new();
+        for chunk in pass.decisions.chunks(ROWS_PER_INSERT / 8) {
             let mut q = QueryBuilder::<Sqlite>::new(
-                "INSERT INTO evaluation (sample_id, series_id, baseline_id, decided_at, test, \
-                 alternative, statistic, df, p_value, p_adjusted, method, family_size, level, \
-                 significant, baseline_n, baseline_mean, baseline_sd, lot_n, lot_mean, lot_sd, \
-                 estimate, ci_low, ci_high, note) ",
+                "INSERT INTO evaluation (sample_id, series_id, baseline_id, kind, decided_at, test, \
+                 model, alternative, delta, statistic, df, df2, p_value, p_adjusted, method, \
+                 family_size, level, significant, baseline_n, baseline_mean, baseline_sd, lot_n, \
+                 lot_mean, lot_sd, estimate, ci_low, ci_high, std_error, cusum_upper, \
+                 cusum_lower, cusum_h, cusum_signal, note) ",
             );
             let mut bad = None;
             q.push_values(chunk, |mut r, d| {
@@ -1165,11 +1305,15 @@ impl Store {
                 r.push_bind(e.sample_id)
                     .push_bind(e.series_id)
                     .push_bind(baseline_id)
+                    .push_bind(e.kind)
                     .push_bind(at)
                     .push_bind(&e.test)
+                    .push_bind(e.model.as_deref())
                     .push_bind(&e.alternative)
+                    .push_bind(e.delta)
                     .push_bind(e.statistic)
                     .push_bind(e.df)
+                    .push_bind(e.df2)
                     .push_bind(e.p_value)
                     .push_bind(e.p_adjusted)
                     .push_bind(&e.method)
@@ -1177,7 +1321,7 @@ impl Store {
                     .push_bind(e.level)
                     .push_bind(e.significant as i64)
                     .push_bind(e.baseline.n() as i64)
-                    .push_bind(e.baseline.mean())
+                    .push_bind(e.baseline_mean)
                     .push_bind(e.baseline.sd())
                     .push_bind(e.lot.n() as i64)
                     .push_bind(e.lot.mean())
@@ -1185,6 +1329,11 @@ impl Store {
                     .push_bind(e.estimate)
                     .push_bind(e.ci.map(|c| c.0).filter(|v| v.is_finite()))
                     .push_bind(e.ci.map(|c| c.1).filter(|v| v.is_finite()))
+                    .push_bind(e.std_error)
+                    .push_bind(e.cusum.map(|c| c.0))
+                    .push_bind(e.cusum.map(|c| c.1))
+                    .push_bind(e.cusum.map(|c| c.2))
+                    .push_bind(e.cusum_signal as i64)
                     .push_bind(e.note.as_deref());
             });
             if let Some(series) = bad {
@@ -1192,57 +1341,63 @@ impl Store {
                     "decision for series {series} without a baseline"
                 )));
             }
-            q.push(" RETURNING id, sample_id");
+            q.push(" RETURNING id, sample_id, kind");
             for r in q
                 .build()
                 .fetch_all(&mut *tx)
                 .await
                 .doing("recording decisions")?
             {
-                eval_ids.insert(r.get(1), r.get(0));
+                eval_ids.insert((r.get(1), r.get(2)), r.get(0));
             }
             counts.evaluations += chunk.len();
         }
 
-        // Alert changes, in decision order. The open alert of each series is looked up once and
-        // followed through the pass.
-        let mut open: HashMap<i64, Option<i64>> = HashMap::new();
+        // Alert changes, in decision order. The open alert of each series and kind is looked
+        // up once and followed through the pass.
+        let mut open: HashMap<(i64, &str), Option<i64>> = HashMap::new();
         for d in &pass.decisions {
-            let eval_id = eval_ids[&d.evaluation.sample_id];
+            let kind = d.evaluation.kind;
+            let eval_id = eval_ids[&(d.evaluation.sample_id, kind.to_string())];
             let series_id = d.evaluation.series_id;
+            let key = (series_id, kind);
             if d.action != AlertAction::None
                 && d.action != AlertAction::Open
-                && !open.contains_key(&series_id)
+                && !open.contains_key(&key)
             {
                 let id: Option<i64> = sqlx::query_scalar(
-                    "SELECT id FROM alert WHERE series_id = ? AND state = 'open'",
+                    "SELECT id FROM alert WHERE series_id = ? AND kind = ? AND state = 'open'",
                 )
                 .bind(series_id)
+                .bind(kind)
                 .fetch_optional(&mut *tx)
                 .await
                 .doing("looking up an open alert")?;
-                open.insert(series_id, id);
+                open.insert(key, id);
             }
             let current = || {
-                open.get(&series_id).copied().flatten().ok_or_else(|| {
-                    StoreError::Corrupt(format!("series {series_id} has no open alert to update"))
+                open.get(&key).copied().flatten().ok_or_else(|| {
+                    StoreError::Corrupt(format!(
+                        "series {series_id} has no open {kind} alert to update"
+                    ))
                 })
             };
             let event = match d.action {
                 AlertAction::None => None,
                 AlertAction::Open => {
                     let alert_id: i64 = sqlx::query_scalar(
-                        "INSERT INTO alert (series_id, state, opened_at, opening_evaluation) \
-                         VALUES (?, 'open', ?, ?) RETURNING id",
+                        "INSERT INTO alert (series_id, kind, state, opened_at, \
+                         opening_evaluation) VALUES (?, ?, 'open', ?, ?) RETURNING id",
                     )
-                    .bind(d.evaluation.series_id)
+                    .bind(series_id)
+                    .bind(kind)
                     .bind(at)
                     .bind(eval_id)
                     .fetch_one(&mut *tx)
                     .await
                     .doing("opening an alert")?;
                     counts.opened += 1;
-                    open.insert(series_id, Some(alert_id));
+                    open.insert(key, Some(alert_id));
                     Some((alert_id, "opened"))
                 }
                 AlertAction::Attach => {
@@ -1266,7 +1421,7 @@ impl Store {
                 }
                 AlertAction::Resolve => {
                     let alert_id = current()?;
-                    open.insert(series_id, None);
+                    open.insert(key, None);
                     sqlx::query(
                         "UPDATE alert SET state = 'resolved', resolved_at = ?, \
                          in_control_run = 0 WHERE id = ?",
@@ -1280,19 +1435,19 @@ impl Store {
                     Some((alert_id, "resolved"))
                 }
             };
-            if let Some((alert_id, kind)) = event {
+            if let Some((alert_id, event_kind)) = event {
                 let event_id: i64 = sqlx::query_scalar(
                     "INSERT INTO alert_event (alert_id, kind, at, evaluation_id) \
                      VALUES (?, ?, ?, ?) RETURNING id",
                 )
                 .bind(alert_id)
-                .bind(kind)
+                .bind(event_kind)
                 .bind(at)
                 .bind(eval_id)
                 .fetch_one(&mut *tx)
                 .await
                 .doing("recording an alert event")?;
-                if kind != "attached" {
+                if event_kind != "attached" {
                     for (channel, recipient) in &pass.recipients {
                         sqlx::query(
                             "INSERT INTO outbox (alert_event_id, channel, recipient, state, \
@@ -1309,6 +1464,22 @@ impl Store {
                     }
                 }
             }
+        }
+        for chunk in pass.states.chunks(ROWS_PER_INSERT / 3) {
+            let mut q = QueryBuilder::<Sqlite>::new(
+                "INSERT INTO series_state (series_id, cusum_upper, cusum_lower) ",
+            );
+            q.push_values(chunk, |mut r, (id, up, lo)| {
+                r.push_bind(*id).push_bind(*up).push_bind(*lo);
+            });
+            q.push(
+                " ON CONFLICT (series_id) DO UPDATE SET cusum_upper = excluded.cusum_upper, \
+                 cusum_lower = excluded.cusum_lower",
+            );
+            q.build()
+                .execute(&mut *tx)
+                .await
+                .doing("recording CUSUM state")?;
         }
         tx.commit().await.doing("committing decisions")?;
         Ok(counts)
@@ -1489,7 +1660,7 @@ impl Store {
              JOIN series se ON se.id = sm.series_id \
              JOIN source src ON src.id = se.source_id \
              JOIN characteristic ch ON ch.id = se.characteristic_id \
-             LEFT JOIN evaluation e ON e.sample_id = sm.id \
+             LEFT JOIN evaluation e ON e.sample_id = sm.id AND e.kind = 'mean' \
              LEFT JOIN baseline_lot bl ON bl.sample_id = sm.id \
              WHERE src.name = ? AND (? IS NULL OR ch.name = ?) \
              ORDER BY ch.name, COALESCE(l.sampled_at, l.first_seen_at), l.code",
@@ -1561,7 +1732,7 @@ const ALERT_COLUMNS: &str = "a.id, src.name, ch.name, a.state, a.opened_at, a.re
      e.method, e.level, e.family_size, e.baseline_n, e.baseline_mean, e.baseline_sd, e.lot_n, \
      e.lot_mean, e.lot_sd, e.estimate, e.ci_low, e.ci_high, \
      (SELECT COUNT(*) FROM alert_event x WHERE x.alert_id = a.id \
-      AND x.kind IN ('opened', 'attached'))";
+      AND x.kind IN ('opened', 'attached')), a.kind, e.model, e.note";
 
 const ALERT_JOINS: &str = "JOIN evaluation e ON e.id = a.opening_evaluation \
      JOIN sample sm ON sm.id = e.sample_id JOIN lot l ON l.id = sm.lot_id \
@@ -1601,6 +1772,9 @@ fn alert_from_row(r: &SqliteRow, o: usize) -> AlertRow {
             _ => None,
         },
         lots: r.get(o + 26),
+        kind: r.get(o + 27),
+        model: r.get(o + 28),
+        note: r.get(o + 29),
     }
 }
 

@@ -35,7 +35,12 @@ fn a_drifting_series_alerts_and_no_other_does() {
     assert_eq!(a["characteristic"], "mass_g");
     assert_eq!(a["state"], "open");
     assert_eq!(a["lot"], "BI-023");
-    assert_eq!(a["test"], "welch");
+    assert_eq!(a["test"], "lot-mean-t");
+    assert_eq!(a["kind"], "mean");
+    assert_eq!(
+        a["model"], "units",
+        "identical lot means: no between-lot component"
+    );
     assert!(a["p_value"].as_f64().unwrap() < 1e-6);
     assert!(a["p_adjusted"].as_f64().unwrap() >= a["p_value"].as_f64().unwrap());
     assert!(a["id"].is_i64());

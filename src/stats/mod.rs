@@ -9,6 +9,7 @@
 pub mod compare;
 pub mod dist;
 pub mod effect;
+pub mod monitoring;
 pub mod multiplicity;
 pub mod normality;
 pub mod rank;
