@@ -226,9 +226,9 @@ pub struct Monitor {
 /// How the false-alert budget is shared between the tests of a series (fractions of
 /// 1 / false_alert_lots), stated once.
 pub mod budget {
-    pub const MEAN: f64 = 0.4;
-    pub const SPREAD: f64 = 0.2;
-    pub const CUSUM: f64 = 0.4;
+    pub const MEAN: f64 = 0.25;
+    pub const SPREAD: f64 = 0.15;
+    pub const CUSUM: f64 = 0.6;
 }
 
 impl Monitor {

@@ -35,6 +35,8 @@
 //! arriving one by one in sampling order; a late lot is tested and recorded, and earlier
 //! decisions are never rewritten.
 
+pub mod operating;
+
 use std::collections::BTreeMap;
 
 use crate::config::{Channel, Config, Direction, Family, Monitor};
