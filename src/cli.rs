@@ -300,8 +300,35 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             let store = open_existing(&config).await?;
             let counts = store.status().await.context("status")?;
             let undelivered = store.undelivered().await.context("status")?;
+            let series: Vec<report::SeriesStatus> = store
+                .series_designs()
+                .await
+                .context("status")?
+                .into_iter()
+                .map(|(source, characteristic, d)| report::SeriesStatus {
+                    detectable_shift: crate::engine::detectable_shift(
+                        &d,
+                        &config.monitor,
+                        &characteristic,
+                    ),
+                    source,
+                    characteristic,
+                    baseline_lots: d.re.m,
+                    baseline_mean: d.re.mean_of_means,
+                    between_lot_sd: d.re.var_between.sqrt(),
+                    within_lot_sd: d.re.var_within.sqrt(),
+                    model: if d.re.var_between > 0.0 {
+                        "lot-means"
+                    } else {
+                        "units"
+                    },
+                    level_mean: d.level_mean,
+                    cusum_h: d.cusum.map(|c| c.1),
+                    normality_p: d.normality_p,
+                })
+                .collect();
             if json {
-                print_json(&report::status_json(&counts, &undelivered));
+                print_json(&report::status_json(&counts, &undelivered, &series));
             } else {
                 print!(
                     "{}",
@@ -311,6 +338,7 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                         &config.paths.database.display().to_string()
                     )
                 );
+                print!("{}", report::series_text(&series));
             }
             Ok(())
         }

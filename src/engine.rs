@@ -529,6 +529,31 @@ fn lifecycle(signal: Option<bool>, run: &mut Option<i64>, resolve_after: usize) 
     }
 }
 
+/// The smallest shift of a lot mean (in the characteristic's unit, beyond any minimum shift)
+/// that a single lot of typical size is flagged for with 90 % power by the lot test at its
+/// per-lot level (the CUSUM detects smaller sustained shifts over several lots).
+pub fn detectable_shift(design: &Design, monitor: &Monitor, characteristic: &str) -> Option<f64> {
+    let re = &design.re;
+    let policy = monitor.policy(characteristic);
+    let m = re.m as f64;
+    let n = re.n_harmonic;
+    let var = re.var_between * (1.0 + 1.0 / m) + re.var_within * (1.0 / n + 1.0 / (m * n));
+    let df = if re.var_between > 0.0 {
+        re.df_between
+    } else {
+        re.df_within
+    };
+    monitoring::min_detectable_shift(
+        design.level_mean,
+        0.9,
+        var.sqrt(),
+        df,
+        policy.direction == Direction::TwoSided,
+    )
+    .ok()
+    .map(|d| d + policy.min_shift)
+}
+
 /// Human-readable summary of a design, stored with the baseline.
 pub fn design_note(d: &Design, monitor: &Monitor) -> String {
     let model = if d.re.var_between > 0.0 {

@@ -55,7 +55,66 @@ fn p(v: Option<f64>) -> String {
     v.map_or_else(|| "-".into(), |v| format!("{v:.2e}"))
 }
 
-pub fn status_json(s: &StatusCounts, undelivered: &[UndeliveredRow]) -> Value {
+/// One monitored series in `status`: its design in numbers.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct SeriesStatus {
+    pub source: String,
+    pub characteristic: String,
+    pub baseline_lots: usize,
+    pub baseline_mean: f64,
+    pub between_lot_sd: f64,
+    pub within_lot_sd: f64,
+    /// "lot-means" or "units".
+    pub model: &'static str,
+    pub level_mean: f64,
+    pub cusum_h: Option<f64>,
+    /// Smallest shift of one lot's mean flagged with 90 % power by the lot test.
+    pub detectable_shift: Option<f64>,
+    pub normality_p: Option<f64>,
+}
+
+pub fn series_text(series: &[SeriesStatus]) -> String {
+    if series.is_empty() {
+        return String::new();
+    }
+    let rows: Vec<Vec<String>> = series
+        .iter()
+        .map(|s| {
+            vec![
+                s.source.clone(),
+                s.characteristic.clone(),
+                s.baseline_lots.to_string(),
+                format!("{:.4}", s.baseline_mean),
+                format!("{:.3e}", s.between_lot_sd),
+                format!("{:.3e}", s.within_lot_sd),
+                s.model.to_string(),
+                num(s.detectable_shift, 4),
+            ]
+        })
+        .collect();
+    format!(
+        "\nSeries with a baseline (detectable: shift of one lot's mean found with 90 % power):\n{}",
+        table(
+            &[
+                "source",
+                "characteristic",
+                "lots",
+                "baseline mean",
+                "between-lot sd",
+                "within-lot sd",
+                "model",
+                "detectable",
+            ],
+            &rows
+        )
+    )
+}
+
+pub fn status_json(
+    s: &StatusCounts,
+    undelivered: &[UndeliveredRow],
+    series: &[SeriesStatus],
+) -> Value {
     json!({
         "lots": s.lots,
         "measurements": s.measurements,
@@ -70,6 +129,7 @@ pub fn status_json(s: &StatusCounts, undelivered: &[UndeliveredRow]) -> Value {
         "evaluations": s.evaluations,
         "alerts": s.alerts,
         "undelivered": undelivered,
+        "series": series,
     })
 }
 

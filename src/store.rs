@@ -1597,6 +1597,57 @@ impl Store {
         })
     }
 
+    /// The frozen design of every series that has one, by source and characteristic.
+    pub async fn series_designs(&self) -> Result<Vec<(String, String, Design)>> {
+        let rows = sqlx::query(
+            "SELECT src.name, ch.name, b.lot_count, b.n, b.mean, b.mean_of_means, b.msb, b.msw, \
+                    b.df_between, b.df_within, b.n0, b.n_harmonic, b.var_between, b.var_within, \
+                    b.between_p, b.normality_p, b.level_mean, b.level_spread, b.cusum_k, \
+                    b.cusum_h \
+             FROM baseline b JOIN series se ON se.id = b.series_id \
+             JOIN source src ON src.id = se.source_id \
+             JOIN characteristic ch ON ch.id = se.characteristic_id ORDER BY src.name, ch.name",
+        )
+        .fetch_all(&self.pool)
+        .await
+        .doing("reading series designs")?;
+        Ok(rows
+            .iter()
+            .map(|r| {
+                let msb: f64 = r.get(6);
+                let msw: f64 = r.get(7);
+                let k: Option<f64> = r.get(18);
+                let h: Option<f64> = r.get(19);
+                (
+                    r.get(0),
+                    r.get(1),
+                    Design {
+                        re: RandomEffects {
+                            m: r.get::<i64, _>(2) as usize,
+                            n_total: r.get::<i64, _>(3) as u64,
+                            grand_mean: r.get(4),
+                            mean_of_means: r.get(5),
+                            msb,
+                            msw,
+                            df_between: r.get(8),
+                            df_within: r.get(9),
+                            n0: r.get(10),
+                            n_harmonic: r.get(11),
+                            var_between: r.get(12),
+                            var_within: r.get(13),
+                            f_statistic: msb / msw,
+                            p_value: r.get(14),
+                        },
+                        level_mean: r.get(16),
+                        level_spread: r.get(17),
+                        cusum: k.zip(h),
+                        normality_p: r.get(15),
+                    },
+                )
+            })
+            .collect())
+    }
+
     /// Messages that could not be delivered (failed permanently or expired).
     pub async fn undelivered(&self) -> Result<Vec<UndeliveredRow>> {
         let rows = sqlx::query(
