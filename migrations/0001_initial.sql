@@ -101,8 +101,10 @@ CREATE TABLE sample_replacement (
 -- one-way random-effects analysis of its lots, and the monitoring design derived from it.
 CREATE TABLE baseline (
     id             INTEGER PRIMARY KEY,
-    series_id      INTEGER NOT NULL UNIQUE REFERENCES series (id),
+    series_id      INTEGER NOT NULL REFERENCES series (id),
     frozen_at      TEXT NOT NULL,
+    -- set when a re-baseline replaced it; decisions made against it keep pointing here
+    retired_at     TEXT,
     definition     TEXT NOT NULL,
     lot_count      INTEGER NOT NULL,
     n              INTEGER NOT NULL,
@@ -131,6 +133,19 @@ CREATE TABLE baseline (
     cusum_h        REAL,
     design_note    TEXT NOT NULL
 );
+CREATE UNIQUE INDEX baseline_current ON baseline (series_id) WHERE retired_at IS NULL;
+
+-- Audit trail of baseline changes made by people (lotdrift baseline set / reset).
+CREATE TABLE baseline_change (
+    id             INTEGER PRIMARY KEY,
+    series_id      INTEGER NOT NULL REFERENCES series (id),
+    changed_at     TEXT NOT NULL,
+    changed_by     TEXT NOT NULL,
+    reason         TEXT NOT NULL,
+    old_definition TEXT,
+    new_definition TEXT NOT NULL
+);
+
 CREATE TABLE baseline_lot (
     baseline_id INTEGER NOT NULL REFERENCES baseline (id),
     sample_id   INTEGER NOT NULL REFERENCES sample (id),

@@ -106,10 +106,53 @@ enum Command {
         #[command(flatten)]
         config: ConfigArg,
     },
+    /// Show or change a series' baseline (changes are audited; past decisions stay).
+    Baseline {
+        #[command(subcommand)]
+        action: BaselineAction,
+    },
     /// Two-sample test of two files of numbers.
     Compare(CompareArgs),
     /// Adjust p-values for multiplicity.
     Adjust(AdjustArgs),
+}
+
+#[derive(Subcommand, Debug)]
+enum BaselineAction {
+    /// The baseline's lots, design and change history.
+    Show {
+        source: String,
+        characteristic: String,
+        #[command(flatten)]
+        config: ConfigArg,
+    },
+    /// Retire the baseline: the next `monitor.baseline_lots` undecided lots form a new one.
+    Reset {
+        source: String,
+        characteristic: String,
+        #[arg(long)]
+        reason: String,
+        #[command(flatten)]
+        config: ConfigArg,
+    },
+    /// Freeze a new baseline from chosen lots (a list, or a sampling-date range).
+    Set {
+        source: String,
+        characteristic: String,
+        /// Lot codes, comma-separated.
+        #[arg(long, value_delimiter = ',', conflicts_with_all = ["from", "to"])]
+        lots: Vec<String>,
+        /// First sampling date (RFC 3339 date or date-time), inclusive.
+        #[arg(long)]
+        from: Option<String>,
+        /// Last sampling date, inclusive.
+        #[arg(long)]
+        to: Option<String>,
+        #[arg(long)]
+        reason: String,
+        #[command(flatten)]
+        config: ConfigArg,
+    },
 }
 
 #[derive(Args, Debug)]
@@ -395,6 +438,7 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             store.close().await;
             Ok(())
         }
+        Command::Baseline { action } => baseline(action).await,
         Command::Compare(args) => compare(args),
         Command::Adjust(args) => adjust(args),
     }
@@ -459,6 +503,175 @@ async fn replace(store: &Store, config: &Config, file: &Path, reason: &str) -> R
         let _ = std::fs::remove_file(ingest::reason_path_for(&quarantined));
         let _ = std::fs::remove_file(&quarantined);
     }
+    Ok(())
+}
+
+async fn baseline(action: BaselineAction) -> Result<(), Failure> {
+    let (source, characteristic, config) = match &action {
+        BaselineAction::Show {
+            source,
+            characteristic,
+            config,
+        }
+        | BaselineAction::Reset {
+            source,
+            characteristic,
+            config,
+            ..
+        }
+        | BaselineAction::Set {
+            source,
+            characteristic,
+            config,
+            ..
+        } => (source.clone(), characteristic.clone(), load(config)?),
+    };
+    let store = open_existing(&config).await?;
+    let Some(series) = store
+        .series_named(&source, &characteristic)
+        .await
+        .context("baseline")?
+    else {
+        return Err(Failure::Runtime(anyhow::anyhow!(
+            "no series {source:?} / {characteristic:?} is stored"
+        )));
+    };
+    let by = std::env::var("USER")
+        .or_else(|_| std::env::var("USERNAME"))
+        .unwrap_or_else(|_| "unknown".into());
+    let at = crate::time::now_rfc3339();
+    match action {
+        BaselineAction::Show { .. } => {
+            match store.baseline_of(series).await.context("baseline")? {
+                Some((definition, note, frozen_at, lots)) => {
+                    println!("{source} / {characteristic}: {definition}, frozen {frozen_at}");
+                    println!("lots: {}", lots.join(", "));
+                    println!("design: {note}");
+                }
+                None => println!(
+                    "{source} / {characteristic}: no baseline yet (the next {} undecided lots \
+                     will form it)",
+                    config.monitor.baseline_lots
+                ),
+            }
+            let changes = store.baseline_changes(series).await.context("baseline")?;
+            if !changes.is_empty() {
+                println!("\nchanges:");
+                for (when, who, why, old, new) in changes {
+                    println!(
+                        "  {when} by {who}: {} -> {new} ({why})",
+                        old.unwrap_or_else(|| "none".into())
+                    );
+                }
+            }
+        }
+        BaselineAction::Reset { reason, .. } => {
+            if reason.trim().is_empty() {
+                return Err(usage("--reason must say why the baseline is reset"));
+            }
+            let definition = format!(
+                "next {} undecided lots after {at}",
+                config.monitor.baseline_lots
+            );
+            store
+                .change_baseline(series, None, &definition, &by, &reason, &at)
+                .await
+                .context("baseline reset")?;
+            println!("{source} / {characteristic}: baseline retired; {definition} form the next");
+        }
+        BaselineAction::Set {
+            lots,
+            from,
+            to,
+            reason,
+            ..
+        } => {
+            if reason.trim().is_empty() {
+                return Err(usage("--reason must say why the baseline changes"));
+            }
+            let all = store.series_samples(series).await.context("baseline")?;
+            let (chosen, definition): (Vec<_>, String) = if !lots.is_empty() {
+                let missing: Vec<&String> = lots
+                    .iter()
+                    .filter(|l| !all.iter().any(|s| &s.lot == *l))
+                    .collect();
+                if !missing.is_empty() {
+                    return Err(usage(format!(
+                        "--lots: not stored for this series: {missing:?}"
+                    )));
+                }
+                (
+                    all.iter()
+                        .filter(|s| lots.contains(&s.lot))
+                        .cloned()
+                        .collect(),
+                    format!("lots {}", lots.join(",")),
+                )
+            } else {
+                let (Some(from), Some(to)) = (from, to) else {
+                    return Err(usage("give --lots, or both --from and --to"));
+                };
+                let bound = |v: &str, key: &str, end: bool| -> Result<String, Failure> {
+                    if v.len() == 10 {
+                        Ok(format!(
+                            "{v}T{}",
+                            if end {
+                                "23:59:59.999Z"
+                            } else {
+                                "00:00:00.000Z"
+                            }
+                        ))
+                    } else {
+                        crate::time::parse_utc(v)
+                            .map(crate::time::format_utc)
+                            .ok_or_else(|| usage(format!("{key}: {v:?} is not an RFC 3339 date")))
+                    }
+                };
+                let (lo, hi) = (bound(&from, "--from", false)?, bound(&to, "--to", true)?);
+                (
+                    all.iter()
+                        .filter(|s| s.order_time >= lo && s.order_time <= hi)
+                        .cloned()
+                        .collect(),
+                    format!("lots sampled {from} to {to}"),
+                )
+            };
+            if chosen.len() < 3 {
+                return Err(usage(format!(
+                    "a baseline needs at least 3 lots; {} chosen",
+                    chosen.len()
+                )));
+            }
+            let summaries: Vec<crate::stats::Summary> = chosen.iter().map(|s| s.summary).collect();
+            let ids: Vec<i64> = chosen.iter().map(|s| s.sample_id).collect();
+            let residuals = store.residuals(&ids, 5000).await.context("baseline")?;
+            let design = crate::engine::design(
+                &summaries,
+                Some(&residuals),
+                &config.monitor,
+                &characteristic,
+                &mut Default::default(),
+            )
+            .map_err(|e| Failure::Runtime(anyhow::anyhow!("{e}")))?;
+            let merged = summaries[1..].iter().fold(summaries[0], |a, s| a.merge(s));
+            let new = crate::store::NewBaseline {
+                series_id: series,
+                definition: definition.clone(),
+                sample_ids: ids,
+                summary: merged,
+                last_order_time: chosen[chosen.len() - 1].order_time.clone(),
+                note: crate::engine::design_note(&design, &config.monitor),
+                design,
+            };
+            store
+                .change_baseline(series, Some(&new), &definition, &by, &reason, &at)
+                .await
+                .context("baseline set")?;
+            println!("{source} / {characteristic}: new baseline, {definition}");
+            println!("design: {}", new.note);
+        }
+    }
+    store.close().await;
     Ok(())
 }
 

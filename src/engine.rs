@@ -122,7 +122,7 @@ pub fn design(
     let re = monitoring::random_effects(lots).map_err(|e| format!("baseline: {e}"))?;
     let policy = monitor.policy(characteristic);
     let (mean_share, spread_share, cusum_share) = monitor.shares(policy.spread);
-    let level_mean = monitor.level.unwrap_or(mean_share);
+    let mut level_mean = monitor.level.unwrap_or(mean_share);
     let two_sided = policy.direction == Direction::TwoSided;
     let cusum = if monitor.cusum {
         let k = monitor.cusum_shift / 2.0;
@@ -145,7 +145,7 @@ pub fn design(
             two_sided,
         );
         let h = match cache.get(&key) {
-            Some(h) => *h,
+            Some(h) => Some(*h),
             None => {
                 let h = monitoring::cusum_h_for_rate_estimated(
                     k,
@@ -154,12 +154,18 @@ pub fn design(
                     df_sd,
                     two_sided,
                 )
-                .map_err(|e| format!("CUSUM design: {e}"))?;
-                cache.insert(key, h);
+                .ok();
+                if let Some(h) = h {
+                    cache.insert(key, h);
+                }
                 h
             }
         };
-        Some((k, h))
+        // Too few baseline lots for any CUSUM to keep the budget: the lot test gets its share.
+        if h.is_none() && monitor.level.is_none() {
+            level_mean += cusum_share;
+        }
+        h.map(|h| (k, h))
     } else {
         None
     };
@@ -572,11 +578,16 @@ pub fn design_note(d: &Design, monitor: &Monitor) -> String {
         d.level_spread,
         monitor.false_alert_lots
     );
-    if let Some((k, h)) = d.cusum {
-        s.push_str(&format!(
+    match d.cusum {
+        Some((k, h)) => s.push_str(&format!(
             "; CUSUM k = {k:.3}, h = {h:.3} (calibrated for {} estimated lot means)",
             d.re.m
-        ));
+        )),
+        None if monitor.cusum => s.push_str(&format!(
+            "; no CUSUM: {} baseline lots are too few to calibrate one within the budget",
+            d.re.m
+        )),
+        None => {}
     }
     if let Some(p) = d.normality_p {
         s.push_str(&format!("; Shapiro–Wilk p of residuals {p:.3e}"));

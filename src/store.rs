@@ -1069,7 +1069,7 @@ impl Store {
             "SELECT series_id, id, lot_count, n, mean, m2, min_value, max_value, definition, \
                     mean_of_means, msb, msw, df_between, df_within, n0, n_harmonic, var_between, \
                     var_within, between_p, normality_p, level_mean, level_spread, cusum_k, \
-                    cusum_h FROM baseline",
+                    cusum_h FROM baseline WHERE retired_at IS NULL",
         )
         .fetch_all(&self.pool)
         .await
@@ -1200,57 +1200,7 @@ impl Store {
         let mut tx = self.begin().await?;
         let mut baseline_ids: HashMap<i64, i64> = HashMap::new();
         for b in &pass.baselines {
-            let s = &b.summary;
-            let d = &b.design;
-            let id: i64 = sqlx::query_scalar(
-                "INSERT INTO baseline (series_id, frozen_at, definition, lot_count, n, mean, m2, \
-                 min_value, max_value, last_order_key, mean_of_means, msb, msw, df_between, \
-                 df_within, n0, n_harmonic, var_between, var_within, between_p, normality_p, \
-                 level_mean, level_spread, cusum_k, cusum_h, design_note) \
-                 VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, \
-                 ?, ?) RETURNING id",
-            )
-            .bind(b.series_id)
-            .bind(at)
-            .bind(&b.definition)
-            .bind(b.sample_ids.len() as i64)
-            .bind(s.n() as i64)
-            .bind(s.mean())
-            .bind(s.m2())
-            .bind(s.min())
-            .bind(s.max())
-            .bind(&b.last_order_time)
-            .bind(d.re.mean_of_means)
-            .bind(d.re.msb)
-            .bind(d.re.msw)
-            .bind(d.re.df_between)
-            .bind(d.re.df_within)
-            .bind(d.re.n0)
-            .bind(d.re.n_harmonic)
-            .bind(d.re.var_between)
-            .bind(d.re.var_within)
-            .bind(d.re.p_value)
-            .bind(d.normality_p)
-            .bind(d.level_mean)
-            .bind(d.level_spread)
-            .bind(d.cusum.map(|c| c.0))
-            .bind(d.cusum.map(|c| c.1))
-            .bind(&b.note)
-            .fetch_one(&mut *tx)
-            .await
-            .doing("freezing a baseline")?;
-            for chunk in b.sample_ids.chunks(ROWS_PER_INSERT) {
-                let mut q = QueryBuilder::<Sqlite>::new(
-                    "INSERT INTO baseline_lot (baseline_id, sample_id) ",
-                );
-                q.push_values(chunk, |mut r, sid| {
-                    r.push_bind(id).push_bind(*sid);
-                });
-                q.build()
-                    .execute(&mut *tx)
-                    .await
-                    .doing("recording baseline lots")?;
-            }
+            let id = insert_baseline(&mut tx, b, at).await?;
             baseline_ids.insert(b.series_id, id);
             counts.baselines += 1;
         }
@@ -1265,7 +1215,7 @@ impl Store {
             .collect();
         for chunk in missing.chunks(ROWS_PER_INSERT) {
             let mut q = QueryBuilder::<Sqlite>::new(
-                "SELECT series_id, id FROM baseline WHERE series_id IN (",
+                "SELECT series_id, id FROM baseline WHERE retired_at IS NULL AND series_id IN (",
             );
             let mut sep = q.separated(", ");
             for id in chunk {
@@ -1597,6 +1547,150 @@ impl Store {
         })
     }
 
+    /// The series of a source and characteristic, if stored.
+    pub async fn series_named(&self, source: &str, characteristic: &str) -> Result<Option<i64>> {
+        sqlx::query_scalar(
+            "SELECT se.id FROM series se JOIN source src ON src.id = se.source_id \
+             JOIN characteristic ch ON ch.id = se.characteristic_id \
+             WHERE src.name = ? AND ch.name = ?",
+        )
+        .bind(source)
+        .bind(characteristic)
+        .fetch_optional(&self.pool)
+        .await
+        .doing("looking up a series")
+    }
+
+    /// Every sample of a series in series order, with whether it was decided (kind mean).
+    pub async fn series_samples(&self, series_id: i64) -> Result<Vec<SeriesSample>> {
+        let rows = sqlx::query(
+            "SELECT sm.id, l.id, l.code, COALESCE(l.sampled_at, l.first_seen_at), \
+                    sm.n, sm.mean, sm.m2, sm.min_value, sm.max_value, \
+                    EXISTS (SELECT 1 FROM evaluation e WHERE e.sample_id = sm.id) \
+             FROM sample sm JOIN lot l ON l.id = sm.lot_id WHERE sm.series_id = ? \
+             ORDER BY COALESCE(l.sampled_at, l.first_seen_at), l.code",
+        )
+        .bind(series_id)
+        .fetch_all(&self.pool)
+        .await
+        .doing("reading a series")?;
+        rows.iter()
+            .map(|r| {
+                Ok(SeriesSample {
+                    sample_id: r.get(0),
+                    lot_id: r.get(1),
+                    lot: r.get(2),
+                    order_time: r.get(3),
+                    summary: summary_from_row(r, 4)?,
+                    evaluated: r.get::<i64, _>(9) != 0,
+                })
+            })
+            .collect()
+    }
+
+    /// The current baseline of a series: its definition, design note, frozen time and lots.
+    pub async fn baseline_of(
+        &self,
+        series_id: i64,
+    ) -> Result<Option<(String, String, String, Vec<String>)>> {
+        let Some(row) = sqlx::query(
+            "SELECT id, definition, design_note, frozen_at FROM baseline \
+             WHERE series_id = ? AND retired_at IS NULL",
+        )
+        .bind(series_id)
+        .fetch_optional(&self.pool)
+        .await
+        .doing("reading a baseline")?
+        else {
+            return Ok(None);
+        };
+        let id: i64 = row.get(0);
+        let lots: Vec<String> = sqlx::query_scalar(
+            "SELECT l.code FROM baseline_lot bl JOIN sample sm ON sm.id = bl.sample_id \
+             JOIN lot l ON l.id = sm.lot_id WHERE bl.baseline_id = ? \
+             ORDER BY COALESCE(l.sampled_at, l.first_seen_at), l.code",
+        )
+        .bind(id)
+        .fetch_all(&self.pool)
+        .await
+        .doing("reading baseline lots")?;
+        Ok(Some((row.get(1), row.get(2), row.get(3), lots)))
+    }
+
+    /// The audit trail of a series' baseline changes: (when, who, why, old, new).
+    pub async fn baseline_changes(
+        &self,
+        series_id: i64,
+    ) -> Result<Vec<(String, String, String, Option<String>, String)>> {
+        let rows = sqlx::query(
+            "SELECT changed_at, changed_by, reason, old_definition, new_definition \
+             FROM baseline_change WHERE series_id = ? ORDER BY id",
+        )
+        .bind(series_id)
+        .fetch_all(&self.pool)
+        .await
+        .doing("reading baseline changes")?;
+        Ok(rows
+            .iter()
+            .map(|r| (r.get(0), r.get(1), r.get(2), r.get(3), r.get(4)))
+            .collect())
+    }
+
+    /// Retires the current baseline of a series (decisions made against it stay as they
+    /// are), records the change, restarts the CUSUM, and freezes `new` if given. Without a new
+    /// baseline the next undecided lots of the series form one (first N in order).
+    pub async fn change_baseline(
+        &self,
+        series_id: i64,
+        new: Option<&NewBaseline>,
+        new_definition: &str,
+        by: &str,
+        reason: &str,
+        at: &str,
+    ) -> Result<()> {
+        let mut tx = self.begin().await?;
+        let old: Option<String> = sqlx::query_scalar(
+            "SELECT definition FROM baseline WHERE series_id = ? AND retired_at IS NULL",
+        )
+        .bind(series_id)
+        .fetch_optional(&mut *tx)
+        .await
+        .doing("reading a baseline")?;
+        sqlx::query(
+            "UPDATE baseline SET retired_at = ? WHERE series_id = ? AND retired_at IS NULL",
+        )
+        .bind(at)
+        .bind(series_id)
+        .execute(&mut *tx)
+        .await
+        .doing("retiring a baseline")?;
+        sqlx::query(
+            "INSERT INTO baseline_change (series_id, changed_at, changed_by, reason, \
+             old_definition, new_definition) VALUES (?, ?, ?, ?, ?, ?)",
+        )
+        .bind(series_id)
+        .bind(at)
+        .bind(by)
+        .bind(reason)
+        .bind(old)
+        .bind(new_definition)
+        .execute(&mut *tx)
+        .await
+        .doing("recording a baseline change")?;
+        sqlx::query(
+            "INSERT INTO series_state (series_id, cusum_upper, cusum_lower) VALUES (?, 0.0, 0.0) \
+             ON CONFLICT (series_id) DO UPDATE SET cusum_upper = 0.0, cusum_lower = 0.0",
+        )
+        .bind(series_id)
+        .execute(&mut *tx)
+        .await
+        .doing("restarting the CUSUM")?;
+        if let Some(b) = new {
+            insert_baseline(&mut tx, b, at).await?;
+        }
+        tx.commit().await.doing("committing a baseline change")
+    }
+
     /// The frozen design of every series that has one, by source and characteristic.
     pub async fn series_designs(&self) -> Result<Vec<(String, String, Design)>> {
         let rows = sqlx::query(
@@ -1604,7 +1698,7 @@ impl Store {
                     b.df_between, b.df_within, b.n0, b.n_harmonic, b.var_between, b.var_within, \
                     b.between_p, b.normality_p, b.level_mean, b.level_spread, b.cusum_k, \
                     b.cusum_h \
-             FROM baseline b JOIN series se ON se.id = b.series_id \
+             FROM baseline b JOIN series se ON se.id = b.series_id AND b.retired_at IS NULL \
              JOIN source src ON src.id = se.source_id \
              JOIN characteristic ch ON ch.id = se.characteristic_id ORDER BY src.name, ch.name",
         )
@@ -1870,6 +1964,65 @@ async fn upsert_name(
         .fetch_one(&mut **tx)
         .await
         .doing("looking up a name")
+}
+
+/// Inserts a frozen baseline and its lots; returns its id.
+async fn insert_baseline(
+    tx: &mut Transaction<'static, Sqlite>,
+    b: &NewBaseline,
+    at: &str,
+) -> Result<i64> {
+    let s = &b.summary;
+    let d = &b.design;
+    let id: i64 = sqlx::query_scalar(
+        "INSERT INTO baseline (series_id, frozen_at, definition, lot_count, n, mean, m2, \
+                 min_value, max_value, last_order_key, mean_of_means, msb, msw, df_between, \
+                 df_within, n0, n_harmonic, var_between, var_within, between_p, normality_p, \
+                 level_mean, level_spread, cusum_k, cusum_h, design_note) \
+                 VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, \
+                 ?, ?) RETURNING id",
+    )
+    .bind(b.series_id)
+    .bind(at)
+    .bind(&b.definition)
+    .bind(b.sample_ids.len() as i64)
+    .bind(s.n() as i64)
+    .bind(s.mean())
+    .bind(s.m2())
+    .bind(s.min())
+    .bind(s.max())
+    .bind(&b.last_order_time)
+    .bind(d.re.mean_of_means)
+    .bind(d.re.msb)
+    .bind(d.re.msw)
+    .bind(d.re.df_between)
+    .bind(d.re.df_within)
+    .bind(d.re.n0)
+    .bind(d.re.n_harmonic)
+    .bind(d.re.var_between)
+    .bind(d.re.var_within)
+    .bind(d.re.p_value)
+    .bind(d.normality_p)
+    .bind(d.level_mean)
+    .bind(d.level_spread)
+    .bind(d.cusum.map(|c| c.0))
+    .bind(d.cusum.map(|c| c.1))
+    .bind(&b.note)
+    .fetch_one(&mut **tx)
+    .await
+    .doing("freezing a baseline")?;
+    for chunk in b.sample_ids.chunks(ROWS_PER_INSERT) {
+        let mut q =
+            QueryBuilder::<Sqlite>::new("INSERT INTO baseline_lot (baseline_id, sample_id) ");
+        q.push_values(chunk, |mut r, sid| {
+            r.push_bind(id).push_bind(*sid);
+        });
+        q.build()
+            .execute(&mut **tx)
+            .await
+            .doing("recording baseline lots")?;
+    }
+    Ok(id)
 }
 
 fn earlier<'a>(a: Option<&'a str>, b: Option<&'a str>) -> Option<&'a str> {

@@ -248,3 +248,73 @@ fn init_writes_a_config_that_accepts_anything() {
     let out = cmd(dir.path()).args(["init", "site"]).output().unwrap();
     assert_eq!(out.status.code(), Some(2), "init does not overwrite");
 }
+
+#[test]
+fn a_rebaseline_is_audited_and_later_lots_are_judged_against_it() {
+    let site = Site::new("[watch]\nsettle_seconds = 0.0\n");
+    // alder-cells capacity shifts up by 3 sd from lot 23 (after a 20-lot baseline).
+    let sc = Scenario {
+        sources: vec!["alder-cells".into()],
+        chars: vec!["capacity_mah".into()],
+        lots: 40,
+        n: 12,
+        shift: Some((0, 0, 22, 3.0)),
+    };
+    let files = sc.files();
+    for (name, text, lot) in &files {
+        if *lot < 26 {
+            drop_file(&site.inbox(), name, text);
+        }
+    }
+    site.once();
+    assert_eq!(site.alerts().len(), 1);
+    // The supplier changed its process on purpose: the shifted lots are the new normal.
+    let lots: Vec<String> = (23..=26).map(|i| format!("AL-{i:03}")).collect();
+    let out = site.run(&[
+        "baseline",
+        "set",
+        "alder-cells",
+        "capacity_mah",
+        "--lots",
+        &lots.join(","),
+        "--reason",
+        "new electrode supplier qualified (PPAP 2026-07)",
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    for (name, text, lot) in &files {
+        if *lot >= 26 {
+            drop_file(&site.inbox(), name, text);
+        }
+    }
+    site.once();
+    // No new alert: later lots match the new baseline. The old alert stays as decided.
+    let alerts = site.alerts();
+    assert_eq!(alerts.len(), 1, "{alerts:#?}");
+    let show = site.run(&["baseline", "show", "alder-cells", "capacity_mah"]);
+    let shown = text(&show.stdout);
+    assert!(
+        shown.contains("lots AL-023,AL-024,AL-025,AL-026"),
+        "{shown}"
+    );
+    assert!(shown.contains("new electrode supplier"), "{shown}");
+    assert!(shown.contains("first 20 lots ->"), "{shown}");
+    // Unknown series and missing reason are refused.
+    let out = site.run(&[
+        "baseline",
+        "reset",
+        "alder-cells",
+        "mass_g",
+        "--reason",
+        "x",
+    ]);
+    assert_eq!(out.status.code(), Some(1));
+    let out = site.run(&[
+        "baseline",
+        "reset",
+        "alder-cells",
+        "capacity_mah",
+        "--reason",
+        " ",
+    ]);
+    assert_eq!(out.status.code(), Some(2));
+}
