@@ -1474,31 +1474,46 @@ impl Store {
         outcome: &DeliveryOutcome,
         now: &str,
     ) -> Result<()> {
-        let (state, next, error) = match outcome {
-            DeliveryOutcome::Delivered => ("delivered", None, None),
-            DeliveryOutcome::Retry { next_at, error } => {
-                ("pending", Some(next_at.as_str()), Some(error.as_str()))
-            }
-            DeliveryOutcome::Failed { error } => ("failed", None, Some(error.as_str())),
-            DeliveryOutcome::Expired { error } => ("expired", None, Some(error.as_str())),
-        };
+        self.outbox_attempted_many(&[(id, outcome.clone())], now)
+            .await
+    }
+
+    /// Records the outcomes of several delivery attempts in one transaction.
+    pub async fn outbox_attempted_many(
+        &self,
+        outcomes: &[(i64, DeliveryOutcome)],
+        now: &str,
+    ) -> Result<()> {
+        if outcomes.is_empty() {
+            return Ok(());
+        }
         let mut tx = self.begin().await?;
-        sqlx::query(
-            "UPDATE outbox SET state = ?, attempts = attempts + 1, \
-             next_attempt_at = COALESCE(?, next_attempt_at), \
-             delivered_at = CASE WHEN ? = 'delivered' THEN ? ELSE delivered_at END, \
-             last_error = COALESCE(?, last_error) WHERE id = ?",
-        )
-        .bind(state)
-        .bind(next)
-        .bind(state)
-        .bind(now)
-        .bind(error)
-        .bind(id)
-        .execute(&mut *tx)
-        .await
-        .doing("recording a delivery attempt")?;
-        tx.commit().await.doing("committing a delivery attempt")
+        for (id, outcome) in outcomes {
+            let (state, next, error) = match outcome {
+                DeliveryOutcome::Delivered => ("delivered", None, None),
+                DeliveryOutcome::Retry { next_at, error } => {
+                    ("pending", Some(next_at.as_str()), Some(error.as_str()))
+                }
+                DeliveryOutcome::Failed { error } => ("failed", None, Some(error.as_str())),
+                DeliveryOutcome::Expired { error } => ("expired", None, Some(error.as_str())),
+            };
+            sqlx::query(
+                "UPDATE outbox SET state = ?, attempts = attempts + 1, \
+                 next_attempt_at = COALESCE(?, next_attempt_at), \
+                 delivered_at = CASE WHEN ? = 'delivered' THEN ? ELSE delivered_at END, \
+                 last_error = COALESCE(?, last_error) WHERE id = ?",
+            )
+            .bind(state)
+            .bind(next)
+            .bind(state)
+            .bind(now)
+            .bind(error)
+            .bind(id)
+            .execute(&mut *tx)
+            .await
+            .doing("recording a delivery attempt")?;
+        }
+        tx.commit().await.doing("committing delivery attempts")
     }
 
     /// Alerts, newest first.
