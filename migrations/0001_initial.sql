@@ -194,11 +194,15 @@ CREATE TABLE evaluation (
 );
 CREATE INDEX evaluation_series ON evaluation (series_id);
 
--- Running state of a series' monitoring (CUSUM sums), after its latest decided lot.
+-- Running state of a series' monitoring after its latest decided lot: CUSUM sums, and the
+-- online FDR state when monitor.over_time is "lond" or "lord" (tests so far, and the 1-based
+-- indices of the rejected ones, comma-separated).
 CREATE TABLE series_state (
-    series_id   INTEGER PRIMARY KEY REFERENCES series (id),
-    cusum_upper REAL NOT NULL DEFAULT 0,
-    cusum_lower REAL NOT NULL DEFAULT 0
+    series_id     INTEGER PRIMARY KEY REFERENCES series (id),
+    cusum_upper   REAL NOT NULL DEFAULT 0,
+    cusum_lower   REAL NOT NULL DEFAULT 0,
+    online_tests  INTEGER NOT NULL DEFAULT 0,
+    online_rejected TEXT NOT NULL DEFAULT ''
 );
 
 -- An alert: a series that shifted. At most one open alert per series and kind of shift.

@@ -75,6 +75,8 @@ pub struct RawMonitor {
     pub cusum: Option<bool>,
     pub cusum_shift: Option<f64>,
     pub spread: Option<bool>,
+    pub over_time: Option<String>,
+    pub fdr_level: Option<f64>,
     pub resolve_after_lots: Option<i64>,
     pub sources: Option<Vec<String>>,
     pub characteristics: Option<Vec<String>>,
@@ -182,6 +184,27 @@ pub struct CharacteristicPolicy {
     pub spread: bool,
 }
 
+/// How the stream of lot tests of a series is controlled over time.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum OverTime {
+    /// The false-alert budget (`false_alert_lots`), shared by the lot test, spread and CUSUM.
+    Budget,
+    /// Online FDR control of the lot tests by LOND (Javanmard & Montanari 2018).
+    Lond,
+    /// Online FDR control of the lot tests by LORD++ (Ramdas et al. 2017).
+    Lord,
+}
+
+impl OverTime {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            OverTime::Budget => "budget",
+            OverTime::Lond => "lond",
+            OverTime::Lord => "lord++",
+        }
+    }
+}
+
 /// How the tests of one lot's characteristics are adjusted together.
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Family {
@@ -207,6 +230,10 @@ pub struct Monitor {
     /// Explicit per-lot level of the mean tests (overrides the level derived from the budget).
     pub level: Option<f64>,
     pub family: Family,
+    /// Budget (default) or online FDR for the stream of lot mean tests of a series.
+    pub over_time: OverTime,
+    /// The FDR level of the online procedures.
+    pub fdr_level: f64,
     /// CUSUM on standardised lot means, for sustained small shifts.
     pub cusum: bool,
     /// The shift the CUSUM is tuned for, in standard deviations of a lot mean (k = shift / 2).
@@ -493,6 +520,25 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
             Family::Holm
         }
     };
+    let over_time = match raw.monitor.over_time.as_deref() {
+        None | Some("budget") => OverTime::Budget,
+        Some("lond") => OverTime::Lond,
+        Some("lord") => OverTime::Lord,
+        Some(other) => {
+            p.push(
+                "monitor.over_time",
+                format!("unknown method {other:?} (allowed: \"budget\", \"lond\", \"lord\")"),
+            );
+            OverTime::Budget
+        }
+    };
+    let fdr_level = raw.monitor.fdr_level.unwrap_or(0.05);
+    if !(fdr_level > 0.0 && fdr_level < 1.0) {
+        p.push(
+            "monitor.fdr_level",
+            format!("must be between 0 and 1 (got {fdr_level})"),
+        );
+    }
     let cusum_shift = raw.monitor.cusum_shift.unwrap_or(defaults::CUSUM_SHIFT);
     if !(cusum_shift.is_finite() && (0.1..=5.0).contains(&cusum_shift)) {
         p.push(
@@ -545,6 +591,8 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
         false_alert_lots,
         level,
         family,
+        over_time,
+        fdr_level,
         cusum: raw.monitor.cusum.unwrap_or(true),
         cusum_shift,
         spread: spread_default,
@@ -759,6 +807,8 @@ family = "holm"          # across the characteristics of one lot: "holm" (FWER) 
 cusum = true             # CUSUM on standardised lot means, for small sustained shifts
 cusum_shift = 1.0        # the shift the CUSUM is tuned for, in sd of a lot mean
 spread = true            # also alert when a lot's spread grows
+over_time = "budget"     # "budget", or online FDR of the lot tests: "lond" | "lord"
+fdr_level = 0.05         # the FDR level of "lond" / "lord"
 resolve_after_lots = 5   # consecutive in-control lots that resolve an open alert
 sources = []             # only these sources; empty = every source
 characteristics = []     # only these characteristics; empty = every characteristic

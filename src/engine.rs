@@ -39,15 +39,15 @@ pub mod operating;
 
 use std::collections::BTreeMap;
 
-use crate::config::{Channel, Config, Direction, Family, Monitor};
+use crate::config::{Channel, Config, Direction, Family, Monitor, OverTime};
 use crate::stats::Summary;
 use crate::stats::dist::f_sf;
 use crate::stats::monitoring::{self, RandomEffects};
 use crate::stats::multiplicity::{self, Method};
 use crate::stats::ttest::Alternative;
 use crate::store::{
-    AlertAction, Decision, Design, EnginePass, NewBaseline, NewEvaluation, PassCounts, SeriesWork,
-    Store, StoreError,
+    AlertAction, Decision, Design, EnginePass, NewBaseline, NewEvaluation, PassCounts, SeriesState,
+    SeriesWork, Store, StoreError,
 };
 use crate::time::now_rfc3339;
 
@@ -357,6 +357,7 @@ pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
         let mut mean_run = w.open_mean.map(|a| a.in_control_run);
         let mut spread_run = w.open_spread.map(|a| a.in_control_run);
         let (mut upper, mut lower) = w.cusum;
+        let mut online = OnlineFdr::new(monitor, &w.online);
         for k in ks {
             let t = &tested[k];
             let s = &w.pending[t.sample];
@@ -422,7 +423,18 @@ pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
                     ev.estimate = Some(r.estimate);
                     ev.ci = Some(r.ci);
                     ev.std_error = Some(r.std_error);
-                    let lot_significant = p_adj <= design.level_mean;
+                    let lot_significant = match online.as_mut() {
+                        // Online FDR: the raw lot p-value against the stream's current level.
+                        Some(o) => {
+                            let p = t.mean_p.unwrap_or(1.0);
+                            let (level, rejected) = o.test(p);
+                            ev.level = level;
+                            ev.method = monitor.over_time.as_str().into();
+                            ev.p_adjusted = None;
+                            rejected
+                        }
+                        None => p_adj <= design.level_mean,
+                    };
                     let cusum_signal = cusum.is_some_and(|c| c.2);
                     if let (Some((up, lo, sig)), Some((_, h))) = (cusum, design.cusum) {
                         ev.cusum = Some((up, lo, h));
@@ -494,9 +506,79 @@ pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
                 });
             }
         }
-        pass.states.push((w.series_id, upper, lower));
+        let (online_tests, online_rejected) = match online {
+            Some(o) => o.state(),
+            None => w.online.clone(),
+        };
+        pass.states.push(SeriesState {
+            series_id: w.series_id,
+            cusum_upper: upper,
+            cusum_lower: lower,
+            online_tests,
+            online_rejected,
+        });
     }
     pass
+}
+
+/// The online FDR procedure of a series, when `monitor.over_time` asks for one.
+enum OnlineFdr {
+    /// LOND and the 1-based indices of its rejections (LOND itself needs only their count).
+    Lond(monitoring::Lond, Vec<u64>),
+    Lord(monitoring::LordPlusPlus),
+}
+
+impl OnlineFdr {
+    fn new(monitor: &Monitor, state: &(u64, Vec<u64>)) -> Option<OnlineFdr> {
+        let alpha = monitor.fdr_level;
+        match monitor.over_time {
+            OverTime::Budget => None,
+            OverTime::Lond => monitoring::Lond::from_state(monitoring::LondState {
+                alpha,
+                tests: state.0,
+                discoveries: state.1.len() as u64,
+            })
+            .ok()
+            .map(|l| OnlineFdr::Lond(l, state.1.clone())),
+            OverTime::Lord => {
+                // The default initial wealth of the reference implementation: alpha / 10.
+                monitoring::LordPlusPlus::from_state(monitoring::LordState {
+                    alpha,
+                    w0: alpha / 10.0,
+                    tests: state.0,
+                    rejections: state.1.clone(),
+                })
+                .ok()
+                .map(OnlineFdr::Lord)
+            }
+        }
+    }
+
+    /// Tests the next p-value of the stream: (the level used, rejected).
+    fn test(&mut self, p: f64) -> (f64, bool) {
+        match self {
+            OnlineFdr::Lond(l, rejected) => {
+                let level = l.level();
+                let r = l.record(p).unwrap_or(false);
+                if r {
+                    rejected.push(l.state().tests);
+                }
+                (level, r)
+            }
+            OnlineFdr::Lord(l) => (l.level(), l.record(p).unwrap_or(false)),
+        }
+    }
+
+    /// (tests so far, 1-based indices of the rejected tests) for the store.
+    fn state(&self) -> (u64, Vec<u64>) {
+        match self {
+            OnlineFdr::Lond(l, rejected) => (l.state().tests, rejected.clone()),
+            OnlineFdr::Lord(l) => {
+                let s = l.state();
+                (s.tests, s.rejections.clone())
+            }
+        }
+    }
 }
 
 /// One-sided F test of the lot's variance against the baseline's within-lot variance:

@@ -189,9 +189,21 @@ pub struct SeriesWork {
     pub open_spread: Option<OpenAlert>,
     /// CUSUM sums (upper, lower) after the latest decided lot.
     pub cusum: (f64, f64),
+    /// Online FDR state: lot tests so far and the 1-based indices of the rejected ones.
+    pub online: (u64, Vec<u64>),
     /// Within-lot residuals of the lots about to form the baseline (filled by the engine's
     /// caller when a baseline is to be frozen).
     pub baseline_residuals: Option<Vec<f64>>,
+}
+
+/// A series' running state after a pass (CUSUM sums, online FDR state).
+#[derive(Debug, Clone, Default, PartialEq)]
+pub struct SeriesState {
+    pub series_id: i64,
+    pub cusum_upper: f64,
+    pub cusum_lower: f64,
+    pub online_tests: u64,
+    pub online_rejected: Vec<u64>,
 }
 
 /// A baseline to freeze.
@@ -270,8 +282,8 @@ pub struct EnginePass {
     pub decisions: Vec<Decision>,
     /// Outbox rows to write for every alert event of kind opened or resolved.
     pub recipients: Vec<(String, String)>,
-    /// CUSUM sums per series after the pass: (series id, upper, lower).
-    pub states: Vec<(i64, f64, f64)>,
+    /// Running state per series after the pass.
+    pub states: Vec<SeriesState>,
 }
 
 /// Counts of what one engine pass wrote.
@@ -1029,7 +1041,8 @@ impl Store {
     pub async fn pending_work(&self) -> Result<Vec<SeriesWork>> {
         let rows = sqlx::query(
             "SELECT s.id, src.name, ch.name, COALESCE(st.cusum_upper, 0.0), \
-                    COALESCE(st.cusum_lower, 0.0) FROM series s \
+                    COALESCE(st.cusum_lower, 0.0), COALESCE(st.online_tests, 0), \
+                    COALESCE(st.online_rejected, '') FROM series s \
              JOIN source src ON src.id = s.source_id \
              JOIN characteristic ch ON ch.id = s.characteristic_id \
              LEFT JOIN series_state st ON st.series_id = s.id \
@@ -1053,6 +1066,13 @@ impl Store {
                 open_mean: None,
                 open_spread: None,
                 cusum: (r.get(3), r.get(4)),
+                online: (
+                    r.get::<i64, _>(5) as u64,
+                    r.get::<String, _>(6)
+                        .split(',')
+                        .filter_map(|v| v.parse().ok())
+                        .collect(),
+                ),
                 baseline_residuals: None,
             })
             .collect();
@@ -1415,21 +1435,33 @@ impl Store {
                 }
             }
         }
-        for chunk in pass.states.chunks(ROWS_PER_INSERT / 3) {
+        for chunk in pass.states.chunks(ROWS_PER_INSERT / 5) {
             let mut q = QueryBuilder::<Sqlite>::new(
-                "INSERT INTO series_state (series_id, cusum_upper, cusum_lower) ",
+                "INSERT INTO series_state (series_id, cusum_upper, cusum_lower, online_tests, \
+                 online_rejected) ",
             );
-            q.push_values(chunk, |mut r, (id, up, lo)| {
-                r.push_bind(*id).push_bind(*up).push_bind(*lo);
+            q.push_values(chunk, |mut r, st| {
+                r.push_bind(st.series_id)
+                    .push_bind(st.cusum_upper)
+                    .push_bind(st.cusum_lower)
+                    .push_bind(st.online_tests as i64)
+                    .push_bind(
+                        st.online_rejected
+                            .iter()
+                            .map(u64::to_string)
+                            .collect::<Vec<_>>()
+                            .join(","),
+                    );
             });
             q.push(
                 " ON CONFLICT (series_id) DO UPDATE SET cusum_upper = excluded.cusum_upper, \
-                 cusum_lower = excluded.cusum_lower",
+                 cusum_lower = excluded.cusum_lower, online_tests = excluded.online_tests, \
+                 online_rejected = excluded.online_rejected",
             );
             q.build()
                 .execute(&mut *tx)
                 .await
-                .doing("recording CUSUM state")?;
+                .doing("recording series state")?;
         }
         tx.commit().await.doing("committing decisions")?;
         Ok(counts)

@@ -135,3 +135,32 @@ fn treating_units_as_independent_would_break_the_budget() {
     println!("unit-level Welch: {rate:.3} of in-control lots signal (level {level})");
     assert!(rate > 20.0 * level, "rate {rate}");
 }
+
+#[test]
+fn online_fdr_controls_the_stream_of_lot_tests() {
+    // LOND (Javanmard & Montanari 2018) and LORD++ (Ramdas et al. 2017) as the over-time
+    // control of the lot tests: in control, every lot test is a true null, so any rejection is
+    // a false discovery; the FDR is then the probability of at least one rejection, which both
+    // procedures bound by the level (their published guarantee; LOND under independence).
+    for over_time in [
+        lotdrift::config::OverTime::Lond,
+        lotdrift::config::OverTime::Lord,
+    ] {
+        let mut monitor = default_monitor();
+        monitor.over_time = over_time;
+        monitor.fdr_level = 0.05;
+        monitor.cusum = false;
+        monitor.spread = false;
+        let out = run(&scenario(0.0, 200, 100, 51), &monitor);
+        let series_with_alert = out.delays.iter().filter(|d| d.is_some()).count();
+        let share = series_with_alert as f64 / 200.0;
+        // Monte Carlo tolerance: 3 binomial sd above 0.05 for 200 series.
+        assert!(
+            share <= 0.05 + 3.0 * (0.05f64 * 0.95 / 200.0).sqrt(),
+            "{over_time:?}: {share}"
+        );
+        // Online FDR levels shrink along the stream: only strong shifts are found quickly.
+        let shifted = run(&scenario(6.0, 50, 30, 52), &monitor);
+        assert!(shifted.detected_within(10) >= 0.8, "{over_time:?}");
+    }
+}

@@ -115,6 +115,7 @@ pub fn run(scenario: &Scenario, monitor: &Monitor) -> Outcome {
             open_mean: None,
             open_spread: None,
             cusum: (0.0, 0.0),
+            online: (0, Vec::new()),
             baseline_residuals: None,
         });
     }
