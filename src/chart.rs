@@ -130,7 +130,9 @@ pub fn render_series_png(
             )))
             .map_err(draw_err)?
             .label("baseline mean ± band")
-            .legend(move |(x, y)| Rectangle::new([(x, y - 5), (x + 16, y + 5)], band_color.filled()));
+            .legend(move |(x, y)| {
+                Rectangle::new([(x, y - 5), (x + 16, y + 5)], band_color.filled())
+            });
 
         let green = RGBColor(30, 120, 60);
         chart
@@ -210,7 +212,9 @@ fn y_range(points: &[ChartPoint], baseline_mean: f64, band: f64) -> (f64, f64) {
         span * 0.12
     } else {
         // All values equal and no band: a window around the value (or ±1 around zero).
-        (baseline_mean.abs() * 0.01).max(1e-9).max(if baseline_mean == 0.0 { 1.0 } else { 0.0 })
+        (baseline_mean.abs() * 0.01)
+            .max(1e-9)
+            .max(if baseline_mean == 0.0 { 1.0 } else { 0.0 })
     };
     (lo - pad, hi + pad)
 }
@@ -242,7 +246,12 @@ mod tests {
         (0..30)
             .map(|i| ChartPoint {
                 label: format!("AC-{:03}", i + 1),
-                mean: 100.0 + if i >= 25 { 3.0 } else { (i % 5) as f64 * 0.1 - 0.2 },
+                mean: 100.0
+                    + if i >= 25 {
+                        3.0
+                    } else {
+                        (i % 5) as f64 * 0.1 - 0.2
+                    },
                 baseline: i < 20,
                 alerting: i >= 25,
             })
@@ -266,7 +275,10 @@ mod tests {
         assert_eq!((info.width, info.height), SIZE);
         // Not a blank canvas: the alerting dots are pure red, the text and axes dark.
         let px: Vec<&[u8]> = pixels.chunks(3).collect();
-        assert!(px.iter().any(|p| p == &[255, 0, 0]), "no red alerting marker");
+        assert!(
+            px.iter().any(|p| p == &[255, 0, 0]),
+            "no red alerting marker"
+        );
         let dark = px.iter().filter(|p| p.iter().all(|&c| c < 60)).count();
         assert!(dark > 2000, "too little dark ink for axes and text: {dark}");
     }
@@ -283,7 +295,10 @@ mod tests {
 
     #[test]
     fn refuses_what_cannot_be_plotted() {
-        assert_eq!(render_series_png(&[], 1.0, 0.1, "t"), Err(ChartError::Empty));
+        assert_eq!(
+            render_series_png(&[], 1.0, 0.1, "t"),
+            Err(ChartError::Empty)
+        );
         let mut s = series();
         s[3].mean = f64::NAN;
         assert!(matches!(
