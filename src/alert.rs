@@ -620,6 +620,8 @@ enum SendError {
 struct Mailer {
     transport: AsyncSmtpTransport<Tokio1Executor>,
     from: Mailbox,
+    /// Limit of one whole SMTP exchange, connect to QUIT.
+    timeout: Duration,
 }
 
 impl Mailer {
@@ -664,15 +666,25 @@ impl Mailer {
         Ok(Mailer {
             transport: builder.build(),
             from,
+            timeout: e.timeout,
         })
     }
 
     /// One SMTP transaction; the server's final reply on success.
+    ///
+    /// lettre's async client applies its timeout to the TCP connect only; a server that
+    /// accepts and then stops answering would hold the drain (and `run --once`) forever. The
+    /// whole exchange therefore runs under `alerts.email.timeout_seconds`, and running out of
+    /// time is a transient failure (retried).
     async fn send(&self, message: Message) -> Result<String, SendError> {
-        match self.transport.send(message).await {
-            Ok(reply) => Ok(reply_text(&reply)),
-            Err(e) if e.is_permanent() => Err(SendError::Permanent(e.to_string())),
-            Err(e) => Err(SendError::Transient(e.to_string())),
+        match tokio::time::timeout(self.timeout, self.transport.send(message)).await {
+            Err(_) => Err(SendError::Transient(format!(
+                "no complete SMTP exchange within {:?} (alerts.email.timeout_seconds)",
+                self.timeout
+            ))),
+            Ok(Ok(reply)) => Ok(reply_text(&reply)),
+            Ok(Err(e)) if e.is_permanent() => Err(SendError::Permanent(e.to_string())),
+            Ok(Err(e)) => Err(SendError::Transient(e.to_string())),
         }
     }
 }

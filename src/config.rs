@@ -202,7 +202,7 @@ pub struct Email {
     pub to: Vec<String>,
     pub username: Option<String>,
     pub password_file: Option<PathBuf>,
-    /// Connection and command timeout of the SMTP client.
+    /// Limit of one whole SMTP exchange (connect, commands, message, QUIT).
     pub timeout: Duration,
     /// A PEM file of CA certificates trusted for the server's certificate, besides the
     /// public roots (for a site's private CA).
@@ -603,7 +603,7 @@ channels = ["log"]       # "log", "email", or both
 # to = ["quality@example.org"]
 # username = "lotdrift"    # password from LOTDRIFT_SMTP_PASSWORD or password_file
 # password_file = "smtp-password.txt"
-# timeout_seconds = 30.0   # connection and command timeout
+# timeout_seconds = 30.0   # limit of one SMTP exchange (connect to QUIT); then retried
 # ca_file = "site-ca.pem"  # PEM CA certificate(s) to trust besides the public roots
 
 [log]

@@ -265,3 +265,4 @@ impl Scenario {
         out
     }
 }
+pub mod smtp;
