@@ -6,8 +6,15 @@
 //! (lettre over tokio, rustls; never OpenSSL): a refused connection, a timeout or a 4xx reply
 //! is retried with exponential backoff and jitter, a 5xx is recorded as failed with the
 //! server's reply, and a message older than `alerts.expire_hours` is marked expired, never
-//! silently dropped. Only this module knows SMTP. The SMTP password comes from
-//! `LOTDRIFT_SMTP_PASSWORD` or `alerts.email.password_file` and is never logged.
+//! silently dropped. Every SMTP exchange runs under `alerts.email.timeout_seconds` as a
+//! whole, so a server that stops answering cannot hold the drain. Only this module knows
+//! SMTP. The SMTP password comes from `LOTDRIFT_SMTP_PASSWORD` or
+//! `alerts.email.password_file` and is never logged.
+//!
+//! An alert message is multipart/mixed: a multipart/alternative of plain text and HTML (both
+//! built from the same rows by [`facts`]; names cleaned of control characters, HTML escaped),
+//! and the series chart from [`crate::chart`] as a PNG attachment. Its Message-ID is derived
+//! from the alert event, so every attempt and every recipient get the same one.
 
 use std::collections::{HashMap, HashSet};
 use std::sync::Arc;

@@ -213,6 +213,36 @@ fn server_down_the_alert_waits_in_the_outbox_and_is_delivered_exactly_once_later
 }
 
 #[test]
+fn a_message_undeliverable_past_expire_hours_is_marked_expired_not_dropped() {
+    // expire_hours = 0.0003 is about 1.1 s: the binary compares the message's age with the
+    // wall clock, so the test waits that long between the two runs.
+    let port = free_port();
+    let site = email_site(port, "[\"email\"]", &[QUALITY], "");
+    let cfg = std::fs::read_to_string(site.config()).unwrap();
+    std::fs::write(
+        site.config(),
+        cfg.replace(
+            "retry_initial_seconds = 0\n",
+            "retry_initial_seconds = 0\nexpire_hours = 0.0003\n",
+        ),
+    )
+    .unwrap();
+    drifting_series(&site);
+    site.once();
+    assert_eq!(site.status()["outbox_pending"], 1);
+    std::thread::sleep(std::time::Duration::from_millis(1300));
+    site.once();
+    let status = site.status();
+    assert_eq!(status["outbox_pending"], 0, "{status:#}");
+    assert_eq!(status["outbox_expired"], 1, "{status:#}");
+    let undelivered = status["undelivered"].as_array().unwrap();
+    assert_eq!(undelivered[0]["state"], "expired");
+    assert_eq!(undelivered[0]["attempts"], 2);
+    let error = undelivered[0]["last_error"].as_str().unwrap();
+    assert!(error.to_lowercase().contains("connection"), "{error}");
+}
+
+#[test]
 fn a_4xx_reply_is_retried_and_the_retry_delivers() {
     let server = SmtpServer::start();
     server.reply_next(451, "4.3.0 mailbox busy, try again later");
