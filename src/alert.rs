@@ -6,26 +6,46 @@
 //! (lettre over tokio, rustls; never OpenSSL): a refused connection, a timeout or a 4xx reply
 //! is retried with exponential backoff and jitter, a 5xx is recorded as failed with the
 //! server's reply, and a message older than `alerts.expire_hours` is marked expired, never
-//! silently dropped. Only this module knows SMTP. The SMTP password comes from
-//! `LOTDRIFT_SMTP_PASSWORD` or `alerts.email.password_file` and is never logged.
+//! silently dropped. Every SMTP exchange runs under `alerts.email.timeout_seconds` as a
+//! whole, so a server that stops answering cannot hold the drain. Only this module knows
+//! SMTP. The SMTP password comes from `LOTDRIFT_SMTP_PASSWORD` or
+//! `alerts.email.password_file` and is never logged.
+//!
+//! An alert message is multipart/mixed: a multipart/alternative of plain text and HTML (both
+//! built from the same rows by [`facts`]; names cleaned of control characters, HTML escaped),
+//! and the series chart from [`crate::chart`] as a PNG attachment. Its Message-ID is derived
+//! from the alert event, so every attempt and every recipient get the same one.
 
+use std::collections::{HashMap, HashSet};
 use std::sync::Arc;
 use std::time::Duration;
 
 use chrono::Utc;
-use lettre::message::{Mailbox, header::ContentType};
+use lettre::message::header::ContentType;
+use lettre::message::{Attachment, Mailbox, MultiPart, SinglePart};
 use lettre::transport::smtp::authentication::Credentials;
-use lettre::transport::smtp::client::{Tls as LettreTls, TlsParameters};
+use lettre::transport::smtp::client::{Certificate, Tls as LettreTls, TlsParameters};
+use lettre::transport::smtp::response::Response;
 use lettre::{AsyncSmtpTransport, AsyncTransport, Message, Tokio1Executor};
 use tokio::sync::Notify;
 use tokio_util::sync::CancellationToken;
 
+use crate::chart::{self, ChartPoint};
 use crate::config::{Config, Email, Tls};
 use crate::store::{AlertRow, DeliveryOutcome, OutboxItem, Store, StoreError};
 use crate::time::{format_utc, now_rfc3339, parse_utc};
 
 /// The environment variable that carries the SMTP password.
 pub const PASSWORD_ENV: &str = "LOTDRIFT_SMTP_PASSWORD";
+
+/// Lots shown in the chart of an alert message (the most recent ones of the series).
+pub const CHART_LOTS: i64 = 40;
+
+/// Half-width of the chart's band around the baseline mean, in standard errors of a lot mean.
+pub const CHART_BAND_SE: f64 = 3.0;
+
+/// Outbox rows read per query while draining.
+const DRAIN_BATCH: i64 = 100;
 
 #[derive(Debug, thiserror::Error)]
 pub enum AlertError {
@@ -45,21 +65,47 @@ pub struct DrainReport {
 }
 
 /// Delivers every message due now, once each. Returns what happened.
+///
+/// The SMTP transport is built once per drain. When it cannot be built (an unreadable
+/// `ca_file`, a missing password), email messages are retried and eventually expire with that
+/// reason, and the other channels are delivered all the same.
 pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, AlertError> {
     let mut report = DrainReport::default();
-    let mailer = match &config.alerts.email {
-        Some(e) => Some(Mailer::new(e)?),
-        None => None,
-    };
+    let mut mailer: Option<Result<Mailer, String>> = None;
+    // Charts are rendered once per alert event, not once per recipient.
+    let mut charts: HashMap<i64, Option<Arc<Vec<u8>>>> = HashMap::new();
+    // One attempt per message and drain, even when a retry is due at once again.
+    let mut attempted: HashSet<i64> = HashSet::new();
     loop {
-        let now = now_rfc3339();
-        let due = store.due_outbox(&now, 100).await?;
-        if due.is_empty() {
+        let due = store.due_outbox(&now_rfc3339(), DRAIN_BATCH).await?;
+        let batch = due.len();
+        let fresh: Vec<OutboxItem> = due.into_iter().filter(|i| attempted.insert(i.id)).collect();
+        if fresh.is_empty() {
             break;
         }
-        let batch = due.len();
-        for item in due {
-            let outcome = deliver(&item, config, mailer.as_ref()).await;
+        for item in fresh {
+            let outcome = match item.channel.as_str() {
+                "email" => {
+                    let mailer = mailer.get_or_insert_with(|| build_mailer(config));
+                    let chart = match charts.get(&item.event_id) {
+                        Some(c) => c.clone(),
+                        None if mailer.is_err() => None,
+                        None => {
+                            let c = chart_for(store, &item).await.map(Arc::new);
+                            charts.insert(item.event_id, c.clone());
+                            c
+                        }
+                    };
+                    deliver_email(&item, config, mailer, chart.as_deref().map(Vec::as_slice)).await
+                }
+                "log" => {
+                    log_event(&item);
+                    DeliveryOutcome::Delivered
+                }
+                other => DeliveryOutcome::Failed {
+                    error: format!("unknown channel {other:?}"),
+                },
+            };
             match &outcome {
                 DeliveryOutcome::Delivered => report.delivered += 1,
                 DeliveryOutcome::Retry { error, next_at } => {
@@ -79,7 +125,7 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
                 .outbox_attempted(item.id, &outcome, &now_rfc3339())
                 .await?;
         }
-        if batch < 100 {
+        if (batch as i64) < DRAIN_BATCH {
             break;
         }
     }
@@ -107,30 +153,97 @@ pub async fn run(
     }
 }
 
-async fn deliver(item: &OutboxItem, config: &Config, mailer: Option<&Mailer>) -> DeliveryOutcome {
-    match item.channel.as_str() {
-        "log" => {
-            log_event(item);
+fn build_mailer(config: &Config) -> Result<Mailer, String> {
+    let Some(email) = &config.alerts.email else {
+        return Err("no [alerts.email] section configured".into());
+    };
+    Mailer::new(email).map_err(|e| {
+        tracing::error!(error = %e, "cannot set up the SMTP client; email messages wait");
+        e.to_string()
+    })
+}
+
+async fn deliver_email(
+    item: &OutboxItem,
+    config: &Config,
+    mailer: &Result<Mailer, String>,
+    chart: Option<&[u8]>,
+) -> DeliveryOutcome {
+    let mailer = match mailer {
+        Ok(m) => m,
+        Err(e) => return retry_or_expire(item, config, e.clone()),
+    };
+    let message = match alert_message(&mailer.from, item, chart) {
+        Ok(m) => m,
+        Err(error) => return DeliveryOutcome::Failed { error },
+    };
+    match mailer.send(message).await {
+        Ok(reply) => {
+            tracing::info!(recipient = %item.recipient, event = item.event_id, %reply, "email delivered");
             DeliveryOutcome::Delivered
         }
-        "email" => {
-            let Some(mailer) = mailer else {
-                return retry_or_expire(
-                    item,
-                    config,
-                    "no [alerts.email] section configured".into(),
-                );
-            };
-            match mailer.send(item).await {
-                Ok(()) => DeliveryOutcome::Delivered,
-                Err(SendError::Permanent(error)) => DeliveryOutcome::Failed { error },
-                Err(SendError::Transient(error)) => retry_or_expire(item, config, error),
-            }
-        }
-        other => DeliveryOutcome::Failed {
-            error: format!("unknown channel {other:?}"),
-        },
+        Err(SendError::Permanent(error)) => DeliveryOutcome::Failed { error },
+        Err(SendError::Transient(error)) => retry_or_expire(item, config, error),
     }
+}
+
+/// The chart of the alert's series, or `None` (logged) when it cannot be made: a message
+/// without its chart is better than no message.
+async fn chart_for(store: &Store, item: &OutboxItem) -> Option<Vec<u8>> {
+    let a = &item.alert;
+    let lots = match store
+        .recent_lot_means(&a.source, &a.characteristic, CHART_LOTS)
+        .await
+    {
+        Ok(l) => l,
+        Err(e) => {
+            tracing::warn!(error = %e, alert = a.id, "cannot read the series for the chart");
+            return None;
+        }
+    };
+    let points: Vec<ChartPoint> = lots
+        .into_iter()
+        .map(|l| ChartPoint {
+            label: clean(&l.lot),
+            mean: l.mean,
+            baseline: l.baseline,
+            alerting: l.significant,
+        })
+        .collect();
+    let band = chart_band(a);
+    let title = chart_title(a, points.len());
+    let baseline_mean = a.baseline_mean;
+    let rendered = tokio::task::spawn_blocking(move || {
+        chart::render_series_png(&points, baseline_mean, band, &title)
+    })
+    .await;
+    match rendered {
+        Ok(Ok(png)) => Some(png),
+        Ok(Err(e)) => {
+            tracing::warn!(error = %e, alert = a.id, "cannot draw the chart");
+            None
+        }
+        Err(e) => {
+            tracing::warn!(error = %e, alert = a.id, "chart task failed");
+            None
+        }
+    }
+}
+
+/// ± this many standard errors of a mean of `lot_n` values around the baseline mean.
+fn chart_band(a: &AlertRow) -> f64 {
+    match a.baseline_sd {
+        Some(sd) if sd.is_finite() && a.lot_n > 0 => CHART_BAND_SE * sd / (a.lot_n as f64).sqrt(),
+        _ => 0.0,
+    }
+}
+
+fn chart_title(a: &AlertRow, lots: usize) -> String {
+    let title = format!(
+        "{} / {}: last {lots} lot means, band ±{CHART_BAND_SE} SE (n = {})",
+        a.source, a.characteristic, a.lot_n
+    );
+    clean(&title).chars().take(100).collect()
 }
 
 fn retry_or_expire(item: &OutboxItem, config: &Config, error: String) -> DeliveryOutcome {
@@ -222,6 +335,10 @@ pub fn subject(item: &OutboxItem) -> String {
             "lotdrift: {} / {} back in control (alert {} resolved)",
             a.source, a.characteristic, a.id
         ),
+        _ if a.kind == "spread" => format!(
+            "lotdrift: {} / {} spread grew in lot {} (alert {})",
+            a.source, a.characteristic, a.lot, a.id
+        ),
         _ => format!(
             "lotdrift: {} / {} mean shifted {} in lot {} (alert {})",
             a.source,
@@ -238,60 +355,278 @@ fn fmt_opt(v: Option<f64>) -> String {
     v.map_or_else(|| "-".to_string(), |v| format!("{v:.6}"))
 }
 
+fn fmt_p(v: Option<f64>) -> String {
+    v.map_or("-".into(), |p| format!("{p:.3e}"))
+}
+
+/// The numbers of an alert message as (label, value) rows, shared by the plain-text and the
+/// HTML part so both always say the same. Names are cleaned of control characters.
+pub fn facts(item: &OutboxItem) -> Vec<(&'static str, String)> {
+    let a = &item.alert;
+    let mut rows = vec![
+        ("Source", clean(&a.source)),
+        ("Characteristic", clean(&a.characteristic)),
+        ("Direction", direction(a).to_string()),
+        (
+            "Lot",
+            format!(
+                "{} (sampled {})",
+                clean(&a.lot),
+                a.lot_sampled_at.as_deref().unwrap_or("-")
+            ),
+        ),
+        (
+            "Baseline",
+            format!(
+                "n = {}, mean = {:.6}, sd = {}",
+                a.baseline_n,
+                a.baseline_mean,
+                fmt_opt(a.baseline_sd)
+            ),
+        ),
+        (
+            "This lot",
+            format!(
+                "n = {}, mean = {:.6}, sd = {}",
+                a.lot_n,
+                a.lot_mean,
+                fmt_opt(a.lot_sd)
+            ),
+        ),
+    ];
+    if let (Some(e), Some([lo, hi])) = (a.estimate, a.ci) {
+        rows.push((
+            "Difference",
+            format!("{e:.6} (lot − baseline), 95 % interval [{lo:.6}, {hi:.6}]"),
+        ));
+    }
+    rows.push((
+        "Test",
+        format!(
+            "{} ({}), t = {}, df = {}, p = {}",
+            a.test,
+            a.alternative,
+            fmt_opt(a.statistic),
+            fmt_opt(a.df),
+            fmt_p(a.p_value)
+        ),
+    ));
+    rows.push((
+        "Adjusted",
+        format!(
+            "p = {} ({} over {} test(s) of this lot, level {})",
+            fmt_p(a.p_adjusted),
+            a.method,
+            a.family_size,
+            a.level
+        ),
+    ));
+    if let Some(model) = &a.model {
+        rows.push(("Model", model.clone()));
+    }
+    if let Some(note) = &a.note {
+        rows.push(("Note", clean(note)));
+    }
+    rows.push((
+        "Alert",
+        format!("{} ({}), opened {}", a.id, a.state, a.opened_at),
+    ));
+    rows
+}
+
+const DISCLAIMER: &str = "This is a statistical signal to support incoming inspection and the \
+                          engineer's judgment, not a verdict on conformance.";
+
 /// The plain-text body of an alert message.
 pub fn body(item: &OutboxItem) -> String {
-    let a = &item.alert;
     let mut s = String::new();
     s.push_str(&subject(item));
     s.push_str("\n\n");
-    s.push_str(&format!("Source:          {}\n", clean(&a.source)));
-    s.push_str(&format!("Characteristic:  {}\n", clean(&a.characteristic)));
-    s.push_str(&format!(
-        "Lot:             {} (sampled {})\n",
-        clean(&a.lot),
-        a.lot_sampled_at.as_deref().unwrap_or("-")
-    ));
-    s.push_str(&format!(
-        "Baseline:        n = {}, mean = {:.6}, sd = {}\n",
-        a.baseline_n,
-        a.baseline_mean,
-        fmt_opt(a.baseline_sd)
-    ));
-    s.push_str(&format!(
-        "This lot:        n = {}, mean = {:.6}, sd = {}\n",
-        a.lot_n,
-        a.lot_mean,
-        fmt_opt(a.lot_sd)
-    ));
-    if let (Some(e), Some([lo, hi])) = (a.estimate, a.ci) {
-        s.push_str(&format!(
-            "Difference:      {e:.6} (lot − baseline), 95 % interval [{lo:.6}, {hi:.6}]\n"
-        ));
+    for (label, value) in facts(item) {
+        s.push_str(&format!("{:<17}{value}\n", format!("{label}:")));
     }
     s.push_str(&format!(
-        "Test:            {} ({}), t = {}, df = {}, p = {}\n",
-        a.test,
-        a.alternative,
-        fmt_opt(a.statistic),
-        fmt_opt(a.df),
-        a.p_value.map_or("-".into(), |p| format!("{p:.3e}"))
+        "\nThe attached chart shows the last lot means of the series (at most {CHART_LOTS}) \
+         against the baseline mean and a band of ±{CHART_BAND_SE} standard errors of a lot mean; \
+         alerting lots are marked red.\n"
     ));
-    s.push_str(&format!(
-        "Adjusted:        p = {} ({} over {} test(s) of this lot, level {})\n",
-        a.p_adjusted.map_or("-".into(), |p| format!("{p:.3e}")),
-        a.method,
-        a.family_size,
-        a.level
-    ));
-    s.push_str(&format!(
-        "Alert:           {} ({}), opened {}\n",
-        a.id, a.state, a.opened_at
-    ));
-    s.push_str(
-        "\nThis is a statistical signal to support incoming inspection and the engineer's \
-         judgment, not a verdict on conformance.\n",
-    );
+    s.push_str(&format!("\n{DISCLAIMER}\n"));
     s
+}
+
+/// Escapes text for HTML element content and attribute values.
+pub fn escape_html(s: &str) -> String {
+    let mut out = String::with_capacity(s.len());
+    for c in s.chars() {
+        match c {
+            '&' => out.push_str("&amp;"),
+            '<' => out.push_str("&lt;"),
+            '>' => out.push_str("&gt;"),
+            '"' => out.push_str("&quot;"),
+            '\'' => out.push_str("&#39;"),
+            c => out.push(c),
+        }
+    }
+    out
+}
+
+/// The HTML body of an alert message: the same rows as the plain text, in a table. Every
+/// interpolated value is escaped.
+pub fn html_body(item: &OutboxItem) -> String {
+    let mut s = String::from(
+        "<!DOCTYPE html>\n<html><head><meta charset=\"utf-8\"></head>\n\
+         <body style=\"font-family: sans-serif\">\n",
+    );
+    s.push_str(&format!("<h3>{}</h3>\n", escape_html(&subject(item))));
+    s.push_str("<table cellpadding=\"4\" style=\"border-collapse: collapse\">\n");
+    for (label, value) in facts(item) {
+        s.push_str(&format!(
+            "<tr><th align=\"left\" style=\"border-bottom: 1px solid #ddd\">{}</th>\
+             <td style=\"border-bottom: 1px solid #ddd\">{}</td></tr>\n",
+            escape_html(label),
+            escape_html(&value)
+        ));
+    }
+    s.push_str("</table>\n");
+    s.push_str(&format!(
+        "<p>The attached chart shows the last lot means of the series (at most {CHART_LOTS}) \
+         against the baseline mean and a band of &plusmn;{CHART_BAND_SE} standard errors of a \
+         lot mean; alerting lots are marked red.</p>\n"
+    ));
+    s.push_str(&format!(
+        "<p><small>{}</small></p>\n",
+        escape_html(DISCLAIMER)
+    ));
+    s.push_str("</body></html>\n");
+    s
+}
+
+/// The Message-ID of an alert event: the same for every attempt and every recipient, so a
+/// retry after an unknown outcome is recognisable as the same message.
+pub fn message_id(item: &OutboxItem, domain: &str) -> String {
+    let stamp: String = item.event_at.chars().filter(char::is_ascii_digit).collect();
+    format!("<lotdrift.event-{}.{stamp}@{domain}>", item.event_id)
+}
+
+/// The whole alert message to `item.recipient`: multipart/mixed of a multipart/alternative
+/// (plain text, HTML) and the PNG chart when there is one.
+fn alert_message(
+    from: &Mailbox,
+    item: &OutboxItem,
+    chart: Option<&[u8]>,
+) -> Result<Message, String> {
+    let to: Mailbox = item
+        .recipient
+        .parse()
+        .map_err(|e| format!("recipient {:?}: {e}", item.recipient))?;
+    let text = MultiPart::alternative()
+        .singlepart(SinglePart::plain(body(item)))
+        .singlepart(SinglePart::html(html_body(item)));
+    let mut content = MultiPart::mixed().multipart(text);
+    if let Some(png) = chart {
+        let png_type = ContentType::parse("image/png").map_err(|e| format!("content type: {e}"))?;
+        content = content.singlepart(
+            Attachment::new(format!("lotdrift-alert-{}.png", item.alert.id))
+                .body(png.to_vec(), png_type),
+        );
+    }
+    Message::builder()
+        .from(from.clone())
+        .to(to)
+        .subject(subject(item))
+        .message_id(Some(message_id(item, from.email.domain())))
+        .multipart(content)
+        .map_err(|e| format!("cannot build message: {e}"))
+}
+
+/// What the server said to a test message for one recipient.
+#[derive(Debug, Clone)]
+pub struct TestDelivery {
+    pub recipient: String,
+    /// The server's reply on acceptance, or the error with the reply on refusal.
+    pub outcome: Result<String, String>,
+}
+
+/// Sends a test message to every configured recipient (`lotdrift alerts test-email`), one
+/// attempt each, without touching the outbox.
+pub async fn test_email(config: &Config) -> Result<Vec<TestDelivery>, AlertError> {
+    let Some(email) = &config.alerts.email else {
+        return Err(AlertError::Email(
+            "no [alerts.email] section in the config: nothing to test".into(),
+        ));
+    };
+    let mailer = Mailer::new(email)?;
+    let now = now_rfc3339();
+    let stamp: String = now.chars().filter(char::is_ascii_digit).collect();
+    let mut out = Vec::new();
+    for recipient in &email.to {
+        let outcome = match test_message(&mailer.from, recipient, email, &now, &stamp) {
+            Err(e) => Err(e),
+            Ok(message) => match mailer.send(message).await {
+                Ok(reply) => Ok(reply),
+                Err(SendError::Permanent(e) | SendError::Transient(e)) => Err(e),
+            },
+        };
+        out.push(TestDelivery {
+            recipient: recipient.clone(),
+            outcome,
+        });
+    }
+    Ok(out)
+}
+
+/// One line per recipient: accepted with the server's reply, or not, with the error and reply.
+pub fn test_email_text(sent: &[TestDelivery]) -> String {
+    let mut s = String::new();
+    for d in sent {
+        match &d.outcome {
+            Ok(reply) => s.push_str(&format!(
+                "{}: accepted; server replied: {reply}\n",
+                d.recipient
+            )),
+            Err(e) => s.push_str(&format!("{}: NOT accepted: {e}\n", d.recipient)),
+        }
+    }
+    s
+}
+
+fn test_message(
+    from: &Mailbox,
+    recipient: &str,
+    email: &Email,
+    now: &str,
+    stamp: &str,
+) -> Result<Message, String> {
+    let to: Mailbox = recipient
+        .parse()
+        .map_err(|e| format!("recipient {recipient:?}: {e}"))?;
+    let tls = match email.tls {
+        Tls::None => "none",
+        Tls::StartTls => "starttls",
+        Tls::Tls => "tls",
+    };
+    let text = format!(
+        "This is a test message from lotdrift, sent at {now} through {}:{} (tls = {tls}).\n\
+         If it reached you, lotdrift can deliver its alert messages to this address.\n",
+        email.smtp_host, email.smtp_port
+    );
+    Message::builder()
+        .from(from.clone())
+        .to(to)
+        .subject("lotdrift: test message")
+        .message_id(Some(format!(
+            "<lotdrift.test.{stamp}@{}>",
+            from.email.domain()
+        )))
+        .header(ContentType::TEXT_PLAIN)
+        .body(text)
+        .map_err(|e| format!("cannot build message: {e}"))
+}
+
+/// The reply of a server as one line: the code and its text.
+fn reply_text(r: &Response) -> String {
+    let lines: Vec<&str> = r.message().collect();
+    format!("{} {}", r.code(), lines.join(" / "))
 }
 
 enum SendError {
@@ -302,6 +637,8 @@ enum SendError {
 struct Mailer {
     transport: AsyncSmtpTransport<Tokio1Executor>,
     from: Mailbox,
+    /// Limit of one whole SMTP exchange, connect to QUIT.
+    timeout: Duration,
 }
 
 impl Mailer {
@@ -310,8 +647,24 @@ impl Mailer {
             .from
             .parse()
             .map_err(|err| AlertError::Email(format!("from {:?}: {err}", e.from)))?;
+        let ca = match &e.ca_file {
+            None => None,
+            Some(f) => {
+                let pem = std::fs::read(f)
+                    .map_err(|err| AlertError::Email(format!("ca_file {}: {err}", f.display())))?;
+                Some(
+                    Certificate::from_pem(&pem).map_err(|err| {
+                        AlertError::Email(format!("ca_file {}: {err}", f.display()))
+                    })?,
+                )
+            }
+        };
         let tls_params = || {
-            TlsParameters::new(e.smtp_host.clone())
+            let mut b = TlsParameters::builder(e.smtp_host.clone());
+            if let Some(ca) = &ca {
+                b = b.add_root_certificate(ca.clone());
+            }
+            b.build()
                 .map_err(|err| AlertError::Email(format!("TLS setup for {}: {err}", e.smtp_host)))
         };
         let tls = match e.tls {
@@ -330,34 +683,25 @@ impl Mailer {
         Ok(Mailer {
             transport: builder.build(),
             from,
+            timeout: e.timeout,
         })
     }
 
-    async fn send(&self, item: &OutboxItem) -> Result<(), SendError> {
-        let to: Mailbox = item
-            .recipient
-            .parse()
-            .map_err(|e| SendError::Permanent(format!("recipient {:?}: {e}", item.recipient)))?;
-        let message = Message::builder()
-            .from(self.from.clone())
-            .to(to)
-            .subject(subject(item))
-            .message_id(Some(format!(
-                "<lotdrift.event-{}.{}@{}>",
-                item.event_id,
-                item.event_at
-                    .chars()
-                    .filter(char::is_ascii_digit)
-                    .collect::<String>(),
-                self.from.email.domain()
-            )))
-            .header(ContentType::TEXT_PLAIN)
-            .body(body(item))
-            .map_err(|e| SendError::Permanent(format!("cannot build message: {e}")))?;
-        match self.transport.send(message).await {
-            Ok(_) => Ok(()),
-            Err(e) if e.is_permanent() => Err(SendError::Permanent(e.to_string())),
-            Err(e) => Err(SendError::Transient(e.to_string())),
+    /// One SMTP transaction; the server's final reply on success.
+    ///
+    /// lettre's async client applies its timeout to the TCP connect only; a server that
+    /// accepts and then stops answering would hold the drain (and `run --once`) forever. The
+    /// whole exchange therefore runs under `alerts.email.timeout_seconds`, and running out of
+    /// time is a transient failure (retried).
+    async fn send(&self, message: Message) -> Result<String, SendError> {
+        match tokio::time::timeout(self.timeout, self.transport.send(message)).await {
+            Err(_) => Err(SendError::Transient(format!(
+                "no complete SMTP exchange within {:?} (alerts.email.timeout_seconds)",
+                self.timeout
+            ))),
+            Ok(Ok(reply)) => Ok(reply_text(&reply)),
+            Ok(Err(e)) if e.is_permanent() => Err(SendError::Permanent(e.to_string())),
+            Ok(Err(e)) => Err(SendError::Transient(e.to_string())),
         }
     }
 }
@@ -395,5 +739,148 @@ mod tests {
     #[test]
     fn control_characters_cannot_reach_headers() {
         assert_eq!(clean("alder\r\nBcc: x@y"), "alder  Bcc: x@y");
+    }
+
+    fn item(source: &str, lot: &str) -> OutboxItem {
+        OutboxItem {
+            id: 9,
+            channel: "email".into(),
+            recipient: "quality@example.org".into(),
+            attempts: 0,
+            created_at: "2026-03-01T08:30:00.000Z".into(),
+            event_id: 17,
+            event_kind: "opened".into(),
+            event_at: "2026-03-01T08:30:00.000Z".into(),
+            alert: AlertRow {
+                id: 4,
+                source: source.into(),
+                characteristic: "mass_g".into(),
+                state: "open".into(),
+                opened_at: "2026-03-01T08:30:00.000Z".into(),
+                resolved_at: None,
+                lot: lot.into(),
+                lot_sampled_at: Some("2026-02-27".into()),
+                test: "welch".into(),
+                alternative: "two-sided".into(),
+                statistic: Some(-7.25),
+                df: Some(13.5),
+                p_value: Some(1.5e-6),
+                p_adjusted: Some(3.0e-6),
+                method: "holm".into(),
+                level: 0.01,
+                family_size: 2,
+                baseline_n: 240,
+                baseline_mean: 200.0,
+                baseline_sd: Some(1.0),
+                lot_n: 12,
+                lot_mean: 197.0,
+                lot_sd: Some(1.1),
+                estimate: Some(-3.0),
+                ci: Some([-3.7, -2.3]),
+                lots: 1,
+                kind: "mean".into(),
+                model: Some("units".into()),
+                note: None,
+            },
+        }
+    }
+
+    fn formatted(item: &OutboxItem, chart: Option<&[u8]>) -> String {
+        let from: Mailbox = "lotdrift <lotdrift@example.org>".parse().unwrap();
+        String::from_utf8(alert_message(&from, item, chart).unwrap().formatted()).unwrap()
+    }
+
+    fn headers(raw: &str) -> Vec<&str> {
+        raw.split("\r\n\r\n")
+            .next()
+            .unwrap()
+            .split("\r\n")
+            .collect()
+    }
+
+    #[test]
+    fn names_with_cr_lf_cannot_add_header_lines() {
+        // The lot file parser refuses control characters in names, so this can only be
+        // reached by a row in the database written by other means; the message must still
+        // be safe.
+        let evil = item("alder\r\nBcc: victim@example.net", "AC\n-Bcc: x@y");
+        assert!(!subject(&evil).chars().any(char::is_control));
+        let raw = formatted(&evil, None);
+        let head = headers(&raw);
+        assert!(
+            head.iter()
+                .all(|h| !h.to_ascii_lowercase().starts_with("bcc")),
+            "{head:#?}"
+        );
+        let subject: Vec<&&str> = head.iter().filter(|h| h.starts_with("Subject:")).collect();
+        assert_eq!(subject.len(), 1, "{head:#?}");
+        assert!(!raw.contains("\nBcc:"), "{raw}");
+    }
+
+    #[test]
+    fn the_subject_names_source_characteristic_and_direction() {
+        let s = subject(&item("birchworks", "BI-023"));
+        assert_eq!(
+            s,
+            "lotdrift: birchworks / mass_g mean shifted down in lot BI-023 (alert 4)"
+        );
+    }
+
+    #[test]
+    fn html_part_escapes_every_interpolated_value() {
+        let html = html_body(&item("<script>alert(1)</script>", "A&B\"'"));
+        assert!(!html.contains("<script>"), "{html}");
+        assert!(
+            html.contains("&lt;script&gt;alert(1)&lt;/script&gt;"),
+            "{html}"
+        );
+        assert!(html.contains("A&amp;B&quot;&#39;"), "{html}");
+        assert_eq!(escape_html("a<b>&\"'"), "a&lt;b&gt;&amp;&quot;&#39;");
+    }
+
+    #[test]
+    fn plain_and_html_parts_carry_the_same_numbers() {
+        let i = item("cedar-energy", "CE-9");
+        let text = body(&i);
+        let html = html_body(&i);
+        for (_, value) in facts(&i) {
+            assert!(text.contains(&value), "{value} missing in text");
+            assert!(
+                html.contains(&escape_html(&value)),
+                "{value} missing in html"
+            );
+        }
+        assert!(text.contains("mean = 197.000000"), "{text}");
+        assert!(text.contains("p = 1.500e-6"), "{text}");
+    }
+
+    #[test]
+    fn message_is_mixed_alternative_with_the_chart_attached() {
+        let raw = formatted(
+            &item("cedar-energy", "CE-9"),
+            Some(b"\x89PNG\r\n\x1a\nrest"),
+        );
+        assert!(raw.contains("Content-Type: multipart/mixed"), "{raw}");
+        assert!(raw.contains("Content-Type: multipart/alternative"), "{raw}");
+        assert!(raw.contains("Content-Type: text/plain"), "{raw}");
+        assert!(raw.contains("Content-Type: text/html"), "{raw}");
+        assert!(raw.contains("Content-Type: image/png"), "{raw}");
+        assert!(raw.contains("filename=\"lotdrift-alert-4.png\""), "{raw}");
+        assert!(
+            raw.contains("Message-ID: <lotdrift.event-17.20260301083000000@example.org>"),
+            "{raw}"
+        );
+        let without = formatted(&item("cedar-energy", "CE-9"), None);
+        assert!(!without.contains("image/png"));
+    }
+
+    #[test]
+    fn chart_band_is_three_standard_errors_of_a_lot_mean() {
+        let i = item("cedar-energy", "CE-9");
+        let band = chart_band(&i.alert);
+        assert!((band - 3.0 / 12f64.sqrt()).abs() < 1e-12, "{band}");
+        let mut a = i.alert.clone();
+        a.baseline_sd = None;
+        assert_eq!(chart_band(&a), 0.0);
     }
 }

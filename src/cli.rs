@@ -85,6 +85,8 @@ enum Command {
         open: bool,
         #[arg(long)]
         json: bool,
+        #[command(subcommand)]
+        action: Option<AlertsAction>,
     },
     /// One row per lot of a source, with its summary and decision.
     History {
@@ -152,6 +154,16 @@ enum BaselineAction {
         reason: String,
         #[command(flatten)]
         config: ConfigArg,
+    },
+}
+
+#[derive(Subcommand, Debug)]
+enum AlertsAction {
+    /// Send a test message to the configured recipients and print what the server replied.
+    TestEmail {
+        /// The config file (default: the one given to `alerts`, else ./lotdrift.toml).
+        #[arg(long, value_name = "FILE")]
+        config: Option<PathBuf>,
     },
 }
 
@@ -385,7 +397,27 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             }
             Ok(())
         }
-        Command::Alerts { config, open, json } => {
+        Command::Alerts {
+            action: Some(AlertsAction::TestEmail { config: own }),
+            config,
+            ..
+        } => {
+            let config = load(&own.map_or(config, |config| ConfigArg { config }))?;
+            let sent = crate::alert::test_email(&config)
+                .await
+                .map_err(|e| Failure::Usage(e.into()))?;
+            print!("{}", crate::alert::test_email_text(&sent));
+            match sent.iter().filter(|d| d.outcome.is_err()).count() {
+                0 => Ok(()),
+                n => Err(Failure::Runtime(anyhow::anyhow!(
+                    "test message not accepted for {n} of {} recipient(s)",
+                    sent.len()
+                ))),
+            }
+        }
+        Command::Alerts {
+            config, open, json, ..
+        } => {
             let config = load(&config)?;
             let store = open_existing(&config).await?;
             let alerts = store.alerts(open).await.context("alerts")?;

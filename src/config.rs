@@ -111,6 +111,7 @@ pub struct RawEmail {
     pub username: Option<String>,
     pub password_file: Option<PathBuf>,
     pub timeout_seconds: Option<f64>,
+    pub ca_file: Option<PathBuf>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -334,7 +335,11 @@ pub struct Email {
     pub to: Vec<String>,
     pub username: Option<String>,
     pub password_file: Option<PathBuf>,
+    /// Limit of one whole SMTP exchange (connect, commands, message, QUIT).
     pub timeout: Duration,
+    /// A PEM file of CA certificates trusted for the server's certificate, besides the
+    /// public roots (for a site's private CA).
+    pub ca_file: Option<PathBuf>,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -759,6 +764,13 @@ fn validate_email(p: &mut Problems, base: &Path, e: RawEmail) -> Email {
         defaults::SMTP_TIMEOUT_SECONDS,
         0.1,
     );
+    if e.ca_file.is_some() && tls == Tls::None {
+        p.push(
+            "alerts.email.ca_file",
+            "needs tls = \"starttls\" or \"tls\" (with tls = \"none\" no certificate is checked)",
+        );
+    }
+    let resolve = |f: PathBuf| if f.is_absolute() { f } else { base.join(f) };
     Email {
         smtp_host,
         smtp_port,
@@ -766,10 +778,9 @@ fn validate_email(p: &mut Problems, base: &Path, e: RawEmail) -> Email {
         from,
         to,
         username: e.username,
-        password_file: e
-            .password_file
-            .map(|f| if f.is_absolute() { f } else { base.join(f) }),
+        password_file: e.password_file.map(resolve),
         timeout,
+        ca_file: e.ca_file.map(resolve),
     }
 }
 
@@ -831,6 +842,8 @@ channels = ["log"]       # "log", "email", or both
 # to = ["quality@example.org"]
 # username = "lotdrift"    # password from LOTDRIFT_SMTP_PASSWORD or password_file
 # password_file = "smtp-password.txt"
+# timeout_seconds = 30.0   # limit of one SMTP exchange (connect to QUIT); then retried
+# ca_file = "site-ca.pem"  # PEM CA certificate(s) to trust besides the public roots
 
 [log]
 format = "text"          # "text" or "json"
@@ -897,6 +910,45 @@ mod tests {
         let email = ok.alerts.email.unwrap();
         assert_eq!(email.smtp_port, 2525);
         assert_eq!(email.tls, Tls::None);
+        assert_eq!(email.ca_file, None);
+    }
+
+    #[test]
+    fn ca_file_resolves_against_the_config_and_needs_tls() {
+        let section = "[alerts.email]\nsmtp_host = \"mail.example.org\"\nfrom = \"a@b.c\"\nto = [\"q@b.c\"]\nca_file = \"ca.pem\"\n";
+        let c = parse(section).unwrap();
+        assert_eq!(
+            c.alerts.email.unwrap().ca_file,
+            Some(PathBuf::from("/etc/lotdrift/ca.pem"))
+        );
+        let e = parse(&format!("{section}tls = \"none\"\n"))
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("alerts.email.ca_file"), "{e}");
+    }
+
+    #[test]
+    fn the_commented_email_block_is_valid_when_uncommented() {
+        let uncommented = STARTER
+            .replace("# [alerts.email]", "[alerts.email]")
+            .replace("\n# smtp_", "\nsmtp_");
+        let mut text = String::new();
+        let mut in_email = false;
+        for line in uncommented.lines() {
+            if line.starts_with('[') {
+                in_email = line == "[alerts.email]";
+            }
+            if in_email && line.starts_with("# ") && line.contains(" = ") {
+                text.push_str(&line[2..]);
+            } else {
+                text.push_str(line);
+            }
+            text.push('\n');
+        }
+        let c = parse(&text).unwrap();
+        let email = c.alerts.email.unwrap();
+        assert_eq!(email.tls, Tls::StartTls);
+        assert!(email.ca_file.is_some());
     }
 
     #[test]

@@ -17,6 +17,7 @@
 //! - [`cli`]: the commands; `main.rs` only calls [`cli::main`].
 
 pub mod alert;
+pub mod chart;
 pub mod cli;
 pub mod config;
 pub mod daemon;

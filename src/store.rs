@@ -2079,3 +2079,58 @@ fn earlier<'a>(a: Option<&'a str>, b: Option<&'a str>) -> Option<&'a str> {
         (None, y) => y,
     }
 }
+
+/// One lot mean of a series, for the chart of an alert message.
+#[derive(Debug, Clone, PartialEq)]
+pub struct LotMeanRow {
+    pub lot: String,
+    pub sampled_at: Option<String>,
+    pub n: i64,
+    pub mean: f64,
+    /// The lot is one of the series' baseline lots.
+    pub baseline: bool,
+    /// The lot was tested and found significant.
+    pub significant: bool,
+}
+
+impl Store {
+    /// The last `limit` lots of the series `source` × `characteristic`, oldest first, in
+    /// series order (sampling time, else arrival, then lot code).
+    pub async fn recent_lot_means(
+        &self,
+        source: &str,
+        characteristic: &str,
+        limit: i64,
+    ) -> Result<Vec<LotMeanRow>> {
+        let rows = sqlx::query(
+            "SELECT l.code, l.sampled_at, sm.n, sm.mean, \
+                    EXISTS (SELECT 1 FROM baseline_lot bl WHERE bl.sample_id = sm.id), \
+                    COALESCE((SELECT e.significant FROM evaluation e WHERE e.sample_id = sm.id), 0) \
+             FROM sample sm JOIN lot l ON l.id = sm.lot_id \
+             JOIN series se ON se.id = sm.series_id \
+             JOIN source src ON src.id = se.source_id \
+             JOIN characteristic ch ON ch.id = se.characteristic_id \
+             WHERE src.name = ? AND ch.name = ? \
+             ORDER BY COALESCE(l.sampled_at, l.first_seen_at) DESC, l.code DESC LIMIT ?",
+        )
+        .bind(source)
+        .bind(characteristic)
+        .bind(limit)
+        .fetch_all(&self.pool)
+        .await
+        .doing("reading recent lot means")?;
+        let mut out: Vec<LotMeanRow> = rows
+            .iter()
+            .map(|r| LotMeanRow {
+                lot: r.get(0),
+                sampled_at: r.get(1),
+                n: r.get(2),
+                mean: r.get(3),
+                baseline: r.get::<i64, _>(4) != 0,
+                significant: r.get::<i64, _>(5) != 0,
+            })
+            .collect();
+        out.reverse();
+        Ok(out)
+    }
+}

@@ -267,3 +267,4 @@ impl Scenario {
         out
     }
 }
+pub mod smtp;

@@ -1,0 +1,453 @@
+//! Email delivery end to end: the real `lotdrift` binary against a real SMTP server
+//! (mailin-embedded) on 127.0.0.1, started by each test on its own port.
+
+mod common;
+
+use common::smtp::{Received, SmtpServer, TlsFiles, free_port, test_pki};
+use common::*;
+use mail_parser::{MessageParser, MimeHeaders};
+
+const FROM: &str = "lotdrift@plant.example";
+const QUALITY: &str = "quality@plant.example";
+const INCOMING: &str = "incoming@plant.example";
+
+/// Site config: the given channels, an [alerts.email] section for 127.0.0.1:`port`, retries
+/// due at once (so a second `--once` retries), and `extra` lines for [alerts.email]
+/// (`tls = "none"` unless `extra` sets `tls`).
+fn email_site(port: u16, channels: &str, to: &[&str], extra: &str) -> Site {
+    let to: Vec<String> = to.iter().map(|t| format!("\"{t}\"")).collect();
+    let tls = if extra.contains("tls =") {
+        ""
+    } else {
+        "tls = \"none\"\n"
+    };
+    Site::new(&format!(
+        "[watch]\nsettle_seconds = 0.0\n\
+         [alerts]\nchannels = {channels}\nretry_initial_seconds = 0\n\
+         [alerts.email]\nsmtp_host = \"127.0.0.1\"\nsmtp_port = {port}\n{tls}\
+         from = \"lotdrift <{FROM}>\"\nto = [{}]\ntimeout_seconds = 5\n{extra}",
+        to.join(", ")
+    ))
+}
+
+/// One source, one characteristic, 26 lots of 12 units; the mean rises by 3 sd from lot 23
+/// on: one alert (opened by AL-023, the later shifted lots attach to it).
+fn drifting_series(site: &Site) {
+    let scenario = Scenario {
+        sources: vec!["alder-cells".into()],
+        chars: vec!["capacity_mah".into()],
+        lots: 26,
+        n: 12,
+        shift: Some((0, 0, 22, 3.0)),
+    };
+    for (name, text, _) in scenario.files() {
+        drop_file(&site.inbox(), &name, &text);
+    }
+}
+
+fn parse(r: &Received) -> mail_parser::Message<'_> {
+    MessageParser::default()
+        .parse(&r.data)
+        .expect("the received message parses as MIME")
+}
+
+fn address(a: Option<&mail_parser::Address<'_>>) -> String {
+    a.and_then(|a| a.first())
+        .and_then(|a| a.address())
+        .unwrap_or_default()
+        .to_string()
+}
+
+/// (type, subtype) of every MIME part, in order.
+fn structure(m: &mail_parser::Message<'_>) -> Vec<(String, String)> {
+    m.parts
+        .iter()
+        .map(|p| {
+            let ct = p.content_type().expect("every part has a Content-Type");
+            (
+                ct.ctype().to_string(),
+                ct.subtype().unwrap_or_default().to_string(),
+            )
+        })
+        .collect()
+}
+
+fn png_size(bytes: &[u8]) -> (u32, u32) {
+    assert_eq!(&bytes[..8], b"\x89PNG\r\n\x1a\n", "PNG signature");
+    let decoder = png::Decoder::new(std::io::Cursor::new(bytes));
+    let mut reader = decoder.read_info().expect("PNG header decodes");
+    let mut buf = vec![0; reader.output_buffer_size().unwrap()];
+    let info = reader.next_frame(&mut buf).expect("PNG image data decodes");
+    (info.width, info.height)
+}
+
+fn stderr_of(out: &std::process::Output) -> String {
+    text(&out.stderr)
+}
+
+#[test]
+fn an_alert_reaches_every_recipient_once_with_headers_both_parts_and_the_chart() {
+    let server = SmtpServer::start();
+    let site = email_site(
+        server.port,
+        "[\"email\", \"log\"]",
+        &[QUALITY, INCOMING],
+        "",
+    );
+    drifting_series(&site);
+    site.once();
+
+    let status = site.status();
+    assert_eq!(status["open_alerts"], 1);
+    assert_eq!(status["outbox_pending"], 0, "{status:#}");
+    assert_eq!(status["outbox_failed"], 0, "{status:#}");
+    let alert = site.alerts().remove(0);
+
+    let got = server.received();
+    assert_eq!(
+        got.len(),
+        2,
+        "one message per recipient for the one alert event"
+    );
+    let mut envelope_to: Vec<String> = got.iter().flat_map(|r| r.to.clone()).collect();
+    envelope_to.sort();
+    assert_eq!(envelope_to, vec![INCOMING.to_string(), QUALITY.to_string()]);
+
+    let mut ids = Vec::new();
+    for r in &got {
+        assert_eq!(r.from, FROM);
+        let m = parse(r);
+        assert_eq!(address(m.from()), FROM);
+        assert_eq!(
+            address(m.to()),
+            r.to[0],
+            "header To is the envelope recipient"
+        );
+        let subject = m.subject().unwrap();
+        for word in ["alder-cells", "capacity_mah", "shifted up", "AL-023"] {
+            assert!(
+                subject.contains(word),
+                "{word:?} missing in subject {subject:?}"
+            );
+        }
+        let id = m.message_id().expect("Message-ID present").to_string();
+        assert!(
+            id.starts_with("lotdrift.event-") && id.ends_with("@plant.example"),
+            "{id}"
+        );
+        ids.push(id);
+
+        // multipart/mixed [ multipart/alternative [ text/plain, text/html ], image/png ]
+        assert_eq!(
+            structure(&m),
+            vec![
+                ("multipart".into(), "mixed".into()),
+                ("multipart".into(), "alternative".into()),
+                ("text".into(), "plain".into()),
+                ("text".into(), "html".into()),
+                ("image".into(), "png".into()),
+            ]
+        );
+        let plain = m.body_text(0).unwrap();
+        let html = m.body_html(0).unwrap();
+        let lot_mean = format!("mean = {:.6}", alert["lot_mean"].as_f64().unwrap());
+        let p = format!("p = {:.3e}", alert["p_value"].as_f64().unwrap());
+        for needle in [lot_mean.as_str(), p.as_str(), "welch", "holm", "AL-023"] {
+            assert!(
+                plain.contains(needle),
+                "{needle:?} missing in text part:\n{plain}"
+            );
+            assert!(
+                html.contains(needle),
+                "{needle:?} missing in HTML part:\n{html}"
+            );
+        }
+        assert!(html.contains("<table"), "{html}");
+        assert!(html.contains("<th align=\"left\""), "{html}");
+
+        let attachments: Vec<_> = m.attachments().collect();
+        assert_eq!(attachments.len(), 1);
+        let chart = attachments[0];
+        assert!(
+            chart.attachment_name().unwrap().ends_with(".png"),
+            "{:?}",
+            chart.attachment_name()
+        );
+        assert_eq!(png_size(chart.contents()), (800, 400));
+    }
+    assert_eq!(
+        ids[0], ids[1],
+        "the same event has one Message-ID for all recipients"
+    );
+
+    // A second run finds nothing due: no message is sent twice.
+    site.once();
+    assert_eq!(server.received().len(), 2);
+}
+
+#[test]
+fn server_down_the_alert_waits_in_the_outbox_and_is_delivered_exactly_once_later() {
+    let port = free_port();
+    let site = email_site(port, "[\"email\"]", &[QUALITY], "");
+    drifting_series(&site);
+    let first = site.once();
+    let status = site.status();
+    assert_eq!(status["lots"], 26, "ingest went on without the mail server");
+    assert_eq!(status["open_alerts"], 1);
+    assert_eq!(status["outbox_pending"], 1, "{status:#}");
+    assert_eq!(status["undelivered"], serde_json::json!([]), "{status:#}");
+    let log = stderr_of(&first);
+    assert!(log.contains("will retry"), "{log}");
+
+    let server = SmtpServer::start_on(port);
+    site.once();
+    let got = server.received();
+    assert_eq!(got.len(), 1);
+    assert_eq!(got[0].to, vec![QUALITY.to_string()]);
+    let status = site.status();
+    assert_eq!(status["outbox_pending"], 0, "{status:#}");
+
+    site.once();
+    assert_eq!(server.received().len(), 1, "nothing new on a third run");
+    assert_eq!(server.attempts(), 1);
+}
+
+#[test]
+fn a_message_undeliverable_past_expire_hours_is_marked_expired_not_dropped() {
+    // expire_hours = 0.0003 is about 1.1 s: the binary compares the message's age with the
+    // wall clock, so the test waits that long between the two runs.
+    let port = free_port();
+    let site = email_site(port, "[\"email\"]", &[QUALITY], "");
+    let cfg = std::fs::read_to_string(site.config()).unwrap();
+    std::fs::write(
+        site.config(),
+        cfg.replace(
+            "retry_initial_seconds = 0\n",
+            "retry_initial_seconds = 0\nexpire_hours = 0.0003\n",
+        ),
+    )
+    .unwrap();
+    drifting_series(&site);
+    site.once();
+    assert_eq!(site.status()["outbox_pending"], 1);
+    std::thread::sleep(std::time::Duration::from_millis(1300));
+    site.once();
+    let status = site.status();
+    assert_eq!(status["outbox_pending"], 0, "{status:#}");
+    assert_eq!(status["outbox_expired"], 1, "{status:#}");
+    let undelivered = status["undelivered"].as_array().unwrap();
+    assert_eq!(undelivered[0]["state"], "expired");
+    assert_eq!(undelivered[0]["attempts"], 2);
+    let error = undelivered[0]["last_error"].as_str().unwrap();
+    assert!(error.to_lowercase().contains("connection"), "{error}");
+}
+
+#[test]
+fn a_4xx_reply_is_retried_and_the_retry_delivers() {
+    let server = SmtpServer::start();
+    server.reply_next(451, "4.3.0 mailbox busy, try again later");
+    let site = email_site(server.port, "[\"email\"]", &[QUALITY], "");
+    drifting_series(&site);
+    let first = site.once();
+    assert_eq!(server.attempts(), 1);
+    assert!(server.received().is_empty());
+    let status = site.status();
+    assert_eq!(status["outbox_pending"], 1, "{status:#}");
+    assert_eq!(status["outbox_failed"], 0, "{status:#}");
+    assert!(
+        stderr_of(&first).contains("4.3.0 mailbox busy"),
+        "the transient reply is logged: {}",
+        stderr_of(&first)
+    );
+
+    site.once();
+    assert_eq!(server.attempts(), 2);
+    assert_eq!(server.received().len(), 1);
+    let status = site.status();
+    assert_eq!(status["outbox_pending"], 0, "{status:#}");
+    assert_eq!(status["outbox_failed"], 0, "{status:#}");
+}
+
+#[test]
+fn a_5xx_reply_is_recorded_as_failed_with_the_reply_and_not_retried() {
+    let server = SmtpServer::start();
+    server.reply_next(550, "5.7.1 refused by the test policy");
+    let site = email_site(server.port, "[\"email\"]", &[QUALITY], "");
+    drifting_series(&site);
+    site.once();
+    assert_eq!(server.attempts(), 1);
+    let status = site.status();
+    assert_eq!(status["outbox_pending"], 0, "{status:#}");
+    assert_eq!(status["outbox_failed"], 1, "{status:#}");
+    let undelivered = status["undelivered"].as_array().unwrap();
+    assert_eq!(undelivered.len(), 1);
+    assert_eq!(undelivered[0]["state"], "failed");
+    assert_eq!(undelivered[0]["recipient"], QUALITY);
+    let error = undelivered[0]["last_error"].as_str().unwrap();
+    assert!(error.contains("550"), "{error}");
+    assert!(
+        error.contains("5.7.1 refused by the test policy"),
+        "{error}"
+    );
+
+    site.once();
+    assert_eq!(server.attempts(), 1, "a permanent failure is not retried");
+    assert!(server.received().is_empty());
+}
+
+#[test]
+fn a_server_that_stops_answering_times_out_and_the_message_waits() {
+    // Accepts connections and never says a word (not even the greeting): a hung server.
+    let listener = std::net::TcpListener::bind("127.0.0.1:0").unwrap();
+    let port = listener.local_addr().unwrap().port();
+    std::thread::spawn(move || {
+        let mut held = Vec::new();
+        for conn in listener.incoming().flatten() {
+            held.push(conn);
+        }
+    });
+    let site = email_site(port, "[\"email\"]", &[QUALITY], "");
+    let cfg = std::fs::read_to_string(site.config()).unwrap();
+    std::fs::write(
+        site.config(),
+        cfg.replace("timeout_seconds = 5\n", "timeout_seconds = 1\n"),
+    )
+    .unwrap();
+    drifting_series(&site);
+    let started = std::time::Instant::now();
+    let out = site.once();
+    assert!(
+        started.elapsed() < std::time::Duration::from_secs(30),
+        "run --once took {:?}",
+        started.elapsed()
+    );
+    let log = stderr_of(&out);
+    assert!(log.contains("no complete SMTP exchange within"), "{log}");
+    let status = site.status();
+    assert_eq!(status["lots"], 26);
+    assert_eq!(status["outbox_pending"], 1, "{status:#}");
+}
+
+#[test]
+fn starttls_with_a_private_ca_and_auth_delivers_and_the_password_stays_out_of_the_log() {
+    let pki = tempfile::tempdir().unwrap();
+    let (ca, cert, key) = test_pki(pki.path());
+    let password = "s3cret-Pa55-for-the-test";
+    let server = SmtpServer::start_tls(
+        TlsFiles {
+            cert: &cert,
+            key: &key,
+        },
+        Some(password),
+    );
+    let port = server.port;
+    let tls_section =
+        |ca_line: &str| format!("{ca_line}tls = \"starttls\"\nusername = \"lotdrift\"\n");
+    let run_once = |site: &Site| {
+        let out = cmd(site.path())
+            .args(["run", "--once", "--config"])
+            .arg(site.config())
+            .env("LOTDRIFT_SMTP_PASSWORD", password)
+            .env("LOTDRIFT_LOG", "lotdrift=trace")
+            .output()
+            .unwrap();
+        assert!(out.status.success(), "{}", stderr_of(&out));
+        stderr_of(&out)
+    };
+
+    // Without the CA the certificate is not trusted: nothing is sent, the message waits.
+    let untrusting = email_site(port, "[\"email\"]", &[QUALITY], &tls_section(""));
+    drifting_series(&untrusting);
+    let log = run_once(&untrusting);
+    assert!(server.received().is_empty());
+    assert_eq!(untrusting.status()["outbox_pending"], 1);
+    assert!(log.to_lowercase().contains("certificate"), "{log}");
+
+    // With the CA: STARTTLS, AUTH, delivered.
+    let ca_line = format!("ca_file = \"{}\"\n", ca.display());
+    let site = email_site(port, "[\"email\"]", &[QUALITY], &tls_section(&ca_line));
+    drifting_series(&site);
+    let log = run_once(&site);
+    let got = server.received();
+    assert_eq!(got.len(), 1, "{log}");
+    assert_eq!(got[0].hellos, 2, "EHLO again after STARTTLS");
+    assert_eq!(server.auth_ok(), 1);
+    assert_eq!(site.status()["outbox_pending"], 0);
+    assert!(!log.contains(password), "the password reached the log");
+    let config_dump = site.run(&["check-config"]);
+    assert!(!text(&config_dump.stdout).contains(password));
+}
+
+#[test]
+fn a_source_name_with_cr_lf_is_refused_at_ingest_so_it_never_reaches_a_header() {
+    // The only way names enter the store is a lot file, and the parser refuses control
+    // characters in them (the unit tests of `alert` check the message builder itself with
+    // such names).
+    let server = SmtpServer::start();
+    let site = email_site(server.port, "[\"email\"]", &[QUALITY], "");
+    drifting_series(&site);
+    let evil = "source,characteristic,lot,value\n\
+                \"alder-cells\r\nBcc: victim@else.example\",capacity_mah,AL-999,100.0\n";
+    drop_file(&site.inbox(), "evil.csv", evil);
+    site.once();
+    assert_eq!(site.status()["quarantined"], 1);
+    let reason =
+        std::fs::read_to_string(site.path().join("quarantine/evil.csv.reason.txt")).unwrap();
+    assert!(reason.contains("control character"), "{reason}");
+    let got = server.received();
+    assert_eq!(got.len(), 1);
+    let raw = text(&got[0].data);
+    assert!(!raw.contains("victim@else.example"), "{raw}");
+    assert!(!raw.to_ascii_lowercase().contains("\nbcc:"), "{raw}");
+}
+
+#[test]
+fn test_email_prints_the_server_reply_and_exits_1_when_refused() {
+    let server = SmtpServer::start();
+    let site = email_site(server.port, "[\"log\"]", &[QUALITY, INCOMING], "");
+
+    let ok = site.run(&["alerts", "test-email"]);
+    assert!(ok.status.success(), "{}", stderr_of(&ok));
+    let out = text(&ok.stdout);
+    assert!(
+        out.contains(&format!("{QUALITY}: accepted; server replied: 250 OK")),
+        "{out}"
+    );
+    assert!(out.contains(&format!("{INCOMING}: accepted")), "{out}");
+    let got = server.received();
+    assert_eq!(got.len(), 2);
+    assert_eq!(parse(&got[0]).subject(), Some("lotdrift: test message"));
+
+    server.reply_next(550, "5.1.1 no such mailbox here");
+    let refused = site.run(&["alerts", "test-email"]);
+    assert_eq!(refused.status.code(), Some(1), "{}", stderr_of(&refused));
+    let out = text(&refused.stdout);
+    assert!(
+        out.contains(&format!("{QUALITY}: NOT accepted"))
+            && out.contains("550")
+            && out.contains("5.1.1 no such mailbox here"),
+        "{out}"
+    );
+    assert!(out.contains(&format!("{INCOMING}: accepted")), "{out}");
+    assert_eq!(server.received().len(), 3);
+
+    // No server at all: the connection error is printed, exit 1.
+    let down = email_site(free_port(), "[\"log\"]", &[QUALITY], "");
+    let out = down.run(&["alerts", "test-email"]);
+    assert_eq!(out.status.code(), Some(1));
+    assert!(
+        text(&out.stdout).to_lowercase().contains("connection"),
+        "{}",
+        text(&out.stdout)
+    );
+
+    // No [alerts.email] section: a config error, exit 2, naming the section.
+    let plain = Site::new("");
+    let out = plain.run(&["alerts", "test-email"]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(
+        stderr_of(&out).contains("alerts.email"),
+        "{}",
+        stderr_of(&out)
+    );
+}
