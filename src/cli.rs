@@ -113,7 +113,7 @@ enum Command {
         #[command(subcommand)]
         action: BaselineAction,
     },
-    /// Two-sample test of two files of numbers.
+    /// Two-sample test of two files of numbers, or of two stored sources' lot means.
     Compare(CompareArgs),
     /// Adjust p-values for multiplicity.
     Adjust(AdjustArgs),
@@ -169,12 +169,25 @@ enum AlertsAction {
 
 #[derive(Args, Debug)]
 struct CompareArgs {
+    /// Two stored sources to compare (SOURCE_A SOURCE_B), instead of --a/--b files: each
+    /// lot's mean is one observation, so lots count as lots, not as independent units.
+    #[arg(num_args = 2, value_names = ["SOURCE_A", "SOURCE_B"], conflicts_with_all = ["a", "b"])]
+    sources: Vec<String>,
+    /// With two sources: the characteristic to compare.
+    #[arg(long, requires = "sources")]
+    characteristic: Option<String>,
+    /// With two sources: the window, the latest N lots of each (default: all).
+    #[arg(long, value_name = "N", requires = "sources")]
+    lots: Option<usize>,
+    /// With two sources: the config file.
+    #[arg(long, value_name = "FILE", default_value = "lotdrift.toml")]
+    config: PathBuf,
     /// Sample a: numbers separated by newlines, commas or spaces.
-    #[arg(long, value_name = "FILE")]
-    a: PathBuf,
+    #[arg(long, value_name = "FILE", required_unless_present = "sources")]
+    a: Option<PathBuf>,
     /// Sample b.
-    #[arg(long, value_name = "FILE")]
-    b: PathBuf,
+    #[arg(long, value_name = "FILE", required_unless_present = "sources")]
+    b: Option<PathBuf>,
     /// welch, pooled, mann-whitney, f or brown-forsythe.
     #[arg(long, default_value = "welch")]
     test: String,
@@ -471,7 +484,26 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             Ok(())
         }
         Command::Baseline { action } => baseline(action).await,
-        Command::Compare(args) => compare(args),
+        Command::Compare(args) => {
+            if args.sources.is_empty() {
+                let a = read_numbers(args.a.as_deref(), "--a")?;
+                let b = read_numbers(args.b.as_deref(), "--b")?;
+                compare(args, a, b)
+            } else {
+                let (a, b) = source_lot_means(&args).await?;
+                if !args.json {
+                    println!(
+                        "lot means of {} ({} lots) against {} ({} lots), {}",
+                        args.sources[0],
+                        a.len(),
+                        args.sources[1],
+                        b.len(),
+                        args.characteristic.as_deref().unwrap_or_default()
+                    );
+                }
+                compare(args, a, b)
+            }
+        }
         Command::Adjust(args) => adjust(args),
     }
 }
@@ -745,9 +777,42 @@ fn read_numbers(path: Option<&Path>, what: &str) -> Result<Vec<f64>, Failure> {
     Ok(out)
 }
 
-fn compare(args: CompareArgs) -> Result<(), Failure> {
-    let a = read_numbers(Some(&args.a), "--a")?;
-    let b = read_numbers(Some(&args.b), "--b")?;
+/// The lot means of two stored sources' series of one characteristic (latest `--lots`).
+async fn source_lot_means(args: &CompareArgs) -> Result<(Vec<f64>, Vec<f64>), Failure> {
+    let Some(characteristic) = &args.characteristic else {
+        return Err(usage(
+            "--characteristic: required when comparing two sources",
+        ));
+    };
+    let config = Config::load(&args.config)?;
+    let store = open_existing(&config).await?;
+    let mut out = Vec::new();
+    for source in &args.sources {
+        let Some(series) = store
+            .series_named(source, characteristic)
+            .await
+            .context("compare")?
+        else {
+            return Err(Failure::Runtime(anyhow::anyhow!(
+                "no series {source:?} / {characteristic:?} is stored"
+            )));
+        };
+        let samples = store.series_samples(series).await.context("compare")?;
+        let skip = args.lots.map_or(0, |n| samples.len().saturating_sub(n));
+        out.push(
+            samples[skip..]
+                .iter()
+                .map(|s| s.summary.mean())
+                .collect::<Vec<f64>>(),
+        );
+    }
+    store.close().await;
+    let b = out.pop().unwrap_or_default();
+    let a = out.pop().unwrap_or_default();
+    Ok((a, b))
+}
+
+fn compare(args: CompareArgs, a: Vec<f64>, b: Vec<f64>) -> Result<(), Failure> {
     let test: stats::compare::TestKind = args
         .test
         .parse()

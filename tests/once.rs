@@ -318,3 +318,59 @@ fn a_rebaseline_is_audited_and_later_lots_are_judged_against_it() {
     ]);
     assert_eq!(out.status.code(), Some(2));
 }
+
+#[test]
+fn compare_two_stored_sources_on_their_lot_means() {
+    let site = Site::new("[watch]\nsettle_seconds = 0.0\n");
+    // birchworks mass_g is 3 units higher from lot 23 on; lot means wobble by a fixed,
+    // source-independent pattern. Compare the latest 4 lots of each (lot means as observations).
+    for (si, source) in ["alder-cells", "birchworks"].iter().enumerate() {
+        for lot in 0..26 {
+            let wobble = 0.1 * ((lot * 7 % 5) as f64 - 2.0);
+            let shift = if si == 1 && lot >= 22 { 3.0 } else { 0.0 };
+            let code = format!("{}-{:03}", &source[..2].to_uppercase(), lot + 1);
+            let values = lot_values(12, 46.5 + wobble + shift, 1.0, lot);
+            let text = long_file(source, &code, &lot_date(lot), &[("mass_g", values)]);
+            drop_file(&site.inbox(), &format!("{code}.csv"), &text);
+        }
+    }
+    site.once();
+    let out = site.run(&[
+        "compare",
+        "birchworks",
+        "alder-cells",
+        "--characteristic",
+        "mass_g",
+        "--lots",
+        "4",
+        "--json",
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(v["n_a"], 4);
+    assert_eq!(v["n_b"], 4);
+    let est = v["estimate"].as_f64().unwrap();
+    assert!((est - 3.0).abs() < 1e-6, "{v}");
+    // Over the whole history the shift is diluted but the estimate is exact: 4 of 26 lots.
+    let out = site.run(&[
+        "compare",
+        "birchworks",
+        "alder-cells",
+        "--characteristic",
+        "mass_g",
+        "--json",
+    ]);
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert!(
+        (v["estimate"].as_f64().unwrap() - 3.0 * 4.0 / 26.0).abs() < 1e-6,
+        "{v}"
+    );
+    let out = site.run(&[
+        "compare",
+        "birchworks",
+        "nobody",
+        "--characteristic",
+        "mass_g",
+    ]);
+    assert_eq!(out.status.code(), Some(1));
+}
