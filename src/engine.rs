@@ -57,32 +57,49 @@ pub enum EngineError {
     Store(#[from] StoreError),
 }
 
+/// Series decided and written per transaction: bounds the memory of a large backfill. A
+/// source is never split, since one lot's characteristics form a family.
+const SERIES_PER_PASS: usize = 64;
+
 /// Loads the undecided lots, decides them, and writes the decisions.
 pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, EngineError> {
     let mut work = store.pending_work().await?;
-    // Baselines about to be frozen get their residuals' normality checked.
-    for w in &mut work {
-        if w.baseline.is_none() && w.pending.len() >= config.monitor.baseline_lots {
-            let ids: Vec<i64> = w.pending[..config.monitor.baseline_lots]
-                .iter()
-                .map(|s| s.sample_id)
-                .collect();
-            w.baseline_residuals = Some(store.residuals(&ids, 5000).await?);
+    let recipients = recipients(config);
+    let mut total = PassCounts::default();
+    while !work.is_empty() {
+        let mut end = SERIES_PER_PASS.min(work.len());
+        while end < work.len() && work[end].source == work[end - 1].source {
+            end += 1;
         }
+        let mut chunk: Vec<SeriesWork> = work.drain(..end).collect();
+        // Baselines about to be frozen get their residuals' normality checked.
+        for w in &mut chunk {
+            if w.baseline.is_none() && w.pending.len() >= config.monitor.baseline_lots {
+                let ids: Vec<i64> = w.pending[..config.monitor.baseline_lots]
+                    .iter()
+                    .map(|s| s.sample_id)
+                    .collect();
+                w.baseline_residuals = Some(store.residuals(&ids, 5000).await?);
+            }
+        }
+        let mut pass = decide(&chunk, &config.monitor);
+        pass.recipients = recipients.clone();
+        let counts = store.write_pass(&pass, &now_rfc3339()).await?;
+        total.baselines += counts.baselines;
+        total.evaluations += counts.evaluations;
+        total.opened += counts.opened;
+        total.resolved += counts.resolved;
     }
-    let mut pass = decide(&work, &config.monitor);
-    pass.recipients = recipients(config);
-    let counts = store.write_pass(&pass, &now_rfc3339()).await?;
-    if counts.evaluations > 0 || counts.baselines > 0 {
+    if total.evaluations > 0 || total.baselines > 0 {
         tracing::info!(
-            baselines = counts.baselines,
-            tests = counts.evaluations,
-            alerts_opened = counts.opened,
-            alerts_resolved = counts.resolved,
+            baselines = total.baselines,
+            tests = total.evaluations,
+            alerts_opened = total.opened,
+            alerts_resolved = total.resolved,
             "evaluated"
         );
     }
-    Ok(counts)
+    Ok(total)
 }
 
 /// One outbox row per channel and recipient for every alert event that is announced.
@@ -387,16 +404,16 @@ pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
                 sample_id: s.sample_id,
                 series_id: w.series_id,
                 kind: "mean",
-                test: "lot-mean-t".into(),
+                test: "lot-mean-t",
                 model: None,
-                alternative: alternative.as_str().into(),
+                alternative: alternative.as_str(),
                 delta,
                 statistic: None,
                 df: None,
                 df2: None,
                 p_value: None,
                 p_adjusted: None,
-                method: monitor.family.as_str().into(),
+                method: monitor.family.as_str(),
                 family_size: 0,
                 level: design.level_mean,
                 significant: false,
@@ -414,7 +431,7 @@ pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
             let mut ev = base.clone();
             let mean_signal = match (&t.mean, mean_adj[k]) {
                 (Ok(r), Some((p_adj, size))) => {
-                    ev.model = Some(r.method.as_str().into());
+                    ev.model = Some(r.method.as_str());
                     ev.statistic = Some(r.statistic);
                     ev.df = Some(r.df);
                     ev.p_value = t.mean_p;
@@ -429,7 +446,7 @@ pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
                             let p = t.mean_p.unwrap_or(1.0);
                             let (level, rejected) = o.test(p);
                             ev.level = level;
-                            ev.method = monitor.over_time.as_str().into();
+                            ev.method = monitor.over_time.as_str();
                             ev.p_adjusted = None;
                             rejected
                         }
@@ -442,14 +459,10 @@ pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
                     }
                     ev.significant = lot_significant || cusum_signal;
                     if cusum_signal && !lot_significant {
-                        ev.test = "cusum".into();
-                    }
-                    let mut notes = Vec::new();
-                    if let Some(z) = t.z {
-                        notes.push(format!("z = {z:.3}"));
+                        ev.test = "cusum";
                     }
                     if design.normality_p.is_some_and(|p| p < NON_NORMAL_P) {
-                        notes.push(format!(
+                        ev.note = Some(format!(
                             "baseline residuals fail the normality check (Shapiro–Wilk p = \
                              {:.2e}); the test rests on lot means of {} units being close to \
                              normal",
@@ -457,7 +470,6 @@ pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
                             s.summary.n()
                         ));
                     }
-                    ev.note = (!notes.is_empty()).then(|| notes.join("; "));
                     Some(ev.significant)
                 }
                 (result, _) => {
@@ -482,9 +494,9 @@ pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
                 let (p_adj, size) = spread_adj[k].unwrap_or((p, 1));
                 let mut ev = base.clone();
                 ev.kind = "spread";
-                ev.test = "f-variance".into();
-                ev.model = Some("within-lot".into());
-                ev.alternative = "greater".into();
+                ev.test = "f-variance";
+                ev.model = Some("within-lot");
+                ev.alternative = "greater";
                 ev.delta = 0.0;
                 ev.statistic = Some(f);
                 ev.df = Some(df1);

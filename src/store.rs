@@ -225,17 +225,17 @@ pub struct NewEvaluation {
     pub series_id: i64,
     /// "mean" or "spread".
     pub kind: &'static str,
-    pub test: String,
+    pub test: &'static str,
     /// The variance model of the test ("lot-means", "units", "within-lot").
-    pub model: Option<String>,
-    pub alternative: String,
+    pub model: Option<&'static str>,
+    pub alternative: &'static str,
     pub delta: f64,
     pub statistic: Option<f64>,
     pub df: Option<f64>,
     pub df2: Option<f64>,
     pub p_value: Option<f64>,
     pub p_adjusted: Option<f64>,
-    pub method: String,
+    pub method: &'static str,
     pub family_size: i64,
     pub level: f64,
     pub significant: bool,
@@ -1277,16 +1277,16 @@ impl Store {
                     .push_bind(baseline_id)
                     .push_bind(e.kind)
                     .push_bind(at)
-                    .push_bind(&e.test)
-                    .push_bind(e.model.as_deref())
-                    .push_bind(&e.alternative)
+                    .push_bind(e.test)
+                    .push_bind(e.model)
+                    .push_bind(e.alternative)
                     .push_bind(e.delta)
                     .push_bind(e.statistic)
                     .push_bind(e.df)
                     .push_bind(e.df2)
                     .push_bind(e.p_value)
                     .push_bind(e.p_adjusted)
-                    .push_bind(&e.method)
+                    .push_bind(e.method)
                     .push_bind(e.family_size)
                     .push_bind(e.level)
                     .push_bind(e.significant as i64)
