@@ -395,6 +395,41 @@ pub struct HistoryRow {
     pub alert_id: Option<i64>,
 }
 
+/// The columns [`design_from_row`] reads, in its order (prefix `b.` for the baseline table).
+const DESIGN_COLUMNS: &str = "b.lot_count, b.n, b.mean, b.mean_of_means, b.msb, b.msw, \
+     b.df_between, b.df_within, b.n0, b.n_harmonic, b.var_between, b.var_within, b.between_p, \
+     b.normality_p, b.level_mean, b.level_spread, b.cusum_k, b.cusum_h";
+
+/// A stored baseline's design, from [`DESIGN_COLUMNS`] starting at column `o`.
+fn design_from_row(r: &SqliteRow, o: usize) -> Design {
+    let msb: f64 = r.get(o + 4);
+    let msw: f64 = r.get(o + 5);
+    let k: Option<f64> = r.get(o + 16);
+    let h: Option<f64> = r.get(o + 17);
+    Design {
+        re: RandomEffects {
+            m: r.get::<i64, _>(o) as usize,
+            n_total: r.get::<i64, _>(o + 1) as u64,
+            grand_mean: r.get(o + 2),
+            mean_of_means: r.get(o + 3),
+            msb,
+            msw,
+            df_between: r.get(o + 6),
+            df_within: r.get(o + 7),
+            n0: r.get(o + 8),
+            n_harmonic: r.get(o + 9),
+            var_between: r.get(o + 10),
+            var_within: r.get(o + 11),
+            f_statistic: msb / msw,
+            p_value: r.get(o + 12),
+        },
+        level_mean: r.get(o + 14),
+        level_spread: r.get(o + 15),
+        cusum: k.zip(h),
+        normality_p: r.get(o + 13),
+    }
+}
+
 fn summary_from_row(row: &SqliteRow, first: usize) -> Result<Summary> {
     let n: i64 = row.get(first);
     let mean: f64 = row.get(first + 1);
@@ -1085,50 +1120,22 @@ impl Store {
             .map(|(i, w)| (w.series_id, i))
             .collect();
 
-        for r in sqlx::query(
-            "SELECT series_id, id, lot_count, n, mean, m2, min_value, max_value, definition, \
-                    mean_of_means, msb, msw, df_between, df_within, n0, n_harmonic, var_between, \
-                    var_within, between_p, normality_p, level_mean, level_spread, cusum_k, \
-                    cusum_h FROM baseline WHERE retired_at IS NULL",
-        )
+        for r in sqlx::query(&format!(
+            "SELECT b.series_id, b.id, b.n, b.mean, b.m2, b.min_value, b.max_value, b.definition, \
+             {DESIGN_COLUMNS} FROM baseline b WHERE b.retired_at IS NULL"
+        ))
         .fetch_all(&self.pool)
         .await
         .doing("loading baselines")?
         {
             if let Some(i) = index.get(&r.get::<i64, _>(0)) {
-                let summary = summary_from_row(&r, 3)?;
-                let msb: f64 = r.get(10);
-                let msw: f64 = r.get(11);
-                let re = RandomEffects {
-                    m: r.get::<i64, _>(2) as usize,
-                    n_total: summary.n(),
-                    grand_mean: summary.mean(),
-                    mean_of_means: r.get(9),
-                    msb,
-                    msw,
-                    df_between: r.get(12),
-                    df_within: r.get(13),
-                    n0: r.get(14),
-                    n_harmonic: r.get(15),
-                    var_within: r.get(17),
-                    var_between: r.get(16),
-                    f_statistic: msb / msw,
-                    p_value: r.get(18),
-                };
-                let k: Option<f64> = r.get(22);
-                let h: Option<f64> = r.get(23);
+                let design = design_from_row(&r, 8);
                 work[*i].baseline = Some(BaselineRow {
                     id: r.get(1),
-                    lot_count: r.get::<i64, _>(2) as usize,
-                    summary,
-                    definition: r.get(8),
-                    design: Design {
-                        re,
-                        level_mean: r.get(20),
-                        level_spread: r.get(21),
-                        cusum: k.zip(h),
-                        normality_p: r.get(19),
-                    },
+                    lot_count: design.re.m,
+                    summary: summary_from_row(&r, 2)?,
+                    definition: r.get(7),
+                    design,
                 });
             }
         }
@@ -1740,52 +1747,18 @@ impl Store {
 
     /// The frozen design of every series that has one, by source and characteristic.
     pub async fn series_designs(&self) -> Result<Vec<(String, String, Design)>> {
-        let rows = sqlx::query(
-            "SELECT src.name, ch.name, b.lot_count, b.n, b.mean, b.mean_of_means, b.msb, b.msw, \
-                    b.df_between, b.df_within, b.n0, b.n_harmonic, b.var_between, b.var_within, \
-                    b.between_p, b.normality_p, b.level_mean, b.level_spread, b.cusum_k, \
-                    b.cusum_h \
+        let rows = sqlx::query(&format!(
+            "SELECT src.name, ch.name, {DESIGN_COLUMNS} \
              FROM baseline b JOIN series se ON se.id = b.series_id AND b.retired_at IS NULL \
              JOIN source src ON src.id = se.source_id \
-             JOIN characteristic ch ON ch.id = se.characteristic_id ORDER BY src.name, ch.name",
-        )
+             JOIN characteristic ch ON ch.id = se.characteristic_id ORDER BY src.name, ch.name"
+        ))
         .fetch_all(&self.pool)
         .await
         .doing("reading series designs")?;
         Ok(rows
             .iter()
-            .map(|r| {
-                let msb: f64 = r.get(6);
-                let msw: f64 = r.get(7);
-                let k: Option<f64> = r.get(18);
-                let h: Option<f64> = r.get(19);
-                (
-                    r.get(0),
-                    r.get(1),
-                    Design {
-                        re: RandomEffects {
-                            m: r.get::<i64, _>(2) as usize,
-                            n_total: r.get::<i64, _>(3) as u64,
-                            grand_mean: r.get(4),
-                            mean_of_means: r.get(5),
-                            msb,
-                            msw,
-                            df_between: r.get(8),
-                            df_within: r.get(9),
-                            n0: r.get(10),
-                            n_harmonic: r.get(11),
-                            var_between: r.get(12),
-                            var_within: r.get(13),
-                            f_statistic: msb / msw,
-                            p_value: r.get(14),
-                        },
-                        level_mean: r.get(16),
-                        level_spread: r.get(17),
-                        cusum: k.zip(h),
-                        normality_p: r.get(15),
-                    },
-                )
-            })
+            .map(|r| (r.get(0), r.get(1), design_from_row(r, 2)))
             .collect())
     }
 

@@ -152,7 +152,13 @@ fn an_alert_reaches_every_recipient_once_with_headers_both_parts_and_the_chart()
         let html = m.body_html(0).unwrap();
         let lot_mean = format!("mean = {:.6}", alert["lot_mean"].as_f64().unwrap());
         let p = format!("p = {:.3e}", alert["p_value"].as_f64().unwrap());
-        for needle in [lot_mean.as_str(), p.as_str(), "welch", "holm", "AL-023"] {
+        for needle in [
+            lot_mean.as_str(),
+            p.as_str(),
+            "lot-mean-t",
+            "holm",
+            "AL-023",
+        ] {
             assert!(
                 plain.contains(needle),
                 "{needle:?} missing in text part:\n{plain}"
