@@ -83,6 +83,10 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
         if fresh.is_empty() {
             break;
         }
+        // Log messages are recorded together after the batch (a crash in between logs them
+        // again, which is harmless); an email's outcome is recorded at once, before the next
+        // message is sent.
+        let mut logged = Vec::new();
         for item in fresh {
             let outcome = match item.channel.as_str() {
                 "email" => {
@@ -121,10 +125,15 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
                     report.expired += 1;
                 }
             }
-            store
-                .outbox_attempted(item.id, &outcome, &now_rfc3339())
-                .await?;
+            if item.channel == "log" {
+                logged.push((item.id, outcome));
+            } else {
+                store
+                    .outbox_attempted(item.id, &outcome, &now_rfc3339())
+                    .await?;
+            }
         }
+        store.outbox_attempted_many(&logged, &now_rfc3339()).await?;
         if (batch as i64) < DRAIN_BATCH {
             break;
         }
