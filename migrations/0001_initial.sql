@@ -189,6 +189,10 @@ CREATE TABLE evaluation (
     cusum_lower     REAL,
     cusum_h         REAL,
     cusum_signal    INTEGER NOT NULL DEFAULT 0,
+    -- Cpk of the lot against the characteristic's specification limits, with its interval
+    cpk             REAL,
+    cpk_low         REAL,
+    cpk_high        REAL,
     note            TEXT,
     UNIQUE (sample_id, kind)
 );

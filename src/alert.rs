@@ -412,7 +412,7 @@ pub fn facts(item: &OutboxItem) -> Vec<(&'static str, String)> {
     rows.push((
         "Test",
         format!(
-            "{} ({}), t = {}, df = {}, p = {}",
+            "{} ({}), statistic = {}, df = {}, p = {}",
             a.test,
             a.alternative,
             fmt_opt(a.statistic),
@@ -432,6 +432,12 @@ pub fn facts(item: &OutboxItem) -> Vec<(&'static str, String)> {
     ));
     if let Some(model) = &a.model {
         rows.push(("Model", model.clone()));
+    }
+    if let Some([c, lo, hi]) = a.cpk {
+        rows.push((
+            "Cpk (this lot)",
+            format!("{c:.3}, 95 % interval [{lo:.3}, {hi:.3}]"),
+        ));
     }
     if let Some(note) = &a.note {
         rows.push(("Note", clean(note)));
@@ -790,6 +796,7 @@ mod tests {
                 kind: "mean".into(),
                 model: Some("units".into()),
                 note: None,
+                cpk: None,
             },
         }
     }

@@ -374,6 +374,8 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                 .context("status")?
                 .into_iter()
                 .map(|(source, characteristic, d)| report::SeriesStatus {
+                    baseline_cpk: crate::engine::baseline_cpk(&d, &config.monitor, &characteristic)
+                        .map(|c| [c.cpk, c.low, c.high]),
                     detectable_shift: crate::engine::detectable_shift(
                         &d,
                         &config.monitor,
@@ -393,6 +395,11 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                     level_mean: d.level_mean,
                     cusum_h: d.cusum.map(|c| c.1),
                     normality_p: d.normality_p,
+                    test: if crate::engine::distribution_free(&d) {
+                        "mann-whitney"
+                    } else {
+                        "lot-mean-t"
+                    },
                 })
                 .collect();
             if json {

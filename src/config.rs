@@ -88,6 +88,8 @@ pub struct RawCharacteristic {
     pub direction: Option<String>,
     pub min_shift: Option<f64>,
     pub spread: Option<bool>,
+    pub lsl: Option<f64>,
+    pub usl: Option<f64>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -183,6 +185,9 @@ pub struct CharacteristicPolicy {
     pub min_shift: f64,
     /// Whether to test the lot's spread (within-lot variance) against the baseline.
     pub spread: bool,
+    /// Specification limits, for Cpk reporting (never for alerting).
+    pub lsl: Option<f64>,
+    pub usl: Option<f64>,
 }
 
 /// How the stream of lot tests of a series is controlled over time.
@@ -269,6 +274,8 @@ impl Monitor {
                 direction: Direction::TwoSided,
                 min_shift: 0.0,
                 spread: self.spread,
+                lsl: None,
+                usl: None,
             })
     }
 
@@ -577,12 +584,24 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
                 format!("must be a number ≥ 0 in the characteristic's unit (got {min_shift})"),
             );
         }
+        for (k, v) in [("lsl", c.lsl), ("usl", c.usl)] {
+            if v.is_some_and(|v| !v.is_finite()) {
+                p.push(&key(k), "must be a finite number");
+            }
+        }
+        if let (Some(l), Some(u)) = (c.lsl, c.usl)
+            && l >= u
+        {
+            p.push(&key("lsl"), format!("must be below usl ({l} >= {u})"));
+        }
         per_characteristic.insert(
             name,
             CharacteristicPolicy {
                 direction,
                 min_shift,
                 spread: c.spread.unwrap_or(spread_default),
+                lsl: c.lsl,
+                usl: c.usl,
             },
         );
     }
@@ -830,6 +849,8 @@ characteristics = []     # only these characteristics; empty = every characteris
 # direction = "higher-is-better"   # "two-sided" | "higher-is-better" | "lower-is-better"
 # min_shift = 5.0                  # alert only on shifts significantly larger than this (its unit)
 # spread = true
+# lsl = 2900.0                     # specification limits: Cpk of baseline and lot is reported
+# usl = 3100.0
 
 [alerts]
 channels = ["log"]       # "log", "email", or both

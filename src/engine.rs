@@ -72,14 +72,42 @@ pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, Engi
             end += 1;
         }
         let mut chunk: Vec<SeriesWork> = work.drain(..end).collect();
-        // Baselines about to be frozen get their residuals' normality checked.
+        // Baselines about to be frozen get their residuals' normality checked; series whose
+        // baseline is clearly non-normal without a between-lot component are tested on their
+        // unit values, distribution-free.
         for w in &mut chunk {
-            if w.baseline.is_none() && w.pending.len() >= config.monitor.baseline_lots {
-                let ids: Vec<i64> = w.pending[..config.monitor.baseline_lots]
+            let n = config.monitor.baseline_lots;
+            let baseline_ids: Option<Vec<i64>> = match &w.baseline {
+                Some(b) if distribution_free(&b.design) => {
+                    Some(store.baseline_samples(b.id).await?)
+                }
+                Some(_) => None,
+                None if w.pending.len() >= n => {
+                    let ids: Vec<i64> = w.pending[..n].iter().map(|s| s.sample_id).collect();
+                    let residuals = store.residuals(&ids, 5000).await?;
+                    let summaries: Vec<Summary> =
+                        w.pending[..n].iter().map(|s| s.summary).collect();
+                    let non_normal = crate::stats::normality::shapiro_wilk(&residuals)
+                        .is_ok_and(|r| r.p_value < NON_NORMAL_P);
+                    let no_between = monitoring::random_effects(&summaries)
+                        .is_ok_and(|re| re.var_between == 0.0);
+                    w.baseline_residuals = Some(residuals);
+                    (non_normal && no_between).then_some(ids)
+                }
+                None => None,
+            };
+            if let Some(base_ids) = baseline_ids {
+                let lot_ids: Vec<i64> = w
+                    .pending
                     .iter()
                     .map(|s| s.sample_id)
+                    .filter(|id| !base_ids.contains(id))
                     .collect();
-                w.baseline_residuals = Some(store.residuals(&ids, 5000).await?);
+                let base = store.values(&base_ids).await?;
+                w.units = Some(crate::store::UnitValues {
+                    baseline: base.into_values().flatten().collect(),
+                    lots: store.values(&lot_ids).await?,
+                });
             }
         }
         let mut pass = decide(&chunk, &config.monitor);
@@ -123,6 +151,14 @@ pub fn recipients(config: &Config) -> Vec<(String, String)> {
 /// Below this Shapiro–Wilk p the baseline residuals count as clearly non-normal (common
 /// practice for a screening check).
 const NON_NORMAL_P: f64 = 0.001;
+
+/// Whether a series is tested on unit values by Mann–Whitney instead of the lot t test: its
+/// baseline residuals are clearly non-normal and lots show no between-lot component (so units
+/// are exchangeable across lots and a rank test on units is valid). With a between-lot
+/// component, lot means (averages of n units) carry the test.
+pub fn distribution_free(design: &Design) -> bool {
+    design.normality_p.is_some_and(|p| p < NON_NORMAL_P) && design.re.var_between == 0.0
+}
 
 /// CUSUM decision intervals already computed in this pass, by (k, rate, m, df, two-sided):
 /// a backfill designs hundreds of series with the same few parameters.
@@ -220,6 +256,8 @@ struct Tested {
     spread: Option<(f64, f64, f64, f64)>,
     /// The lot mean standardised by the baseline: (mean − baseline mean) / sd of a lot mean.
     z: Option<f64>,
+    /// Mann–Whitney (U, p) when the series is tested distribution-free.
+    rank: Option<(f64, f64)>,
 }
 
 /// The decisions for `work`, a pure function of the stored state and the policy.
@@ -301,6 +339,30 @@ pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
                 (Ok(m), _) => Some(m.p_value),
                 _ => None,
             };
+            // Distribution-free: Mann–Whitney of the lot's units against the baseline's units,
+            // with the lot shifted by the hypothesised difference.
+            let rank = match (&w.units, distribution_free(&design)) {
+                (Some(u), true) => u.lots.get(&s.sample_id).and_then(|lot| {
+                    let test = |shift: f64, alt: Alternative| {
+                        let shifted: Vec<f64> = lot.iter().map(|v| v - shift).collect();
+                        crate::stats::rank::mann_whitney(&shifted, &u.baseline, alt).ok()
+                    };
+                    match (policy.direction, policy.min_shift > 0.0) {
+                        (Direction::TwoSided, true) => {
+                            let lo = test(-policy.min_shift, Alternative::Less)?;
+                            let hi = test(policy.min_shift, Alternative::Greater)?;
+                            let r = if lo.p_value < hi.p_value { lo } else { hi };
+                            Some((r.statistic, (2.0 * r.p_value).min(1.0)))
+                        }
+                        _ => test(delta, alternative).map(|r| (r.statistic, r.p_value)),
+                    }
+                }),
+                _ => None,
+            };
+            let mean_p = match rank {
+                Some((_, p)) => Some(p),
+                None => mean_p,
+            };
             let spread = if policy.spread {
                 spread_test(&design.re, &s.summary)
             } else {
@@ -320,6 +382,7 @@ pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
                 mean_p,
                 spread,
                 z,
+                rank,
             });
         }
     }
@@ -425,6 +488,7 @@ pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
                 std_error: None,
                 cusum: None,
                 cusum_signal: false,
+                cpk: lot_cpk(&policy, &s.summary),
                 note: None,
             };
             // Mean (the lot test and the CUSUM).
@@ -461,7 +525,18 @@ pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
                     if cusum_signal && !lot_significant {
                         ev.test = "cusum";
                     }
-                    if design.normality_p.is_some_and(|p| p < NON_NORMAL_P) {
+                    if let Some((u, _)) = t.rank {
+                        ev.test = "mann-whitney";
+                        ev.model = Some("units, distribution-free");
+                        ev.statistic = Some(u);
+                        ev.df = None;
+                        ev.note = Some(format!(
+                            "baseline residuals fail the normality check (Shapiro–Wilk p = \
+                             {:.2e}): the lot's units were ranked against the baseline's units \
+                             (Mann–Whitney); statistic is U of the lot",
+                            design.normality_p.unwrap_or(0.0)
+                        ));
+                    } else if design.normality_p.is_some_and(|p| p < NON_NORMAL_P) {
                         ev.note = Some(format!(
                             "baseline residuals fail the normality check (Shapiro–Wilk p = \
                              {:.2e}); the test rests on lot means of {} units being close to \
@@ -591,6 +666,40 @@ impl OnlineFdr {
             }
         }
     }
+}
+
+/// Cpk of a lot against the characteristic's specification limits, when it has any.
+fn lot_cpk(policy: &crate::config::CharacteristicPolicy, lot: &Summary) -> Option<(f64, f64, f64)> {
+    if policy.lsl.is_none() && policy.usl.is_none() {
+        return None;
+    }
+    let c =
+        crate::stats::capability::cpk(lot.mean(), lot.sd()?, lot.n(), policy.lsl, policy.usl, 0.95)
+            .ok()?;
+    Some((c.cpk, c.low, c.high))
+}
+
+/// Cpk of a baseline (mean of lot means, total sd including the between-lot component, all
+/// its units), when the characteristic has specification limits.
+pub fn baseline_cpk(
+    design: &Design,
+    monitor: &Monitor,
+    characteristic: &str,
+) -> Option<crate::stats::capability::Cpk> {
+    let policy = monitor.policy(characteristic);
+    if policy.lsl.is_none() && policy.usl.is_none() {
+        return None;
+    }
+    let re = &design.re;
+    crate::stats::capability::cpk(
+        re.mean_of_means,
+        (re.var_between + re.var_within).sqrt(),
+        re.n_total,
+        policy.lsl,
+        policy.usl,
+        0.95,
+    )
+    .ok()
 }
 
 /// One-sided F test of the lot's variance against the baseline's within-lot variance:

@@ -71,6 +71,11 @@ pub struct SeriesStatus {
     /// Smallest shift of one lot's mean flagged with 90 % power by the lot test.
     pub detectable_shift: Option<f64>,
     pub normality_p: Option<f64>,
+    /// "lot t test" or "Mann–Whitney on units" (baseline clearly non-normal, no between-lot
+    /// component).
+    pub test: &'static str,
+    /// Cpk of the baseline [value, low, high] when specification limits are configured.
+    pub baseline_cpk: Option<[f64; 3]>,
 }
 
 pub fn series_text(series: &[SeriesStatus]) -> String {

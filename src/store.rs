@@ -194,6 +194,15 @@ pub struct SeriesWork {
     /// Within-lot residuals of the lots about to form the baseline (filled by the engine's
     /// caller when a baseline is to be frozen).
     pub baseline_residuals: Option<Vec<f64>>,
+    /// Unit values, for series tested distribution-free (filled by the engine's caller).
+    pub units: Option<UnitValues>,
+}
+
+/// The unit values of a series' baseline and of its pending lots (by sample id).
+#[derive(Debug, Clone, Default)]
+pub struct UnitValues {
+    pub baseline: Vec<f64>,
+    pub lots: HashMap<i64, Vec<f64>>,
 }
 
 /// A series' running state after a pass (CUSUM sums, online FDR state).
@@ -249,6 +258,8 @@ pub struct NewEvaluation {
     /// CUSUM sums after this lot and the decision interval: (upper, lower, h).
     pub cusum: Option<(f64, f64, f64)>,
     pub cusum_signal: bool,
+    /// Cpk of the lot with its interval, when specification limits are configured.
+    pub cpk: Option<(f64, f64, f64)>,
     pub note: Option<String>,
 }
 
@@ -343,8 +354,10 @@ pub struct AlertRow {
     pub lots: i64,
     /// The variance model of the opening test ("lot-means", "units", "within-lot").
     pub model: Option<String>,
-    /// What the opening decision recorded beside the numbers (CUSUM z, normality).
+    /// What the opening decision recorded beside the numbers (normality).
     pub note: Option<String>,
+    /// Cpk of the opening lot [value, low, high], when specification limits are configured.
+    pub cpk: Option<[f64; 3]>,
 }
 
 /// Counts for `lotdrift status`.
@@ -1109,6 +1122,7 @@ impl Store {
                         .collect(),
                 ),
                 baseline_residuals: None,
+                units: None,
             })
             .collect();
         if work.is_empty() {
@@ -1183,6 +1197,39 @@ impl Store {
             }
         }
         Ok(work)
+    }
+
+    /// The unit values of the given samples, by sample id, in file order.
+    pub async fn values(&self, sample_ids: &[i64]) -> Result<HashMap<i64, Vec<f64>>> {
+        let mut out: HashMap<i64, Vec<f64>> = HashMap::new();
+        for chunk in sample_ids.chunks(ROWS_PER_INSERT) {
+            let mut q = QueryBuilder::<Sqlite>::new(
+                "SELECT sample_id, value FROM measurement WHERE sample_id IN (",
+            );
+            let mut sep = q.separated(", ");
+            for id in chunk {
+                sep.push_bind(*id);
+            }
+            q.push(") ORDER BY sample_id, seq");
+            for r in q
+                .build()
+                .fetch_all(&self.pool)
+                .await
+                .doing("reading unit values")?
+            {
+                out.entry(r.get(0)).or_default().push(r.get(1));
+            }
+        }
+        Ok(out)
+    }
+
+    /// The samples of a baseline.
+    pub async fn baseline_samples(&self, baseline_id: i64) -> Result<Vec<i64>> {
+        sqlx::query_scalar("SELECT sample_id FROM baseline_lot WHERE baseline_id = ?")
+            .bind(baseline_id)
+            .fetch_all(&self.pool)
+            .await
+            .doing("reading baseline lots")
     }
 
     /// Within-lot residuals (value − its lot's mean) of the given samples, at most `limit`
@@ -1267,7 +1314,7 @@ impl Store {
                  model, alternative, delta, statistic, df, df2, p_value, p_adjusted, method, \
                  family_size, level, significant, baseline_n, baseline_mean, baseline_sd, lot_n, \
                  lot_mean, lot_sd, estimate, ci_low, ci_high, std_error, cusum_upper, \
-                 cusum_lower, cusum_h, cusum_signal, note) ",
+                 cusum_lower, cusum_h, cusum_signal, cpk, cpk_low, cpk_high, note) ",
             );
             let mut bad = None;
             q.push_values(chunk, |mut r, d| {
@@ -1311,6 +1358,9 @@ impl Store {
                     .push_bind(e.cusum.map(|c| c.1))
                     .push_bind(e.cusum.map(|c| c.2))
                     .push_bind(e.cusum_signal as i64)
+                    .push_bind(e.cpk.map(|c| c.0))
+                    .push_bind(e.cpk.map(|c| c.1))
+                    .push_bind(e.cpk.map(|c| c.2))
                     .push_bind(e.note.as_deref());
             });
             if let Some(series) = bad {
@@ -1897,7 +1947,8 @@ const ALERT_COLUMNS: &str = "a.id, src.name, ch.name, a.state, a.opened_at, a.re
      e.method, e.level, e.family_size, e.baseline_n, e.baseline_mean, e.baseline_sd, e.lot_n, \
      e.lot_mean, e.lot_sd, e.estimate, e.ci_low, e.ci_high, \
      (SELECT COUNT(*) FROM alert_event x WHERE x.alert_id = a.id \
-      AND x.kind IN ('opened', 'attached')), a.kind, e.model, e.note";
+      AND x.kind IN ('opened', 'attached')), a.kind, e.model, e.note, e.cpk, e.cpk_low, \
+     e.cpk_high";
 
 const ALERT_JOINS: &str = "JOIN evaluation e ON e.id = a.opening_evaluation \
      JOIN sample sm ON sm.id = e.sample_id JOIN lot l ON l.id = sm.lot_id \
@@ -1940,6 +1991,14 @@ fn alert_from_row(r: &SqliteRow, o: usize) -> AlertRow {
         kind: r.get(o + 27),
         model: r.get(o + 28),
         note: r.get(o + 29),
+        cpk: match (
+            r.get::<Option<f64>, _>(o + 30),
+            r.get::<Option<f64>, _>(o + 31),
+            r.get::<Option<f64>, _>(o + 32),
+        ) {
+            (Some(a), Some(b), Some(c)) => Some([a, b, c]),
+            _ => None,
+        },
     }
 }
 

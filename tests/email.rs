@@ -155,7 +155,7 @@ fn an_alert_reaches_every_recipient_once_with_headers_both_parts_and_the_chart()
         for needle in [
             lot_mean.as_str(),
             p.as_str(),
-            "lot-mean-t",
+            alert["test"].as_str().unwrap(),
             "holm",
             "AL-023",
         ] {

@@ -76,6 +76,8 @@ fn direction_and_minimum_shift_rules_hold() {
             direction: lotdrift::config::Direction::HigherIsBetter,
             min_shift: 0.0,
             spread: false,
+            lsl: None,
+            usl: None,
         },
     );
     let up = run(&scenario(3.0, 40, 30, 31), &monitor);
@@ -91,6 +93,8 @@ fn direction_and_minimum_shift_rules_hold() {
             direction: lotdrift::config::Direction::TwoSided,
             min_shift: 2.0,
             spread: false,
+            lsl: None,
+            usl: None,
         },
     );
     let small = run(&scenario(2.0, 40, 30, 33), &monitor); // 1.06 units < 2.0

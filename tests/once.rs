@@ -39,7 +39,7 @@ fn a_drifting_series_alerts_and_no_other_does() {
     assert_eq!(a["kind"], "mean");
     assert_eq!(
         a["model"], "units",
-        "identical lot means: no between-lot component"
+        "lot means differ less than their units explain: no between-lot component"
     );
     assert!(a["p_value"].as_f64().unwrap() < 1e-6);
     assert!(a["p_adjusted"].as_f64().unwrap() >= a["p_value"].as_f64().unwrap());
@@ -373,4 +373,45 @@ fn compare_two_stored_sources_on_their_lot_means() {
         "mass_g",
     ]);
     assert_eq!(out.status.code(), Some(1));
+}
+
+#[test]
+fn a_clearly_non_normal_baseline_is_tested_distribution_free_and_cpk_is_reported() {
+    let site = Site::new(
+        "[watch]\nsettle_seconds = 0.0\n[characteristic.leak_rate]\ndirection = \"lower-is-better\"\nusl = 30.0\n",
+    );
+    // Leak rate: a skewed (exponential-shaped) pattern of units, the same in every lot, so the
+    // baseline has no between-lot component and its residuals are far from normal. From lot
+    // 23 on the whole distribution moves up by 3.
+    for lot in 0..26 {
+        let shift = if lot >= 22 { 3.0 } else { 0.0 };
+        let values: Vec<f64> = (0..24)
+            .map(|i| {
+                let u = (((i + lot) % 24) as f64 + 0.5) / 24.0;
+                2.0 + shift - 2.0 * (1.0 - u).ln()
+            })
+            .collect();
+        let code = format!("CE-{:03}", lot + 1);
+        let text = long_file(
+            "cedar-energy",
+            &code,
+            &lot_date(lot),
+            &[("leak_rate", values)],
+        );
+        drop_file(&site.inbox(), &format!("{code}.csv"), &text);
+    }
+    site.once();
+    let alerts = site.alerts();
+    assert_eq!(alerts.len(), 1, "{alerts:#?}");
+    let a = &alerts[0];
+    assert_eq!(a["test"], "mann-whitney", "{a}");
+    assert_eq!(a["model"], "units, distribution-free");
+    assert!(a["note"].as_str().unwrap().contains("Shapiro–Wilk"));
+    assert_eq!(a["lot"], "CE-023");
+    let cpk = a["cpk"].as_array().expect("Cpk with usl configured");
+    assert!(cpk[1].as_f64().unwrap() < cpk[0].as_f64().unwrap());
+    let status = site.status();
+    let series = &status["series"][0];
+    assert_eq!(series["test"], "mann-whitney");
+    assert!(series["baseline_cpk"][0].as_f64().unwrap() > cpk[0].as_f64().unwrap());
 }

@@ -117,6 +117,7 @@ pub fn run(scenario: &Scenario, monitor: &Monitor) -> Outcome {
             cusum: (0.0, 0.0),
             online: (0, Vec::new()),
             baseline_residuals: None,
+            units: None,
         });
     }
     let pass = super::decide(&work, monitor);

@@ -6,6 +6,7 @@
 //! validates its input and reports problems as a typed [`StatsError`]; no
 //! function panics on user input and no result field is ever NaN.
 
+pub mod capability;
 pub mod compare;
 pub mod dist;
 pub mod effect;

@@ -178,15 +178,17 @@ pub fn wait_exit(child: &mut Child, limit: Duration) -> std::process::ExitStatus
     }
 }
 
-/// Unit values of one lot: a fixed symmetric pattern (mean 0, sd about 1) scaled and shifted.
-/// The pattern is rotated per lot so lots are not identical. Deterministic plumbing data, not
-/// a statistical fixture: the statistics are checked against published values elsewhere.
+/// Unit values of one lot: normal quantiles of (i + φ)/n (mean about 0, sd about 1) scaled and
+/// shifted, with an offset φ in (0, 1) that differs per lot (so the baseline's units are not a
+/// few values repeated, which a normality check would rightly reject) and rotated per lot.
+/// Deterministic plumbing data, not a statistical fixture: the statistics are checked against
+/// published values elsewhere.
 pub fn lot_values(n: usize, mean: f64, sd: f64, lot: usize) -> Vec<f64> {
+    let phi = 0.05 + 0.9 * ((lot as f64 * 0.618_033_988_75) % 1.0);
     let pattern: Vec<f64> = (0..n)
         .map(|i| {
-            let u = (i as f64 + 0.5) / n as f64;
-            // A logistic quantile approximates a normal one well enough for plumbing tests.
-            (u / (1.0 - u)).ln() / 1.702
+            let u = (i as f64 + phi) / n as f64;
+            lotdrift::stats::dist::normal_quantile(u).unwrap()
         })
         .collect();
     (0..n).map(|i| mean + sd * pattern[(i + lot) % n]).collect()
