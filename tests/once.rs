@@ -140,7 +140,7 @@ fn duplicates_are_archived_and_conflicting_resends_quarantined_until_replaced() 
             .to_str()
             .unwrap(),
         "--reason",
-        "transcription error in unit 2",
+        "typing error in unit 2",
     ]);
     assert!(out.status.success(), "{}", text(&out.stderr));
     let hist = site.json(&["history", "cedar-energy", "mass_g"]);

@@ -14,27 +14,7 @@ use lotdrift::stats::{
     normal_sf, pooled_samples, shapiro_wilk, t_cdf, t_isf, t_quantile, t_sf, welch_samples,
 };
 use serde::Deserialize;
-use stats_common::tol;
-
-/// Sample data are stored as decimal strings (see the generator) and parsed
-/// with Rust's correctly rounded `str::parse`.
-fn strings<'de, D: serde::Deserializer<'de>>(d: D) -> Result<Vec<f64>, D::Error> {
-    let raw: Vec<String> = Vec::deserialize(d)?;
-    raw.iter()
-        .map(|s| s.parse::<f64>().map_err(serde::de::Error::custom))
-        .collect()
-}
-
-fn string_groups<'de, D: serde::Deserializer<'de>>(d: D) -> Result<Vec<Vec<f64>>, D::Error> {
-    let raw: Vec<Vec<String>> = Vec::deserialize(d)?;
-    raw.iter()
-        .map(|g| {
-            g.iter()
-                .map(|s| s.parse::<f64>().map_err(serde::de::Error::custom))
-                .collect()
-        })
-        .collect()
-}
+use stats_common::{string_groups, strings, tol};
 
 #[derive(Deserialize)]
 struct Fixtures {

@@ -8,6 +8,8 @@
 //! reference folder (see REFERENCES.md there, sections 7, 8 and the LITHOGRA
 //! section).
 
+mod stats_common;
+
 use lotdrift::stats::monitoring::{
     EstimationQuadrature, Lond, LondState, LordPlusPlus, LordState, LotVarianceModel, cusum_arl,
     cusum_arl_nodes, cusum_arl_two_sided, cusum_h_for_arl, cusum_h_for_rate_estimated,
@@ -17,6 +19,7 @@ use lotdrift::stats::monitoring::{
 use lotdrift::stats::{Alternative, StatsError, Summary, normal_isf, t_sf};
 use proptest::prelude::*;
 use serde::Deserialize;
+use stats_common::{string_groups, strings};
 use std::path::PathBuf;
 
 /// Named tolerances.
@@ -103,24 +106,6 @@ fn summaries(lots: &[Vec<f64>]) -> Vec<Summary> {
 // ---------------------------------------------------------------------------
 // Fixtures
 // ---------------------------------------------------------------------------
-
-fn strings<'de, D: serde::Deserializer<'de>>(d: D) -> Result<Vec<f64>, D::Error> {
-    let raw: Vec<String> = Vec::deserialize(d)?;
-    raw.iter()
-        .map(|s| s.parse::<f64>().map_err(serde::de::Error::custom))
-        .collect()
-}
-
-fn string_groups<'de, D: serde::Deserializer<'de>>(d: D) -> Result<Vec<Vec<f64>>, D::Error> {
-    let raw: Vec<Vec<String>> = Vec::deserialize(d)?;
-    raw.iter()
-        .map(|g| {
-            g.iter()
-                .map(|s| s.parse::<f64>().map_err(serde::de::Error::custom))
-                .collect()
-        })
-        .collect()
-}
 
 #[derive(Deserialize)]
 struct Fixtures {

@@ -132,3 +132,26 @@ pub fn load_group(name: &str, group: &str) -> Vec<f64> {
         .map(|r| num(&r[1]))
         .collect()
 }
+
+/// Fixture sample data are stored as decimal strings (see the generators) and parsed with
+/// Rust's correctly rounded `str::parse` (serde_json's float parsing can be one ulp off).
+pub fn strings<'de, D: serde::Deserializer<'de>>(d: D) -> Result<Vec<f64>, D::Error> {
+    use serde::Deserialize;
+    let raw: Vec<String> = Vec::deserialize(d)?;
+    raw.iter()
+        .map(|s| s.parse::<f64>().map_err(serde::de::Error::custom))
+        .collect()
+}
+
+/// Groups of decimal strings, as [`strings`].
+pub fn string_groups<'de, D: serde::Deserializer<'de>>(d: D) -> Result<Vec<Vec<f64>>, D::Error> {
+    use serde::Deserialize;
+    let raw: Vec<Vec<String>> = Vec::deserialize(d)?;
+    raw.iter()
+        .map(|g| {
+            g.iter()
+                .map(|s| s.parse::<f64>().map_err(serde::de::Error::custom))
+                .collect()
+        })
+        .collect()
+}
