@@ -222,6 +222,15 @@ CREATE TABLE alert (
 );
 CREATE UNIQUE INDEX alert_one_open_per_series ON alert (series_id, kind) WHERE state = 'open';
 
+-- Acknowledgements of alerts by people (lotdrift alerts ack): the audit trail is kept.
+CREATE TABLE alert_ack (
+    id        INTEGER PRIMARY KEY,
+    alert_id  INTEGER NOT NULL REFERENCES alert (id),
+    acked_at  TEXT NOT NULL,
+    acked_by  TEXT NOT NULL,
+    note      TEXT NOT NULL
+);
+
 -- Every state change of an alert: opened, attached (a later significant lot), resolved.
 CREATE TABLE alert_event (
     id            INTEGER PRIMARY KEY,

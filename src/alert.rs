@@ -797,6 +797,7 @@ mod tests {
                 model: Some("units".into()),
                 note: None,
                 cpk: None,
+                acknowledged: None,
             },
         }
     }

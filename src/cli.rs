@@ -159,6 +159,15 @@ enum BaselineAction {
 
 #[derive(Subcommand, Debug)]
 enum AlertsAction {
+    /// Record that someone has seen an alert and why (kept with the alert; every
+    /// acknowledgement stays in the audit table alert_ack).
+    Ack {
+        id: i64,
+        #[arg(long)]
+        note: String,
+        #[arg(long, value_name = "FILE")]
+        config: Option<PathBuf>,
+    },
     /// Send a test message to the configured recipients and print what the server replied.
     TestEmail {
         /// The config file (default: the one given to `alerts`, else ./lotdrift.toml).
@@ -434,6 +443,36 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                     sent.len()
                 ))),
             }
+        }
+        Command::Alerts {
+            action:
+                Some(AlertsAction::Ack {
+                    id,
+                    note,
+                    config: own,
+                }),
+            config,
+            ..
+        } => {
+            let config = load(&own.map_or(config, |config| ConfigArg { config }))?;
+            if note.trim().is_empty() {
+                return Err(usage("--note must say what was done or decided"));
+            }
+            let store = open_existing(&config).await?;
+            let by = std::env::var("USER")
+                .or_else(|_| std::env::var("USERNAME"))
+                .unwrap_or_else(|_| "unknown".into());
+            let at = crate::time::now_rfc3339();
+            if !store
+                .acknowledge(id, &by, &at, &note)
+                .await
+                .context("alerts ack")?
+            {
+                return Err(Failure::Runtime(anyhow::anyhow!("no alert with id {id}")));
+            }
+            println!("alert {id} acknowledged by {by} at {at}");
+            store.close().await;
+            Ok(())
         }
         Command::Alerts {
             config, open, json, ..

@@ -358,6 +358,16 @@ pub struct AlertRow {
     pub note: Option<String>,
     /// Cpk of the opening lot [value, low, high], when specification limits are configured.
     pub cpk: Option<[f64; 3]>,
+    /// Latest acknowledgement: who, when, and the note.
+    pub acknowledged: Option<AckRow>,
+}
+
+/// An acknowledgement of an alert.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct AckRow {
+    pub by: String,
+    pub at: String,
+    pub note: String,
 }
 
 /// Counts for `lotdrift status`.
@@ -1651,6 +1661,31 @@ impl Store {
         })
     }
 
+    /// Records an acknowledgement; false when no alert has that id.
+    pub async fn acknowledge(&self, alert_id: i64, by: &str, at: &str, note: &str) -> Result<bool> {
+        let mut tx = self.begin().await?;
+        let exists: Option<i64> = sqlx::query_scalar("SELECT id FROM alert WHERE id = ?")
+            .bind(alert_id)
+            .fetch_optional(&mut *tx)
+            .await
+            .doing("looking up an alert")?;
+        if exists.is_none() {
+            return Ok(false);
+        }
+        sqlx::query(
+            "INSERT INTO alert_ack (alert_id, acked_at, acked_by, note) VALUES (?, ?, ?, ?)",
+        )
+        .bind(alert_id)
+        .bind(at)
+        .bind(by)
+        .bind(note)
+        .execute(&mut *tx)
+        .await
+        .doing("recording an acknowledgement")?;
+        tx.commit().await.doing("committing an acknowledgement")?;
+        Ok(true)
+    }
+
     /// The series of a source and characteristic, if stored.
     pub async fn series_named(&self, source: &str, characteristic: &str) -> Result<Option<i64>> {
         sqlx::query_scalar(
@@ -1948,7 +1983,10 @@ const ALERT_COLUMNS: &str = "a.id, src.name, ch.name, a.state, a.opened_at, a.re
      e.lot_mean, e.lot_sd, e.estimate, e.ci_low, e.ci_high, \
      (SELECT COUNT(*) FROM alert_event x WHERE x.alert_id = a.id \
       AND x.kind IN ('opened', 'attached')), a.kind, e.model, e.note, e.cpk, e.cpk_low, \
-     e.cpk_high";
+     e.cpk_high, \
+     (SELECT k.acked_by FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1), \
+     (SELECT k.acked_at FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1), \
+     (SELECT k.note FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1)";
 
 const ALERT_JOINS: &str = "JOIN evaluation e ON e.id = a.opening_evaluation \
      JOIN sample sm ON sm.id = e.sample_id JOIN lot l ON l.id = sm.lot_id \
@@ -1997,6 +2035,14 @@ fn alert_from_row(r: &SqliteRow, o: usize) -> AlertRow {
             r.get::<Option<f64>, _>(o + 32),
         ) {
             (Some(a), Some(b), Some(c)) => Some([a, b, c]),
+            _ => None,
+        },
+        acknowledged: match (
+            r.get::<Option<String>, _>(o + 33),
+            r.get::<Option<String>, _>(o + 34),
+            r.get::<Option<String>, _>(o + 35),
+        ) {
+            (Some(by), Some(at), Some(note)) => Some(AckRow { by, at, note }),
             _ => None,
         },
     }

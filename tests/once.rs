@@ -47,6 +47,32 @@ fn a_drifting_series_alerts_and_no_other_does() {
     assert!(a["opened_at"].as_str().unwrap().ends_with('Z'));
     // Every later shifted lot attached to the same alert.
     assert_eq!(a["lots"], 4);
+    assert!(a["acknowledged"].is_null());
+    // Acknowledging is recorded with who, when and the note; unknown ids and empty notes fail.
+    let id = a["id"].as_i64().unwrap().to_string();
+    let out = site.run(&[
+        "alerts",
+        "ack",
+        &id,
+        "--note",
+        "supplier informed, 8D requested",
+    ]);
+    assert!(out.status.success(), "{}", text(&out.stderr));
+    let acked = &site.alerts()[0]["acknowledged"];
+    assert_eq!(acked["note"], "supplier informed, 8D requested", "{acked}");
+    assert!(acked["at"].as_str().unwrap().ends_with('Z'));
+    assert_eq!(
+        site.run(&["alerts", "ack", "999", "--note", "x"])
+            .status
+            .code(),
+        Some(1)
+    );
+    assert_eq!(
+        site.run(&["alerts", "ack", &id, "--note", " "])
+            .status
+            .code(),
+        Some(2)
+    );
     // Inbox emptied into the archive.
     assert!(site.files_in("inbox").is_empty());
     assert_eq!(site.files_in("archive").len(), 52);
