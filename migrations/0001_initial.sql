@@ -218,7 +218,10 @@ CREATE TABLE alert (
     opened_at          TEXT NOT NULL,
     opening_evaluation INTEGER NOT NULL REFERENCES evaluation (id),
     resolved_at        TEXT,
-    in_control_run     INTEGER NOT NULL DEFAULT 0
+    in_control_run     INTEGER NOT NULL DEFAULT 0,
+    -- when the last message about it was queued, and the shift (lot − baseline) it reported
+    notified_at        TEXT,
+    notified_estimate  REAL
 );
 CREATE UNIQUE INDEX alert_one_open_per_series ON alert (series_id, kind) WHERE state = 'open';
 
@@ -235,7 +238,7 @@ CREATE TABLE alert_ack (
 CREATE TABLE alert_event (
     id            INTEGER PRIMARY KEY,
     alert_id      INTEGER NOT NULL REFERENCES alert (id),
-    kind          TEXT NOT NULL CHECK (kind IN ('opened', 'attached', 'resolved')),
+    kind          TEXT NOT NULL CHECK (kind IN ('opened', 'attached', 'repeated', 'resolved')),
     at            TEXT NOT NULL,
     evaluation_id INTEGER REFERENCES evaluation (id)
 );

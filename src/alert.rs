@@ -344,6 +344,15 @@ pub fn subject(item: &OutboxItem) -> String {
             "lotdrift: {} / {} back in control (alert {} resolved)",
             a.source, a.characteristic, a.id
         ),
+        "repeated" => format!(
+            "lotdrift: {} / {} still shifted {} (lot {}, alert {} open since {})",
+            a.source,
+            a.characteristic,
+            direction(a),
+            a.lot,
+            a.id,
+            &a.opened_at[..10.min(a.opened_at.len())]
+        ),
         _ if a.kind == "spread" => format!(
             "lotdrift: {} / {} spread grew in lot {} (alert {})",
             a.source, a.characteristic, a.lot, a.id

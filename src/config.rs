@@ -97,6 +97,7 @@ pub struct RawCharacteristic {
 pub struct RawAlerts {
     pub channels: Option<Vec<String>>,
     pub email: Option<RawEmail>,
+    pub repeat_hours: Option<f64>,
     pub retry_initial_seconds: Option<f64>,
     pub retry_max_seconds: Option<f64>,
     pub expire_hours: Option<f64>,
@@ -321,6 +322,9 @@ impl fmt::Display for Channel {
 pub struct Alerts {
     pub channels: Vec<Channel>,
     pub email: Option<Email>,
+    /// A still-significant open alert is announced again after this long (unless
+    /// acknowledged), or at once when its shift has grown by half; None = never.
+    pub repeat: Option<Duration>,
     pub retry_initial: Duration,
     pub retry_max: Duration,
     pub expire_after: Duration,
@@ -678,9 +682,21 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
         defaults::EXPIRE_HOURS * 3600.0,
         1.0,
     );
+    let repeat_hours = raw.alerts.repeat_hours.unwrap_or(24.0);
+    let repeat = if repeat_hours == 0.0 {
+        None
+    } else {
+        Some(p.seconds(
+            "alerts.repeat_hours",
+            Some(repeat_hours * 3600.0),
+            24.0 * 3600.0,
+            60.0,
+        ))
+    };
     let alerts = Alerts {
         channels,
         email,
+        repeat,
         retry_initial,
         retry_max,
         expire_after,
@@ -854,6 +870,7 @@ characteristics = []     # only these characteristics; empty = every characteris
 
 [alerts]
 channels = ["log"]       # "log", "email", or both
+repeat_hours = 24        # announce a still-shifting open alert again after this long; 0 = never
 
 # [alerts.email]
 # smtp_host = "mail.example.org"

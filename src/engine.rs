@@ -110,7 +110,12 @@ pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, Engi
                 });
             }
         }
-        let mut pass = decide(&chunk, &config.monitor);
+        let mut pass = decide_at(
+            &chunk,
+            &config.monitor,
+            config.alerts.repeat,
+            chrono::Utc::now(),
+        );
         pass.recipients = recipients.clone();
         let counts = store.write_pass(&pass, &now_rfc3339()).await?;
         total.baselines += counts.baselines;
@@ -260,8 +265,25 @@ struct Tested {
     rank: Option<(f64, f64)>,
 }
 
-/// The decisions for `work`, a pure function of the stored state and the policy.
+/// The decisions for `work`, a pure function of the stored state and the policy (without
+/// repeated announcements of open alerts).
 pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
+    decide_at(work, monitor, None, chrono::Utc::now())
+}
+
+/// A shift counts as grown, for a repeated announcement, when it is half again as large as the
+/// one last announced (common practice is to re-notify on a material change; the factor is
+/// our choice).
+const GROWN: f64 = 1.5;
+
+/// [`decide`] at time `now`, announcing a still-significant open alert again when `repeat`
+/// has passed since its last message or its shift has grown, unless it is acknowledged.
+pub fn decide_at(
+    work: &[SeriesWork],
+    monitor: &Monitor,
+    repeat: Option<std::time::Duration>,
+    now: chrono::DateTime<chrono::Utc>,
+) -> EnginePass {
     let mut pass = EnginePass::default();
     let mut cache = HCache::new();
     let mut designs: Vec<Option<(Design, Summary)>> = vec![None; work.len()];
@@ -435,6 +457,10 @@ pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
         let policy = monitor.policy(&w.characteristic);
         let (alternative, delta) = mean_hypothesis(policy.direction, policy.min_shift);
         let mut mean_run = w.open_mean.map(|a| a.in_control_run);
+        // Last announcement of the open mean alert: (when, shift, acknowledged).
+        let mut notified = w
+            .open_mean
+            .map(|a| (a.notified_at, a.notified_estimate, a.acknowledged));
         let mut spread_run = w.open_spread.map(|a| a.in_control_run);
         let (mut upper, mut lower) = w.cusum;
         let mut online = OnlineFdr::new(monitor, &w.online);
@@ -555,9 +581,30 @@ pub fn decide(work: &[SeriesWork], monitor: &Monitor) -> EnginePass {
                     None
                 }
             };
-            let action = lifecycle(mean_signal, &mut mean_run, monitor.resolve_after_lots);
-            if action == AlertAction::Resolve {
-                (upper, lower) = (0.0, 0.0);
+            let mut action = lifecycle(mean_signal, &mut mean_run, monitor.resolve_after_lots);
+            match action {
+                AlertAction::Resolve => {
+                    (upper, lower) = (0.0, 0.0);
+                    notified = None;
+                }
+                AlertAction::Open => notified = Some((Some(now), ev.estimate, false)),
+                AlertAction::Attach => {
+                    if let (Some(every), Some((at, shift, acked))) = (repeat, notified)
+                        && !acked
+                    {
+                        let due =
+                            at.is_none_or(|t| (now - t).to_std().unwrap_or_default() >= every);
+                        let grown = match (shift, ev.estimate) {
+                            (Some(old), Some(new)) => new.abs() >= GROWN * old.abs(),
+                            _ => false,
+                        };
+                        if due || grown {
+                            action = AlertAction::Repeat;
+                            notified = Some((Some(now), ev.estimate, false));
+                        }
+                    }
+                }
+                _ => {}
             }
             pass.decisions.push(Decision {
                 evaluation: ev,

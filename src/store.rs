@@ -173,6 +173,10 @@ pub struct BaselineRow {
 pub struct OpenAlert {
     pub id: i64,
     pub in_control_run: i64,
+    /// When the last message about it was queued, and the shift it reported.
+    pub notified_at: Option<chrono::DateTime<chrono::Utc>>,
+    pub notified_estimate: Option<f64>,
+    pub acknowledged: bool,
 }
 
 /// Everything the engine needs to decide one series.
@@ -271,6 +275,8 @@ pub enum AlertAction {
     None,
     Open,
     Attach,
+    /// Attach and announce again (repeat interval passed, or the shift grew).
+    Repeat,
     /// In control while an alert is open; `run` is the new count of consecutive such lots.
     InControl {
         run: i64,
@@ -1164,7 +1170,10 @@ impl Store {
             }
         }
         for r in sqlx::query(
-            "SELECT series_id, id, in_control_run, kind FROM alert WHERE state = 'open'",
+            "SELECT a.series_id, a.id, a.in_control_run, a.kind, a.notified_at, \
+                    a.notified_estimate, \
+                    EXISTS (SELECT 1 FROM alert_ack k WHERE k.alert_id = a.id) \
+             FROM alert a WHERE a.state = 'open'",
         )
         .fetch_all(&self.pool)
         .await
@@ -1174,6 +1183,11 @@ impl Store {
                 let open = Some(OpenAlert {
                     id: r.get(1),
                     in_control_run: r.get(2),
+                    notified_at: r
+                        .get::<Option<String>, _>(4)
+                        .and_then(|t| crate::time::parse_utc(&t)),
+                    notified_estimate: r.get(5),
+                    acknowledged: r.get::<i64, _>(6) != 0,
                 });
                 if r.get::<String, _>(3) == "spread" {
                     work[*i].open_spread = open;
@@ -1435,6 +1449,15 @@ impl Store {
                     .doing("opening an alert")?;
                     counts.opened += 1;
                     open.insert(key, Some(alert_id));
+                    sqlx::query(
+                        "UPDATE alert SET notified_at = ?, notified_estimate = ? WHERE id = ?",
+                    )
+                    .bind(at)
+                    .bind(d.evaluation.estimate)
+                    .bind(alert_id)
+                    .execute(&mut *tx)
+                    .await
+                    .doing("updating an alert")?;
                     Some((alert_id, "opened"))
                 }
                 AlertAction::Attach => {
@@ -1445,6 +1468,20 @@ impl Store {
                         .await
                         .doing("updating an alert")?;
                     Some((alert_id, "attached"))
+                }
+                AlertAction::Repeat => {
+                    let alert_id = current()?;
+                    sqlx::query(
+                        "UPDATE alert SET in_control_run = 0, notified_at = ?, \
+                         notified_estimate = ? WHERE id = ?",
+                    )
+                    .bind(at)
+                    .bind(d.evaluation.estimate)
+                    .bind(alert_id)
+                    .execute(&mut *tx)
+                    .await
+                    .doing("updating an alert")?;
+                    Some((alert_id, "repeated"))
                 }
                 AlertAction::InControl { run } => {
                     let alert_id = current()?;

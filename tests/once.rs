@@ -441,3 +441,62 @@ fn a_clearly_non_normal_baseline_is_tested_distribution_free_and_cpk_is_reported
     assert_eq!(series["test"], "mann-whitney");
     assert!(series["baseline_cpk"][0].as_f64().unwrap() > cpk[0].as_f64().unwrap());
 }
+
+#[test]
+fn an_open_alert_is_announced_again_when_its_shift_grows_unless_acknowledged() {
+    let run = |ack: bool| {
+        let site = Site::new("[watch]\nsettle_seconds = 0.0\n");
+        // Lots 23-24 are 3 units high, lots 25-26 are 7 units high (the shift more than
+        // doubled); every unit sd is 1.
+        let file = |lot: usize| {
+            let shift = match lot {
+                0..=21 => 0.0,
+                22 | 23 => 3.0,
+                _ => 7.0,
+            };
+            let code = format!("AL-{:03}", lot + 1);
+            let values = lot_values(12, 100.0 + shift, 1.0, lot);
+            (
+                format!("{code}.csv"),
+                long_file(
+                    "alder-cells",
+                    &code,
+                    &lot_date(lot),
+                    &[("capacity_mah", values)],
+                ),
+            )
+        };
+        for lot in 0..24 {
+            let (name, text) = file(lot);
+            drop_file(&site.inbox(), &name, &text);
+        }
+        site.once();
+        let alerts = site.alerts();
+        assert_eq!(alerts.len(), 1);
+        if ack {
+            let id = alerts[0]["id"].as_i64().unwrap().to_string();
+            assert!(
+                site.run(&[
+                    "alerts",
+                    "ack",
+                    &id,
+                    "--note",
+                    "known, supplier contained lots"
+                ])
+                .status
+                .success()
+            );
+        }
+        for lot in 24..26 {
+            let (name, text) = file(lot);
+            drop_file(&site.inbox(), &name, &text);
+        }
+        let out = site.once();
+        assert_eq!(site.alerts().len(), 1, "still one alert");
+        text(&out.stderr)
+    };
+    let log = run(false);
+    assert!(log.contains("still shifted up"), "{log}");
+    let log = run(true);
+    assert!(!log.contains("still shifted"), "{log}");
+}
