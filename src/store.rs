@@ -1942,7 +1942,7 @@ impl Store {
                          WHEN e.id IS NOT NULL THEN 'tested' ELSE 'pending' END, \
                     e.p_value, e.p_adjusted, e.significant, \
                     (SELECT ev.alert_id FROM alert_event ev WHERE ev.evaluation_id = e.id \
-                     AND ev.kind IN ('opened', 'attached') LIMIT 1) \
+                     AND ev.kind IN ('opened', 'attached', 'repeated') LIMIT 1) \
              FROM sample sm JOIN lot l ON l.id = sm.lot_id \
              JOIN series se ON se.id = sm.series_id \
              JOIN source src ON src.id = se.source_id \
@@ -2019,7 +2019,7 @@ const ALERT_COLUMNS: &str = "a.id, src.name, ch.name, a.state, a.opened_at, a.re
      e.method, e.level, e.family_size, e.baseline_n, e.baseline_mean, e.baseline_sd, e.lot_n, \
      e.lot_mean, e.lot_sd, e.estimate, e.ci_low, e.ci_high, \
      (SELECT COUNT(*) FROM alert_event x WHERE x.alert_id = a.id \
-      AND x.kind IN ('opened', 'attached')), a.kind, e.model, e.note, e.cpk, e.cpk_low, \
+      AND x.kind IN ('opened', 'attached', 'repeated')), a.kind, e.model, e.note, e.cpk, e.cpk_low, \
      e.cpk_high, \
      (SELECT k.acked_by FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1), \
      (SELECT k.acked_at FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1), \

@@ -79,7 +79,10 @@ fn a_file_written_slowly_in_chunks_is_not_taken_half_written() {
     });
     let log = std::fs::read_to_string(site.path().join("daemon.log")).unwrap_or_default();
     assert!(taken, "file never taken; daemon log:\n{log}");
-    assert!(site.files_in("quarantine").is_empty(), "quarantined; daemon log:\n{log}");
+    assert!(
+        site.files_in("quarantine").is_empty(),
+        "quarantined; daemon log:\n{log}"
+    );
     let status = site.status();
     assert_eq!(status["measurements"], 40, "{status}");
     assert_eq!(status["quarantined"], 0);
