@@ -649,16 +649,13 @@ impl Store {
         let mut stored: HashMap<(i64, i64), StoredSample> = HashMap::new();
         let existing: Vec<i64> = lot_ids.values().copied().collect();
         for chunk in existing.chunks(ROWS_PER_INSERT) {
-            let mut q = QueryBuilder::<Sqlite>::new(
+            let mut q = in_list(
                 "SELECT s.id, s.lot_id, s.series_id, s.content_digest, f.file_name, s.n, s.mean, \
                  s.m2, s.file_id FROM sample s JOIN ingested_file f ON f.id = s.file_id \
-                 WHERE s.lot_id IN (",
+                 WHERE s.lot_id IN",
+                chunk,
+                "",
             );
-            let mut sep = q.separated(", ");
-            for id in chunk {
-                sep.push_bind(*id);
-            }
-            q.push(")");
             for row in q
                 .build()
                 .fetch_all(&mut **tx)
@@ -1227,14 +1224,11 @@ impl Store {
     pub async fn values(&self, sample_ids: &[i64]) -> Result<HashMap<i64, Vec<f64>>> {
         let mut out: HashMap<i64, Vec<f64>> = HashMap::new();
         for chunk in sample_ids.chunks(ROWS_PER_INSERT) {
-            let mut q = QueryBuilder::<Sqlite>::new(
-                "SELECT sample_id, value FROM measurement WHERE sample_id IN (",
+            let mut q = in_list(
+                "SELECT sample_id, value FROM measurement WHERE sample_id IN",
+                chunk,
+                " ORDER BY sample_id, seq",
             );
-            let mut sep = q.separated(", ");
-            for id in chunk {
-                sep.push_bind(*id);
-            }
-            q.push(") ORDER BY sample_id, seq");
             for r in q
                 .build()
                 .fetch_all(&self.pool)
@@ -1261,15 +1255,12 @@ impl Store {
     pub async fn residuals(&self, sample_ids: &[i64], limit: usize) -> Result<Vec<f64>> {
         let mut out = Vec::new();
         for chunk in sample_ids.chunks(ROWS_PER_INSERT) {
-            let mut q = QueryBuilder::<Sqlite>::new(
+            let mut q = in_list(
                 "SELECT m.value - s.mean FROM measurement m JOIN sample s ON s.id = m.sample_id \
-                 WHERE m.sample_id IN (",
+                 WHERE m.sample_id IN",
+                chunk,
+                " ORDER BY m.sample_id, m.seq",
             );
-            let mut sep = q.separated(", ");
-            for id in chunk {
-                sep.push_bind(*id);
-            }
-            q.push(") ORDER BY m.sample_id, m.seq");
             for r in q
                 .build()
                 .fetch_all(&self.pool)
@@ -1312,14 +1303,11 @@ impl Store {
             .into_iter()
             .collect();
         for chunk in missing.chunks(ROWS_PER_INSERT) {
-            let mut q = QueryBuilder::<Sqlite>::new(
-                "SELECT series_id, id FROM baseline WHERE retired_at IS NULL AND series_id IN (",
+            let mut q = in_list(
+                "SELECT series_id, id FROM baseline WHERE retired_at IS NULL AND series_id IN",
+                chunk,
+                "",
             );
-            let mut sep = q.separated(", ");
-            for id in chunk {
-                sep.push_bind(*id);
-            }
-            q.push(")");
             for r in q
                 .build()
                 .fetch_all(&mut *tx)
@@ -2083,6 +2071,19 @@ fn alert_from_row(r: &SqliteRow, o: usize) -> AlertRow {
             _ => None,
         },
     }
+}
+
+/// `prefix (?, ?, …)suffix` with `ids` bound: the chunked `IN` lists of id queries.
+fn in_list<'a>(prefix: &str, ids: &'a [i64], suffix: &str) -> QueryBuilder<'a, Sqlite> {
+    let mut q = QueryBuilder::new(prefix);
+    q.push(" (");
+    let mut sep = q.separated(", ");
+    for id in ids {
+        sep.push_bind(*id);
+    }
+    q.push(")");
+    q.push(suffix);
+    q
 }
 
 /// (sample id, sequence number, unit, value, sampled_at) of one measurement row.
