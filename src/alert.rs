@@ -32,7 +32,8 @@ use tokio_util::sync::CancellationToken;
 
 use crate::chart::{self, ChartPoint};
 use crate::config::{Config, Email, Tls};
-use crate::store::{AlertRow, DeliveryOutcome, OutboxItem, Store, StoreError};
+use crate::digest;
+use crate::store::{AlertRow, DeliveryOutcome, DigestItem, OutboxItem, Store, StoreError};
 use crate::time::{format_utc, now_rfc3339, parse_utc};
 
 /// The environment variable that carries the SMTP password.
@@ -64,7 +65,8 @@ pub struct DrainReport {
     pub expired: usize,
 }
 
-/// Delivers every message due now, once each. Returns what happened.
+/// Delivers every message due now, once each (alert events first, then digests). Returns
+/// what happened.
 ///
 /// The SMTP transport is built once per drain. When it cannot be built (an unreadable
 /// `ca_file`, a missing password), email messages are retried and eventually expire with that
@@ -100,7 +102,11 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
                             c
                         }
                     };
-                    deliver_email(&item, config, mailer, chart.as_deref().map(Vec::as_slice)).await
+                    let message = mailer.as_ref().map_err(Clone::clone).and_then(|m| {
+                        alert_message(&m.from, &item, chart.as_deref().map(Vec::as_slice))
+                    });
+                    let attempt = Attempt::of_event(&item);
+                    send_email(&attempt, config, mailer, message).await
                 }
                 "log" => {
                     log_event(&item);
@@ -110,21 +116,7 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
                     error: format!("unknown channel {other:?}"),
                 },
             };
-            match &outcome {
-                DeliveryOutcome::Delivered => report.delivered += 1,
-                DeliveryOutcome::Retry { error, next_at } => {
-                    tracing::warn!(channel = %item.channel, recipient = %item.recipient, %error, %next_at, "delivery failed; will retry");
-                    report.retrying += 1;
-                }
-                DeliveryOutcome::Failed { error } => {
-                    tracing::error!(channel = %item.channel, recipient = %item.recipient, %error, "delivery failed permanently");
-                    report.failed += 1;
-                }
-                DeliveryOutcome::Expired { error } => {
-                    tracing::error!(channel = %item.channel, recipient = %item.recipient, %error, "message expired undelivered");
-                    report.expired += 1;
-                }
-            }
+            tally(&mut report, &item.channel, &item.recipient, &outcome);
             if item.channel == "log" {
                 logged.push((item.id, outcome));
             } else {
@@ -138,10 +130,97 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
             break;
         }
     }
+    loop {
+        let due = store.due_digests(&now_rfc3339(), DRAIN_BATCH).await?;
+        let batch = due.len();
+        let fresh: Vec<DigestItem> = due.into_iter().filter(|i| attempted.insert(i.id)).collect();
+        if fresh.is_empty() {
+            break;
+        }
+        for item in fresh {
+            let outcome = match item.channel.as_str() {
+                "email" => {
+                    let mailer = mailer.get_or_insert_with(|| build_mailer(config));
+                    let message = mailer
+                        .as_ref()
+                        .map_err(Clone::clone)
+                        .and_then(|m| digest_message(&m.from, &item));
+                    let attempt = Attempt::of_digest(&item);
+                    send_email(&attempt, config, mailer, message).await
+                }
+                "log" => {
+                    log_digest(&item);
+                    DeliveryOutcome::Delivered
+                }
+                other => DeliveryOutcome::Failed {
+                    error: format!("unknown channel {other:?}"),
+                },
+            };
+            tally(&mut report, &item.channel, &item.recipient, &outcome);
+            store
+                .outbox_attempted(item.id, &outcome, &now_rfc3339())
+                .await?;
+        }
+        if (batch as i64) < DRAIN_BATCH {
+            break;
+        }
+    }
     Ok(report)
 }
 
-/// Drains the outbox whenever `wake` is notified, and at least every `poll`, until cancelled.
+/// Counts an outcome and logs a failure.
+fn tally(report: &mut DrainReport, channel: &str, recipient: &str, outcome: &DeliveryOutcome) {
+    match outcome {
+        DeliveryOutcome::Delivered => report.delivered += 1,
+        DeliveryOutcome::Retry { error, next_at } => {
+            tracing::warn!(channel, recipient, %error, %next_at, "delivery failed; will retry");
+            report.retrying += 1;
+        }
+        DeliveryOutcome::Failed { error } => {
+            tracing::error!(channel, recipient, %error, "delivery failed permanently");
+            report.failed += 1;
+        }
+        DeliveryOutcome::Expired { error } => {
+            tracing::error!(channel, recipient, %error, "message expired undelivered");
+            report.expired += 1;
+        }
+    }
+}
+
+/// What the retry rule needs to know of an outbox message.
+struct Attempt<'a> {
+    id: i64,
+    recipient: &'a str,
+    attempts: i64,
+    created_at: &'a str,
+    /// For the log line on delivery.
+    what: String,
+}
+
+impl<'a> Attempt<'a> {
+    fn of_event(item: &'a OutboxItem) -> Attempt<'a> {
+        Attempt {
+            id: item.id,
+            recipient: &item.recipient,
+            attempts: item.attempts,
+            created_at: &item.created_at,
+            what: format!("alert event {}", item.event_id),
+        }
+    }
+
+    fn of_digest(item: &'a DigestItem) -> Attempt<'a> {
+        Attempt {
+            id: item.id,
+            recipient: &item.recipient,
+            attempts: item.attempts,
+            created_at: &item.created_at,
+            what: format!("digest {}", item.local_date),
+        }
+    }
+}
+
+/// Queues the daily digest when it is due and drains the outbox, whenever `wake` is notified
+/// and at least every `poll`, until cancelled.
 pub async fn run(
     store: Arc<Store>,
     config: Arc<Config>,
@@ -150,6 +229,9 @@ pub async fn run(
 ) {
     let poll = Duration::from_secs(5);
     loop {
+        if let Err(e) = digest::schedule_if_due(&store, &config).await {
+            tracing::error!(error = %e, "cannot queue the daily digest");
+        }
         match drain_once(&store, &config).await {
             Ok(_) => {}
             Err(e) => tracing::error!(error = %e, "outbox drain failed"),
@@ -172,27 +254,27 @@ fn build_mailer(config: &Config) -> Result<Mailer, String> {
     })
 }
 
-async fn deliver_email(
-    item: &OutboxItem,
+async fn send_email(
+    attempt: &Attempt<'_>,
     config: &Config,
     mailer: &Result<Mailer, String>,
-    chart: Option<&[u8]>,
+    message: Result<Message, String>,
 ) -> DeliveryOutcome {
     let mailer = match mailer {
         Ok(m) => m,
-        Err(e) => return retry_or_expire(item, config, e.clone()),
+        Err(e) => return retry_or_expire(attempt, config, e.clone()),
     };
-    let message = match alert_message(&mailer.from, item, chart) {
+    let message = match message {
         Ok(m) => m,
         Err(error) => return DeliveryOutcome::Failed { error },
     };
     match mailer.send(message).await {
         Ok(reply) => {
-            tracing::info!(recipient = %item.recipient, event = item.event_id, %reply, "email delivered");
+            tracing::info!(recipient = %attempt.recipient, message = %attempt.what, %reply, "email delivered");
             DeliveryOutcome::Delivered
         }
         Err(SendError::Permanent(error)) => DeliveryOutcome::Failed { error },
-        Err(SendError::Transient(error)) => retry_or_expire(item, config, error),
+        Err(SendError::Transient(error)) => retry_or_expire(attempt, config, error),
     }
 }
 
@@ -255,9 +337,9 @@ fn chart_title(a: &AlertRow, lots: usize) -> String {
     clean(&title).chars().take(100).collect()
 }
 
-fn retry_or_expire(item: &OutboxItem, config: &Config, error: String) -> DeliveryOutcome {
+fn retry_or_expire(item: &Attempt<'_>, config: &Config, error: String) -> DeliveryOutcome {
     let now = Utc::now();
-    let age = parse_utc(&item.created_at)
+    let age = parse_utc(item.created_at)
         .map(|c| (now - c).to_std().unwrap_or_default())
         .unwrap_or_default();
     if age >= config.alerts.expire_after {
@@ -451,9 +533,17 @@ pub fn facts(item: &OutboxItem) -> Vec<(&'static str, String)> {
     if let Some(note) = &a.note {
         rows.push(("Note", clean(note)));
     }
+    let opened_by = if item.opening_lot == a.lot {
+        String::new()
+    } else {
+        format!(" by lot {}", clean(&item.opening_lot))
+    };
     rows.push((
         "Alert",
-        format!("{} ({}), opened {}", a.id, a.state, a.opened_at),
+        format!(
+            "{} ({}), opened {}{opened_by}, {} significant lot(s)",
+            a.id, a.state, a.opened_at, a.lots
+        ),
     ));
     rows
 }
@@ -563,6 +653,48 @@ fn alert_message(
         .map_err(|e| format!("cannot build message: {e}"))
 }
 
+/// A digest message to `item.recipient`: multipart/alternative of plain text and HTML. Its
+/// Message-ID is the same for every attempt.
+fn digest_message(from: &Mailbox, item: &DigestItem) -> Result<Message, String> {
+    let to: Mailbox = item
+        .recipient
+        .parse()
+        .map_err(|e| format!("recipient {:?}: {e}", item.recipient))?;
+    Message::builder()
+        .from(from.clone())
+        .to(to)
+        .subject(digest::subject(item))
+        .message_id(Some(format!(
+            "<lotdrift.digest-{}.{}@{}>",
+            item.digest_id,
+            item.id,
+            from.email.domain()
+        )))
+        .multipart(MultiPart::alternative_plain_html(
+            digest::body(item),
+            digest::html_body(item),
+        ))
+        .map_err(|e| format!("cannot build message: {e}"))
+}
+
+fn log_digest(item: &DigestItem) {
+    tracing::info!(
+        target: "lotdrift::alert",
+        date = %item.local_date,
+        open_alerts = item.alerts.len(),
+        "{}",
+        digest::subject(item)
+    );
+    for row in digest::rows(item) {
+        let [id, source, characteristic, shift, opened, lot, lots, acked] = row;
+        tracing::info!(
+            target: "lotdrift::alert",
+            alert = %id, %source, %characteristic, %shift, %opened, %lot, %lots, acknowledged = %acked,
+            "open alert {id}: {source} / {characteristic} {shift} since {opened}"
+        );
+    }
+}
+
 /// What the server said to a test message for one recipient.
 #[derive(Debug, Clone)]
 pub struct TestDelivery {
@@ -583,7 +715,7 @@ pub async fn test_email(config: &Config) -> Result<Vec<TestDelivery>, AlertError
     let now = now_rfc3339();
     let stamp: String = now.chars().filter(char::is_ascii_digit).collect();
     let mut out = Vec::new();
-    for recipient in &email.to {
+    for recipient in &email.all_recipients() {
         let outcome = match test_message(&mailer.from, recipient, email, &now, &stamp) {
             Err(e) => Err(e),
             Ok(message) => match mailer.send(message).await {
@@ -775,6 +907,7 @@ mod tests {
             event_id: 17,
             event_kind: "opened".into(),
             event_at: "2026-03-01T08:30:00.000Z".into(),
+            opening_lot: lot.into(),
             alert: AlertRow {
                 id: 4,
                 source: source.into(),

@@ -5,6 +5,7 @@
 //! resolved against the config file's folder. Building pools, watchers and transports from a
 //! `Config` happens elsewhere; this module does no I/O beyond reading the one file.
 
+use std::collections::BTreeMap;
 use std::fmt;
 use std::path::{Path, PathBuf};
 use std::time::Duration;
@@ -101,6 +102,14 @@ pub struct RawAlerts {
     pub retry_initial_seconds: Option<f64>,
     pub retry_max_seconds: Option<f64>,
     pub expire_hours: Option<f64>,
+    pub digest: Option<RawDigest>,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawDigest {
+    pub at: Option<String>,
+    pub when_empty: Option<bool>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -115,6 +124,8 @@ pub struct RawEmail {
     pub password_file: Option<PathBuf>,
     pub timeout_seconds: Option<f64>,
     pub ca_file: Option<PathBuf>,
+    pub by_source: Option<BTreeMap<String, Vec<String>>>,
+    pub by_characteristic: Option<BTreeMap<String, Vec<String>>>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -328,6 +339,17 @@ pub struct Alerts {
     pub retry_initial: Duration,
     pub retry_max: Duration,
     pub expire_after: Duration,
+    /// Daily digest of open alerts, when configured.
+    pub digest: Option<Digest>,
+}
+
+/// The daily digest: a summary of the open alerts, sent once a day at a local time.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Digest {
+    /// Local time of day (the machine's time zone; `TZ` is honoured).
+    pub at: chrono::NaiveTime,
+    /// Also send a digest when no alert is open (a daily sign that monitoring runs).
+    pub when_empty: bool,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -351,6 +373,42 @@ pub struct Email {
     /// A PEM file of CA certificates trusted for the server's certificate, besides the
     /// public roots (for a site's private CA).
     pub ca_file: Option<PathBuf>,
+    /// Recipients added for alerts of a source, by source name.
+    pub by_source: BTreeMap<String, Vec<String>>,
+    /// Recipients added for alerts of a characteristic, by characteristic name.
+    pub by_characteristic: BTreeMap<String, Vec<String>>,
+}
+
+impl Email {
+    /// Who receives messages about a series: the default list, then the source's list, then
+    /// the characteristic's list, each address once (compared without case) in that order.
+    pub fn recipients_for(&self, source: &str, characteristic: &str) -> Vec<String> {
+        let lists = [
+            Some(&self.to),
+            self.by_source.get(source),
+            self.by_characteristic.get(characteristic),
+        ];
+        dedup_addresses(lists.into_iter().flatten().flatten())
+    }
+
+    /// Every configured address once: the default list first, then the per-source and the
+    /// per-characteristic lists.
+    pub fn all_recipients(&self) -> Vec<String> {
+        dedup_addresses(
+            self.to
+                .iter()
+                .chain(self.by_source.values().flatten())
+                .chain(self.by_characteristic.values().flatten()),
+        )
+    }
+}
+
+fn dedup_addresses<'a>(addresses: impl Iterator<Item = &'a String>) -> Vec<String> {
+    let mut seen = std::collections::BTreeSet::new();
+    addresses
+        .filter(|a| seen.insert(a.trim().to_lowercase()))
+        .cloned()
+        .collect()
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
@@ -693,6 +751,7 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
             60.0,
         ))
     };
+    let digest = raw.alerts.digest.map(|d| validate_digest(&mut p, d));
     let alerts = Alerts {
         channels,
         email,
@@ -700,6 +759,7 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
         retry_initial,
         retry_max,
         expire_after,
+        digest,
     };
 
     let format = match raw.log.format.as_deref() {
@@ -783,16 +843,28 @@ fn validate_email(p: &mut Problems, base: &Path, e: RawEmail) -> Email {
     }
     let to = e.to.unwrap_or_default();
     if to.is_empty() {
-        p.push("alerts.email.to", "needs at least one recipient");
+        p.push(
+            "alerts.email.to",
+            "needs at least one recipient (it receives the alerts of every source)",
+        );
     }
-    for address in &to {
-        if !looks_like_address(address) {
-            p.push(
-                "alerts.email.to",
-                format!("{address:?} is not an email address"),
-            );
+    check_addresses(p, "alerts.email.to", &to);
+    let mut lists = |table: &str, raw: Option<BTreeMap<String, Vec<String>>>| {
+        let raw = raw.unwrap_or_default();
+        for (name, list) in &raw {
+            let key = format!("alerts.email.{table}.{}", toml_key(name));
+            if name.trim().is_empty() || name.chars().any(char::is_control) {
+                p.push(&key, format!("{name:?} is not a valid name"));
+            }
+            if list.is_empty() {
+                p.push(&key, "needs at least one recipient (or remove the entry)");
+            }
+            check_addresses(p, &key, list);
         }
-    }
+        raw
+    };
+    let by_source = lists("by_source", e.by_source);
+    let by_characteristic = lists("by_characteristic", e.by_characteristic);
     let timeout = p.seconds(
         "alerts.email.timeout_seconds",
         e.timeout_seconds,
@@ -816,6 +888,55 @@ fn validate_email(p: &mut Problems, base: &Path, e: RawEmail) -> Email {
         password_file: e.password_file.map(resolve),
         timeout,
         ca_file: e.ca_file.map(resolve),
+        by_source,
+        by_characteristic,
+    }
+}
+
+fn check_addresses(p: &mut Problems, key: &str, list: &[String]) {
+    for address in list {
+        if !looks_like_address(address) {
+            p.push(key, format!("{address:?} is not an email address"));
+        }
+    }
+}
+
+/// A table key as written in TOML: bare when it can be, quoted otherwise.
+fn toml_key(name: &str) -> String {
+    if !name.is_empty()
+        && name
+            .chars()
+            .all(|c| c.is_ascii_alphanumeric() || c == '-' || c == '_')
+    {
+        name.to_string()
+    } else {
+        format!("{name:?}")
+    }
+}
+
+fn validate_digest(p: &mut Problems, d: RawDigest) -> Digest {
+    let at = match d.at.as_deref() {
+        None => {
+            p.push(
+                "alerts.digest.at",
+                "is required (a local time such as \"07:30\")",
+            );
+            chrono::NaiveTime::MIN
+        }
+        Some(text) => match chrono::NaiveTime::parse_from_str(text.trim(), "%H:%M") {
+            Ok(t) => t,
+            Err(_) => {
+                p.push(
+                    "alerts.digest.at",
+                    format!("must be a local time HH:MM, 00:00 to 23:59 (got {text:?})"),
+                );
+                chrono::NaiveTime::MIN
+            }
+        },
+    };
+    Digest {
+        at,
+        when_empty: d.when_empty.unwrap_or(false),
     }
 }
 
@@ -882,6 +1003,19 @@ repeat_hours = 24        # announce a still-shifting open alert again after this
 # password_file = "smtp-password.txt"
 # timeout_seconds = 30.0   # limit of one SMTP exchange (connect to QUIT); then retried
 # ca_file = "site-ca.pem"  # PEM CA certificate(s) to trust besides the public roots
+#
+# Alerts of a source or a characteristic also go to these lists (besides `to`):
+# [alerts.email.by_source]
+# "cedar-energy" = ["buyer-cedar@example.org"]
+# [alerts.email.by_characteristic]
+# capacity_mah = ["cell-lab@example.org"]
+
+# Daily digest of the open alerts, at a local time (the machine's time zone; TZ is honoured).
+# Each recipient gets the open alerts they receive; sent late (up to 12 h) if lotdrift was not
+# running at that time.
+# [alerts.digest]
+# at = "07:30"
+# when_empty = false       # true: also send it when no alert is open
 
 [log]
 format = "text"          # "text" or "json"
@@ -966,17 +1100,20 @@ mod tests {
     }
 
     #[test]
-    fn the_commented_email_block_is_valid_when_uncommented() {
-        let uncommented = STARTER
-            .replace("# [alerts.email]", "[alerts.email]")
-            .replace("\n# smtp_", "\nsmtp_");
+    fn the_commented_alert_blocks_are_valid_when_uncommented() {
         let mut text = String::new();
-        let mut in_email = false;
-        for line in uncommented.lines() {
-            if line.starts_with('[') {
-                in_email = line == "[alerts.email]";
-            }
-            if in_email && line.starts_with("# ") && line.contains(" = ") {
+        let mut in_alerts = false;
+        for line in STARTER.lines() {
+            let header = line
+                .strip_prefix("# ")
+                .filter(|l| l.starts_with("[alerts."));
+            if let Some(header) = header {
+                in_alerts = true;
+                text.push_str(header);
+            } else if line.starts_with('[') {
+                in_alerts = false;
+                text.push_str(line);
+            } else if in_alerts && line.starts_with("# ") && line.contains(" = ") {
                 text.push_str(&line[2..]);
             } else {
                 text.push_str(line);
@@ -987,6 +1124,77 @@ mod tests {
         let email = c.alerts.email.unwrap();
         assert_eq!(email.tls, Tls::StartTls);
         assert!(email.ca_file.is_some());
+        assert_eq!(
+            email.recipients_for("cedar-energy", "capacity_mah"),
+            vec![
+                "quality@example.org",
+                "buyer-cedar@example.org",
+                "cell-lab@example.org"
+            ]
+        );
+        let digest = c.alerts.digest.unwrap();
+        assert_eq!(
+            digest.at,
+            chrono::NaiveTime::from_hms_opt(7, 30, 0).unwrap()
+        );
+        assert!(!digest.when_empty);
+    }
+
+    #[test]
+    fn recipients_add_up_per_source_and_characteristic_each_address_once() {
+        let c = parse(
+            "[alerts.email]\nsmtp_host = \"m\"\nfrom = \"a@b.c\"\nto = [\"team@x.org\"]\n\
+             [alerts.email.by_source]\n\"birchworks\" = [\"bw@x.org\", \"Team@X.org\"]\n\
+             [alerts.email.by_characteristic]\nmass_g = [\"lab@x.org\", \"bw@x.org\"]\n",
+        )
+        .unwrap();
+        let email = c.alerts.email.unwrap();
+        assert_eq!(
+            email.recipients_for("alder-cells", "ocv_v"),
+            vec!["team@x.org"]
+        );
+        assert_eq!(
+            email.recipients_for("birchworks", "ocv_v"),
+            vec!["team@x.org", "bw@x.org"]
+        );
+        assert_eq!(
+            email.recipients_for("birchworks", "mass_g"),
+            vec!["team@x.org", "bw@x.org", "lab@x.org"]
+        );
+        assert_eq!(
+            email.recipients_for("alder-cells", "mass_g"),
+            vec!["team@x.org", "lab@x.org", "bw@x.org"]
+        );
+        assert_eq!(
+            email.all_recipients(),
+            vec!["team@x.org", "bw@x.org", "lab@x.org"]
+        );
+    }
+
+    #[test]
+    fn bad_recipient_lists_and_digest_times_name_their_keys() {
+        let e = parse(
+            "[alerts.email]\nsmtp_host = \"m\"\nfrom = \"a@b.c\"\nto = [\"team@x.org\"]\n\
+             [alerts.email.by_source]\n\"cedar energy\" = [\"nobody\"]\nbirchworks = []\n\
+             [alerts.digest]\nat = \"7.30\"\n",
+        )
+        .unwrap_err()
+        .to_string();
+        for needle in [
+            "alerts.email.by_source.\"cedar energy\": \"nobody\" is not an email address",
+            "alerts.email.by_source.birchworks: needs at least one recipient",
+            "alerts.digest.at: must be a local time HH:MM",
+        ] {
+            assert!(e.contains(needle), "{needle} missing in {e}");
+        }
+        let e = parse("[alerts.digest]\nwhen_empty = true\n")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("alerts.digest.at: is required"), "{e}");
+        let e = parse("[alerts.digest]\nat = \"24:00\"\n")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("alerts.digest.at"), "{e}");
     }
 
     #[test]

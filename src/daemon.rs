@@ -65,7 +65,8 @@ pub fn ensure_folders(config: &Config) -> Result<(), DaemonError> {
     Ok(())
 }
 
-/// Processes what is in the inbox, evaluates, drains the outbox once.
+/// Processes what is in the inbox, evaluates, queues the daily digest if it is due, drains the
+/// outbox once.
 pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, DaemonError> {
     ensure_folders(config)?;
     let files = watch::settled_files(
@@ -77,6 +78,7 @@ pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, Daem
     let cancel = CancellationToken::new();
     let ingest = ingest::ingest_files(store, &config.paths, files, None, &cancel).await?;
     let engine = engine::evaluate(store, config).await?;
+    crate::digest::schedule_if_due(store, config).await?;
     let delivery = alert::drain_once(store, config).await?;
     Ok(OnceReport {
         ingest,

@@ -64,7 +64,6 @@ const SERIES_PER_PASS: usize = 64;
 /// Loads the undecided lots, decides them, and writes the decisions.
 pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, EngineError> {
     let mut work = store.pending_work().await?;
-    let recipients = recipients(config);
     let mut total = PassCounts::default();
     while !work.is_empty() {
         let mut end = SERIES_PER_PASS.min(work.len());
@@ -116,7 +115,15 @@ pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, Engi
             config.alerts.repeat,
             chrono::Utc::now(),
         );
-        pass.recipients = recipients.clone();
+        pass.recipients = chunk
+            .iter()
+            .map(|w| {
+                (
+                    w.series_id,
+                    recipients(config, &w.source, &w.characteristic),
+                )
+            })
+            .collect();
         let counts = store.write_pass(&pass, &now_rfc3339()).await?;
         total.baselines += counts.baselines;
         total.evaluations += counts.evaluations;
@@ -135,16 +142,17 @@ pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, Engi
     Ok(total)
 }
 
-/// One outbox row per channel and recipient for every alert event that is announced.
-pub fn recipients(config: &Config) -> Vec<(String, String)> {
+/// The (channel, recipient) pairs that announce an alert event of a series: one outbox row
+/// each. Email goes to the default list plus the source's and the characteristic's lists.
+pub fn recipients(config: &Config, source: &str, characteristic: &str) -> Vec<(String, String)> {
     let mut out = Vec::new();
     for channel in &config.alerts.channels {
         match channel {
             Channel::Log => out.push(("log".to_string(), "log".to_string())),
             Channel::Email => {
                 if let Some(email) = &config.alerts.email {
-                    for to in &email.to {
-                        out.push(("email".to_string(), to.clone()));
+                    for to in email.recipients_for(source, characteristic) {
+                        out.push(("email".to_string(), to));
                     }
                 }
             }

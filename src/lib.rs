@@ -22,6 +22,7 @@ pub mod cli;
 pub mod config;
 pub mod daemon;
 pub mod demo;
+pub mod digest;
 pub mod engine;
 pub mod ingest;
 pub mod lotfile;

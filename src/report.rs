@@ -166,6 +166,7 @@ pub fn status_text(s: &StatusCounts, undelivered: &[UndeliveredRow], db: &str) -
             .map(|u| {
                 vec![
                     u.id.to_string(),
+                    u.message.clone(),
                     u.channel.clone(),
                     u.recipient.clone(),
                     u.state.clone(),
@@ -177,6 +178,7 @@ pub fn status_text(s: &StatusCounts, undelivered: &[UndeliveredRow], db: &str) -
         out.push_str(&table(
             &[
                 "id",
+                "message",
                 "channel",
                 "recipient",
                 "state",

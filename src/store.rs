@@ -297,8 +297,9 @@ pub struct EnginePass {
     pub baselines: Vec<NewBaseline>,
     /// In decision order.
     pub decisions: Vec<Decision>,
-    /// Outbox rows to write for every alert event of kind opened or resolved.
-    pub recipients: Vec<(String, String)>,
+    /// (channel, recipient) pairs by series id: one outbox row each for every alert event
+    /// that is announced (opened, repeated, resolved).
+    pub recipients: HashMap<i64, Vec<(String, String)>>,
     /// Running state per series after the pass.
     pub states: Vec<SeriesState>,
 }
@@ -323,7 +324,34 @@ pub struct OutboxItem {
     pub event_id: i64,
     pub event_kind: String,
     pub event_at: String,
+    /// The alert with the numbers of the event's own evaluation (for a repeat: the lot that
+    /// was still shifted; for a resolution: the lot that completed the in-control run).
     pub alert: AlertRow,
+    /// The lot that opened the alert.
+    pub opening_lot: String,
+}
+
+/// One digest message to deliver: the open alerts its recipient receives.
+#[derive(Debug, Clone)]
+pub struct DigestItem {
+    pub id: i64,
+    pub channel: String,
+    pub recipient: String,
+    pub attempts: i64,
+    pub created_at: String,
+    pub digest_id: i64,
+    /// Local date (YYYY-MM-DD) the digest is for.
+    pub local_date: String,
+    /// Alerts listed, with the numbers of their opening evaluation, oldest first.
+    pub alerts: Vec<AlertRow>,
+}
+
+/// One digest message to queue: channel, recipient, and the ids of the alerts it lists.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NewDigestMessage {
+    pub channel: String,
+    pub recipient: String,
+    pub alert_ids: Vec<i64>,
 }
 
 /// An alert with the numbers of the evaluation that opened it.
@@ -402,6 +430,8 @@ pub struct UndeliveredRow {
     pub state: String,
     pub attempts: i64,
     pub last_error: Option<String>,
+    /// What the message announces: "alert" (an alert event) or "digest".
+    pub message: String,
 }
 
 /// One lot of a series, for `lotdrift history`.
@@ -1510,7 +1540,12 @@ impl Store {
                 .await
                 .doing("recording an alert event")?;
                 if event_kind != "attached" {
-                    for (channel, recipient) in &pass.recipients {
+                    let series_recipients = pass
+                        .recipients
+                        .get(&d.evaluation.series_id)
+                        .map(Vec::as_slice)
+                        .unwrap_or_default();
+                    for (channel, recipient) in series_recipients {
                         sqlx::query(
                             "INSERT INTO outbox (alert_event_id, channel, recipient, state, \
                              created_at, next_attempt_at) VALUES (?, ?, ?, 'pending', ?, ?)",
@@ -1563,11 +1598,14 @@ impl Store {
     pub async fn due_outbox(&self, now: &str, limit: i64) -> Result<Vec<OutboxItem>> {
         let rows = sqlx::query(&format!(
             "SELECT o.id, o.channel, o.recipient, o.attempts, o.created_at, ev.id, ev.kind, ev.at, \
+             (SELECT ol.code FROM evaluation oe JOIN sample os ON os.id = oe.sample_id \
+              JOIN lot ol ON ol.id = os.lot_id WHERE oe.id = a.opening_evaluation), \
              {ALERT_COLUMNS} FROM outbox o \
              JOIN alert_event ev ON ev.id = o.alert_event_id \
-             JOIN alert a ON a.id = ev.alert_id {ALERT_JOINS} \
+             JOIN alert a ON a.id = ev.alert_id {joins} \
              WHERE o.state = 'pending' AND o.next_attempt_at <= ? \
-             ORDER BY o.next_attempt_at, o.id LIMIT ?"
+             ORDER BY o.next_attempt_at, o.id LIMIT ?",
+            joins = alert_joins("COALESCE(ev.evaluation_id, a.opening_evaluation)")
         ))
         .bind(now)
         .bind(limit)
@@ -1585,7 +1623,8 @@ impl Store {
                     event_id: r.get(5),
                     event_kind: r.get(6),
                     event_at: r.get(7),
-                    alert: alert_from_row(r, 8),
+                    opening_lot: r.get(8),
+                    alert: alert_from_row(r, 9),
                 })
             })
             .collect()
@@ -1648,12 +1687,127 @@ impl Store {
             ""
         };
         let rows = sqlx::query(&format!(
-            "SELECT {ALERT_COLUMNS} FROM alert a {ALERT_JOINS} {filter} ORDER BY a.id DESC"
+            "SELECT {ALERT_COLUMNS} FROM alert a {joins} {filter} ORDER BY a.id DESC",
+            joins = alert_joins("a.opening_evaluation")
         ))
         .fetch_all(&self.pool)
         .await
         .doing("listing alerts")?;
         Ok(rows.iter().map(|r| alert_from_row(r, 0)).collect())
+    }
+
+    /// The local date of the newest digest made, if any.
+    pub async fn latest_digest_date(&self) -> Result<Option<String>> {
+        sqlx::query_scalar("SELECT MAX(local_date) FROM digest")
+            .fetch_one(&self.pool)
+            .await
+            .doing("reading digests")
+    }
+
+    /// Records the digest of `local_date` and queues its messages, in one transaction.
+    /// Returns false, writing nothing, when that day's digest exists already.
+    pub async fn create_digest(
+        &self,
+        local_date: &str,
+        scheduled_at: &str,
+        now: &str,
+        open_alerts: i64,
+        messages: &[NewDigestMessage],
+    ) -> Result<bool> {
+        let mut tx = self.begin().await?;
+        let digest_id: Option<i64> = sqlx::query_scalar(
+            "INSERT INTO digest (local_date, scheduled_at, created_at, open_alerts) \
+             VALUES (?, ?, ?, ?) ON CONFLICT (local_date) DO NOTHING RETURNING id",
+        )
+        .bind(local_date)
+        .bind(scheduled_at)
+        .bind(now)
+        .bind(open_alerts)
+        .fetch_optional(&mut *tx)
+        .await
+        .doing("recording a digest")?;
+        let Some(digest_id) = digest_id else {
+            return Ok(false);
+        };
+        for m in messages {
+            let outbox_id: i64 = sqlx::query_scalar(
+                "INSERT INTO outbox (digest_id, channel, recipient, state, created_at, \
+                 next_attempt_at) VALUES (?, ?, ?, 'pending', ?, ?) RETURNING id",
+            )
+            .bind(digest_id)
+            .bind(&m.channel)
+            .bind(&m.recipient)
+            .bind(now)
+            .bind(now)
+            .fetch_one(&mut *tx)
+            .await
+            .doing("queueing a digest message")?;
+            for chunk in m.alert_ids.chunks(ROWS_PER_INSERT / 2) {
+                let mut q =
+                    QueryBuilder::<Sqlite>::new("INSERT INTO digest_item (outbox_id, alert_id) ");
+                q.push_values(chunk, |mut r, id| {
+                    r.push_bind(outbox_id).push_bind(*id);
+                });
+                q.build()
+                    .execute(&mut *tx)
+                    .await
+                    .doing("listing the alerts of a digest")?;
+            }
+        }
+        tx.commit().await.doing("committing a digest")?;
+        Ok(true)
+    }
+
+    /// Digest messages due at `now`, oldest first, each with the alerts it lists.
+    pub async fn due_digests(&self, now: &str, limit: i64) -> Result<Vec<DigestItem>> {
+        let rows = sqlx::query(
+            "SELECT o.id, o.channel, o.recipient, o.attempts, o.created_at, d.id, d.local_date \
+             FROM outbox o JOIN digest d ON d.id = o.digest_id \
+             WHERE o.state = 'pending' AND o.next_attempt_at <= ? \
+             ORDER BY o.next_attempt_at, o.id LIMIT ?",
+        )
+        .bind(now)
+        .bind(limit)
+        .fetch_all(&self.pool)
+        .await
+        .doing("reading the outbox")?;
+        let mut items: Vec<DigestItem> = rows
+            .iter()
+            .map(|r| DigestItem {
+                id: r.get(0),
+                channel: r.get(1),
+                recipient: r.get(2),
+                attempts: r.get(3),
+                created_at: r.get(4),
+                digest_id: r.get(5),
+                local_date: r.get(6),
+                alerts: Vec::new(),
+            })
+            .collect();
+        let ids: Vec<i64> = items.iter().map(|i| i.id).collect();
+        let mut listed: HashMap<i64, Vec<AlertRow>> = HashMap::new();
+        for chunk in ids.chunks(ROWS_PER_INSERT) {
+            let prefix = format!(
+                "SELECT di.outbox_id, {ALERT_COLUMNS} FROM digest_item di \
+                 JOIN alert a ON a.id = di.alert_id {joins} WHERE di.outbox_id IN",
+                joins = alert_joins("a.opening_evaluation")
+            );
+            let rows = in_list(&prefix, chunk, " ORDER BY a.opened_at, a.id")
+                .build()
+                .fetch_all(&self.pool)
+                .await
+                .doing("reading the alerts of a digest")?;
+            for r in &rows {
+                listed
+                    .entry(r.get(0))
+                    .or_default()
+                    .push(alert_from_row(r, 1));
+            }
+        }
+        for item in &mut items {
+            item.alerts = listed.remove(&item.id).unwrap_or_default();
+        }
+        Ok(items)
     }
 
     pub async fn status(&self) -> Result<StatusCounts> {
@@ -1875,7 +2029,8 @@ impl Store {
     /// Messages that could not be delivered (failed permanently or expired).
     pub async fn undelivered(&self) -> Result<Vec<UndeliveredRow>> {
         let rows = sqlx::query(
-            "SELECT id, channel, recipient, state, attempts, last_error FROM outbox \
+            "SELECT id, channel, recipient, state, attempts, last_error, \
+             CASE WHEN digest_id IS NULL THEN 'alert' ELSE 'digest' END FROM outbox \
              WHERE state IN ('failed', 'expired') ORDER BY id",
         )
         .fetch_all(&self.pool)
@@ -1890,6 +2045,7 @@ impl Store {
                 state: r.get(3),
                 attempts: r.get(4),
                 last_error: r.get(5),
+                message: r.get(6),
             })
             .collect())
     }
@@ -2013,10 +2169,16 @@ const ALERT_COLUMNS: &str = "a.id, src.name, ch.name, a.state, a.opened_at, a.re
      (SELECT k.acked_at FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1), \
      (SELECT k.note FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1)";
 
-const ALERT_JOINS: &str = "JOIN evaluation e ON e.id = a.opening_evaluation \
-     JOIN sample sm ON sm.id = e.sample_id JOIN lot l ON l.id = sm.lot_id \
-     JOIN series se ON se.id = a.series_id JOIN source src ON src.id = se.source_id \
-     JOIN characteristic ch ON ch.id = se.characteristic_id";
+/// The joins behind [`ALERT_COLUMNS`] for alert `a`, with the numbers of evaluation `eval`
+/// (an SQL expression: the opening evaluation, or an event's own).
+fn alert_joins(eval: &str) -> String {
+    format!(
+        "JOIN evaluation e ON e.id = {eval} \
+         JOIN sample sm ON sm.id = e.sample_id JOIN lot l ON l.id = sm.lot_id \
+         JOIN series se ON se.id = a.series_id JOIN source src ON src.id = se.source_id \
+         JOIN characteristic ch ON ch.id = se.characteristic_id"
+    )
+}
 
 fn alert_from_row(r: &SqliteRow, o: usize) -> AlertRow {
     let ci_low: Option<f64> = r.get(o + 24);
@@ -2248,5 +2410,72 @@ impl Store {
             .collect();
         out.reverse();
         Ok(out)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A database made before the digest (migration 0001 only) keeps its outbox rows when
+    /// migration 0002 rebuilds the table.
+    #[tokio::test]
+    async fn the_digest_migration_keeps_queued_messages() {
+        let dir = tempfile::tempdir().unwrap();
+        let only_first = dir.path().join("m1");
+        std::fs::create_dir(&only_first).unwrap();
+        std::fs::copy(
+            concat!(env!("CARGO_MANIFEST_DIR"), "/migrations/0001_initial.sql"),
+            only_first.join("0001_initial.sql"),
+        )
+        .unwrap();
+        let db = dir.path().join("old.db");
+        let options = SqliteConnectOptions::new()
+            .filename(&db)
+            .create_if_missing(true)
+            .foreign_keys(false);
+        let pool = SqlitePoolOptions::new()
+            .max_connections(1)
+            .connect_with(options)
+            .await
+            .unwrap();
+        sqlx::migrate::Migrator::new(only_first.as_path())
+            .await
+            .unwrap()
+            .run(&pool)
+            .await
+            .unwrap();
+        sqlx::query(
+            "INSERT INTO outbox (id, alert_event_id, channel, recipient, state, attempts, \
+             created_at, next_attempt_at, last_error) VALUES \
+             (7, 3, 'email', 'q@x.org', 'pending', 2, '2026-01-01T00:00:00Z', \
+              '2026-01-01T00:05:00Z', '451 busy')",
+        )
+        .execute(&pool)
+        .await
+        .unwrap();
+        sqlx::migrate!().run(&pool).await.unwrap();
+        let row = sqlx::query(
+            "SELECT id, alert_event_id, digest_id, recipient, state, attempts, last_error \
+             FROM outbox",
+        )
+        .fetch_one(&pool)
+        .await
+        .unwrap();
+        assert_eq!(row.get::<i64, _>(0), 7);
+        assert_eq!(row.get::<i64, _>(1), 3);
+        assert_eq!(row.get::<Option<i64>, _>(2), None);
+        assert_eq!(row.get::<String, _>(3), "q@x.org");
+        assert_eq!(row.get::<String, _>(4), "pending");
+        assert_eq!(row.get::<i64, _>(5), 2);
+        assert_eq!(row.get::<String, _>(6), "451 busy");
+        // A row must announce exactly one thing.
+        let neither = sqlx::query(
+            "INSERT INTO outbox (channel, recipient, state, created_at, next_attempt_at) \
+             VALUES ('log', 'log', 'pending', 'x', 'x')",
+        )
+        .execute(&pool)
+        .await;
+        assert!(neither.is_err());
     }
 }

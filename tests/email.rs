@@ -457,3 +457,264 @@ fn test_email_prints_the_server_reply_and_exits_1_when_refused() {
         stderr_of(&out)
     );
 }
+
+const ALDER: &str = "alder-buyer@plant.example";
+const BIRCH: &str = "birch-buyer@plant.example";
+const LAB: &str = "cell-lab@plant.example";
+
+/// Recipients by source and characteristic, besides the default list.
+const ROUTING: &str = "[alerts.email.by_source]\n\"alder-cells\" = [\"alder-buyer@plant.example\"]\n\
+                       birchworks = [\"birch-buyer@plant.example\", \"Quality@plant.example\"]\n\
+                       [alerts.email.by_characteristic]\ncapacity_mah = [\"cell-lab@plant.example\"]\n";
+
+/// alder-cells and birchworks, capacity_mah and ocv_mv; alder-cells' capacity rises by 3 sd
+/// from lot 23 on.
+fn two_sources(site: &Site) {
+    let scenario = Scenario {
+        sources: vec!["alder-cells".into(), "birchworks".into()],
+        chars: vec!["capacity_mah".into(), "ocv_mv".into()],
+        lots: 26,
+        n: 12,
+        shift: Some((0, 0, 22, 3.0)),
+    };
+    for (name, text, _) in scenario.files() {
+        drop_file(&site.inbox(), &name, &text);
+    }
+}
+
+fn envelope_recipients(got: &[Received]) -> Vec<String> {
+    let mut to: Vec<String> = got.iter().flat_map(|r| r.to.clone()).collect();
+    to.sort();
+    to
+}
+
+#[test]
+fn an_alert_goes_to_the_default_list_plus_its_source_and_characteristic_lists_once_each() {
+    let server = SmtpServer::start();
+    let site = email_site(server.port, "[\"email\"]", &[QUALITY], ROUTING);
+    two_sources(&site);
+    site.once();
+    let alerts = site.alerts();
+    assert_eq!(alerts.len(), 1, "{alerts:#?}");
+    assert_eq!(alerts[0]["source"], "alder-cells");
+    let got = server.received();
+    // Not birchworks' buyer (another source); the lab once (capacity_mah); quality once.
+    assert_eq!(
+        envelope_recipients(&got),
+        vec![ALDER.to_string(), LAB.to_string(), QUALITY.to_string()]
+    );
+    for r in &got {
+        assert!(parse(r).subject().unwrap().contains("alder-cells"));
+    }
+
+    // The test message reaches every configured address once (Quality@ is quality@).
+    let out = site.run(&["alerts", "test-email"]);
+    assert!(out.status.success(), "{}", stderr_of(&out));
+    let listed = text(&out.stdout);
+    for address in [QUALITY, ALDER, BIRCH, LAB] {
+        assert_eq!(listed.matches(address).count(), 1, "{listed}");
+    }
+    assert_eq!(server.received().len(), 3 + 4);
+}
+
+/// One lot file of alder-cells' capacity: lot `lot` (0-based), 12 units, mean 100 + `shift`.
+fn capacity_lot(site: &Site, lot: usize, shift: f64) {
+    let code = format!("AL-{:03}", lot + 1);
+    let values = lot_values(12, 100.0 + shift, 1.0, lot);
+    drop_file(
+        &site.inbox(),
+        &format!("{code}.csv"),
+        &long_file(
+            "alder-cells",
+            &code,
+            &lot_date(lot),
+            &[("capacity_mah", values)],
+        ),
+    );
+}
+
+fn subjects(server: &SmtpServer) -> Vec<String> {
+    server
+        .received()
+        .iter()
+        .map(|r| parse(r).subject().unwrap_or_default().to_string())
+        .collect()
+}
+
+#[test]
+fn opening_a_grown_shift_and_resolution_each_send_exactly_their_email_and_ack_stops_the_repeat() {
+    for ack in [false, true] {
+        let server = SmtpServer::start();
+        let site = email_site(server.port, "[\"email\"]", &[QUALITY], "");
+        // 20 baseline lots, 2 in control; lots 23-24 are 3 sd high: one alert, one email.
+        for lot in 0..24 {
+            capacity_lot(&site, lot, if lot < 22 { 0.0 } else { 3.0 });
+        }
+        site.once();
+        let s = subjects(&server);
+        assert_eq!(s.len(), 1, "{s:?}");
+        assert!(s[0].contains("mean shifted up in lot AL-023"), "{s:?}");
+        let id = site.alerts()[0]["id"].as_i64().unwrap().to_string();
+        if ack {
+            let out = site.run(&[
+                "alerts",
+                "ack",
+                &id,
+                "--note",
+                "supplier contained the lots",
+            ]);
+            assert!(out.status.success(), "{}", stderr_of(&out));
+        }
+
+        // Lots 25-26 are 7 sd high: the shift more than doubled, announced again (numbers of
+        // lot AL-025, the one that showed it), unless acknowledged.
+        for lot in 24..26 {
+            capacity_lot(&site, lot, 7.0);
+        }
+        site.once();
+        let s = subjects(&server);
+        if ack {
+            assert_eq!(s.len(), 1, "acknowledged: no repeat: {s:?}");
+        } else {
+            assert_eq!(s.len(), 2, "{s:?}");
+            assert!(s[1].contains("still shifted up (lot AL-025"), "{s:?}");
+            let repeat = &server.received()[1];
+            let plain = parse(repeat).body_text(0).unwrap().to_string();
+            let history = site.json(&["history", "alder-cells", "capacity_mah"]);
+            let lot25 = history
+                .as_array()
+                .unwrap()
+                .iter()
+                .find(|r| r["lot"] == "AL-025")
+                .expect("AL-025 in the history");
+            let mean = format!("mean = {:.6}", lot25["mean"].as_f64().unwrap());
+            assert!(plain.contains(&mean), "{mean} missing in:\n{plain}");
+            assert!(plain.contains("by lot AL-023"), "{plain}");
+        }
+
+        // Five in-control lots resolve it: one resolution email.
+        for lot in 26..31 {
+            capacity_lot(&site, lot, 0.0);
+        }
+        site.once();
+        let s = subjects(&server);
+        let expected = if ack { 2 } else { 3 };
+        assert_eq!(s.len(), expected, "{s:?}");
+        assert!(
+            s[expected - 1].contains(&format!("back in control (alert {id} resolved)")),
+            "{s:?}"
+        );
+        assert_eq!(site.alerts()[0]["state"], "resolved");
+        site.once();
+        assert_eq!(subjects(&server).len(), expected, "nothing more");
+    }
+}
+
+/// `run --once` with the time zone `tz` (a POSIX TZ string).
+fn once_in_zone(site: &Site, tz: &str) -> std::process::Output {
+    let out = cmd(site.path())
+        .args(["run", "--once", "--config"])
+        .arg(site.config())
+        .env("TZ", tz)
+        .output()
+        .unwrap();
+    assert!(out.status.success(), "{}", stderr_of(&out));
+    out
+}
+
+#[test]
+fn the_daily_digest_lists_each_recipients_open_alerts_once_a_day_at_local_time() {
+    // A zone 3 h east of UTC (POSIX: "LDT-3"); the digest time is one minute ago there.
+    let local_now = chrono::Utc::now() + chrono::Duration::hours(3);
+    let at = (local_now - chrono::Duration::minutes(1))
+        .format("%H:%M")
+        .to_string();
+    let server = SmtpServer::start();
+    let site = email_site(
+        server.port,
+        "[\"email\", \"log\"]",
+        &[QUALITY],
+        &format!("{ROUTING}[alerts.digest]\nat = \"{at}\"\n"),
+    );
+    two_sources(&site);
+    let out = once_in_zone(&site, "LDT-3");
+    let log = stderr_of(&out);
+    assert!(log.contains("daily digest queued"), "{log}");
+    let digests: Vec<Received> = server
+        .received()
+        .into_iter()
+        .filter(|r| parse(r).subject().unwrap_or_default().contains("digest"))
+        .collect();
+    // birchworks' buyer has no open alert: no digest (when_empty = false).
+    assert_eq!(
+        envelope_recipients(&digests),
+        vec![ALDER.to_string(), LAB.to_string(), QUALITY.to_string()]
+    );
+    let alert = site.alerts().remove(0);
+    for r in &digests {
+        let m = parse(r);
+        let subject = m.subject().unwrap();
+        assert!(subject.ends_with(": 1 open alert"), "{subject}");
+        let plain = m.body_text(0).unwrap();
+        let html = m.body_html(0).unwrap();
+        for needle in ["alder-cells", "capacity_mah", "mean up", "AL-023"] {
+            assert!(plain.contains(needle), "{needle} missing:\n{plain}");
+            assert!(html.contains(needle), "{needle} missing:\n{html}");
+        }
+        assert!(
+            plain.contains(alert["opened_at"].as_str().unwrap()),
+            "{plain}"
+        );
+        assert_eq!(
+            structure(&m),
+            vec![
+                ("multipart".into(), "alternative".into()),
+                ("text".into(), "plain".into()),
+                ("text".into(), "html".into()),
+            ]
+        );
+    }
+    assert!(
+        log.contains("open alert"),
+        "the log channel lists it: {log}"
+    );
+
+    // Once a day: another run sends no second digest.
+    let before = server.received().len();
+    once_in_zone(&site, "LDT-3");
+    assert_eq!(server.received().len(), before);
+    assert_eq!(site.status()["outbox_pending"], 0);
+}
+
+#[test]
+fn with_when_empty_the_digest_is_sent_even_with_nothing_open_and_not_before_its_time() {
+    let local_now = chrono::Utc::now() - chrono::Duration::hours(5);
+    let past = (local_now - chrono::Duration::minutes(1))
+        .format("%H:%M")
+        .to_string();
+    let future = (local_now + chrono::Duration::minutes(30))
+        .format("%H:%M")
+        .to_string();
+    let server = SmtpServer::start();
+    let digest = |at: &str| format!("[alerts.digest]\nat = \"{at}\"\nwhen_empty = true\n");
+    // Not yet due today, and yesterday's would be 23.5 h late: nothing.
+    let site = email_site(server.port, "[\"email\"]", &[QUALITY], &digest(&future));
+    once_in_zone(&site, "LST+5");
+    assert!(server.received().is_empty());
+    let cfg = std::fs::read_to_string(site.config()).unwrap();
+    std::fs::write(site.config(), cfg.replace(&future, &past)).unwrap();
+    once_in_zone(&site, "LST+5");
+    let got = server.received();
+    assert_eq!(got.len(), 1);
+    let m = parse(&got[0]);
+    assert!(
+        m.subject().unwrap().ends_with(": no open alerts"),
+        "{:?}",
+        m.subject()
+    );
+    assert!(
+        m.body_text(0)
+            .unwrap()
+            .contains("No alert you receive is open.")
+    );
+}
