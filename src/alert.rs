@@ -940,6 +940,8 @@ mod tests {
                 note: None,
                 cpk: None,
                 acknowledged: None,
+                events: Vec::new(),
+                acknowledgements: Vec::new(),
             },
         }
     }

@@ -241,7 +241,7 @@ pub fn history_json(rows: &[HistoryRow]) -> Value {
     Value::Array(rows.iter().map(|r| json!(r)).collect())
 }
 
-const HISTORY_HEADER: [&str; 13] = [
+const HISTORY_HEADER: [&str; 14] = [
     "source",
     "characteristic",
     "lot",
@@ -255,6 +255,7 @@ const HISTORY_HEADER: [&str; 13] = [
     "p_value",
     "p_adjusted",
     "alert",
+    "events",
 ];
 
 pub fn history_csv(rows: &[HistoryRow]) -> String {
@@ -275,6 +276,7 @@ pub fn history_csv(rows: &[HistoryRow]) -> String {
             r.p_value.map(|v| v.to_string()).unwrap_or_default(),
             r.p_adjusted.map(|v| v.to_string()).unwrap_or_default(),
             r.alert_id.map(|v| v.to_string()).unwrap_or_default(),
+            r.events.clone(),
         ]);
     }
     String::from_utf8(w.into_inner().unwrap_or_default()).unwrap_or_default()
@@ -307,6 +309,7 @@ pub fn history_text(rows: &[HistoryRow]) -> String {
                         String::new()
                     }
                 }),
+                r.events.clone(),
             ]
         })
         .collect();

@@ -394,6 +394,20 @@ pub struct AlertRow {
     pub cpk: Option<[f64; 3]>,
     /// Latest acknowledgement: who, when, and the note.
     pub acknowledged: Option<AckRow>,
+    /// Every state change, oldest first (filled by [`Store::alerts`]; empty elsewhere).
+    pub events: Vec<EventRow>,
+    /// Every acknowledgement, oldest first (filled by [`Store::alerts`]; empty elsewhere).
+    pub acknowledgements: Vec<AckRow>,
+}
+
+/// One state change of an alert.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct EventRow {
+    /// "opened", "attached", "repeated" or "resolved".
+    pub kind: String,
+    pub at: String,
+    /// The lot whose decision made the change.
+    pub lot: Option<String>,
 }
 
 /// An acknowledgement of an alert.
@@ -452,6 +466,9 @@ pub struct HistoryRow {
     pub p_adjusted: Option<f64>,
     pub significant: Option<bool>,
     pub alert_id: Option<i64>,
+    /// The alert events this lot's decisions made, e.g. "opened mean alert 3; resolved spread
+    /// alert 2" (empty when none).
+    pub events: String,
 }
 
 /// The columns [`design_from_row`] reads, in its order (prefix `b.` for the baseline table).
@@ -1693,7 +1710,52 @@ impl Store {
         .fetch_all(&self.pool)
         .await
         .doing("listing alerts")?;
-        Ok(rows.iter().map(|r| alert_from_row(r, 0)).collect())
+        let mut alerts: Vec<AlertRow> = rows.iter().map(|r| alert_from_row(r, 0)).collect();
+        let ids: Vec<i64> = alerts.iter().map(|a| a.id).collect();
+        let mut events: HashMap<i64, Vec<EventRow>> = HashMap::new();
+        let mut acks: HashMap<i64, Vec<AckRow>> = HashMap::new();
+        for chunk in ids.chunks(ROWS_PER_INSERT) {
+            let rows = in_list(
+                "SELECT ev.alert_id, ev.kind, ev.at, l.code FROM alert_event ev \
+                 LEFT JOIN evaluation e ON e.id = ev.evaluation_id \
+                 LEFT JOIN sample sm ON sm.id = e.sample_id LEFT JOIN lot l ON l.id = sm.lot_id \
+                 WHERE ev.alert_id IN",
+                chunk,
+                " ORDER BY ev.id",
+            )
+            .build()
+            .fetch_all(&self.pool)
+            .await
+            .doing("listing alert events")?;
+            for r in &rows {
+                events.entry(r.get(0)).or_default().push(EventRow {
+                    kind: r.get(1),
+                    at: r.get(2),
+                    lot: r.get(3),
+                });
+            }
+            let rows = in_list(
+                "SELECT alert_id, acked_by, acked_at, note FROM alert_ack WHERE alert_id IN",
+                chunk,
+                " ORDER BY id",
+            )
+            .build()
+            .fetch_all(&self.pool)
+            .await
+            .doing("listing acknowledgements")?;
+            for r in &rows {
+                acks.entry(r.get(0)).or_default().push(AckRow {
+                    by: r.get(1),
+                    at: r.get(2),
+                    note: r.get(3),
+                });
+            }
+        }
+        for a in &mut alerts {
+            a.events = events.remove(&a.id).unwrap_or_default();
+            a.acknowledgements = acks.remove(&a.id).unwrap_or_default();
+        }
+        Ok(alerts)
     }
 
     /// The local date of the newest digest made, if any.
@@ -2086,7 +2148,12 @@ impl Store {
                          WHEN e.id IS NOT NULL THEN 'tested' ELSE 'pending' END, \
                     e.p_value, e.p_adjusted, e.significant, \
                     (SELECT ev.alert_id FROM alert_event ev WHERE ev.evaluation_id = e.id \
-                     AND ev.kind IN ('opened', 'attached', 'repeated') LIMIT 1) \
+                     AND ev.kind IN ('opened', 'attached', 'repeated') LIMIT 1), \
+                    (SELECT group_concat(x.kind || ' ' || xa.kind || ' alert ' || xa.id, '; ') \
+                     FROM (SELECT ev.kind, ev.alert_id FROM evaluation xe \
+                           JOIN alert_event ev ON ev.evaluation_id = xe.id \
+                           WHERE xe.sample_id = sm.id ORDER BY ev.id) x \
+                     JOIN alert xa ON xa.id = x.alert_id) \
              FROM sample sm JOIN lot l ON l.id = sm.lot_id \
              JOIN series se ON se.id = sm.series_id \
              JOIN source src ON src.id = se.source_id \
@@ -2122,6 +2189,7 @@ impl Store {
                     p_adjusted: r.get(11),
                     significant: r.get::<Option<i64>, _>(12).map(|v| v != 0),
                     alert_id: r.get(13),
+                    events: r.get::<Option<String>, _>(14).unwrap_or_default(),
                 }
             })
             .collect())
@@ -2232,6 +2300,8 @@ fn alert_from_row(r: &SqliteRow, o: usize) -> AlertRow {
             (Some(by), Some(at), Some(note)) => Some(AckRow { by, at, note }),
             _ => None,
         },
+        events: Vec::new(),
+        acknowledgements: Vec::new(),
     }
 }
 

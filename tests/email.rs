@@ -604,7 +604,47 @@ fn opening_a_grown_shift_and_resolution_each_send_exactly_their_email_and_ack_st
             s[expected - 1].contains(&format!("back in control (alert {id} resolved)")),
             "{s:?}"
         );
-        assert_eq!(site.alerts()[0]["state"], "resolved");
+        let alert = site.alerts().remove(0);
+        assert_eq!(alert["state"], "resolved");
+        // Every state change is an event with its lot, in alerts --json and in the history.
+        let events: Vec<(String, String)> = alert["events"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|e| {
+                (
+                    e["kind"].as_str().unwrap().to_string(),
+                    e["lot"].as_str().unwrap().to_string(),
+                )
+            })
+            .collect();
+        let third = if ack { "attached" } else { "repeated" };
+        let expected_events = [
+            ("opened", "AL-023"),
+            ("attached", "AL-024"),
+            (third, "AL-025"),
+            ("attached", "AL-026"),
+            ("resolved", "AL-031"),
+        ]
+        .map(|(k, l)| (k.to_string(), l.to_string()));
+        assert_eq!(events, expected_events.to_vec());
+        assert_eq!(
+            alert["acknowledgements"].as_array().unwrap().len(),
+            usize::from(ack)
+        );
+        let history = site.json(&["history", "alder-cells", "capacity_mah"]);
+        let event_of = |lot: &str| {
+            history
+                .as_array()
+                .unwrap()
+                .iter()
+                .find(|r| r["lot"] == lot)
+                .map(|r| r["events"].as_str().unwrap().to_string())
+                .unwrap()
+        };
+        assert_eq!(event_of("AL-023"), format!("opened mean alert {id}"));
+        assert_eq!(event_of("AL-031"), format!("resolved mean alert {id}"));
+        assert_eq!(event_of("AL-027"), "");
         site.once();
         assert_eq!(subjects(&server).len(), expected, "nothing more");
     }
