@@ -283,6 +283,8 @@ fn init_tracing(format: LogFormat, level: &str) {
         .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(format!("lotdrift={level},warn")));
     let builder = tracing_subscriber::fmt()
         .with_env_filter(filter)
+        // Colour codes only on a terminal: a log file or journal gets plain text.
+        .with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr()))
         .with_writer(std::io::stderr);
     let _ = match format {
         LogFormat::Json => builder.json().try_init(),
