@@ -466,7 +466,14 @@ pub fn facts(item: &OutboxItem) -> Vec<(&'static str, String)> {
     let mut rows = vec![
         ("Source", clean(&a.source)),
         ("Characteristic", clean(&a.characteristic)),
-        ("Direction", direction(a).to_string()),
+        (
+            "Direction",
+            if item.event_kind == "resolved" {
+                "none: back in control".to_string()
+            } else {
+                direction(a).to_string()
+            },
+        ),
         (
             "Lot",
             format!(

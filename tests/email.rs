@@ -604,6 +604,13 @@ fn opening_a_grown_shift_and_resolution_each_send_exactly_their_email_and_ack_st
             s[expected - 1].contains(&format!("back in control (alert {id} resolved)")),
             "{s:?}"
         );
+        let resolution = &server.received()[expected - 1];
+        let plain = parse(resolution).body_text(0).unwrap().to_string();
+        assert!(plain.contains("none: back in control"), "{plain}");
+        assert!(
+            plain.contains("AL-031") && plain.contains("by lot AL-023"),
+            "{plain}"
+        );
         let alert = site.alerts().remove(0);
         assert_eq!(alert["state"], "resolved");
         // Every state change is an event with its lot, in alerts --json and in the history.
