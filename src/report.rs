@@ -128,6 +128,7 @@ pub fn status_json(
         "outbox_pending": s.outbox_pending,
         "outbox_failed": s.outbox_failed,
         "outbox_expired": s.outbox_expired,
+        "last_digest": s.last_digest,
         "sources": s.sources,
         "series": s.series,
         "files": s.files,
@@ -153,6 +154,10 @@ pub fn status_text(s: &StatusCounts, undelivered: &[UndeliveredRow], db: &str) -
         vec!["messages pending".into(), s.outbox_pending.to_string()],
         vec!["messages failed".into(), s.outbox_failed.to_string()],
         vec!["messages expired".into(), s.outbox_expired.to_string()],
+        vec![
+            "last daily digest".into(),
+            s.last_digest.clone().unwrap_or_else(|| "-".into()),
+        ],
     ];
     let mut out = table(&["", ""], &rows)
         .lines()

@@ -433,6 +433,8 @@ pub struct StatusCounts {
     pub outbox_pending: i64,
     pub outbox_failed: i64,
     pub outbox_expired: i64,
+    /// Local date of the newest daily digest made.
+    pub last_digest: Option<String>,
 }
 
 /// A failed or expired outbox message, for `status`.
@@ -1881,7 +1883,8 @@ impl Store {
              (SELECT COUNT(*) FROM alert WHERE state = 'open'), (SELECT COUNT(*) FROM alert), \
              (SELECT COUNT(*) FROM outbox WHERE state = 'pending'), \
              (SELECT COUNT(*) FROM outbox WHERE state = 'failed'), \
-             (SELECT COUNT(*) FROM outbox WHERE state = 'expired')",
+             (SELECT COUNT(*) FROM outbox WHERE state = 'expired'), \
+             (SELECT MAX(local_date) FROM digest)",
         )
         .fetch_one(&self.pool)
         .await
@@ -1899,6 +1902,7 @@ impl Store {
             outbox_pending: r.get(9),
             outbox_failed: r.get(10),
             outbox_expired: r.get(11),
+            last_digest: r.get(12),
         })
     }
 

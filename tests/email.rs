@@ -730,7 +730,16 @@ fn the_daily_digest_lists_each_recipients_open_alerts_once_a_day_at_local_time()
     let before = server.received().len();
     once_in_zone(&site, "LDT-3");
     assert_eq!(server.received().len(), before);
-    assert_eq!(site.status()["outbox_pending"], 0);
+    let status = site.status();
+    assert_eq!(status["outbox_pending"], 0);
+    let today = local_now.date_naive();
+    let made = status["last_digest"].as_str().unwrap().to_string();
+    assert!(
+        [today, today.pred_opt().unwrap()]
+            .iter()
+            .any(|d| d.format("%Y-%m-%d").to_string() == made),
+        "{made}"
+    );
 }
 
 #[test]
