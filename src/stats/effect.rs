@@ -2,7 +2,7 @@
 //!
 //! Owns [`hedges_correction`]. Pure computation, no I/O.
 
-use super::dist::ln_gamma_pos;
+use super::dist::half_shift_parts;
 
 /// Exact Hedges correction J(df) = Γ(df/2) / (√(df/2) · Γ((df−1)/2)),
 /// the factor that makes Cohen's d unbiased; J(df) → 1 as df → ∞.
@@ -15,22 +15,43 @@ pub fn hedges_correction(df: f64) -> f64 {
         return 1.0;
     }
     let m = 0.5 * df;
-    let ln_j = if m >= 20.0 {
-        // ln Γ(m) − ln Γ(m − ½) − ½ ln m from Stirling's series, free of the
-        // cancellation between two large ln Γ values.
-        -(m - 1.0) * (-0.5 / m).ln_1p() - 0.5 + stirling_diff(m)
-    } else {
-        ln_gamma_pos(m) - ln_gamma_pos(m - 0.5) - 0.5 * m.ln()
-    };
-    ln_j.exp()
+    // With a = m − ½: ln J = R(a) + ½ ln(a/m), where
+    // R(a) = ln Γ(a + ½) − ln Γ(a) − ½ ln a = s + ln f (Stirling's series, so
+    // no cancellation between two large ln Γ values at large m).
+    let a = m - 0.5;
+    let (s, f) = half_shift_parts(a);
+    s.exp() * f * (a / m).sqrt()
 }
 
-/// δ(m) − δ(m − ½) for m ≥ 20, with δ the Stirling error.
-fn stirling_diff(m: f64) -> f64 {
-    let d = |z: f64| {
-        let r = 1.0 / z;
-        let r2 = r * r;
-        r * (1.0 / 12.0 - r2 * (1.0 / 360.0 - r2 * (1.0 / 1260.0 - r2 / 1680.0)))
-    };
-    d(m) - d(m - 0.5)
+#[cfg(test)]
+mod tests {
+    use super::hedges_correction;
+
+    /// Reference values from mpmath (40 digits):
+    /// `gamma(df/2) / (sqrt(df/2) * gamma((df-1)/2))`.
+    #[test]
+    fn matches_mpmath() {
+        let cases = [
+            (1.5, 0.390_276_218_869_176_3),
+            (2.0, 0.564_189_583_547_756_3),
+            (3.0, 0.723_601_254_558_267_7),
+            (7.3, 0.892_987_264_305_938_5),
+            (20.0, 0.961_944_533_740_748_7),
+            (38.5, 0.980_370_682_511_163_4),
+            (39.0, 0.980_624_238_680_341_5),
+            (41.0, 0.981_576_176_704_517),
+            (118.0, 0.993_628_314_869_006),
+            (10_000.0, 0.999_924_997_812_429_7),
+            (1e8, 0.999_999_992_5),
+        ];
+        for (df, want) in cases {
+            let got = hedges_correction(df);
+            assert!(
+                ((got - want) / want).abs() < 1e-14,
+                "df {df}: {got} vs {want}"
+            );
+        }
+        assert_eq!(hedges_correction(1.0), 0.0);
+        assert_eq!(hedges_correction(f64::INFINITY), 1.0);
+    }
 }
