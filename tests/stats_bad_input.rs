@@ -144,3 +144,23 @@ fn extreme_but_valid_values_give_numbers() {
 fn good_three() -> [f64; 3] {
     [1.0, 2.0, 3.0]
 }
+
+#[test]
+fn the_screening_welch_refuses_what_welch_refuses() {
+    let one = Summary::from_slice(&[1.0]).unwrap();
+    let flat = Summary::from_slice(&[2.0, 2.0, 2.0]).unwrap();
+    let ok = Summary::from_slice(&[1.0, 2.0, 4.0]).unwrap();
+    let two = Alternative::TwoSided;
+    assert_eq!(
+        lotdrift::stats::welch_p(&one, &ok, 0.0, two),
+        Err(StatsError::TooFewValues { needed: 2, got: 1 })
+    );
+    assert_eq!(
+        lotdrift::stats::welch_p(&flat, &flat, 0.0, two),
+        Err(StatsError::ZeroVariance)
+    );
+    assert!(matches!(
+        lotdrift::stats::welch_p(&ok, &flat, NAN, two),
+        Err(StatsError::InvalidParameter { name: "delta", .. })
+    ));
+}

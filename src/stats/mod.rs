@@ -29,7 +29,8 @@ pub use rank::{
 };
 pub use summary::Summary;
 pub use ttest::{
-    Alternative, TTestOptions, TTestResult, pooled, pooled_samples, welch, welch_samples,
+    Alternative, TTestOptions, TTestP, TTestResult, pooled, pooled_samples, welch, welch_p,
+    welch_samples,
 };
 pub use variance::{
     Center, FTestResult, LeveneResult, brown_forsythe, f_test, f_test_samples, levene,

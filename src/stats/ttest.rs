@@ -233,6 +233,59 @@ fn to_usize(n: u64) -> usize {
 /// the statistic is undefined ([`StatsError::ZeroVariance`]).
 pub fn welch(a: &Summary, b: &Summary, opts: &TTestOptions) -> Result<TTestResult, StatsError> {
     check_options(opts)?;
+    let (diff, se, df) = welch_parts(a, b)?;
+    finish(a, b, diff, se, df, opts)
+}
+
+/// The decision part of a t test: statistic, df and p-value, without the
+/// interval or the effect size.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct TTestP {
+    /// t statistic `(mean_a − mean_b − delta) / std_error`.
+    pub statistic: f64,
+    /// Degrees of freedom (Welch–Satterthwaite: fractional, not rounded).
+    pub df: f64,
+    /// p-value for the alternative, in [0, 1].
+    pub p_value: f64,
+    /// Estimated difference `mean_a − mean_b`.
+    pub estimate: f64,
+    /// Standard error of the difference.
+    pub std_error: f64,
+}
+
+/// Welch's t test from summaries, statistic, df and p-value only: the same
+/// numbers as [`welch`] (same code), for screening many pairs where the
+/// interval (a quantile, which costs more than the p-value) is needed only
+/// for the pairs reported.
+pub fn welch_p(
+    a: &Summary,
+    b: &Summary,
+    delta: f64,
+    alternative: Alternative,
+) -> Result<TTestP, StatsError> {
+    if !delta.is_finite() {
+        return Err(StatsError::InvalidParameter {
+            name: "delta",
+            value: delta,
+        });
+    }
+    let (diff, se, df) = welch_parts(a, b)?;
+    let statistic = (diff - delta) / se;
+    if !statistic.is_finite() || !diff.is_finite() || !se.is_finite() || !df.is_finite() {
+        return Err(StatsError::NonFinite);
+    }
+    let p_value = t_p_value(statistic, &TDist::new(df), alternative)?.clamp(0.0, 1.0);
+    Ok(TTestP {
+        statistic,
+        df,
+        p_value,
+        estimate: diff,
+        std_error: se,
+    })
+}
+
+/// (difference of means, standard error, Welch–Satterthwaite df).
+fn welch_parts(a: &Summary, b: &Summary) -> Result<(f64, f64, f64), StatsError> {
     let (Some(var_a), Some(var_b)) = (a.variance(), b.variance()) else {
         return Err(StatsError::TooFewValues {
             needed: 2,
@@ -250,7 +303,7 @@ pub fn welch(a: &Summary, b: &Summary, opts: &TTestOptions) -> Result<TTestResul
     let wa = va / se2;
     let wb = vb / se2;
     let df = 1.0 / (wa * wa / (a.n() - 1) as f64 + wb * wb / (b.n() - 1) as f64);
-    finish(a, b, a.mean() - b.mean(), se2.sqrt(), df, opts)
+    Ok((a.mean() - b.mean(), se2.sqrt(), df))
 }
 
 /// Student's pooled-variance t test from summaries, df = n_a + n_b − 2.
