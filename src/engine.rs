@@ -602,10 +602,13 @@ pub fn decide_at(
                     {
                         let due =
                             at.is_none_or(|t| (now - t).to_std().unwrap_or_default() >= every);
-                        let grown = match (shift, ev.estimate) {
-                            (Some(old), Some(new)) => new.abs() >= GROWN * old.abs(),
-                            _ => false,
-                        };
+                        // Not twice in one pass: a backfill whose later lots show a larger
+                        // shift sends one message, not an opening and a repeat at once.
+                        let grown = at != Some(now)
+                            && match (shift, ev.estimate) {
+                                (Some(old), Some(new)) => new.abs() >= GROWN * old.abs(),
+                                _ => false,
+                            };
                         if due || grown {
                             action = AlertAction::Repeat;
                             notified = Some((Some(now), ev.estimate, false));

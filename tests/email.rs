@@ -774,3 +774,22 @@ fn with_when_empty_the_digest_is_sent_even_with_nothing_open_and_not_before_its_
             .contains("No alert you receive is open.")
     );
 }
+
+#[test]
+fn a_backfill_whose_shift_grows_sends_one_message_not_an_opening_and_a_repeat() {
+    let server = SmtpServer::start();
+    let site = email_site(server.port, "[\"email\"]", &[QUALITY], "");
+    for lot in 0..26 {
+        let shift = match lot {
+            0..=21 => 0.0,
+            22 | 23 => 3.0,
+            _ => 7.0,
+        };
+        capacity_lot(&site, lot, shift);
+    }
+    site.once();
+    let s = subjects(&server);
+    assert_eq!(s.len(), 1, "{s:?}");
+    assert!(s[0].contains("mean shifted up in lot AL-023"), "{s:?}");
+    assert_eq!(site.alerts()[0]["lots"], 4);
+}
