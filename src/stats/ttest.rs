@@ -198,12 +198,7 @@ fn finish(
     df: f64,
     opts: &TTestOptions,
 ) -> Result<TTestResult, StatsError> {
-    let statistic = (diff - opts.delta) / se;
-    if !statistic.is_finite() || !diff.is_finite() || !se.is_finite() || !df.is_finite() {
-        return Err(StatsError::NonFinite);
-    }
-    let dist = TDist::new(df);
-    let p_value = t_p_value(statistic, &dist, opts.alternative)?.clamp(0.0, 1.0);
+    let (statistic, p_value, dist) = decision(diff, se, df, opts.delta, opts.alternative)?;
     let ci = t_interval(diff, se, &dist, opts)?;
     Ok(TTestResult {
         statistic,
@@ -220,6 +215,24 @@ fn finish(
         n_a: a.n(),
         n_b: b.n(),
     })
+}
+
+/// The t statistic, its p-value and the t distribution, from the difference, its standard
+/// error and df.
+fn decision(
+    diff: f64,
+    se: f64,
+    df: f64,
+    delta: f64,
+    alternative: Alternative,
+) -> Result<(f64, f64, TDist), StatsError> {
+    let statistic = (diff - delta) / se;
+    if !statistic.is_finite() || !diff.is_finite() || !se.is_finite() || !df.is_finite() {
+        return Err(StatsError::NonFinite);
+    }
+    let dist = TDist::new(df);
+    let p_value = t_p_value(statistic, &dist, alternative)?.clamp(0.0, 1.0);
+    Ok((statistic, p_value, dist))
 }
 
 fn to_usize(n: u64) -> usize {
@@ -270,11 +283,7 @@ pub fn welch_p(
         });
     }
     let (diff, se, df) = welch_parts(a, b)?;
-    let statistic = (diff - delta) / se;
-    if !statistic.is_finite() || !diff.is_finite() || !se.is_finite() || !df.is_finite() {
-        return Err(StatsError::NonFinite);
-    }
-    let p_value = t_p_value(statistic, &TDist::new(df), alternative)?.clamp(0.0, 1.0);
+    let (statistic, p_value, _) = decision(diff, se, df, delta, alternative)?;
     Ok(TTestP {
         statistic,
         df,
