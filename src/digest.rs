@@ -328,4 +328,99 @@ mod tests {
         // A clock set back behind the newest digest makes no second one.
         assert!(due_slot(&local(0, "2026-03-10 08:00"), t, Some("2026-03-11")).is_none());
     }
+
+    /// A zone with a clock change each way in 2026, like central Europe's (UTC+1 in winter,
+    /// UTC+2 from 29 March 01:00 UTC to 25 October 01:00 UTC): local 02:00–03:00 is skipped
+    /// on 29 March and occurs twice on 25 October.
+    #[derive(Debug, Clone, Copy)]
+    struct TwoStep;
+
+    impl TwoStep {
+        fn offset_at(utc: &chrono::NaiveDateTime) -> FixedOffset {
+            let spring = chrono::NaiveDate::from_ymd_opt(2026, 3, 29)
+                .unwrap()
+                .and_hms_opt(1, 0, 0)
+                .unwrap();
+            let autumn = chrono::NaiveDate::from_ymd_opt(2026, 10, 25)
+                .unwrap()
+                .and_hms_opt(1, 0, 0)
+                .unwrap();
+            let hours = if *utc >= spring && *utc < autumn {
+                2
+            } else {
+                1
+            };
+            FixedOffset::east_opt(hours * 3600).unwrap()
+        }
+    }
+
+    impl TimeZone for TwoStep {
+        type Offset = FixedOffset;
+
+        fn from_offset(_: &FixedOffset) -> Self {
+            TwoStep
+        }
+
+        fn offset_from_local_date(&self, local: &NaiveDate) -> chrono::LocalResult<FixedOffset> {
+            self.offset_from_local_datetime(&local.and_time(NaiveTime::MIN))
+        }
+
+        fn offset_from_local_datetime(
+            &self,
+            local: &chrono::NaiveDateTime,
+        ) -> chrono::LocalResult<FixedOffset> {
+            let valid: Vec<FixedOffset> = [2, 1]
+                .into_iter()
+                .map(|h| FixedOffset::east_opt(h * 3600).unwrap())
+                .filter(|o| Self::offset_at(&(*local - *o)) == *o)
+                .collect();
+            match valid[..] {
+                [] => chrono::LocalResult::None,
+                [o] => chrono::LocalResult::Single(o),
+                [early, late] => chrono::LocalResult::Ambiguous(early, late),
+                _ => unreachable!(),
+            }
+        }
+
+        fn offset_from_utc_date(&self, utc: &NaiveDate) -> FixedOffset {
+            Self::offset_at(&utc.and_time(NaiveTime::MIN))
+        }
+
+        fn offset_from_utc_datetime(&self, utc: &chrono::NaiveDateTime) -> FixedOffset {
+            Self::offset_at(utc)
+        }
+    }
+
+    fn two_step(text: &str) -> DateTime<TwoStep> {
+        TwoStep
+            .from_local_datetime(
+                &chrono::NaiveDateTime::parse_from_str(text, "%Y-%m-%d %H:%M").unwrap(),
+            )
+            .earliest()
+            .unwrap()
+    }
+
+    #[test]
+    fn a_skipped_local_time_fires_at_the_first_minute_after_and_a_repeated_one_once() {
+        // 02:30 does not exist on 29 March: the first existing minute is 03:00 (+2) = 01:00 UTC.
+        let (d, slot) = latest_slot(&two_step("2026-03-29 12:00"), at(2, 30));
+        assert_eq!(d.to_string(), "2026-03-29");
+        assert_eq!(format_utc(slot), "2026-03-29T01:00:00.000Z");
+        // 02:30 occurs twice on 25 October: the first (+2) = 00:30 UTC.
+        let (d, slot) = latest_slot(&two_step("2026-10-25 12:00"), at(2, 30));
+        assert_eq!(d.to_string(), "2026-10-25");
+        assert_eq!(format_utc(slot), "2026-10-25T00:30:00.000Z");
+        // Between the two occurrences the day's digest is due once; at the second 02:40 (+1)
+        // it is already made.
+        let first = two_step("2026-10-25 02:40");
+        assert!(due_slot(&first, at(2, 30), Some("2026-10-24")).is_some());
+        let second = first + chrono::TimeDelta::hours(1);
+        assert_eq!(second.format("%H:%M").to_string(), "02:40");
+        assert!(due_slot(&second, at(2, 30), Some("2026-10-25")).is_none());
+        // Ordinary days either side keep their offsets.
+        let (_, slot) = latest_slot(&two_step("2026-03-28 12:00"), at(7, 30));
+        assert_eq!(format_utc(slot), "2026-03-28T06:30:00.000Z");
+        let (_, slot) = latest_slot(&two_step("2026-03-30 12:00"), at(7, 30));
+        assert_eq!(format_utc(slot), "2026-03-30T05:30:00.000Z");
+    }
 }
