@@ -694,9 +694,10 @@ impl TDist {
     }
 
     /// For t > 0 (finite): (ln P(T > t), P / P(T > t), d ln P / d ln t) with
-    /// P = t·pdf(t) = −d sf / d ln t.
+    /// P = t·pdf(t) = −d sf / d ln t. For t ≤ z(0.99), P(T > t) ≥ 0.01 for every
+    /// ν, and the faster fraction of the upper beta tail is used.
     fn upper(&self, t: f64) -> Result<(f64, f64, f64), StatsError> {
-        self.upper_with(t, false)
+        self.upper_with(t, t <= Z_99)
     }
 
     /// As [`TDist::upper`]; `upper_ok` as in [`BetaKernel::tails_with`].
@@ -737,8 +738,13 @@ impl TDist {
         let t = t.abs();
         match self.kernel {
             // 2·sf(t) = I_x(ν/2, ½), taken directly as a probability.
+            // For t ≤ z(0.995) the result is at least 0.01 whatever ν (t quantiles exceed
+            // normal ones), so it may be formed as 1 − (upper beta tail), losing at most two
+            // digits, with the fraction that converges faster there.
             Some(k) if t > 0.0 && t.is_finite() => {
-                Ok(TDist::beta_tails(&k, self.df, t, false)?.0.lower_prob())
+                Ok(TDist::beta_tails(&k, self.df, t, t <= Z_995)?
+                    .0
+                    .lower_prob())
             }
             _ => Ok((self.ln_sf(t)? + LN_2).exp().min(1.0)),
         }
@@ -940,6 +946,11 @@ fn solve_decreasing(
     }
     Ok(u)
 }
+
+/// Standard normal quantiles at 0.99 and 0.995 (rounded down, so that a t at or below them
+/// has an upper tail of at least 0.01 resp. 0.005 for every ν).
+const Z_99: f64 = 2.326_347_874;
+const Z_995: f64 = 2.575_829_303;
 
 const U_MAX: f64 = 709.0;
 const U_MIN: f64 = -744.0;
