@@ -84,18 +84,21 @@ pub fn plan(config: &Config, open: &[AlertRow], when_empty: bool) -> Vec<NewDige
                 let Some(email) = &config.alerts.email else {
                     continue;
                 };
+                // Each alert's recipients once, then each address's alerts in that order.
+                let mut listed: std::collections::HashMap<String, Vec<i64>> =
+                    std::collections::HashMap::new();
+                for a in open {
+                    for r in email.recipients_for(&a.source, &a.characteristic) {
+                        listed
+                            .entry(r.trim().to_lowercase())
+                            .or_default()
+                            .push(a.id);
+                    }
+                }
                 for address in email.all_recipients() {
-                    let key = address.trim().to_lowercase();
-                    let alert_ids = open
-                        .iter()
-                        .filter(|a| {
-                            email
-                                .recipients_for(&a.source, &a.characteristic)
-                                .iter()
-                                .any(|r| r.trim().to_lowercase() == key)
-                        })
-                        .map(|a| a.id)
-                        .collect();
+                    let alert_ids = listed
+                        .remove(&address.trim().to_lowercase())
+                        .unwrap_or_default();
                     out.push(NewDigestMessage {
                         channel: "email".into(),
                         recipient: address,
