@@ -49,41 +49,37 @@ fn main() {
         .collect();
     let opts = TTestOptions::default();
     let per_rep = 200_000usize;
-    let mut rates = Vec::with_capacity(REPS);
-    for _ in 0..REPS {
-        let start = Instant::now();
-        let mut acc = 0.0;
-        for i in 0..per_rep {
-            let a = &summaries[i & 1023];
-            let b = &summaries[(i * 7 + 3) & 1023];
-            let r = welch(black_box(a), black_box(b), black_box(&opts)).expect("welch");
-            acc += r.p_value + r.ci.0;
+    // Median tests per second of `test` over pairs of stored summaries.
+    let rate = |test: &dyn Fn(&Summary, &Summary) -> f64| {
+        let mut rates = Vec::with_capacity(REPS);
+        for _ in 0..REPS {
+            let start = Instant::now();
+            let mut acc = 0.0;
+            for i in 0..per_rep {
+                acc += test(&summaries[i & 1023], &summaries[(i * 7 + 3) & 1023]);
+            }
+            black_box(acc);
+            rates.push(per_rep as f64 / start.elapsed().as_secs_f64());
         }
-        black_box(acc);
-        rates.push(per_rep as f64 / start.elapsed().as_secs_f64());
-    }
+        median(rates)
+    };
+    let with_ci = rate(&|a, b| {
+        let r = welch(black_box(a), black_box(b), black_box(&opts)).expect("welch");
+        r.p_value + r.ci.0
+    });
     println!(
         "welch from summaries (with p and 95% CI): median {:.2} million tests/s per core",
-        median(rates) / 1e6
+        with_ci / 1e6
     );
     // The decision alone (statistic, df, p): what a screening pass over many pairs needs.
-    let mut rates = Vec::with_capacity(REPS);
-    for _ in 0..REPS {
-        let start = Instant::now();
-        let mut acc = 0.0;
-        for i in 0..per_rep {
-            let a = &summaries[i & 1023];
-            let b = &summaries[(i * 7 + 3) & 1023];
-            let r =
-                welch_p(black_box(a), black_box(b), 0.0, Alternative::TwoSided).expect("welch_p");
-            acc += r.p_value;
-        }
-        black_box(acc);
-        rates.push(per_rep as f64 / start.elapsed().as_secs_f64());
-    }
+    let decision = rate(&|a, b| {
+        welch_p(black_box(a), black_box(b), 0.0, Alternative::TwoSided)
+            .expect("welch_p")
+            .p_value
+    });
     println!(
         "welch from summaries (statistic, df, p; welch_p): median {:.2} million tests/s per core (target >= 2)",
-        median(rates) / 1e6
+        decision / 1e6
     );
 
     let a: Vec<f64> = (0..1000).map(|_| rng.normal()).collect();
