@@ -79,6 +79,8 @@ pub struct RawMonitor {
     pub over_time: Option<String>,
     pub fdr_level: Option<f64>,
     pub resolve_after_lots: Option<i64>,
+    pub reopen_within_lots: Option<i64>,
+    pub outliers: Option<bool>,
     pub sources: Option<Vec<String>>,
     pub characteristics: Option<Vec<String>>,
 }
@@ -89,6 +91,7 @@ pub struct RawCharacteristic {
     pub direction: Option<String>,
     pub min_shift: Option<f64>,
     pub spread: Option<bool>,
+    pub outliers: Option<bool>,
     pub lsl: Option<f64>,
     pub usl: Option<f64>,
 }
@@ -197,6 +200,10 @@ pub struct CharacteristicPolicy {
     pub min_shift: f64,
     /// Whether to test the lot's spread (within-lot variance) against the baseline.
     pub spread: bool,
+    /// Whether units far outside their lot and baseline are reported as outliers and set
+    /// aside from the lot's mean and spread tests (off where single extreme units are the very
+    /// thing to alert on).
+    pub outliers: bool,
     /// Specification limits, for Cpk reporting (never for alerting).
     pub lsl: Option<f64>,
     pub usl: Option<f64>,
@@ -258,8 +265,14 @@ pub struct Monitor {
     pub cusum_shift: f64,
     /// Default for testing spread.
     pub spread: bool,
-    /// Consecutive in-control lots that resolve an open alert.
+    /// In-control lots after the last significant one that can resolve an open alert (when
+    /// their mean shift is clearly below the alert's; see `engine`).
     pub resolve_after_lots: usize,
+    /// A signal within this many lots after the kind's last alert of the series resolved opens
+    /// that alert again instead of a new one.
+    pub reopen_within_lots: usize,
+    /// Default for outlier screening.
+    pub outliers: bool,
     /// Sources to monitor; empty means every source.
     pub sources: Vec<String>,
     /// Characteristics to monitor; empty means every characteristic.
@@ -271,9 +284,12 @@ pub struct Monitor {
 /// How the false-alert budget is shared between the tests of a series (fractions of
 /// 1 / false_alert_lots), stated once.
 pub mod budget {
-    pub const MEAN: f64 = 0.25;
+    pub const MEAN: f64 = 0.2;
     pub const SPREAD: f64 = 0.15;
-    pub const CUSUM: f64 = 0.6;
+    pub const CUSUM: f64 = 0.55;
+    /// Outlier findings (units flagged in in-control lots); not given to the other tests
+    /// when outlier screening is off.
+    pub const OUTLIER: f64 = 0.1;
 }
 
 impl Monitor {
@@ -286,6 +302,7 @@ impl Monitor {
                 direction: Direction::TwoSided,
                 min_shift: 0.0,
                 spread: self.spread,
+                outliers: self.outliers,
                 lsl: None,
                 usl: None,
             })
@@ -297,8 +314,13 @@ impl Monitor {
         let rate = 1.0 / self.false_alert_lots;
         let cusum = if self.cusum { budget::CUSUM } else { 0.0 };
         let spread_share = if spread { budget::SPREAD } else { 0.0 };
-        let mean = 1.0 - cusum - spread_share;
+        let mean = 1.0 - cusum - spread_share - budget::OUTLIER;
         (rate * mean, rate * spread_share, rate * cusum)
+    }
+
+    /// The per-lot rate of outlier findings in in-control lots.
+    pub fn outlier_share(&self) -> f64 {
+        budget::OUTLIER / self.false_alert_lots
     }
 
     pub fn monitors(&self, source: &str, characteristic: &str) -> bool {
@@ -429,6 +451,7 @@ pub mod defaults {
     pub const FALSE_ALERT_LOTS: f64 = 500.0;
     pub const CUSUM_SHIFT: f64 = 1.0;
     pub const RESOLVE_AFTER_LOTS: usize = 5;
+    pub const REOPEN_WITHIN_LOTS: usize = 20;
     pub const SETTLE_SECONDS: f64 = 2.0;
     pub const RESCAN_SECONDS: f64 = 30.0;
     pub const POLL_SECONDS: f64 = 5.0;
@@ -621,6 +644,7 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
         );
     }
     let spread_default = raw.monitor.spread.unwrap_or(true);
+    let outliers_default = raw.monitor.outliers.unwrap_or(true);
     let mut per_characteristic = std::collections::BTreeMap::new();
     for (name, c) in raw.characteristic {
         let key = |k: &str| format!("characteristic.{name}.{k}");
@@ -662,6 +686,7 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
                 direction,
                 min_shift,
                 spread: c.spread.unwrap_or(spread_default),
+                outliers: c.outliers.unwrap_or(outliers_default),
                 lsl: c.lsl,
                 usl: c.usl,
             },
@@ -688,6 +713,13 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
             defaults::RESOLVE_AFTER_LOTS,
             1,
         ),
+        reopen_within_lots: p.count(
+            "monitor.reopen_within_lots",
+            raw.monitor.reopen_within_lots,
+            defaults::REOPEN_WITHIN_LOTS,
+            0,
+        ),
+        outliers: outliers_default,
         sources: names(&mut p, "monitor.sources", raw.monitor.sources),
         characteristics: names(
             &mut p,
@@ -976,7 +1008,9 @@ cusum_shift = 1.0        # the shift the CUSUM is tuned for, in sd of a lot mean
 spread = true            # also alert when a lot's spread grows
 over_time = "budget"     # "budget", or online FDR of the lot tests: "lond" | "lord"
 fdr_level = 0.05         # the FDR level of "lond" / "lord"
-resolve_after_lots = 5   # consecutive in-control lots that resolve an open alert
+resolve_after_lots = 5   # in-control lots (clearly back near the baseline) that resolve an alert
+reopen_within_lots = 20  # a signal this soon after a resolution reopens the same alert
+outliers = true          # report units far outside their lot and set them aside from its tests
 sources = []             # only these sources; empty = every source
 characteristics = []     # only these characteristics; empty = every characteristic
 # level = 0.001          # fix the per-lot level of the mean tests instead of deriving it
@@ -986,6 +1020,7 @@ characteristics = []     # only these characteristics; empty = every characteris
 # direction = "higher-is-better"   # "two-sided" | "higher-is-better" | "lower-is-better"
 # min_shift = 5.0                  # alert only on shifts significantly larger than this (its unit)
 # spread = true
+# outliers = true                  # false: single extreme units are themselves the concern
 # lsl = 2900.0                     # specification limits: Cpk of baseline and lot is reported
 # usl = 3100.0
 

@@ -35,19 +35,22 @@
 //! arriving one by one in sampling order; a late lot is tested and recorded, and earlier
 //! decisions are never rewritten.
 
+pub mod lifecycle;
 pub mod operating;
+pub mod screen;
 
 use std::collections::BTreeMap;
 
-use crate::config::{Channel, Config, Direction, Family, Monitor, OverTime};
+use crate::config::{Channel, CharacteristicPolicy, Config, Direction, Family, Monitor, OverTime};
 use crate::stats::Summary;
 use crate::stats::dist::f_sf;
 use crate::stats::monitoring::{self, RandomEffects};
 use crate::stats::multiplicity::{self, Method};
+use crate::stats::robust::{self, OutlierFence, SpreadBaseline};
 use crate::stats::ttest::Alternative;
 use crate::store::{
-    AlertAction, Decision, Design, EnginePass, NewBaseline, NewEvaluation, PassCounts, SeriesState,
-    SeriesWork, Store, StoreError,
+    AlertAction, Decision, Design, EnginePass, Lifecycle, NewBaseline, NewEvaluation, PassCounts,
+    SeriesState, SeriesWork, Store, StoreError,
 };
 use crate::time::now_rfc3339;
 
@@ -109,6 +112,12 @@ pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, Engi
                 });
             }
         }
+        // Unit values of every lot to be screened: the pending lots (a baseline about to be
+        // frozen is among them).
+        for w in &mut chunk {
+            let ids: Vec<i64> = w.pending.iter().map(|s| s.sample_id).collect();
+            w.values = store.unit_values(&ids).await?;
+        }
         let mut pass = decide_at(
             &chunk,
             &config.monitor,
@@ -129,6 +138,8 @@ pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, Engi
         total.evaluations += counts.evaluations;
         total.opened += counts.opened;
         total.resolved += counts.resolved;
+        total.reopened += counts.reopened;
+        total.outliers += counts.outliers;
     }
     if total.evaluations > 0 || total.baselines > 0 {
         tracing::info!(
@@ -136,6 +147,8 @@ pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, Engi
             tests = total.evaluations,
             alerts_opened = total.opened,
             alerts_resolved = total.resolved,
+            alerts_reopened = total.reopened,
+            outliers = total.outliers,
             "evaluated"
         );
     }
@@ -245,6 +258,8 @@ pub fn design(
         level_spread: spread_share,
         cusum,
         normality_p,
+        outliers: None,
+        spread_base: None,
     })
 }
 
@@ -258,19 +273,47 @@ fn mean_hypothesis(direction: Direction, min_shift: f64) -> (Alternative, f64) {
     }
 }
 
+/// A series ready to be decided: its design, the merged summary of its baseline lots, and
+/// the index of its first pending lot that is not a baseline lot.
+#[derive(Clone, Copy)]
+struct Plan {
+    design: Design,
+    merged: Summary,
+    first: usize,
+}
+
+/// The spread test of one lot: which test, statistic, df, p and the lot's standardised
+/// spread shift (the normal quantile of p, for the lifecycle).
+#[derive(Clone, Copy)]
+struct SpreadResult {
+    test: &'static str,
+    model: &'static str,
+    statistic: f64,
+    df1: f64,
+    df2: Option<f64>,
+    p: f64,
+    estimate: f64,
+    z: f64,
+}
+
 /// The decisions for one lot of one series before the family adjustment.
 struct Tested {
     series: usize,
     sample: usize,
     lot_id: i64,
+    /// The summary tested: the lot's units less any set aside as outliers.
+    summary: Summary,
     mean: Result<monitoring::LotTest, String>,
-    /// Two-sided tests with a minimum shift: p of |d| > min_shift.
+    /// The p-value of the mean test (two-sided tests with a minimum shift: p of |d| >
+    /// min_shift; distribution-free series: Mann–Whitney's p).
     mean_p: Option<f64>,
-    spread: Option<(f64, f64, f64, f64)>,
+    spread: Option<SpreadResult>,
     /// The lot mean standardised by the baseline: (mean − baseline mean) / sd of a lot mean.
     z: Option<f64>,
     /// Mann–Whitney (U, p) when the series is tested distribution-free.
     rank: Option<(f64, f64)>,
+    /// What outlier screening did to the lot.
+    screen_note: Option<String>,
 }
 
 /// The decisions for `work`, a pure function of the stored state and the policy (without
@@ -286,6 +329,11 @@ const GROWN: f64 = 1.5;
 
 /// [`decide`] at time `now`, announcing a still-significant open alert again when `repeat`
 /// has passed since its last message or its shift has grown, unless it is acknowledged.
+///
+/// The steps: plan each series (freeze its baseline when due: screen the baseline lots, learn
+/// the outlier fence and the spread distribution, design the tests), test each pending lot
+/// (screen, mean, spread), adjust each lot's family of characteristics, then follow each
+/// series in lot order (CUSUM, alert lifecycle, repeats).
 pub fn decide_at(
     work: &[SeriesWork],
     monitor: &Monitor,
@@ -294,142 +342,276 @@ pub fn decide_at(
 ) -> EnginePass {
     let mut pass = EnginePass::default();
     let mut cache = HCache::new();
-    let mut designs: Vec<Option<(Design, Summary)>> = vec![None; work.len()];
+    let mut plans: Vec<Option<Plan>> = vec![None; work.len()];
     let mut tested: Vec<Tested> = Vec::new();
     for (i, w) in work.iter().enumerate() {
         if !monitor.monitors(&w.source, &w.characteristic) {
             continue;
         }
-        let policy = monitor.policy(&w.characteristic);
-        let (design, merged, first) = match &w.baseline {
-            Some(b) => (b.design, b.summary, 0),
-            None => {
-                if w.pending.len() < monitor.baseline_lots {
-                    continue;
-                }
-                let lots = &w.pending[..monitor.baseline_lots];
-                let summaries: Vec<Summary> = lots.iter().map(|l| l.summary).collect();
-                let merged = summaries[1..]
-                    .iter()
-                    .fold(summaries[0], |acc, s| acc.merge(s));
-                let d = match design(
-                    &summaries,
-                    w.baseline_residuals.as_deref(),
-                    monitor,
-                    &w.characteristic,
-                    &mut cache,
-                ) {
-                    Ok(d) => d,
-                    Err(e) => {
-                        tracing::warn!(source = %w.source, characteristic = %w.characteristic, error = %e, "cannot build a baseline yet");
-                        continue;
-                    }
-                };
-                pass.baselines.push(NewBaseline {
-                    series_id: w.series_id,
-                    definition: format!("first {} lots", monitor.baseline_lots),
-                    sample_ids: lots.iter().map(|l| l.sample_id).collect(),
-                    summary: merged,
-                    last_order_time: lots[lots.len() - 1].order_time.clone(),
-                    design: d,
-                    note: design_note(&d, monitor),
-                });
-                (d, merged, monitor.baseline_lots)
-            }
+        let Some(plan) = plan_series(w, monitor, &mut cache, &mut pass) else {
+            continue;
         };
-        designs[i] = Some((design, merged));
-        let (alternative, delta) = mean_hypothesis(policy.direction, policy.min_shift);
-        for (j, s) in w.pending.iter().enumerate().skip(first) {
-            let mean =
-                monitoring::lot_vs_baseline(&design.re, &s.summary, alternative, delta, 0.95)
-                    .map_err(|e| e.to_string());
-            // A minimum shift in both directions: the smaller of the two one-sided p-values,
-            // doubled.
-            let mean_p = match (&mean, policy.direction) {
-                (Ok(_), Direction::TwoSided) if policy.min_shift > 0.0 => {
-                    let lo = monitoring::lot_vs_baseline(
-                        &design.re,
-                        &s.summary,
-                        Alternative::Less,
-                        -policy.min_shift,
-                        0.95,
-                    );
-                    let hi = monitoring::lot_vs_baseline(
-                        &design.re,
-                        &s.summary,
-                        Alternative::Greater,
-                        policy.min_shift,
-                        0.95,
-                    );
-                    match (lo, hi) {
-                        (Ok(a), Ok(b)) => Some((2.0 * a.p_value.min(b.p_value)).min(1.0)),
-                        _ => None,
-                    }
-                }
-                (Ok(m), _) => Some(m.p_value),
-                _ => None,
-            };
-            // Distribution-free: Mann–Whitney of the lot's units against the baseline's units,
-            // with the lot shifted by the hypothesised difference.
-            let rank = match (&w.units, distribution_free(&design)) {
-                (Some(u), true) => u.lots.get(&s.sample_id).and_then(|lot| {
-                    let test = |shift: f64, alt: Alternative| {
-                        let shifted: Vec<f64> = lot.iter().map(|v| v - shift).collect();
-                        crate::stats::rank::mann_whitney(&shifted, &u.baseline, alt).ok()
-                    };
-                    match (policy.direction, policy.min_shift > 0.0) {
-                        (Direction::TwoSided, true) => {
-                            let lo = test(-policy.min_shift, Alternative::Less)?;
-                            let hi = test(policy.min_shift, Alternative::Greater)?;
-                            let r = if lo.p_value < hi.p_value { lo } else { hi };
-                            Some((r.statistic, (2.0 * r.p_value).min(1.0)))
-                        }
-                        _ => test(delta, alternative).map(|r| (r.statistic, r.p_value)),
-                    }
-                }),
-                _ => None,
-            };
-            let mean_p = match rank {
-                Some((_, p)) => Some(p),
-                None => mean_p,
-            };
-            let spread = if policy.spread {
-                spread_test(&design.re, &s.summary)
-            } else {
-                None
-            };
-            // CUSUM on z = (lot mean − baseline mean) / sd of a lot mean.
-            let z = mean.as_ref().ok().and_then(|_| {
-                let sd =
-                    (design.re.var_between + design.re.var_within / s.summary.n() as f64).sqrt();
-                (sd > 0.0).then(|| (s.summary.mean() - design.re.mean_of_means) / sd)
-            });
-            tested.push(Tested {
-                series: i,
-                sample: j,
-                lot_id: s.lot_id,
-                mean,
-                mean_p,
-                spread,
-                z,
-                rank,
-            });
+        for (j, s) in w.pending.iter().enumerate().skip(plan.first) {
+            tested.push(test_lot(w, &plan, monitor, i, j, s, &mut pass));
         }
+        plans[i] = Some(plan);
     }
+    let (mean_adj, spread_adj) = adjust_families(&tested, monitor.family);
+    let mut by_series: BTreeMap<usize, Vec<usize>> = BTreeMap::new();
+    for (k, t) in tested.iter().enumerate() {
+        by_series.entry(t.series).or_default().push(k);
+    }
+    let adjusted = Adjusted {
+        mean: &mean_adj,
+        spread: &spread_adj,
+    };
+    for (i, ks) in by_series {
+        let plan = plans[i].expect("tested series have a plan");
+        follow_series(
+            &work[i], &plan, &tested, &ks, adjusted, monitor, repeat, now, &mut pass,
+        );
+    }
+    pass
+}
 
-    // Families: the mean tests of one lot, and the spread tests of one lot.
-    let method = match monitor.family {
+/// The plan of a series: its frozen baseline, or a baseline frozen now from its first
+/// `baseline_lots` lots (pushed onto `pass`). None while the series has too few lots.
+fn plan_series(
+    w: &SeriesWork,
+    monitor: &Monitor,
+    cache: &mut HCache,
+    pass: &mut EnginePass,
+) -> Option<Plan> {
+    if let Some(b) = &w.baseline {
+        return Some(Plan {
+            design: b.design,
+            merged: b.summary,
+            first: 0,
+        });
+    }
+    let m = monitor.baseline_lots;
+    if w.pending.len() < m {
+        return None;
+    }
+    let lots = &w.pending[..m];
+    let raw: Vec<Summary> = lots.iter().map(|l| l.summary).collect();
+    let merged = raw[1..].iter().fold(raw[0], |acc, s| acc.merge(s));
+    let policy = monitor.policy(&w.characteristic);
+    let units: Option<Vec<&[(i64, f64)]>> = lots
+        .iter()
+        .map(|l| w.values.get(&l.sample_id).map(Vec::as_slice))
+        .collect();
+    let fence = units
+        .as_deref()
+        .filter(|_| policy.outliers)
+        .and_then(|u| screen::learn_fence(u, monitor.outlier_share()));
+    let screened: Option<Vec<screen::Screened>> = units.as_ref().map(|u| {
+        lots.iter()
+            .zip(u)
+            .map(|(l, u)| screen::screen(l.sample_id, u, fence.as_ref()))
+            .collect()
+    });
+    let summaries: Vec<Summary> = match &screened {
+        Some(s) => s.iter().map(|x| x.summary).collect(),
+        None => raw,
+    };
+    let mut d = match design(
+        &summaries,
+        w.baseline_residuals.as_deref(),
+        monitor,
+        &w.characteristic,
+        cache,
+    ) {
+        Ok(d) => d,
+        Err(e) => {
+            tracing::warn!(source = %w.source, characteristic = %w.characteristic, error = %e, "cannot build a baseline yet");
+            return None;
+        }
+    };
+    d.outliers = fence;
+    if let Some(s) = &screened {
+        d.spread_base = spread_baseline(s, fence.as_ref());
+        pass.outliers
+            .extend(s.iter().flat_map(|x| x.outliers.iter().cloned()));
+    }
+    pass.baselines.push(NewBaseline {
+        series_id: w.series_id,
+        definition: format!("first {m} lots"),
+        sample_ids: lots.iter().map(|l| l.sample_id).collect(),
+        summary: merged,
+        last_order_time: lots[m - 1].order_time.clone(),
+        design: d,
+        note: design_note(&d, monitor),
+    });
+    Some(Plan {
+        design: d,
+        merged,
+        first: m,
+    })
+}
+
+/// The floor of the spread statistic: a millionth of the baseline's robust sd (a coarse gauge
+/// can give a lot whose units are all equal).
+fn spread_floor(fence: Option<&OutlierFence>, lot: &Summary) -> f64 {
+    match fence {
+        Some(f) => 1e-6 * f.scale,
+        None => 1e-12 * lot.mean().abs().max(1e-300),
+    }
+}
+
+/// The baseline distribution of the spread statistic, from the screened baseline lots.
+fn spread_baseline(
+    lots: &[screen::Screened],
+    fence: Option<&OutlierFence>,
+) -> Option<SpreadBaseline> {
+    let mut stats = Vec::new();
+    let mut sizes = Vec::new();
+    for l in lots.iter().filter(|l| l.kept.len() >= 2) {
+        stats.push(robust::spread_statistic(&l.kept, spread_floor(fence, &l.summary)).ok()?);
+        sizes.push(l.kept.len() as f64);
+    }
+    SpreadBaseline::new(&stats, &sizes).ok()
+}
+
+/// Screens and tests one pending lot of a series (outliers found are pushed onto `pass`).
+fn test_lot(
+    w: &SeriesWork,
+    plan: &Plan,
+    monitor: &Monitor,
+    series: usize,
+    sample: usize,
+    s: &crate::store::SeriesSample,
+    pass: &mut EnginePass,
+) -> Tested {
+    let design = &plan.design;
+    let policy = monitor.policy(&w.characteristic);
+    let screened = w
+        .values
+        .get(&s.sample_id)
+        .map(|u| screen::screen(s.sample_id, u, design.outliers.as_ref()));
+    let summary = screened.as_ref().map_or(s.summary, |x| x.summary);
+    let (alternative, delta) = mean_hypothesis(policy.direction, policy.min_shift);
+    let mean = monitoring::lot_vs_baseline(&design.re, &summary, alternative, delta, 0.95)
+        .map_err(|e| e.to_string());
+    let rank = rank_test(w, design, &policy, s.sample_id, alternative, delta);
+    let mean_p = match rank {
+        Some((_, p)) => Some(p),
+        None => mean_p(design, &policy, &summary, &mean),
+    };
+    let spread = if !policy.spread {
+        None
+    } else {
+        match (&design.spread_base, &screened) {
+            (Some(b), Some(x)) => robust_spread_test(b, x, design.outliers.as_ref()),
+            _ => spread_test(&design.re, &summary),
+        }
+    };
+    // CUSUM and lifecycle on z = (lot mean − baseline mean) / sd of a lot mean.
+    let z = mean.as_ref().ok().and_then(|_| {
+        let sd = (design.re.var_between + design.re.var_within / summary.n() as f64).sqrt();
+        (sd > 0.0).then(|| (summary.mean() - design.re.mean_of_means) / sd)
+    });
+    let screen_note = screened.as_ref().and_then(|x| x.note.clone());
+    if let Some(x) = screened {
+        pass.outliers.extend(x.outliers);
+    }
+    Tested {
+        series,
+        sample,
+        lot_id: s.lot_id,
+        summary,
+        mean,
+        mean_p,
+        spread,
+        z,
+        rank,
+        screen_note,
+    }
+}
+
+/// The mean test's p-value; with a minimum shift in both directions the smaller of the two
+/// one-sided p-values, doubled.
+fn mean_p(
+    design: &Design,
+    policy: &CharacteristicPolicy,
+    lot: &Summary,
+    mean: &Result<monitoring::LotTest, String>,
+) -> Option<f64> {
+    match (mean, policy.direction) {
+        (Ok(_), Direction::TwoSided) if policy.min_shift > 0.0 => {
+            let one = |alt, d| monitoring::lot_vs_baseline(&design.re, lot, alt, d, 0.95);
+            let lo = one(Alternative::Less, -policy.min_shift);
+            let hi = one(Alternative::Greater, policy.min_shift);
+            match (lo, hi) {
+                (Ok(a), Ok(b)) => Some((2.0 * a.p_value.min(b.p_value)).min(1.0)),
+                _ => None,
+            }
+        }
+        (Ok(m), _) => Some(m.p_value),
+        _ => None,
+    }
+}
+
+/// Distribution-free series: Mann–Whitney of the lot's units against the baseline's units,
+/// with the lot shifted by the hypothesised difference: (U, p).
+fn rank_test(
+    w: &SeriesWork,
+    design: &Design,
+    policy: &CharacteristicPolicy,
+    sample_id: i64,
+    alternative: Alternative,
+    delta: f64,
+) -> Option<(f64, f64)> {
+    let u = w.units.as_ref().filter(|_| distribution_free(design))?;
+    let lot = u.lots.get(&sample_id)?;
+    let test = |shift: f64, alt: Alternative| {
+        let shifted: Vec<f64> = lot.iter().map(|v| v - shift).collect();
+        crate::stats::rank::mann_whitney(&shifted, &u.baseline, alt).ok()
+    };
+    match (policy.direction, policy.min_shift > 0.0) {
+        (Direction::TwoSided, true) => {
+            let lo = test(-policy.min_shift, Alternative::Less)?;
+            let hi = test(policy.min_shift, Alternative::Greater)?;
+            let r = if lo.p_value < hi.p_value { lo } else { hi };
+            Some((r.statistic, (2.0 * r.p_value).min(1.0)))
+        }
+        _ => test(delta, alternative).map(|r| (r.statistic, r.p_value)),
+    }
+}
+
+/// The lot's spread statistic against the baseline lots' (a prediction t test, one-sided).
+fn robust_spread_test(
+    base: &SpreadBaseline,
+    lot: &screen::Screened,
+    fence: Option<&OutlierFence>,
+) -> Option<SpreadResult> {
+    let stat = robust::spread_statistic(&lot.kept, spread_floor(fence, &lot.summary)).ok()?;
+    let t = base.test(stat, lot.kept.len()).ok()?;
+    Some(SpreadResult {
+        test: "log-spread-t",
+        model: "lot spreads of the baseline",
+        statistic: t.statistic,
+        df1: t.df,
+        df2: None,
+        p: t.p_value,
+        estimate: t.ratio,
+        z: z_of_p(t.p_value),
+    })
+}
+
+/// The standard normal quantile with upper tail p: a p-value as a standardised shift.
+fn z_of_p(p: f64) -> f64 {
+    crate::stats::dist::normal_isf(p.clamp(1e-300, 1.0 - 1e-16)).unwrap_or(0.0)
+}
+
+/// Adjusted p-values (and family sizes) of the mean tests and of the spread tests, each
+/// family being the tests of one lot's characteristics.
+type Adjustments = Vec<Option<(f64, usize)>>;
+
+fn adjust_families(tested: &[Tested], family: Family) -> (Adjustments, Adjustments) {
+    let method = match family {
         Family::Holm => Method::Holm,
         Family::BenjaminiHochberg => Method::BenjaminiHochberg,
-    };
-    let adjust = |members: &[(usize, f64)]| -> Vec<(usize, f64, usize)> {
-        let p: Vec<f64> = members.iter().map(|m| m.1).collect();
-        let adj = multiplicity::adjust(&p, method).unwrap_or(p);
-        members
-            .iter()
-            .zip(adj)
-            .map(|(m, a)| (m.0, a, members.len()))
-            .collect()
     };
     let mut mean_family: BTreeMap<i64, Vec<(usize, f64)>> = BTreeMap::new();
     let mut spread_family: BTreeMap<i64, Vec<(usize, f64)>> = BTreeMap::new();
@@ -437,233 +619,328 @@ pub fn decide_at(
         if let Some(p) = t.mean_p {
             mean_family.entry(t.lot_id).or_default().push((k, p));
         }
-        if let Some((_, _, _, p)) = t.spread {
-            spread_family.entry(t.lot_id).or_default().push((k, p));
+        if let Some(s) = t.spread {
+            spread_family.entry(t.lot_id).or_default().push((k, s.p));
         }
     }
-    let mut mean_adj: Vec<Option<(f64, usize)>> = vec![None; tested.len()];
-    let mut spread_adj: Vec<Option<(f64, usize)>> = vec![None; tested.len()];
-    for members in mean_family.values() {
-        for (k, a, size) in adjust(members) {
-            mean_adj[k] = Some((a, size));
-        }
-    }
-    for members in spread_family.values() {
-        for (k, a, size) in adjust(members) {
-            spread_adj[k] = Some((a, size));
-        }
-    }
-
-    // Alert lifecycle, series by series in lot order, per kind.
-    let mut by_series: BTreeMap<usize, Vec<usize>> = BTreeMap::new();
-    for (k, t) in tested.iter().enumerate() {
-        by_series.entry(t.series).or_default().push(k);
-    }
-    for (i, ks) in by_series {
-        let w = &work[i];
-        let (design, merged) = designs[i].expect("tested series have a design");
-        let policy = monitor.policy(&w.characteristic);
-        let (alternative, delta) = mean_hypothesis(policy.direction, policy.min_shift);
-        let mut mean_run = w.open_mean.map(|a| a.in_control_run);
-        // Last announcement of the open mean alert: (when, shift, acknowledged).
-        let mut notified = w
-            .open_mean
-            .map(|a| (a.notified_at, a.notified_estimate, a.acknowledged));
-        let mut spread_run = w.open_spread.map(|a| a.in_control_run);
-        let (mut upper, mut lower) = w.cusum;
-        let mut online = OnlineFdr::new(monitor, &w.online);
-        for k in ks {
-            let t = &tested[k];
-            let s = &w.pending[t.sample];
-            // CUSUM sums after this lot and whether they crossed h; they restart after a
-            // signal and when the mean alert resolves.
-            let cusum = match (design.cusum, t.z) {
-                (Some((k, h)), Some(z)) => {
-                    // A minimum shift moves both reference values outwards by its z size.
-                    let dz = policy.min_shift
-                        / (design.re.var_between + design.re.var_within / s.summary.n() as f64)
-                            .sqrt();
-                    let (mut up, mut lo) = (upper, lower);
-                    // Only the side that matters accumulates.
-                    if policy.direction != Direction::HigherIsBetter {
-                        up = (up + z - dz - k).max(0.0);
-                    }
-                    if policy.direction != Direction::LowerIsBetter {
-                        lo = (lo - z - dz - k).max(0.0);
-                    }
-                    let signal = up > h || lo > h;
-                    (upper, lower) = if signal { (0.0, 0.0) } else { (up, lo) };
-                    Some((up, lo, signal))
-                }
-                _ => None,
-            };
-            let base = NewEvaluation {
-                sample_id: s.sample_id,
-                series_id: w.series_id,
-                kind: "mean",
-                test: "lot-mean-t",
-                model: None,
-                alternative: alternative.as_str(),
-                delta,
-                statistic: None,
-                df: None,
-                df2: None,
-                p_value: None,
-                p_adjusted: None,
-                method: monitor.family.as_str(),
-                family_size: 0,
-                level: design.level_mean,
-                significant: false,
-                baseline: merged,
-                baseline_mean: design.re.mean_of_means,
-                lot: s.summary,
-                estimate: None,
-                ci: None,
-                std_error: None,
-                cusum: None,
-                cusum_signal: false,
-                cpk: lot_cpk(&policy, &s.summary),
-                note: None,
-            };
-            // Mean (the lot test and the CUSUM).
-            let mut ev = base.clone();
-            let mean_signal = match (&t.mean, mean_adj[k]) {
-                (Ok(r), Some((p_adj, size))) => {
-                    ev.model = Some(r.method.as_str());
-                    ev.statistic = Some(r.statistic);
-                    ev.df = Some(r.df);
-                    ev.p_value = t.mean_p;
-                    ev.p_adjusted = Some(p_adj);
-                    ev.family_size = size as i64;
-                    ev.estimate = Some(r.estimate);
-                    ev.ci = Some(r.ci);
-                    ev.std_error = Some(r.std_error);
-                    let lot_significant = match online.as_mut() {
-                        // Online FDR: the raw lot p-value against the stream's current level.
-                        Some(o) => {
-                            let p = t.mean_p.unwrap_or(1.0);
-                            let (level, rejected) = o.test(p);
-                            ev.level = level;
-                            ev.method = monitor.over_time.as_str();
-                            ev.p_adjusted = None;
-                            rejected
-                        }
-                        None => p_adj <= design.level_mean,
-                    };
-                    let cusum_signal = cusum.is_some_and(|c| c.2);
-                    if let (Some((up, lo, sig)), Some((_, h))) = (cusum, design.cusum) {
-                        ev.cusum = Some((up, lo, h));
-                        ev.cusum_signal = sig;
-                    }
-                    ev.significant = lot_significant || cusum_signal;
-                    if cusum_signal && !lot_significant {
-                        ev.test = "cusum";
-                    }
-                    if let Some((u, _)) = t.rank {
-                        ev.test = "mann-whitney";
-                        ev.model = Some("units, distribution-free");
-                        ev.statistic = Some(u);
-                        ev.df = None;
-                        ev.note = Some(format!(
-                            "baseline residuals fail the normality check (Shapiro–Wilk p = \
-                             {:.2e}): the lot's units were ranked against the baseline's units \
-                             (Mann–Whitney); statistic is U of the lot",
-                            design.normality_p.unwrap_or(0.0)
-                        ));
-                    } else if design.normality_p.is_some_and(|p| p < NON_NORMAL_P) {
-                        ev.note = Some(format!(
-                            "baseline residuals fail the normality check (Shapiro–Wilk p = \
-                             {:.2e}); the test rests on lot means of {} units being close to \
-                             normal",
-                            design.normality_p.unwrap_or(0.0),
-                            s.summary.n()
-                        ));
-                    }
-                    Some(ev.significant)
-                }
-                (result, _) => {
-                    ev.note = Some(format!(
-                        "not tested: {}",
-                        result.as_ref().err().cloned().unwrap_or_default()
-                    ));
-                    None
-                }
-            };
-            let mut action = lifecycle(mean_signal, &mut mean_run, monitor.resolve_after_lots);
-            match action {
-                AlertAction::Resolve => {
-                    (upper, lower) = (0.0, 0.0);
-                    notified = None;
-                }
-                AlertAction::Open => notified = Some((Some(now), ev.estimate, false)),
-                AlertAction::Attach => {
-                    if let (Some(every), Some((at, shift, acked))) = (repeat, notified)
-                        && !acked
-                    {
-                        let due =
-                            at.is_none_or(|t| (now - t).to_std().unwrap_or_default() >= every);
-                        // Not twice in one pass: a backfill whose later lots show a larger
-                        // shift sends one message, not an opening and a repeat at once.
-                        let grown = at != Some(now)
-                            && match (shift, ev.estimate) {
-                                (Some(old), Some(new)) => new.abs() >= GROWN * old.abs(),
-                                _ => false,
-                            };
-                        if due || grown {
-                            action = AlertAction::Repeat;
-                            notified = Some((Some(now), ev.estimate, false));
-                        }
-                    }
-                }
-                _ => {}
+    let apply = |families: BTreeMap<i64, Vec<(usize, f64)>>| {
+        let mut out: Adjustments = vec![None; tested.len()];
+        for members in families.values() {
+            let p: Vec<f64> = members.iter().map(|m| m.1).collect();
+            let adj = multiplicity::adjust(&p, method).unwrap_or(p);
+            for (m, a) in members.iter().zip(adj) {
+                out[m.0] = Some((a, members.len()));
             }
+        }
+        out
+    };
+    (apply(mean_family), apply(spread_family))
+}
+
+/// The adjusted p-values of a pass, by index into its tested lots.
+#[derive(Clone, Copy)]
+struct Adjusted<'a> {
+    mean: &'a Adjustments,
+    spread: &'a Adjustments,
+}
+
+/// The running state of one series while its lots are followed in order.
+struct Follow {
+    upper: f64,
+    lower: f64,
+    mean: lifecycle::Tracker,
+    spread: lifecycle::Tracker,
+    /// Last announcement of the open mean alert: (when, shift, acknowledged).
+    notified: Option<(Option<chrono::DateTime<chrono::Utc>>, Option<f64>, bool)>,
+    online: Option<OnlineFdr>,
+}
+
+/// Follows one series through its tested lots in order: CUSUM, the evaluations, the alert
+/// lifecycle of each kind, repeated announcements; then records its running state.
+#[allow(clippy::too_many_arguments)]
+fn follow_series(
+    w: &SeriesWork,
+    plan: &Plan,
+    tested: &[Tested],
+    ks: &[usize],
+    adjusted: Adjusted,
+    monitor: &Monitor,
+    repeat: Option<std::time::Duration>,
+    now: chrono::DateTime<chrono::Utc>,
+    pass: &mut EnginePass,
+) {
+    let policy = monitor.policy(&w.characteristic);
+    let rules = lifecycle::Rules {
+        resolve_after: monitor.resolve_after_lots,
+        reopen_within: monitor.reopen_within_lots,
+    };
+    let mut f = Follow {
+        upper: w.cusum.0,
+        lower: w.cusum.1,
+        mean: lifecycle::Tracker::new(
+            w.lifecycle.mean.clone(),
+            w.open_mean.map(|a| a.notified_estimate),
+            rules,
+        ),
+        spread: lifecycle::Tracker::new(
+            w.lifecycle.spread.clone(),
+            w.open_spread.map(|_| Some(1.0)),
+            rules,
+        ),
+        notified: w
+            .open_mean
+            .map(|a| (a.notified_at, a.notified_estimate, a.acknowledged)),
+        online: OnlineFdr::new(monitor, &w.online),
+    };
+    for &k in ks {
+        let t = &tested[k];
+        let s = &w.pending[t.sample];
+        let base = base_evaluation(w, plan, monitor, t, s);
+        let (ev, signal) =
+            mean_evaluation(&base, plan, monitor, &policy, t, adjusted.mean[k], &mut f);
+        let mut action = f.mean.step(signal, t.z);
+        match action {
+            AlertAction::Resolve => {
+                (f.upper, f.lower) = (0.0, 0.0);
+                f.notified = None;
+            }
+            AlertAction::Open | AlertAction::Reopen => {
+                f.notified = Some((Some(now), ev.estimate, false));
+            }
+            AlertAction::Attach => {
+                if repeat_due(&mut f.notified, repeat, now, ev.estimate) {
+                    action = AlertAction::Repeat;
+                }
+            }
+            _ => {}
+        }
+        pass.decisions.push(Decision {
+            evaluation: ev,
+            action,
+        });
+        if let Some(sp) = t.spread {
+            let ev = spread_evaluation(&base, plan, sp, adjusted.spread[k]);
+            let action = f.spread.step(Some(ev.significant), Some(sp.z));
             pass.decisions.push(Decision {
                 evaluation: ev,
                 action,
             });
-
-            // Spread.
-            if let Some((f, df1, df2, p)) = t.spread {
-                let (p_adj, size) = spread_adj[k].unwrap_or((p, 1));
-                let mut ev = base.clone();
-                ev.kind = "spread";
-                ev.test = "f-variance";
-                ev.model = Some("within-lot");
-                ev.alternative = "greater";
-                ev.delta = 0.0;
-                ev.statistic = Some(f);
-                ev.df = Some(df1);
-                ev.df2 = Some(df2);
-                ev.p_value = Some(p);
-                ev.p_adjusted = Some(p_adj);
-                ev.family_size = size as i64;
-                ev.level = design.level_spread;
-                ev.significant = p_adj <= design.level_spread;
-                ev.estimate = Some(f);
-                let action = lifecycle(
-                    Some(ev.significant),
-                    &mut spread_run,
-                    monitor.resolve_after_lots,
-                );
-                pass.decisions.push(Decision {
-                    evaluation: ev,
-                    action,
-                });
-            }
         }
-        let (online_tests, online_rejected) = match online {
-            Some(o) => o.state(),
-            None => w.online.clone(),
-        };
-        pass.states.push(SeriesState {
-            series_id: w.series_id,
-            cusum_upper: upper,
-            cusum_lower: lower,
-            online_tests,
-            online_rejected,
-        });
     }
-    pass
+    let (online_tests, online_rejected) = match &f.online {
+        Some(o) => o.state(),
+        None => w.online.clone(),
+    };
+    pass.states.push(SeriesState {
+        series_id: w.series_id,
+        cusum_upper: f.upper,
+        cusum_lower: f.lower,
+        online_tests,
+        online_rejected,
+        lifecycle: Lifecycle {
+            mean: f.mean.state,
+            spread: f.spread.state,
+        },
+    });
+}
+
+/// Whether an attached significant lot announces its open alert again: `repeat` has passed
+/// since the last message, or the shift grew by half (not twice in one pass: a backfill whose
+/// later lots show a larger shift sends one message, not an opening and a repeat at once);
+/// never when acknowledged. Updates the last announcement when it does.
+fn repeat_due(
+    notified: &mut Option<(Option<chrono::DateTime<chrono::Utc>>, Option<f64>, bool)>,
+    repeat: Option<std::time::Duration>,
+    now: chrono::DateTime<chrono::Utc>,
+    estimate: Option<f64>,
+) -> bool {
+    let (Some(every), Some((at, shift, acked))) = (repeat, *notified) else {
+        return false;
+    };
+    if acked {
+        return false;
+    }
+    let due = at.is_none_or(|t| (now - t).to_std().unwrap_or_default() >= every);
+    let grown = at != Some(now)
+        && match (shift, estimate) {
+            (Some(old), Some(new)) => new.abs() >= GROWN * old.abs(),
+            _ => false,
+        };
+    if due || grown {
+        *notified = Some((Some(now), estimate, false));
+    }
+    due || grown
+}
+
+/// The parts of a lot's evaluations that both kinds share.
+fn base_evaluation(
+    w: &SeriesWork,
+    plan: &Plan,
+    monitor: &Monitor,
+    t: &Tested,
+    s: &crate::store::SeriesSample,
+) -> NewEvaluation {
+    let policy = monitor.policy(&w.characteristic);
+    let (alternative, delta) = mean_hypothesis(policy.direction, policy.min_shift);
+    NewEvaluation {
+        sample_id: s.sample_id,
+        series_id: w.series_id,
+        kind: "mean",
+        test: "lot-mean-t",
+        model: None,
+        alternative: alternative.as_str(),
+        delta,
+        statistic: None,
+        df: None,
+        df2: None,
+        p_value: None,
+        p_adjusted: None,
+        method: monitor.family.as_str(),
+        family_size: 0,
+        level: plan.design.level_mean,
+        significant: false,
+        baseline: plan.merged,
+        baseline_mean: plan.design.re.mean_of_means,
+        lot: t.summary,
+        estimate: None,
+        ci: None,
+        std_error: None,
+        cusum: None,
+        cusum_signal: false,
+        cpk: lot_cpk(&policy, &t.summary),
+        note: t.screen_note.clone(),
+    }
+}
+
+/// One CUSUM step on the lot's z: the sums after it and whether they crossed h (they restart
+/// after a signal). A minimum shift moves both reference values outwards by its z size; only
+/// the side that matters accumulates.
+fn cusum_step(
+    plan: &Plan,
+    policy: &CharacteristicPolicy,
+    t: &Tested,
+    f: &mut Follow,
+) -> Option<(f64, f64, bool)> {
+    let (k, h) = plan.design.cusum?;
+    let z = t.z?;
+    let re = &plan.design.re;
+    let dz = policy.min_shift / (re.var_between + re.var_within / t.summary.n() as f64).sqrt();
+    let (mut up, mut lo) = (f.upper, f.lower);
+    if policy.direction != Direction::HigherIsBetter {
+        up = (up + z - dz - k).max(0.0);
+    }
+    if policy.direction != Direction::LowerIsBetter {
+        lo = (lo - z - dz - k).max(0.0);
+    }
+    let signal = up > h || lo > h;
+    (f.upper, f.lower) = if signal { (0.0, 0.0) } else { (up, lo) };
+    Some((up, lo, signal))
+}
+
+/// The mean evaluation of a lot (the lot test and the CUSUM) and whether it signals (None:
+/// not tested).
+fn mean_evaluation(
+    base: &NewEvaluation,
+    plan: &Plan,
+    monitor: &Monitor,
+    policy: &CharacteristicPolicy,
+    t: &Tested,
+    adjusted: Option<(f64, usize)>,
+    f: &mut Follow,
+) -> (NewEvaluation, Option<bool>) {
+    let design = &plan.design;
+    let cusum = cusum_step(plan, policy, t, f);
+    let mut ev = base.clone();
+    let (Ok(r), Some((p_adj, size))) = (&t.mean, adjusted) else {
+        let why = t.mean.as_ref().err().cloned().unwrap_or_default();
+        ev.note = Some(join_notes(ev.note.take(), format!("not tested: {why}")));
+        return (ev, None);
+    };
+    ev.model = Some(r.method.as_str());
+    ev.statistic = Some(r.statistic);
+    ev.df = Some(r.df);
+    ev.p_value = t.mean_p;
+    ev.p_adjusted = Some(p_adj);
+    ev.family_size = size as i64;
+    ev.estimate = Some(r.estimate);
+    ev.ci = Some(r.ci);
+    ev.std_error = Some(r.std_error);
+    let lot_significant = match f.online.as_mut() {
+        // Online FDR: the raw lot p-value against the stream's current level.
+        Some(o) => {
+            let (level, rejected) = o.test(t.mean_p.unwrap_or(1.0));
+            ev.level = level;
+            ev.method = monitor.over_time.as_str();
+            ev.p_adjusted = None;
+            rejected
+        }
+        None => p_adj <= design.level_mean,
+    };
+    let cusum_signal = cusum.is_some_and(|c| c.2);
+    if let (Some((up, lo, sig)), Some((_, h))) = (cusum, design.cusum) {
+        ev.cusum = Some((up, lo, h));
+        ev.cusum_signal = sig;
+    }
+    ev.significant = lot_significant || cusum_signal;
+    if cusum_signal && !lot_significant {
+        ev.test = "cusum";
+    }
+    let normality = design.normality_p.unwrap_or(0.0);
+    if let Some((u, _)) = t.rank {
+        ev.test = "mann-whitney";
+        ev.model = Some("units, distribution-free");
+        ev.statistic = Some(u);
+        ev.df = None;
+        let note = format!(
+            "baseline residuals fail the normality check (Shapiro–Wilk p = {normality:.2e}): \
+             the lot's units were ranked against the baseline's units (Mann–Whitney); \
+             statistic is U of the lot"
+        );
+        ev.note = Some(join_notes(ev.note.take(), note));
+    } else if design.normality_p.is_some_and(|p| p < NON_NORMAL_P) {
+        let note = format!(
+            "baseline residuals fail the normality check (Shapiro–Wilk p = {normality:.2e}); \
+             the test rests on lot means of {} units being close to normal",
+            t.summary.n()
+        );
+        ev.note = Some(join_notes(ev.note.take(), note));
+    }
+    let significant = ev.significant;
+    (ev, Some(significant))
+}
+
+/// The spread evaluation of a lot.
+fn spread_evaluation(
+    base: &NewEvaluation,
+    plan: &Plan,
+    sp: SpreadResult,
+    adjusted: Option<(f64, usize)>,
+) -> NewEvaluation {
+    let (p_adj, size) = adjusted.unwrap_or((sp.p, 1));
+    let mut ev = base.clone();
+    ev.kind = "spread";
+    ev.test = sp.test;
+    ev.model = Some(sp.model);
+    ev.alternative = "greater";
+    ev.delta = 0.0;
+    ev.statistic = Some(sp.statistic);
+    ev.df = Some(sp.df1);
+    ev.df2 = sp.df2;
+    ev.p_value = Some(sp.p);
+    ev.p_adjusted = Some(p_adj);
+    ev.family_size = size as i64;
+    ev.level = plan.design.level_spread;
+    ev.significant = p_adj <= plan.design.level_spread;
+    ev.estimate = Some(sp.estimate);
+    ev
+}
+
+/// Two notes as one.
+fn join_notes(first: Option<String>, second: String) -> String {
+    match first {
+        Some(f) => format!("{f}; {second}"),
+        None => second,
+    }
 }
 
 /// The online FDR procedure of a series, when `monitor.over_time` asks for one.
@@ -760,40 +1037,23 @@ pub fn baseline_cpk(
     .ok()
 }
 
-/// One-sided F test of the lot's variance against the baseline's within-lot variance:
-/// (F, df1, df2, p). None when the lot has a single unit.
-fn spread_test(re: &RandomEffects, lot: &Summary) -> Option<(f64, f64, f64, f64)> {
+/// One-sided F test of the lot's variance against the baseline's within-lot variance, for
+/// baselines frozen without unit values (exact only for normal units).
+fn spread_test(re: &RandomEffects, lot: &Summary) -> Option<SpreadResult> {
     let var = lot.variance()?;
     let df1 = (lot.n() - 1) as f64;
     let f = var / re.var_within;
-    let p = f_sf(f, df1, re.df_within).ok()?;
-    Some((f, df1, re.df_within, p.clamp(0.0, 1.0)))
-}
-
-/// The alert change for one decision of a kind, updating the open alert's in-control run
-/// (`None` = no alert open).
-fn lifecycle(signal: Option<bool>, run: &mut Option<i64>, resolve_after: usize) -> AlertAction {
-    match (signal, *run) {
-        (None, _) | (Some(false), None) => AlertAction::None,
-        (Some(true), None) => {
-            *run = Some(0);
-            AlertAction::Open
-        }
-        (Some(true), Some(_)) => {
-            *run = Some(0);
-            AlertAction::Attach
-        }
-        (Some(false), Some(r)) => {
-            let r = r + 1;
-            if r as usize >= resolve_after {
-                *run = None;
-                AlertAction::Resolve
-            } else {
-                *run = Some(r);
-                AlertAction::InControl { run: r }
-            }
-        }
-    }
+    let p = f_sf(f, df1, re.df_within).ok()?.clamp(0.0, 1.0);
+    Some(SpreadResult {
+        test: "f-variance",
+        model: "within-lot",
+        statistic: f,
+        df1,
+        df2: Some(re.df_within),
+        p,
+        estimate: f,
+        z: z_of_p(p),
+    })
 }
 
 /// The smallest shift of a lot mean (in the characteristic's unit, beyond any minimum shift)

@@ -23,6 +23,7 @@ use sqlx::{ConnectOptions, QueryBuilder, Row, Sqlite, Transaction};
 
 use crate::stats::Summary;
 use crate::stats::monitoring::RandomEffects;
+use crate::stats::robust::{OutlierFence, SpreadBaseline};
 
 /// A storage failure. Constraint violations that mean something to the domain are turned into
 /// their own variants; everything else is the database's error with what we were doing.
@@ -156,6 +157,10 @@ pub struct Design {
     pub cusum: Option<(f64, f64)>,
     /// Shapiro–Wilk p of the baseline's within-lot residuals.
     pub normality_p: Option<f64>,
+    /// How units of a lot are recognised as outliers; None: lots are not screened.
+    pub outliers: Option<OutlierFence>,
+    /// The baseline lots' spread statistics; None: spread is tested by the F test.
+    pub spread_base: Option<SpreadBaseline>,
 }
 
 /// A frozen baseline.
@@ -200,6 +205,47 @@ pub struct SeriesWork {
     pub baseline_residuals: Option<Vec<f64>>,
     /// Unit values, for series tested distribution-free (filled by the engine's caller).
     pub units: Option<UnitValues>,
+    /// (seq, value) of every unit of the pending samples, by sample id, in seq order (filled
+    /// by the engine's caller; a sample missing here is tested on its summary alone).
+    pub values: HashMap<i64, Vec<(i64, f64)>>,
+    /// Alert lifecycle state after the latest decided lot.
+    pub lifecycle: Lifecycle,
+}
+
+/// The alert lifecycle state of one kind (mean or spread) of a series, kept between passes.
+#[derive(Debug, Clone, Default, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct KindLifecycle {
+    /// Standardised shifts, signed in the open alert's direction, of the lots since its last
+    /// significant lot (oldest first, at most `monitor.resolve_after_lots`).
+    pub recent: Vec<f64>,
+    /// The open alert resolves when the upper confidence bound of the mean of `recent` is
+    /// below this margin.
+    pub margin: f64,
+    /// +1 or −1: the direction of the open alert's shift.
+    pub direction: f64,
+    /// Lots decided since this kind's last alert of the series resolved (None: none has).
+    pub since_resolved: Option<u64>,
+}
+
+/// The alert lifecycle state of a series (stored as JSON in `series_state.lifecycle`).
+#[derive(Debug, Clone, Default, PartialEq, serde::Serialize, serde::Deserialize)]
+pub struct Lifecycle {
+    pub mean: KindLifecycle,
+    pub spread: KindLifecycle,
+}
+
+/// A unit found outside the pattern of its lot and baseline.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NewOutlier {
+    pub sample_id: i64,
+    pub seq: i64,
+    pub value: f64,
+    pub lot_median: f64,
+    /// |value − lot median| in robust sds.
+    pub distance: f64,
+    pub fence: f64,
+    pub rule: &'static str,
+    pub set_aside: bool,
 }
 
 /// The unit values of a series' baseline and of its pending lots (by sample id).
@@ -217,6 +263,7 @@ pub struct SeriesState {
     pub cusum_lower: f64,
     pub online_tests: u64,
     pub online_rejected: Vec<u64>,
+    pub lifecycle: Lifecycle,
 }
 
 /// A baseline to freeze.
@@ -282,6 +329,9 @@ pub enum AlertAction {
         run: i64,
     },
     Resolve,
+    /// The same kind signals again soon after its last alert of the series resolved: that
+    /// alert is opened again (one problem, one alert).
+    Reopen,
 }
 
 /// A decision and its consequence, written together.
@@ -302,6 +352,8 @@ pub struct EnginePass {
     pub recipients: HashMap<i64, Vec<(String, String)>>,
     /// Running state per series after the pass.
     pub states: Vec<SeriesState>,
+    /// Outliers found (in baseline lots when a baseline is frozen, and in tested lots).
+    pub outliers: Vec<NewOutlier>,
 }
 
 /// Counts of what one engine pass wrote.
@@ -311,6 +363,8 @@ pub struct PassCounts {
     pub evaluations: usize,
     pub opened: usize,
     pub resolved: usize,
+    pub reopened: usize,
+    pub outliers: usize,
 }
 
 /// One message to deliver, with everything a channel needs to render it.
@@ -476,7 +530,8 @@ pub struct HistoryRow {
 /// The columns [`design_from_row`] reads, in its order (prefix `b.` for the baseline table).
 const DESIGN_COLUMNS: &str = "b.lot_count, b.n, b.mean, b.mean_of_means, b.msb, b.msw, \
      b.df_between, b.df_within, b.n0, b.n_harmonic, b.var_between, b.var_within, b.between_p, \
-     b.normality_p, b.level_mean, b.level_spread, b.cusum_k, b.cusum_h";
+     b.normality_p, b.level_mean, b.level_spread, b.cusum_k, b.cusum_h, b.outlier_scale, \
+     b.outlier_fence, b.heavy_tailed, b.spread_mean, b.spread_sd, b.spread_lots, b.spread_n";
 
 /// A stored baseline's design, from [`DESIGN_COLUMNS`] starting at column `o`.
 fn design_from_row(r: &SqliteRow, o: usize) -> Design {
@@ -505,6 +560,28 @@ fn design_from_row(r: &SqliteRow, o: usize) -> Design {
         level_spread: r.get(o + 15),
         cusum: k.zip(h),
         normality_p: r.get(o + 13),
+        outliers: match (r.get::<Option<f64>, _>(o + 18), r.get(o + 19)) {
+            (Some(scale), Some(fence)) => Some(OutlierFence {
+                scale,
+                fence,
+                heavy_tailed: r.get::<Option<i64>, _>(o + 20).unwrap_or(0) != 0,
+            }),
+            _ => None,
+        },
+        spread_base: match (
+            r.get::<Option<f64>, _>(o + 21),
+            r.get::<Option<f64>, _>(o + 22),
+            r.get::<Option<i64>, _>(o + 23),
+            r.get::<Option<f64>, _>(o + 24),
+        ) {
+            (Some(mean), Some(sd), Some(lots), Some(n)) => Some(SpreadBaseline {
+                mean,
+                sd,
+                lots: lots as usize,
+                n,
+            }),
+            _ => None,
+        },
     }
 }
 
@@ -1152,7 +1229,7 @@ impl Store {
         let rows = sqlx::query(
             "SELECT s.id, src.name, ch.name, COALESCE(st.cusum_upper, 0.0), \
                     COALESCE(st.cusum_lower, 0.0), COALESCE(st.online_tests, 0), \
-                    COALESCE(st.online_rejected, '') FROM series s \
+                    COALESCE(st.online_rejected, ''), st.lifecycle FROM series s \
              JOIN source src ON src.id = s.source_id \
              JOIN characteristic ch ON ch.id = s.characteristic_id \
              LEFT JOIN series_state st ON st.series_id = s.id \
@@ -1185,6 +1262,11 @@ impl Store {
                 ),
                 baseline_residuals: None,
                 units: None,
+                values: HashMap::new(),
+                lifecycle: r
+                    .get::<Option<String>, _>(7)
+                    .and_then(|j| serde_json::from_str(&j).ok())
+                    .unwrap_or_default(),
             })
             .collect();
         if work.is_empty() {
@@ -1290,6 +1372,23 @@ impl Store {
         Ok(out)
     }
 
+    /// (seq, value) of every unit of the given samples, in seq order.
+    pub async fn unit_values(&self, sample_ids: &[i64]) -> Result<HashMap<i64, Vec<(i64, f64)>>> {
+        let mut out: HashMap<i64, Vec<(i64, f64)>> = HashMap::new();
+        for chunk in sample_ids.chunks(ROWS_PER_INSERT) {
+            let mut q = in_list(
+                "SELECT sample_id, seq, value FROM measurement WHERE sample_id IN",
+                chunk,
+                " ORDER BY sample_id, seq",
+            );
+            let mut rows = q.build().fetch(&self.pool);
+            while let Some(r) = rows.try_next().await.doing("reading unit values")? {
+                out.entry(r.get(0)).or_default().push((r.get(1), r.get(2)));
+            }
+        }
+        Ok(out)
+    }
+
     /// The samples of a baseline.
     pub async fn baseline_samples(&self, baseline_id: i64) -> Result<Vec<i64>> {
         sqlx::query_scalar("SELECT sample_id FROM baseline_lot WHERE baseline_id = ?")
@@ -1332,7 +1431,7 @@ impl Store {
     /// in one transaction, so an alert is never decided without its message queued.
     pub async fn write_pass(&self, pass: &EnginePass, at: &str) -> Result<PassCounts> {
         let mut counts = PassCounts::default();
-        if pass.baselines.is_empty() && pass.decisions.is_empty() {
+        if pass.baselines.is_empty() && pass.decisions.is_empty() && pass.outliers.is_empty() {
             return Ok(counts);
         }
         let mut tx = self.begin().await?;
@@ -1449,9 +1548,10 @@ impl Store {
             let eval_id = eval_ids[&(d.evaluation.sample_id, kind.to_string())];
             let series_id = d.evaluation.series_id;
             let key = (series_id, kind);
-            if d.action != AlertAction::None
-                && d.action != AlertAction::Open
-                && !open.contains_key(&key)
+            if !matches!(
+                d.action,
+                AlertAction::None | AlertAction::Open | AlertAction::Reopen
+            ) && !open.contains_key(&key)
             {
                 let id: Option<i64> = sqlx::query_scalar(
                     "SELECT id FROM alert WHERE series_id = ? AND kind = ? AND state = 'open'",
@@ -1530,6 +1630,35 @@ impl Store {
                         .doing("updating an alert")?;
                     None
                 }
+                AlertAction::Reopen => {
+                    let alert_id: i64 = sqlx::query_scalar(
+                        "SELECT id FROM alert WHERE series_id = ? AND kind = ? \
+                         AND state = 'resolved' ORDER BY resolved_at DESC, id DESC LIMIT 1",
+                    )
+                    .bind(series_id)
+                    .bind(kind)
+                    .fetch_optional(&mut *tx)
+                    .await
+                    .doing("looking up a resolved alert")?
+                    .ok_or_else(|| {
+                        StoreError::Corrupt(format!(
+                            "series {series_id} has no resolved {kind} alert to reopen"
+                        ))
+                    })?;
+                    sqlx::query(
+                        "UPDATE alert SET state = 'open', resolved_at = NULL, in_control_run = 0, \
+                         notified_at = ?, notified_estimate = ? WHERE id = ?",
+                    )
+                    .bind(at)
+                    .bind(d.evaluation.estimate)
+                    .bind(alert_id)
+                    .execute(&mut *tx)
+                    .await
+                    .doing("reopening an alert")?;
+                    counts.reopened += 1;
+                    open.insert(key, Some(alert_id));
+                    Some((alert_id, "opened"))
+                }
                 AlertAction::Resolve => {
                     let alert_id = current()?;
                     open.insert(key, None);
@@ -1584,7 +1713,7 @@ impl Store {
         for chunk in pass.states.chunks(ROWS_PER_INSERT / 5) {
             let mut q = QueryBuilder::<Sqlite>::new(
                 "INSERT INTO series_state (series_id, cusum_upper, cusum_lower, online_tests, \
-                 online_rejected) ",
+                 online_rejected, lifecycle) ",
             );
             q.push_values(chunk, |mut r, st| {
                 r.push_bind(st.series_id)
@@ -1597,18 +1726,20 @@ impl Store {
                             .map(u64::to_string)
                             .collect::<Vec<_>>()
                             .join(","),
-                    );
+                    )
+                    .push_bind(serde_json::to_string(&st.lifecycle).ok());
             });
             q.push(
                 " ON CONFLICT (series_id) DO UPDATE SET cusum_upper = excluded.cusum_upper, \
                  cusum_lower = excluded.cusum_lower, online_tests = excluded.online_tests, \
-                 online_rejected = excluded.online_rejected",
+                 online_rejected = excluded.online_rejected, lifecycle = excluded.lifecycle",
             );
             q.build()
                 .execute(&mut *tx)
                 .await
                 .doing("recording series state")?;
         }
+        counts.outliers = insert_outliers(&mut tx, &pass.outliers, at).await?;
         tx.commit().await.doing("committing decisions")?;
         Ok(counts)
     }
@@ -2366,6 +2497,37 @@ async fn upsert_name(
 }
 
 /// Inserts a frozen baseline and its lots; returns its id.
+/// Records outliers (a unit already recorded is left as it is).
+async fn insert_outliers(
+    tx: &mut Transaction<'static, Sqlite>,
+    outliers: &[NewOutlier],
+    at: &str,
+) -> Result<usize> {
+    for chunk in outliers.chunks(ROWS_PER_INSERT / 10) {
+        let mut q = QueryBuilder::<Sqlite>::new(
+            "INSERT INTO outlier (sample_id, seq, value, lot_median, distance, fence, rule, \
+             set_aside, found_at) ",
+        );
+        q.push_values(chunk, |mut r, o| {
+            r.push_bind(o.sample_id)
+                .push_bind(o.seq)
+                .push_bind(o.value)
+                .push_bind(o.lot_median)
+                .push_bind(o.distance)
+                .push_bind(o.fence)
+                .push_bind(o.rule)
+                .push_bind(o.set_aside as i64)
+                .push_bind(at);
+        });
+        q.push(" ON CONFLICT (sample_id, seq) DO NOTHING");
+        q.build()
+            .execute(&mut **tx)
+            .await
+            .doing("recording outliers")?;
+    }
+    Ok(outliers.len())
+}
+
 async fn insert_baseline(
     tx: &mut Transaction<'static, Sqlite>,
     b: &NewBaseline,
@@ -2377,9 +2539,10 @@ async fn insert_baseline(
         "INSERT INTO baseline (series_id, frozen_at, definition, lot_count, n, mean, m2, \
                  min_value, max_value, last_order_key, mean_of_means, msb, msw, df_between, \
                  df_within, n0, n_harmonic, var_between, var_within, between_p, normality_p, \
-                 level_mean, level_spread, cusum_k, cusum_h, design_note) \
+                 level_mean, level_spread, cusum_k, cusum_h, design_note, outlier_scale, \
+                 outlier_fence, heavy_tailed, spread_mean, spread_sd, spread_lots, spread_n) \
                  VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, \
-                 ?, ?) RETURNING id",
+                 ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING id",
     )
     .bind(b.series_id)
     .bind(at)
@@ -2407,6 +2570,13 @@ async fn insert_baseline(
     .bind(d.cusum.map(|c| c.0))
     .bind(d.cusum.map(|c| c.1))
     .bind(&b.note)
+    .bind(d.outliers.map(|o| o.scale))
+    .bind(d.outliers.map(|o| o.fence))
+    .bind(d.outliers.map(|o| o.heavy_tailed as i64))
+    .bind(d.spread_base.map(|b| b.mean))
+    .bind(d.spread_base.map(|b| b.sd))
+    .bind(d.spread_base.map(|b| b.lots as i64))
+    .bind(d.spread_base.map(|b| b.n))
     .fetch_one(&mut **tx)
     .await
     .doing("freezing a baseline")?;

@@ -118,6 +118,8 @@ pub fn run(scenario: &Scenario, monitor: &Monitor) -> Outcome {
             online: (0, Vec::new()),
             baseline_residuals: None,
             units: None,
+            values: Default::default(),
+            lifecycle: Default::default(),
         });
     }
     let pass = super::decide(&work, monitor);

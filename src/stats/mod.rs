@@ -14,6 +14,7 @@ pub mod monitoring;
 pub mod multiplicity;
 pub mod normality;
 pub mod rank;
+pub mod robust;
 pub mod summary;
 pub mod ttest;
 pub mod variance;
