@@ -29,14 +29,8 @@ fn main() {
     for between in [0.0, 0.5, 1.0] {
         for (i, shift) in [0.0, 0.5, 1.0, 1.5, 2.0, 3.0].into_iter().enumerate() {
             let lots = if shift == 0.0 { 500 } else { 100 };
-            let s = Scenario {
-                series,
-                lots,
-                units: 30,
-                between,
-                shift,
-                seed: 1000 + i as u64 + (between * 100.0) as u64,
-            };
+            let seed = 1000 + i as u64 + (between * 100.0) as u64;
+            let s = Scenario::normal(series, lots, 30, between, shift, seed);
             let out = run(&s, &monitor);
             let median = out
                 .median_delay()

@@ -10,14 +10,7 @@
 use lotdrift::engine::operating::{Scenario, default_monitor, run};
 
 fn scenario(shift: f64, series: usize, lots: usize, seed: u64) -> Scenario {
-    Scenario {
-        series,
-        lots,
-        units: 30,
-        between: 0.5,
-        shift,
-        seed,
-    }
+    Scenario::normal(series, lots, 30, 0.5, shift, seed)
 }
 
 #[test]

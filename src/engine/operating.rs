@@ -2,18 +2,34 @@
 //!
 //! Runs [`super::decide`], the same pure function the daemon uses, on simulated series with
 //! real between-lot variation: each lot's mean is the process mean plus a lot effect
-//! N(0, τ²), each unit adds N(0, σ²). Reports false alerts per 1,000 in-control lots and the
-//! number of lots from the start of a shift to its first alert. Used by the operating test
-//! suite (`tests/engine_operating.rs`) and the table printer (`benches/operating.rs`); fixed
-//! seeds make every figure reproducible.
+//! N(0, τ²), each unit adds an error of sd σ drawn from the scenario's unit distribution
+//! (normal, heavy-tailed Student t, skewed log-normal, or normal read on a coarse gauge), and
+//! a share of units may be gross outliers (off by 5 to 10 σ, either side). Reports false
+//! alerts per 1,000 in-control lots, the number of lots from the start of a shift to its
+//! first alert, alerts opened per shifted series, and lots from the end of a shift to the
+//! resolution. Used by the operating test suite (`tests/engine_operating.rs`) and the table
+//! printer (`benches/operating.rs`); fixed seeds make every figure reproducible.
 
-use rand::SeedableRng;
 use rand::rngs::StdRng;
-use rand_distr::{Distribution, Normal};
+use rand::{Rng, SeedableRng};
+use rand_distr::{Distribution, LogNormal, Normal, StudentT};
 
 use crate::config::{Config, Monitor};
 use crate::stats::Summary;
 use crate::store::{AlertAction, SeriesSample, SeriesWork};
+
+/// The distribution of a unit's deviation from its lot mean (scaled to sd 1 where the sd
+/// exists, centred on its mean).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Units {
+    Normal,
+    /// Student t with this many df (> 2), scaled to sd 1.
+    StudentT(f64),
+    /// Log-normal with this σ of the log, scaled to sd 1 and centred (right-skewed).
+    LogNormal(f64),
+    /// Normal units read on a gauge with this resolution (in unit sd).
+    Coarse(f64),
+}
 
 /// One simulated scenario.
 #[derive(Debug, Clone)]
@@ -28,6 +44,86 @@ pub struct Scenario {
     /// after the baseline on; 0 = in control.
     pub shift: f64,
     pub seed: u64,
+    pub unit_dist: Units,
+    /// Share of units that are gross outliers (5 to 10 σ off, either side).
+    pub outlier_rate: f64,
+    /// The shift lasts this many lots, then the process is back (None: it never ends).
+    pub shift_lots: Option<usize>,
+}
+
+impl Scenario {
+    /// Normal units, no outliers, a shift that never ends.
+    pub fn normal(
+        series: usize,
+        lots: usize,
+        units: usize,
+        between: f64,
+        shift: f64,
+        seed: u64,
+    ) -> Scenario {
+        Scenario {
+            series,
+            lots,
+            units,
+            between,
+            shift,
+            seed,
+            unit_dist: Units::Normal,
+            outlier_rate: 0.0,
+            shift_lots: None,
+        }
+    }
+}
+
+/// Draws unit deviations of a distribution.
+struct UnitDraw {
+    dist: Units,
+    normal: Normal<f64>,
+    t: Option<(StudentT<f64>, f64)>,
+    lognormal: Option<(LogNormal<f64>, f64, f64)>,
+}
+
+impl UnitDraw {
+    fn new(dist: Units) -> UnitDraw {
+        let t = match dist {
+            Units::StudentT(df) => Some((
+                StudentT::new(df).expect("valid df"),
+                ((df - 2.0) / df).sqrt(),
+            )),
+            _ => None,
+        };
+        let lognormal = match dist {
+            Units::LogNormal(s) => {
+                let mean = (s * s / 2.0).exp();
+                let sd = ((s * s).exp_m1() * (s * s).exp()).sqrt();
+                Some((LogNormal::new(0.0, s).expect("valid sigma"), mean, sd))
+            }
+            _ => None,
+        };
+        UnitDraw {
+            dist,
+            normal: Normal::new(0.0, 1.0).expect("valid sd"),
+            t,
+            lognormal,
+        }
+    }
+
+    /// One deviation (before any gauge rounding).
+    fn sample(&self, rng: &mut StdRng) -> f64 {
+        match (self.dist, &self.t, &self.lognormal) {
+            (Units::StudentT(_), Some((t, scale)), _) => t.sample(rng) * scale,
+            (Units::LogNormal(_), _, Some((ln, mean, sd))) => (ln.sample(rng) - mean) / sd,
+            _ => self.normal.sample(rng),
+        }
+    }
+
+    /// A reading of `x` on the gauge.
+    fn read(&self, x: f64) -> f64 {
+        match self.dist {
+            Units::Coarse(r) => (x / r).round() * r,
+            _ => x,
+        }
+    }
 }
 
 /// What the policy did on a scenario.
@@ -40,6 +136,19 @@ pub struct Outcome {
     /// Per series: lots from the start of the shift to the first mean alert (1 = the first
     /// lot after the baseline), None when it never alerted.
     pub delays: Vec<Option<usize>>,
+    /// Per series: mean alerts opened (a reopening is not a new alert).
+    pub mean_openings: Vec<usize>,
+    /// Spread alerts opened over all series.
+    pub spread_alerts: usize,
+    /// Per series: lots from the end of the shift to the resolution of the mean alert open
+    /// then (1 = the first lot after the shift), None when none was open or it never resolved.
+    pub resolution_delays: Vec<Option<usize>>,
+    /// Per series: whether a mean alert was open when the shift ended.
+    pub open_at_end: Vec<bool>,
+    /// Units reported as outliers over all lots (baseline lots included).
+    pub outliers: usize,
+    /// Units simulated as gross outliers.
+    pub gross: usize,
 }
 
 impl Outcome {
@@ -57,6 +166,30 @@ impl Outcome {
         d.sort_unstable();
         let m = d[d.len() / 2];
         (m != usize::MAX).then_some(m)
+    }
+
+    /// Mean alerts opened per series that alerted at all.
+    pub fn openings_per_alerted_series(&self) -> f64 {
+        let alerted: Vec<usize> = self
+            .mean_openings
+            .iter()
+            .copied()
+            .filter(|&n| n > 0)
+            .collect();
+        alerted.iter().sum::<usize>() as f64 / alerted.len().max(1) as f64
+    }
+
+    /// Share of the series with an alert open at the end of the shift that resolved within
+    /// `lots` lots after it.
+    pub fn resolved_within(&self, lots: usize) -> f64 {
+        let open = self.open_at_end.iter().filter(|o| **o).count();
+        let done = self
+            .resolution_delays
+            .iter()
+            .zip(&self.open_at_end)
+            .filter(|(d, o)| **o && d.is_some_and(|d| d <= lots))
+            .count();
+        done as f64 / open.max(1) as f64
     }
 
     /// Share of series that alerted within `lots` lots of the shift.
@@ -77,74 +210,129 @@ pub fn default_monitor() -> Monitor {
 /// Simulates `scenario` under `monitor` (all series in one decision pass, as a backfill).
 pub fn run(scenario: &Scenario, monitor: &Monitor) -> Outcome {
     let mut rng = StdRng::seed_from_u64(scenario.seed);
-    let sigma = 1.0;
-    let tau = scenario.between * sigma;
+    let draw = UnitDraw::new(scenario.unit_dist);
+    let tau = scenario.between;
     let lot_effect = Normal::new(0.0, tau.max(1e-300)).expect("valid sd");
-    let unit = Normal::new(0.0, sigma).expect("valid sd");
-    let lot_sd = (tau * tau + sigma * sigma / scenario.units as f64).sqrt();
+    let lot_sd = (tau * tau + 1.0 / scenario.units as f64).sqrt();
     let m = monitor.baseline_lots;
+    let end = scenario.shift_lots.map_or(usize::MAX, |l| m + l);
     let mut work = Vec::with_capacity(scenario.series);
-    let mut values = vec![0.0; scenario.units];
+    let mut gross = 0;
     for s in 0..scenario.series {
-        let mut pending = Vec::with_capacity(m + scenario.lots);
+        let mut w = empty_work(s);
         for l in 0..m + scenario.lots {
-            let shift = if l >= m { scenario.shift * lot_sd } else { 0.0 };
+            let shift = if l >= m && l < end {
+                scenario.shift * lot_sd
+            } else {
+                0.0
+            };
             let effect = if tau > 0.0 {
                 lot_effect.sample(&mut rng)
             } else {
                 0.0
             };
-            for v in values.iter_mut() {
-                *v = 10.0 + shift + effect + unit.sample(&mut rng);
+            let mut units = Vec::with_capacity(scenario.units);
+            for u in 0..scenario.units {
+                let mut x = 10.0 + shift + effect + draw.sample(&mut rng);
+                if scenario.outlier_rate > 0.0 && rng.random::<f64>() < scenario.outlier_rate {
+                    let off = rng.random_range(5.0..10.0);
+                    x += if rng.random::<bool>() { off } else { -off };
+                    gross += 1;
+                }
+                units.push((u as i64 + 1, draw.read(x)));
             }
-            pending.push(SeriesSample {
-                sample_id: (s * 100_000 + l) as i64,
-                lot_id: (s * 100_000 + l) as i64,
+            let values: Vec<f64> = units.iter().map(|u| u.1).collect();
+            let id = (s * 100_000 + l) as i64;
+            w.pending.push(SeriesSample {
+                sample_id: id,
+                lot_id: id,
                 lot: format!("L{l:05}"),
                 order_time: format!("{l:08}"),
                 summary: Summary::from_slice(&values).expect("finite values"),
                 evaluated: false,
             });
+            w.values.insert(id, units);
         }
-        work.push(SeriesWork {
-            series_id: s as i64,
-            source: format!("sim-{s:04}"),
-            characteristic: "x".into(),
-            baseline: None,
-            pending,
-            open_mean: None,
-            open_spread: None,
-            cusum: (0.0, 0.0),
-            online: (0, Vec::new()),
-            baseline_residuals: None,
-            units: None,
-            values: Default::default(),
-            lifecycle: Default::default(),
-        });
+        work.push(w);
     }
     let pass = super::decide(&work, monitor);
-    let mut alerts = 0;
-    let mut lots_tested = 0;
-    let mut delays = vec![None; scenario.series];
+    let mut out = tally(&pass, scenario, m, end);
+    out.gross = gross;
+    out
+}
+
+fn empty_work(s: usize) -> SeriesWork {
+    SeriesWork {
+        series_id: s as i64,
+        source: format!("sim-{s:04}"),
+        characteristic: "x".into(),
+        baseline: None,
+        pending: Vec::new(),
+        open_mean: None,
+        open_spread: None,
+        cusum: (0.0, 0.0),
+        online: (0, Vec::new()),
+        baseline_residuals: None,
+        units: None,
+        values: Default::default(),
+        lifecycle: Default::default(),
+    }
+}
+
+/// Counts what a pass did on a scenario whose shift covers lots [m, end).
+fn tally(pass: &crate::store::EnginePass, scenario: &Scenario, m: usize, end: usize) -> Outcome {
+    let n = scenario.series;
+    let mut out = Outcome {
+        alerts: 0,
+        lots_tested: 0,
+        delays: vec![None; n],
+        mean_openings: vec![0; n],
+        spread_alerts: 0,
+        resolution_delays: vec![None; n],
+        open_at_end: vec![false; n],
+        outliers: pass.outliers.len(),
+        gross: 0,
+    };
+    let mut open = vec![false; n];
     for d in &pass.decisions {
         let e = &d.evaluation;
+        let series = e.series_id as usize;
+        let lot = (e.sample_id as usize) % 100_000;
         if e.kind == "mean" {
-            lots_tested += 1;
-        }
-        if d.action == AlertAction::Open {
-            alerts += 1;
-            if e.kind == "mean" {
-                let series = e.series_id as usize;
-                let lot = (e.sample_id as usize) % 100_000;
-                if delays[series].is_none() {
-                    delays[series] = Some(lot + 1 - m);
-                }
+            out.lots_tested += 1;
+            if lot == end {
+                out.open_at_end[series] = open[series];
             }
         }
+        match (d.action, e.kind) {
+            (AlertAction::Open, kind) => {
+                out.alerts += 1;
+                if kind == "mean" {
+                    out.mean_openings[series] += 1;
+                    open[series] = true;
+                    if out.delays[series].is_none() {
+                        out.delays[series] = Some(lot + 1 - m);
+                    }
+                } else {
+                    out.spread_alerts += 1;
+                }
+            }
+            (AlertAction::Reopen, kind) => {
+                // Announced like an opening: counted as an alert, not as a new one per series.
+                out.alerts += 1;
+                if kind == "mean" {
+                    open[series] = true;
+                }
+            }
+            (AlertAction::Resolve, "mean") => {
+                open[series] = false;
+                if lot >= end && out.open_at_end[series] && out.resolution_delays[series].is_none()
+                {
+                    out.resolution_delays[series] = Some(lot + 1 - end);
+                }
+            }
+            _ => {}
+        }
     }
-    Outcome {
-        alerts,
-        lots_tested,
-        delays,
-    }
+    out
 }
