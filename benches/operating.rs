@@ -4,7 +4,7 @@
 //!
 //! Run: `cargo bench --bench operating`
 
-use lotdrift::engine::operating::{Scenario, default_monitor, run};
+use lotdrift::engine::operating::{Scenario, Units, default_monitor, run};
 
 fn main() {
     let monitor = default_monitor();
@@ -50,6 +50,69 @@ fn main() {
                     median,
                     100.0 * out.detected_within(5),
                     100.0 * out.detected_within(20)
+                );
+            }
+        }
+    }
+    field_table(series);
+}
+
+/// The rows for field-like units: 20 units per lot, between-lot sd 0.5 of the unit sd; shifts
+/// in unit sd lasting 40 lots, then back.
+fn field_table(series: usize) {
+    let monitor = default_monitor();
+    let lot_sd = (0.25f64 + 1.0 / 20.0).sqrt();
+    println!(
+        "\nfield-like units: 20 units per lot, between-lot sd 0.5, {series} series per row; \
+         shifts in unit sd for 40 lots"
+    );
+    println!(
+        "{:>30} {:>6} {:>14} {:>8} {:>9} {:>8} {:>10} {:>10}",
+        "units", "shift", "false/1000", "spread", "outliers", "median", "alerts/ser", "resolved"
+    );
+    let cases = [
+        ("normal", Units::Normal, 0.0),
+        ("t, 5 df", Units::StudentT(5.0), 0.0),
+        ("coarse gauge (sd/6)", Units::Coarse(1.0 / 6.0), 0.0),
+        ("log-normal (sigma 0.5)", Units::LogNormal(0.5), 0.0),
+        ("log-normal (sigma 1)", Units::LogNormal(1.0), 0.0),
+        ("normal + 0.2 % gross outliers", Units::Normal, 0.002),
+        ("t 5 df + 0.2 % gross outliers", Units::StudentT(5.0), 0.002),
+    ];
+    for (i, (name, units, rate)) in cases.into_iter().enumerate() {
+        for (j, shift) in [0.0, 1.0, 1.5, 2.0].into_iter().enumerate() {
+            let lots = if shift == 0.0 { 300 } else { 60 };
+            let seed = 5000 + 10 * i as u64 + j as u64;
+            let mut s = Scenario::normal(series, lots, 20, 0.5, shift / lot_sd, seed);
+            s.unit_dist = units;
+            s.outlier_rate = rate;
+            if shift > 0.0 {
+                s.shift_lots = Some(40);
+            }
+            let out = run(&s, &monitor);
+            if shift == 0.0 {
+                println!(
+                    "{name:>30} {:>6} {:>14.2} {:>8} {:>9} {:>8} {:>10} {:>10}",
+                    "none",
+                    out.alerts_per_1000_lots(),
+                    out.spread_alerts,
+                    format!("{}/{}", out.outliers, out.gross),
+                    "-",
+                    "-",
+                    "-"
+                );
+            } else {
+                let median = out
+                    .median_delay()
+                    .map_or_else(|| "> 40".to_string(), |m| m.to_string());
+                println!(
+                    "{name:>30} {shift:>6} {:>14} {:>8} {:>9} {:>8} {:>10.2} {:>9.0}%",
+                    "-",
+                    "-",
+                    "-",
+                    median,
+                    out.openings_per_alerted_series(),
+                    100.0 * out.resolved_within(10)
                 );
             }
         }

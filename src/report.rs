@@ -134,6 +134,7 @@ pub fn status_json(
         "files": s.files,
         "evaluations": s.evaluations,
         "alerts": s.alerts,
+        "outliers": s.outliers,
         "undelivered": undelivered,
         "series": series,
     })
@@ -151,6 +152,7 @@ pub fn status_text(s: &StatusCounts, undelivered: &[UndeliveredRow], db: &str) -
         vec!["lots tested".into(), s.evaluations.to_string()],
         vec!["open alerts".into(), s.open_alerts.to_string()],
         vec!["alerts in all".into(), s.alerts.to_string()],
+        vec!["outlier units".into(), s.outliers.to_string()],
         vec!["messages pending".into(), s.outbox_pending.to_string()],
         vec!["messages failed".into(), s.outbox_failed.to_string()],
         vec!["messages expired".into(), s.outbox_expired.to_string()],
@@ -246,7 +248,7 @@ pub fn history_json(rows: &[HistoryRow]) -> Value {
     Value::Array(rows.iter().map(|r| json!(r)).collect())
 }
 
-const HISTORY_HEADER: [&str; 14] = [
+const HISTORY_HEADER: [&str; 15] = [
     "source",
     "characteristic",
     "lot",
@@ -261,6 +263,7 @@ const HISTORY_HEADER: [&str; 14] = [
     "p_adjusted",
     "alert",
     "events",
+    "outliers",
 ];
 
 pub fn history_csv(rows: &[HistoryRow]) -> String {
@@ -282,6 +285,7 @@ pub fn history_csv(rows: &[HistoryRow]) -> String {
             r.p_adjusted.map(|v| v.to_string()).unwrap_or_default(),
             r.alert_id.map(|v| v.to_string()).unwrap_or_default(),
             r.events.clone(),
+            r.outliers.clone(),
         ]);
     }
     String::from_utf8(w.into_inner().unwrap_or_default()).unwrap_or_default()
@@ -315,6 +319,7 @@ pub fn history_text(rows: &[HistoryRow]) -> String {
                     }
                 }),
                 r.events.clone(),
+                r.outliers.clone(),
             ]
         })
         .collect();

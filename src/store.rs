@@ -489,6 +489,8 @@ pub struct StatusCounts {
     pub outbox_expired: i64,
     /// Local date of the newest daily digest made.
     pub last_digest: Option<String>,
+    /// Units found as outliers.
+    pub outliers: i64,
 }
 
 /// A failed or expired outbox message, for `status`.
@@ -525,6 +527,9 @@ pub struct HistoryRow {
     /// The alert events this lot's decisions made, e.g. "opened mean alert 3; resolved spread
     /// alert 2" (empty when none).
     pub events: String,
+    /// The lot's units found as outliers, e.g. "U17 = 31.5 (9.2 sd, set aside)" (empty when
+    /// none).
+    pub outliers: String,
 }
 
 /// The columns [`design_from_row`] reads, in its order (prefix `b.` for the baseline table).
@@ -2015,7 +2020,7 @@ impl Store {
              (SELECT COUNT(*) FROM outbox WHERE state = 'pending'), \
              (SELECT COUNT(*) FROM outbox WHERE state = 'failed'), \
              (SELECT COUNT(*) FROM outbox WHERE state = 'expired'), \
-             (SELECT MAX(local_date) FROM digest)",
+             (SELECT MAX(local_date) FROM digest), (SELECT COUNT(*) FROM outlier)",
         )
         .fetch_one(&self.pool)
         .await
@@ -2034,6 +2039,7 @@ impl Store {
             outbox_failed: r.get(10),
             outbox_expired: r.get(11),
             last_digest: r.get(12),
+            outliers: r.get(13),
         })
     }
 
@@ -2288,7 +2294,14 @@ impl Store {
                      FROM (SELECT ev.kind, ev.alert_id FROM evaluation xe \
                            JOIN alert_event ev ON ev.evaluation_id = xe.id \
                            WHERE xe.sample_id = sm.id ORDER BY ev.id) x \
-                     JOIN alert xa ON xa.id = x.alert_id) \
+                     JOIN alert xa ON xa.id = x.alert_id), \
+                    (SELECT group_concat(COALESCE(om.unit, '#' || o.seq) || ' = ' || o.value \
+                            || ' (' || printf('%.1f', o.distance) || ' sd' \
+                            || CASE WHEN o.set_aside = 1 THEN ', set aside' ELSE '' END \
+                            || ')', '; ') \
+                     FROM outlier o LEFT JOIN measurement om \
+                          ON om.sample_id = o.sample_id AND om.seq = o.seq \
+                     WHERE o.sample_id = sm.id) \
              FROM sample sm JOIN lot l ON l.id = sm.lot_id \
              JOIN series se ON se.id = sm.series_id \
              JOIN source src ON src.id = se.source_id \
@@ -2325,6 +2338,7 @@ impl Store {
                     significant: r.get::<Option<i64>, _>(12).map(|v| v != 0),
                     alert_id: r.get(13),
                     events: r.get::<Option<String>, _>(14).unwrap_or_default(),
+                    outliers: r.get::<Option<String>, _>(15).unwrap_or_default(),
                 }
             })
             .collect())

@@ -7,7 +7,7 @@
 //! and 2 sd of a lot mean are caught, the larger sooner; a unit-level Welch comparison of the
 //! same data (the first engine's rule) is shown to fail the budget, so the check can fail.
 
-use lotdrift::engine::operating::{Scenario, default_monitor, run};
+use lotdrift::engine::operating::{Outcome, Scenario, Units, default_monitor, run};
 
 fn scenario(shift: f64, series: usize, lots: usize, seed: u64) -> Scenario {
     Scenario::normal(series, lots, 30, 0.5, shift, seed)
@@ -161,5 +161,126 @@ fn online_fdr_controls_the_stream_of_lot_tests() {
         // Online FDR levels shrink along the stream: only strong shifts are found quickly.
         let shifted = run(&scenario(6.0, 50, 30, 52), &monitor);
         assert!(shifted.detected_within(10) >= 0.8, "{over_time:?}");
+    }
+}
+
+/// Field-like unit distributions of incoming inspection (common practice in simulation
+/// studies of control charts: heavy tails, skew, gauge resolution, contamination), each with
+/// between-lot sd 0.5 of the unit sd and 20 units per lot.
+fn field(name: &str) -> (Units, f64) {
+    match name {
+        "heavy tails (t, 5 df)" => (Units::StudentT(5.0), 0.0),
+        "coarse gauge (sd / 6)" => (Units::Coarse(1.0 / 6.0), 0.0),
+        "skewed (log-normal, sigma 1)" => (Units::LogNormal(1.0), 0.0),
+        "gross outliers (0.2 %)" => (Units::Normal, 0.002),
+        "all together" => (Units::StudentT(5.0), 0.002),
+        _ => unreachable!(),
+    }
+}
+
+const FIELD: [&str; 5] = [
+    "heavy tails (t, 5 df)",
+    "coarse gauge (sd / 6)",
+    "skewed (log-normal, sigma 1)",
+    "gross outliers (0.2 %)",
+    "all together",
+];
+
+fn field_scenario(name: &str, shift_unit_sd: f64, lots: usize, seed: u64) -> Scenario {
+    let (units, rate) = field(name);
+    // A shift in unit sd, in sd of a lot mean: sqrt(0.5^2 + 1/20) = 0.548.
+    let lot_sd = (0.25f64 + 1.0 / 20.0).sqrt();
+    let mut s = Scenario::normal(100, lots, 20, 0.5, shift_unit_sd / lot_sd, seed);
+    s.unit_dist = units;
+    s.outlier_rate = rate;
+    s
+}
+
+/// The budget with the Monte Carlo tolerance of the other in-control checks: the observed
+/// count may exceed the expected count by 3 Poisson sd.
+fn within_budget(out: &Outcome, false_alert_lots: f64) -> (bool, f64) {
+    let expected = out.lots_tested as f64 / false_alert_lots;
+    let limit = expected + 3.0 * expected.sqrt();
+    ((out.alerts as f64) <= limit, limit)
+}
+
+#[test]
+fn the_budget_holds_for_field_like_units() {
+    let monitor = default_monitor();
+    for (i, name) in FIELD.iter().enumerate() {
+        let out = run(&field_scenario(name, 0.0, 150, 60 + i as u64), &monitor);
+        let (ok, limit) = within_budget(&out, monitor.false_alert_lots);
+        println!(
+            "{name}: {} alerts ({} spread) in {} lots = {:.2} per 1000; {} outliers reported \
+             ({} gross simulated)",
+            out.alerts,
+            out.spread_alerts,
+            out.lots_tested,
+            out.alerts_per_1000_lots(),
+            out.outliers,
+            out.gross
+        );
+        assert!(ok, "{name}: {} alerts > {limit:.1}", out.alerts);
+    }
+}
+
+#[test]
+fn gross_outliers_are_reported_not_alerted() {
+    let monitor = default_monitor();
+    let out = run(
+        &field_scenario("gross outliers (0.2 %)", 0.0, 150, 70),
+        &monitor,
+    );
+    // Every gross outlier is 5 to 10 unit sd off; the normal fence is about 4.6 robust sd from
+    // the lot median, so most are found (those within a lot whose median sits on their side
+    // may not be); and reported outliers are mostly the gross ones (normal units cross the
+    // fence at about 2e-4 per lot).
+    let found = out.outliers as f64 / out.gross as f64;
+    println!("{} of {} gross outliers reported", out.outliers, out.gross);
+    assert!(found > 0.6 && found < 1.05, "{found}");
+    // Without screening the same data break the budget by far (the spread test sees them).
+    let mut off = default_monitor();
+    off.outliers = false;
+    let raw = run(
+        &field_scenario("gross outliers (0.2 %)", 0.0, 150, 70),
+        &off,
+    );
+    println!(
+        "screening off: {} alerts ({} spread)",
+        raw.alerts, raw.spread_alerts
+    );
+    assert!(raw.alerts > out.alerts, "{} <= {}", raw.alerts, out.alerts);
+}
+
+#[test]
+fn shifts_in_field_like_units_are_caught_as_one_alert_that_resolves() {
+    let monitor = default_monitor();
+    for (i, name) in FIELD.iter().enumerate() {
+        let mut previous = usize::MAX;
+        for (j, shift) in [1.0, 1.5, 2.0].into_iter().enumerate() {
+            let mut s = field_scenario(name, shift, 60, 80 + 10 * i as u64 + j as u64);
+            s.shift_lots = Some(40);
+            let out = run(&s, &monitor);
+            let median = out.median_delay().expect("most series alert");
+            let openings = out.openings_per_alerted_series();
+            let resolved = out.resolved_within(10);
+            println!(
+                "{name}, shift {shift} unit sd: median {median} lots to the alert, {:.0} % \
+                 within 10; {openings:.2} alerts per alerted series; {:.0} % resolved within \
+                 10 lots of the end",
+                100.0 * out.detected_within(10),
+                100.0 * resolved
+            );
+            assert!(median <= previous, "{name} {shift}: {median} > {previous}");
+            assert!(out.detected_within(40) >= 0.9, "{name} {shift}");
+            assert!(openings <= 1.2, "{name} {shift}: {openings}");
+            // Monte Carlo tolerance: 100 series; at least 85 % resolve within 10 lots.
+            assert!(resolved >= 0.85, "{name} {shift}: {resolved}");
+            previous = median;
+        }
+        assert!(
+            previous <= 5,
+            "{name}: a 2 unit-sd shift within about five lots"
+        );
     }
 }
