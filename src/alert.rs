@@ -11,6 +11,10 @@
 //! SMTP. The SMTP password comes from `LOTDRIFT_SMTP_PASSWORD` or
 //! `alerts.email.password_file` and is never logged.
 //!
+//! Besides alert events the outbox carries daily digests (text from [`crate::digest`]) and
+//! silence notices (a source sent no lot for longer than usual, [`crate::silence`]; plain
+//! text from [`silence_body`]).
+//!
 //! An alert message is multipart/mixed: a multipart/alternative of plain text and HTML (both
 //! built from the same rows by [`facts`]; names cleaned of control characters, HTML escaped),
 //! and the series chart from [`crate::chart`] as a PNG attachment. Its Message-ID is derived
