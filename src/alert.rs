@@ -11,6 +11,10 @@
 //! SMTP. The SMTP password comes from `LOTDRIFT_SMTP_PASSWORD` or
 //! `alerts.email.password_file` and is never logged.
 //!
+//! Besides alert events the outbox carries daily digests (text from [`crate::digest`]) and
+//! silence notices (a source sent no lot for longer than usual, [`crate::silence`]; plain
+//! text from [`silence_body`]).
+//!
 //! An alert message is multipart/mixed: a multipart/alternative of plain text and HTML (both
 //! built from the same rows by [`facts`]; names cleaned of control characters, HTML escaped),
 //! and the series chart from [`crate::chart`] as a PNG attachment. Its Message-ID is derived
@@ -33,7 +37,10 @@ use tokio_util::sync::CancellationToken;
 use crate::chart::{self, ChartPoint};
 use crate::config::{Config, Email, Tls};
 use crate::digest;
-use crate::store::{AlertRow, DeliveryOutcome, DigestItem, OutboxItem, Store, StoreError};
+use crate::silence;
+use crate::store::{
+    AlertRow, DeliveryOutcome, DigestItem, OutboxItem, SilenceItem, Store, StoreError,
+};
 use crate::time::{format_utc, now_rfc3339, parse_utc};
 
 /// The environment variable that carries the SMTP password.
@@ -47,6 +54,9 @@ pub const CHART_BAND_SE: f64 = 3.0;
 
 /// Outbox rows read per query while draining.
 const DRAIN_BATCH: i64 = 100;
+
+/// The notifier checks for silent sources when woken (new lots) and at least this often.
+const SILENCE_EVERY: Duration = Duration::from_secs(60);
 
 #[derive(Debug, thiserror::Error)]
 pub enum AlertError {
@@ -165,7 +175,55 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
             break;
         }
     }
+    drain_silences(store, config, &mut mailer, &mut attempted, &mut report).await?;
     Ok(report)
+}
+
+/// Delivers the due messages about silent sources, once each per drain (see [`drain_once`]).
+async fn drain_silences(
+    store: &Store,
+    config: &Config,
+    mailer: &mut Option<Result<Mailer, String>>,
+    attempted: &mut HashSet<i64>,
+    report: &mut DrainReport,
+) -> Result<(), AlertError> {
+    loop {
+        let due = store
+            .due_silence_messages(&now_rfc3339(), DRAIN_BATCH)
+            .await?;
+        let batch = due.len();
+        let fresh: Vec<SilenceItem> = due.into_iter().filter(|i| attempted.insert(i.id)).collect();
+        if fresh.is_empty() {
+            break;
+        }
+        for item in fresh {
+            let outcome = match item.channel.as_str() {
+                "email" => {
+                    let mailer = mailer.get_or_insert_with(|| build_mailer(config));
+                    let message = mailer
+                        .as_ref()
+                        .map_err(Clone::clone)
+                        .and_then(|m| silence_message(&m.from, &item));
+                    send_email(&Attempt::of_silence(&item), config, mailer, message).await
+                }
+                "log" => {
+                    log_silence(&item);
+                    DeliveryOutcome::Delivered
+                }
+                other => DeliveryOutcome::Failed {
+                    error: format!("unknown channel {other:?}"),
+                },
+            };
+            tally(report, &item.channel, &item.recipient, &outcome);
+            store
+                .outbox_attempted(item.id, &outcome, &now_rfc3339())
+                .await?;
+        }
+        if (batch as i64) < DRAIN_BATCH {
+            break;
+        }
+    }
+    Ok(())
 }
 
 /// Counts an outcome and logs a failure.
@@ -217,10 +275,21 @@ impl<'a> Attempt<'a> {
             what: format!("digest {}", item.local_date),
         }
     }
+
+    fn of_silence(item: &'a SilenceItem) -> Attempt<'a> {
+        Attempt {
+            id: item.id,
+            recipient: &item.recipient,
+            attempts: item.attempts,
+            created_at: &item.created_at,
+            what: format!("silence event {}", item.event_id),
+        }
+    }
 }
 
-/// Queues the daily digest when it is due and drains the outbox, whenever `wake` is notified
-/// and at least every `poll`, until cancelled.
+/// Queues the daily digest when it is due, checks for silent sources (when woken, and at
+/// least every [`SILENCE_EVERY`]) and drains the outbox, whenever `wake` is notified and at
+/// least every `poll`, until cancelled.
 pub async fn run(
     store: Arc<Store>,
     config: Arc<Config>,
@@ -228,19 +297,27 @@ pub async fn run(
     cancel: CancellationToken,
 ) {
     let poll = Duration::from_secs(5);
+    let mut woken = true;
+    let mut silence_checked: Option<tokio::time::Instant> = None;
     loop {
         if let Err(e) = digest::schedule_if_due(&store, &config).await {
             tracing::error!(error = %e, "cannot queue the daily digest");
+        }
+        if woken || silence_checked.is_none_or(|t| t.elapsed() >= SILENCE_EVERY) {
+            if let Err(e) = silence::check(&store, &config, Utc::now()).await {
+                tracing::error!(error = %e, "cannot check for silent sources");
+            }
+            silence_checked = Some(tokio::time::Instant::now());
         }
         match drain_once(&store, &config).await {
             Ok(_) => {}
             Err(e) => tracing::error!(error = %e, "outbox drain failed"),
         }
-        tokio::select! {
+        woken = tokio::select! {
             _ = cancel.cancelled() => return,
-            _ = wake.notified() => {}
-            _ = tokio::time::sleep(poll) => {}
-        }
+            _ = wake.notified() => true,
+            _ = tokio::time::sleep(poll) => false,
+        };
     }
 }
 
@@ -702,6 +779,157 @@ fn log_digest(item: &DigestItem) {
     }
 }
 
+/// Days as people read them: "1 day", "2.5 days", "20 days" (one decimal at most).
+fn days_text(days: f64) -> String {
+    let r = (days * 10.0).round() / 10.0;
+    if r == 1.0 {
+        "1 day".to_string()
+    } else if r.fract() == 0.0 {
+        format!("{r:.0} days")
+    } else {
+        format!("{r:.1} days")
+    }
+}
+
+/// Days from `from` to `to` (stored times), or `None` when either does not parse.
+fn days_between(from: &str, to: &str) -> Option<f64> {
+    let (a, b) = (parse_utc(from)?, parse_utc(to)?);
+    Some((b - a).as_seconds_f64() / 86_400.0)
+}
+
+/// The one-line summary of a silence message, used as log message and email subject.
+pub fn silence_subject(item: &SilenceItem) -> String {
+    let s = &item.silence;
+    let text = if item.event_kind == "resolved" {
+        format!(
+            "lotdrift: lots from {} again (lot {})",
+            s.source,
+            s.resolving_lot.as_deref().unwrap_or("-")
+        )
+    } else {
+        let silent = days_between(&s.last_lot_at, &item.event_at).map_or("-".into(), days_text);
+        let usual = match s.median_days {
+            Some(m) => format!("usually every {}", days_text(m)),
+            None => format!("expected within {}", days_text(s.threshold_days)),
+        };
+        format!("lotdrift: no lots from {} for {silent} ({usual})", s.source)
+    };
+    clean(&text)
+}
+
+/// How the threshold of a silence was set, in words.
+fn threshold_text(s: &crate::store::SilenceRow) -> String {
+    let days = days_text(s.threshold_days);
+    match (s.basis.as_str(), s.intervals, s.median_days) {
+        ("learned", Some(k), Some(m)) => format!(
+            "{days}, learned from the source's last {k} intervals between lots (median {}): \
+             the largest of {} × the median, {} × the longest of the last {} intervals, and \
+             {} day",
+            days_text(m),
+            silence::MEDIAN_FACTOR,
+            silence::RECENT_FACTOR,
+            silence::RECENT_INTERVALS,
+            silence::MIN_THRESHOLD_DAYS
+        ),
+        ("configured_for_source", _, _) => {
+            format!("{days}, configured for the source (monitor.silence_days_by_source)")
+        }
+        _ => format!("{days}, configured (monitor.silence_days)"),
+    }
+}
+
+/// The rows of a silence message as (label, value); names cleaned of control characters.
+pub fn silence_facts(item: &SilenceItem) -> Vec<(&'static str, String)> {
+    let s = &item.silence;
+    let last = format!("{} (lot time {})", clean(&s.last_lot), s.last_lot_at);
+    let mut rows = vec![("Source", clean(&s.source))];
+    if item.event_kind == "resolved" {
+        let at = s.resolving_lot_at.as_deref().unwrap_or("-");
+        let lot = s.resolving_lot.as_deref().unwrap_or("-");
+        rows.push(("New lot", format!("{} (lot time {at})", clean(lot))));
+        rows.push(("Previous lot", last));
+        let gap = days_between(&s.last_lot_at, at).map_or("-".into(), days_text);
+        rows.push(("Gap", gap));
+    } else {
+        rows.push(("Last lot", last));
+        let silent = days_between(&s.last_lot_at, &item.event_at).map_or("-".into(), days_text);
+        rows.push(("Silent for", format!("{silent} as of {}", item.event_at)));
+    }
+    rows.push(("Threshold", threshold_text(s)));
+    let mut state = format!("{}, noticed {}", s.id, s.opened_at);
+    if let Some(r) = &s.resolved_at {
+        state.push_str(&format!(", resolved {r}"));
+    }
+    rows.push(("Silence", state));
+    rows
+}
+
+const SILENCE_NOTE: &str = "Lot times are sampling times (the arrival time where a lot has \
+                            none). One notice is sent when a source falls silent, and one when \
+                            its lots arrive again. See `lotdrift status` for silent sources.";
+
+/// The plain-text body of a silence message.
+pub fn silence_body(item: &SilenceItem) -> String {
+    let mut s = silence_subject(item);
+    s.push_str("\n\n");
+    for (label, value) in silence_facts(item) {
+        s.push_str(&format!("{:<14}{value}\n", format!("{label}:")));
+    }
+    s.push_str(&format!("\n{SILENCE_NOTE}\n"));
+    s
+}
+
+/// A silence message to `item.recipient`: plain text. Its Message-ID is derived from the
+/// silence event, the same for every attempt and recipient.
+fn silence_message(from: &Mailbox, item: &SilenceItem) -> Result<Message, String> {
+    let to: Mailbox = item
+        .recipient
+        .parse()
+        .map_err(|e| format!("recipient {:?}: {e}", item.recipient))?;
+    let stamp: String = item.event_at.chars().filter(char::is_ascii_digit).collect();
+    Message::builder()
+        .from(from.clone())
+        .to(to)
+        .subject(silence_subject(item))
+        .message_id(Some(format!(
+            "<lotdrift.silence-{}.{stamp}@{}>",
+            item.event_id,
+            from.email.domain()
+        )))
+        .header(ContentType::TEXT_PLAIN)
+        .body(silence_body(item))
+        .map_err(|e| format!("cannot build message: {e}"))
+}
+
+fn log_silence(item: &SilenceItem) {
+    let s = &item.silence;
+    if item.event_kind == "resolved" {
+        tracing::info!(
+            target: "lotdrift::alert",
+            event = %item.event_kind,
+            silence = s.id,
+            source = %s.source,
+            lot = s.resolving_lot.as_deref().unwrap_or("-"),
+            lot_at = s.resolving_lot_at.as_deref().unwrap_or("-"),
+            "{}",
+            silence_subject(item)
+        );
+    } else {
+        tracing::warn!(
+            target: "lotdrift::alert",
+            event = %item.event_kind,
+            silence = s.id,
+            source = %s.source,
+            last_lot = %s.last_lot,
+            last_lot_at = %s.last_lot_at,
+            threshold_days = s.threshold_days,
+            basis = %s.basis,
+            "{}",
+            silence_subject(item)
+        );
+    }
+}
+
 /// What the server said to a test message for one recipient.
 #[derive(Debug, Clone)]
 pub struct TestDelivery {
@@ -1050,5 +1278,83 @@ mod tests {
         let mut a = i.alert.clone();
         a.baseline_sd = None;
         assert_eq!(chart_band(&a), 0.0);
+    }
+
+    fn silence_item(kind: &str, basis: &str) -> SilenceItem {
+        let learned = basis == "learned";
+        SilenceItem {
+            id: 3,
+            channel: "email".into(),
+            recipient: "quality@example.org".into(),
+            attempts: 0,
+            created_at: "2026-03-21T08:00:00.000Z".into(),
+            event_id: 6,
+            event_kind: kind.into(),
+            event_at: "2026-03-21T08:00:00.000Z".into(),
+            silence: crate::store::SilenceRow {
+                id: 2,
+                source: "alder\r\nBcc: x@y".into(),
+                opened_at: "2026-03-21T08:00:00.000Z".into(),
+                last_lot: "AL-010".into(),
+                last_lot_at: "2026-03-01T08:00:00.000Z".into(),
+                threshold_days: if learned { 3.0 } else { 2.0 },
+                basis: basis.into(),
+                intervals: learned.then_some(9),
+                median_days: learned.then_some(1.0),
+                resolved_at: (kind == "resolved").then(|| "2026-03-25T09:00:00.000Z".into()),
+                resolving_lot: (kind == "resolved").then(|| "AL-011".into()),
+                resolving_lot_at: (kind == "resolved").then(|| "2026-03-25T06:00:00.000Z".into()),
+            },
+        }
+    }
+
+    #[test]
+    fn silence_subjects_say_how_long_and_how_usual_without_control_characters() {
+        assert_eq!(
+            silence_subject(&silence_item("opened", "learned")),
+            "lotdrift: no lots from alder  Bcc: x@y for 20 days (usually every 1 day)"
+        );
+        assert_eq!(
+            silence_subject(&silence_item("opened", "configured")),
+            "lotdrift: no lots from alder  Bcc: x@y for 20 days (expected within 2 days)"
+        );
+        assert_eq!(
+            silence_subject(&silence_item("resolved", "learned")),
+            "lotdrift: lots from alder  Bcc: x@y again (lot AL-011)"
+        );
+        assert_eq!(days_text(2.54), "2.5 days");
+    }
+
+    #[test]
+    fn silence_bodies_name_the_lots_and_how_the_threshold_was_set() {
+        let opened = silence_body(&silence_item("opened", "learned"));
+        for needle in [
+            "Last lot:     AL-010 (lot time 2026-03-01T08:00:00.000Z)",
+            "Silent for:   20 days as of 2026-03-21T08:00:00.000Z",
+            "Threshold:    3 days, learned from the source's last 9 intervals",
+        ] {
+            assert!(opened.contains(needle), "{needle} missing in {opened}");
+        }
+        let configured = silence_body(&silence_item("opened", "configured_for_source"));
+        assert!(
+            configured.contains("monitor.silence_days_by_source"),
+            "{configured}"
+        );
+        let resolved = silence_body(&silence_item("resolved", "learned"));
+        for needle in [
+            "New lot:      AL-011 (lot time 2026-03-25T06:00:00.000Z)",
+            "Gap:          23.9 days",
+            "resolved 2026-03-25T09:00:00.000Z",
+        ] {
+            assert!(resolved.contains(needle), "{needle} missing in {resolved}");
+        }
+        let from: Mailbox = "lotdrift <lotdrift@example.org>".parse().unwrap();
+        let raw = silence_message(&from, &silence_item("opened", "learned")).unwrap();
+        let raw = String::from_utf8(raw.formatted()).unwrap();
+        assert!(
+            raw.contains("Message-ID: <lotdrift.silence-6.20260321080000000@example.org>"),
+            "{raw}"
+        );
+        assert!(!raw.contains("\r\nBcc:"), "{raw}");
     }
 }

@@ -348,6 +348,8 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                     quarantined = r.ingest.quarantined(),
                     lots_tested = r.engine.evaluations,
                     alerts_opened = r.engine.opened,
+                    silences_opened = r.silence.opened,
+                    silences_resolved = r.silence.resolved,
                     delivered = r.delivery.delivered,
                     retrying = r.delivery.retrying,
                     "done"
@@ -413,8 +415,14 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                     },
                 })
                 .collect();
+            let silent = store.silent_sources().await.context("status")?;
             if json {
-                print_json(&report::status_json(&counts, &undelivered, &series));
+                print_json(&report::status_json(
+                    &counts,
+                    &undelivered,
+                    &series,
+                    &silent,
+                ));
             } else {
                 print!(
                     "{}",
@@ -425,6 +433,7 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                     )
                 );
                 print!("{}", report::series_text(&series));
+                print!("{}", report::silent_text(&silent));
             }
             Ok(())
         }

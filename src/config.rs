@@ -83,6 +83,9 @@ pub struct RawMonitor {
     pub outliers: Option<bool>,
     pub sources: Option<Vec<String>>,
     pub characteristics: Option<Vec<String>>,
+    pub silence: Option<bool>,
+    pub silence_days: Option<f64>,
+    pub silence_days_by_source: Option<BTreeMap<String, f64>>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -279,6 +282,19 @@ pub struct Monitor {
     pub characteristics: Vec<String>,
     /// Settings per characteristic name; others get [`Monitor::policy`]'s defaults.
     pub per_characteristic: std::collections::BTreeMap<String, CharacteristicPolicy>,
+    /// The watch for sources that stopped sending lots (`crate::silence`).
+    pub silence: SilenceWatch,
+}
+
+/// Settings of the silence watch: which gap between lots of a source is news.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SilenceWatch {
+    /// `monitor.silence`: the watch runs at all.
+    pub enabled: bool,
+    /// `monitor.silence_days`: the expected gap in days for every source (else learned).
+    pub days: Option<f64>,
+    /// `monitor.silence_days_by_source`: the expected gap in days of named sources.
+    pub days_by_source: BTreeMap<String, f64>,
 }
 
 /// How the false-alert budget is shared between the tests of a series (fractions of
@@ -410,6 +426,13 @@ impl Email {
             self.by_source.get(source),
             self.by_characteristic.get(characteristic),
         ];
+        dedup_addresses(lists.into_iter().flatten().flatten())
+    }
+
+    /// Who receives messages about a source as a whole (its silence): the default list, then
+    /// the source's list, each address once (compared without case).
+    pub fn recipients_for_source(&self, source: &str) -> Vec<String> {
+        let lists = [Some(&self.to), self.by_source.get(source)];
         dedup_addresses(lists.into_iter().flatten().flatten())
     }
 
@@ -727,6 +750,12 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
             raw.monitor.characteristics,
         ),
         per_characteristic,
+        silence: validate_silence(
+            &mut p,
+            raw.monitor.silence,
+            raw.monitor.silence_days,
+            raw.monitor.silence_days_by_source,
+        ),
     };
 
     let mut channels = Vec::new();
@@ -946,6 +975,41 @@ fn toml_key(name: &str) -> String {
     }
 }
 
+/// Longest expected gap accepted, in days (a century): keeps time arithmetic in range.
+const MAX_SILENCE_DAYS: f64 = 36_500.0;
+
+fn validate_silence(
+    p: &mut Problems,
+    enabled: Option<bool>,
+    days: Option<f64>,
+    by_source: Option<BTreeMap<String, f64>>,
+) -> SilenceWatch {
+    let check = |p: &mut Problems, key: &str, v: f64| {
+        if !(v.is_finite() && v > 0.0 && v <= MAX_SILENCE_DAYS) {
+            p.push(
+                key,
+                format!("must be a number of days > 0, at most {MAX_SILENCE_DAYS} (got {v})"),
+            );
+        }
+    };
+    if let Some(d) = days {
+        check(p, "monitor.silence_days", d);
+    }
+    let days_by_source = by_source.unwrap_or_default();
+    for (name, d) in &days_by_source {
+        let key = format!("monitor.silence_days_by_source.{}", toml_key(name));
+        if name.trim().is_empty() || name.chars().any(char::is_control) {
+            p.push(&key, format!("{name:?} is not a valid name"));
+        }
+        check(p, &key, *d);
+    }
+    SilenceWatch {
+        enabled: enabled.unwrap_or(true),
+        days,
+        days_by_source,
+    }
+}
+
 fn validate_digest(p: &mut Problems, d: RawDigest) -> Digest {
     let at = match d.at.as_deref() {
         None => {
@@ -1014,6 +1078,12 @@ outliers = true          # report units far outside their lot and set them aside
 sources = []             # only these sources; empty = every source
 characteristics = []     # only these characteristics; empty = every characteristic
 # level = 0.001          # fix the per-lot level of the mean tests instead of deriving it
+silence = true           # notice (once) a source that sent no lot for longer than it usually does
+# silence_days = 7       # expected gap in days for every source; unset = learned per source
+#                        # (from 8 lots on: max(3 x median interval, 1.5 x largest of the last
+#                        # 20 intervals, 1 day)); lot times are sampling times
+# [monitor.silence_days_by_source]
+# "cedar-energy" = 14    # expected gap of one source, in days
 
 # Per characteristic (any name; others are two-sided, min_shift 0):
 # [characteristic.capacity_mah]
@@ -1173,6 +1243,10 @@ mod tests {
             chrono::NaiveTime::from_hms_opt(7, 30, 0).unwrap()
         );
         assert!(!digest.when_empty);
+        assert_eq!(
+            email.recipients_for_source("cedar-energy"),
+            vec!["quality@example.org", "buyer-cedar@example.org"]
+        );
     }
 
     #[test]
@@ -1238,6 +1312,41 @@ mod tests {
         assert_eq!(example.alerts.channels, vec![Channel::Log, Channel::Email]);
         let demo = parse(include_str!("../config/demo.toml")).unwrap();
         assert_eq!(demo.watch.settle, Duration::ZERO);
+    }
+
+    #[test]
+    fn silence_settings_default_on_learned_and_bad_days_name_their_keys() {
+        let d = parse("").unwrap().monitor.silence;
+        assert!(d.enabled);
+        assert_eq!(d.days, None);
+        assert!(d.days_by_source.is_empty());
+        let c = parse(
+            "[monitor]\nsilence = false\nsilence_days = 2.5\n\
+             [monitor.silence_days_by_source]\n\"cedar energy\" = 14\n",
+        )
+        .unwrap()
+        .monitor
+        .silence;
+        assert!(!c.enabled);
+        assert_eq!(c.days, Some(2.5));
+        assert_eq!(c.days_by_source.get("cedar energy"), Some(&14.0));
+        let e = parse(
+            "[monitor]\nsilence_days = 0\n[monitor.silence_days_by_source]\n\
+             birchworks = -1\n\"cedar energy\" = nan\n",
+        )
+        .unwrap_err()
+        .to_string();
+        for needle in [
+            "monitor.silence_days: must be a number of days > 0",
+            "monitor.silence_days_by_source.birchworks: must be",
+            "monitor.silence_days_by_source.\"cedar energy\": must be",
+        ] {
+            assert!(e.contains(needle), "{needle} missing in {e}");
+        }
+        let e = parse("[monitor]\nsilence_day = 3\n")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("silence_day"), "{e}");
     }
 
     #[test]

@@ -1,9 +1,10 @@
 //! The daemon: wires the stages together and owns their lifetimes.
 //!
 //! Tasks: the watcher (`watch`) sends batches of complete files; the ingest worker stores them
-//! (`ingest`) and then runs an engine pass (`engine`); the notifier (`alert`) drains the outbox
-//! whenever it is woken and on a timer. All share one cancellation token; SIGTERM or SIGINT
-//! cancels it, the file batch in flight completes, and the process exits 0. `run_once` is the
+//! (`ingest`) and then runs an engine pass (`engine`); the notifier (`alert`) queues the daily
+//! digest and silence notices (`silence`) and drains the outbox, whenever it is woken and on a
+//! timer. All share one cancellation token; SIGTERM or SIGINT cancels it, the file batch in
+//! flight completes, and the process exits 0. `run_once` is the
 //! same pipeline run a single time over what is in the inbox.
 
 use std::sync::Arc;
@@ -17,6 +18,7 @@ use crate::alert::{self, DrainReport};
 use crate::config::Config;
 use crate::engine;
 use crate::ingest::{self, IngestReport};
+use crate::silence::{self, CheckReport};
 use crate::store::{PassCounts, Store};
 use crate::watch;
 
@@ -35,6 +37,8 @@ pub enum DaemonError {
     Alert(#[from] alert::AlertError),
     #[error(transparent)]
     Watch(#[from] watch::WatchError),
+    #[error(transparent)]
+    Silence(#[from] silence::SilenceError),
     #[error("cannot create folder {path}: {source}")]
     Folder {
         path: std::path::PathBuf,
@@ -47,6 +51,7 @@ pub enum DaemonError {
 pub struct OnceReport {
     pub ingest: IngestReport,
     pub engine: PassCounts,
+    pub silence: CheckReport,
     pub delivery: DrainReport,
 }
 
@@ -65,8 +70,8 @@ pub fn ensure_folders(config: &Config) -> Result<(), DaemonError> {
     Ok(())
 }
 
-/// Processes what is in the inbox, evaluates, queues the daily digest if it is due, drains the
-/// outbox once.
+/// Processes what is in the inbox, evaluates, queues the daily digest if it is due, checks for
+/// silent sources, drains the outbox once.
 pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, DaemonError> {
     ensure_folders(config)?;
     let files = watch::settled_files(
@@ -79,10 +84,12 @@ pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, Daem
     let ingest = ingest::ingest_files(store, &config.paths, files, None, &cancel).await?;
     let engine = engine::evaluate(store, config).await?;
     crate::digest::schedule_if_due(store, config).await?;
+    let silence = silence::check(store, config, chrono::Utc::now()).await?;
     let delivery = alert::drain_once(store, config).await?;
     Ok(OnceReport {
         ingest,
         engine,
+        silence,
         delivery,
     })
 }

@@ -12,6 +12,7 @@
 //! - [`engine`]: the monitoring policy: baselines, tests, families, alert decisions.
 //! - [`alert`]: outbox delivery through the channels (log, SMTP email).
 //! - [`report`]: stored state formatted for people and scripts.
+//! - [`silence`]: the watch for sources that sent no lot for longer than they usually do.
 //! - [`config`]: TOML into a typed, validated configuration.
 //! - [`daemon`]: the tasks of `lotdrift run` and their shutdown; [`demo`]: the bundled tour.
 //! - [`cli`]: the commands; `main.rs` only calls [`cli::main`].
@@ -27,6 +28,7 @@ pub mod engine;
 pub mod ingest;
 pub mod lotfile;
 pub mod report;
+pub mod silence;
 pub mod stats;
 pub mod store;
 pub mod time;

@@ -6,7 +6,7 @@
 use serde_json::{Value, json};
 
 use crate::stats::compare::{Comparison, Df};
-use crate::store::{AlertRow, HistoryRow, StatusCounts, UndeliveredRow};
+use crate::store::{AlertRow, HistoryRow, SilentSource, StatusCounts, UndeliveredRow};
 
 /// A plain text table with a header row, columns padded to their widest cell.
 pub fn table(header: &[&str], rows: &[Vec<String>]) -> String {
@@ -119,6 +119,7 @@ pub fn status_json(
     s: &StatusCounts,
     undelivered: &[UndeliveredRow],
     series: &[SeriesStatus],
+    silent: &[SilentSource],
 ) -> Value {
     json!({
         "lots": s.lots,
@@ -137,7 +138,33 @@ pub fn status_json(
         "outliers": s.outliers,
         "undelivered": undelivered,
         "series": series,
+        "silent_sources": silent,
     })
+}
+
+/// The sources with an open silence, as a table (nothing when there are none).
+pub fn silent_text(silent: &[SilentSource]) -> String {
+    if silent.is_empty() {
+        return String::new();
+    }
+    let rows: Vec<Vec<String>> = silent
+        .iter()
+        .map(|s| {
+            vec![
+                s.source.clone(),
+                s.last_lot_at.clone(),
+                s.since.clone(),
+                format!("{:.1}", s.threshold_days),
+            ]
+        })
+        .collect();
+    format!(
+        "\nSilent sources (no lot for longer than the threshold):\n{}",
+        table(
+            &["source", "last lot time", "noticed", "threshold (days)"],
+            &rows
+        )
+    )
 }
 
 pub fn status_text(s: &StatusCounts, undelivered: &[UndeliveredRow], db: &str) -> String {

@@ -408,6 +408,97 @@ pub struct NewDigestMessage {
     pub alert_ids: Vec<i64>,
 }
 
+/// A lot of a source as the silence watch sees it: id, code and lot time
+/// (`COALESCE(sampled_at, first_seen_at)`).
+#[derive(Debug, Clone, PartialEq)]
+pub struct LotTime {
+    pub id: i64,
+    pub code: String,
+    pub at: String,
+}
+
+/// The lots of one source for the silence watch: its distinct lot times, oldest first, and
+/// its last lot (latest lot time, then highest code).
+#[derive(Debug, Clone, PartialEq)]
+pub struct SourceLots {
+    pub source_id: i64,
+    pub source: String,
+    pub times: Vec<String>,
+    pub last: LotTime,
+}
+
+/// An open silence: the source and the lot time of the last lot before it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct OpenSilence {
+    pub id: i64,
+    pub source_id: i64,
+    pub last_lot_at: String,
+}
+
+/// A silence to open, with the (channel, recipient) pairs that announce it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct NewSilence {
+    pub source_id: i64,
+    pub last_lot: LotTime,
+    pub threshold_days: f64,
+    /// "learned", "configured" or "configured_for_source".
+    pub basis: &'static str,
+    /// For a learned threshold: the intervals it was learned from and their median (days).
+    pub intervals: Option<i64>,
+    pub median_days: Option<f64>,
+    pub recipients: Vec<(String, String)>,
+}
+
+/// An open silence to resolve by the arrival of `lot`, with the pairs that announce it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SilenceEnd {
+    pub silence_id: i64,
+    pub lot: LotTime,
+    pub recipients: Vec<(String, String)>,
+}
+
+/// A silence as its messages tell it.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SilenceRow {
+    pub id: i64,
+    pub source: String,
+    pub opened_at: String,
+    pub last_lot: String,
+    pub last_lot_at: String,
+    pub threshold_days: f64,
+    pub basis: String,
+    pub intervals: Option<i64>,
+    pub median_days: Option<f64>,
+    pub resolved_at: Option<String>,
+    pub resolving_lot: Option<String>,
+    pub resolving_lot_at: Option<String>,
+}
+
+/// One message about a silence to deliver.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SilenceItem {
+    pub id: i64,
+    pub channel: String,
+    pub recipient: String,
+    pub attempts: i64,
+    pub created_at: String,
+    pub event_id: i64,
+    /// "opened" or "resolved".
+    pub event_kind: String,
+    pub event_at: String,
+    pub silence: SilenceRow,
+}
+
+/// A source with an open silence, for `status`.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct SilentSource {
+    pub source: String,
+    /// When the silence was noticed.
+    pub since: String,
+    pub last_lot_at: String,
+    pub threshold_days: f64,
+}
+
 /// An alert with the numbers of the evaluation that opened it.
 #[derive(Debug, Clone, serde::Serialize)]
 pub struct AlertRow {
@@ -502,7 +593,7 @@ pub struct UndeliveredRow {
     pub state: String,
     pub attempts: i64,
     pub last_error: Option<String>,
-    /// What the message announces: "alert" (an alert event) or "digest".
+    /// What the message announces: "alert" (an alert event), "digest" or "silence".
     pub message: String,
 }
 
@@ -2010,6 +2101,160 @@ impl Store {
         Ok(items)
     }
 
+    /// Every source's lots for the silence watch, and the open silences.
+    pub async fn silence_inputs(&self) -> Result<(Vec<SourceLots>, Vec<OpenSilence>)> {
+        let rows = sqlx::query(
+            "SELECT l.source_id, s.name, l.id, l.code, COALESCE(l.sampled_at, l.first_seen_at) t \
+             FROM lot l JOIN source s ON s.id = l.source_id ORDER BY l.source_id, t, l.code",
+        )
+        .fetch_all(&self.pool)
+        .await
+        .doing("reading lot times")?;
+        let mut sources: Vec<SourceLots> = Vec::new();
+        for r in &rows {
+            let lot = LotTime {
+                id: r.get(2),
+                code: r.get(3),
+                at: r.get(4),
+            };
+            let source_id: i64 = r.get(0);
+            match sources.last_mut() {
+                Some(s) if s.source_id == source_id => {
+                    if s.times.last() != Some(&lot.at) {
+                        s.times.push(lot.at.clone());
+                    }
+                    s.last = lot;
+                }
+                _ => sources.push(SourceLots {
+                    source_id,
+                    source: r.get(1),
+                    times: vec![lot.at.clone()],
+                    last: lot,
+                }),
+            }
+        }
+        let open = sqlx::query(
+            "SELECT id, source_id, last_lot_at FROM silence WHERE resolved_at IS NULL ORDER BY id",
+        )
+        .fetch_all(&self.pool)
+        .await
+        .doing("reading open silences")?
+        .iter()
+        .map(|r| OpenSilence {
+            id: r.get(0),
+            source_id: r.get(1),
+            last_lot_at: r.get(2),
+        })
+        .collect();
+        Ok((sources, open))
+    }
+
+    /// Resolves and opens silences with their events and outbox rows, in one transaction
+    /// (resolutions first, so a source may go silent again at once). A silence resolved or
+    /// opened meanwhile by another process is left alone. Returns (resolved, opened).
+    pub async fn write_silences(
+        &self,
+        resolved: &[SilenceEnd],
+        opened: &[NewSilence],
+        at: &str,
+    ) -> Result<(usize, usize)> {
+        let mut tx = self.begin().await?;
+        let mut counts = (0, 0);
+        for end in resolved {
+            let done = sqlx::query(
+                "UPDATE silence SET resolved_at = ?, resolving_lot_id = ?, resolving_lot_at = ? \
+                 WHERE id = ? AND resolved_at IS NULL",
+            )
+            .bind(at)
+            .bind(end.lot.id)
+            .bind(&end.lot.at)
+            .bind(end.silence_id)
+            .execute(&mut *tx)
+            .await
+            .doing("resolving a silence")?;
+            if done.rows_affected() == 1 {
+                silence_event(&mut tx, end.silence_id, "resolved", at, &end.recipients).await?;
+                counts.0 += 1;
+            }
+        }
+        for s in opened {
+            let id: Option<i64> = sqlx::query_scalar(
+                "INSERT INTO silence (source_id, opened_at, last_lot_id, last_lot_at, \
+                 threshold_days, basis, intervals, median_days) VALUES (?, ?, ?, ?, ?, ?, ?, ?) \
+                 ON CONFLICT (source_id) WHERE resolved_at IS NULL DO NOTHING RETURNING id",
+            )
+            .bind(s.source_id)
+            .bind(at)
+            .bind(s.last_lot.id)
+            .bind(&s.last_lot.at)
+            .bind(s.threshold_days)
+            .bind(s.basis)
+            .bind(s.intervals)
+            .bind(s.median_days)
+            .fetch_optional(&mut *tx)
+            .await
+            .doing("opening a silence")?;
+            if let Some(id) = id {
+                silence_event(&mut tx, id, "opened", at, &s.recipients).await?;
+                counts.1 += 1;
+            }
+        }
+        tx.commit().await.doing("committing silences")?;
+        Ok(counts)
+    }
+
+    /// Messages about silences due at `now`, oldest first.
+    pub async fn due_silence_messages(&self, now: &str, limit: i64) -> Result<Vec<SilenceItem>> {
+        let rows = sqlx::query(&format!(
+            "SELECT o.id, o.channel, o.recipient, o.attempts, o.created_at, ev.id, ev.kind, ev.at, \
+             {SILENCE_COLUMNS} FROM outbox o \
+             JOIN silence_event ev ON ev.id = o.silence_event_id \
+             JOIN silence si ON si.id = ev.silence_id {SILENCE_JOINS} \
+             WHERE o.state = 'pending' AND o.next_attempt_at <= ? \
+             ORDER BY o.next_attempt_at, o.id LIMIT ?"
+        ))
+        .bind(now)
+        .bind(limit)
+        .fetch_all(&self.pool)
+        .await
+        .doing("reading the outbox")?;
+        Ok(rows
+            .iter()
+            .map(|r| SilenceItem {
+                id: r.get(0),
+                channel: r.get(1),
+                recipient: r.get(2),
+                attempts: r.get(3),
+                created_at: r.get(4),
+                event_id: r.get(5),
+                event_kind: r.get(6),
+                event_at: r.get(7),
+                silence: silence_from_row(r, 8),
+            })
+            .collect())
+    }
+
+    /// Sources with an open silence, longest silent first.
+    pub async fn silent_sources(&self) -> Result<Vec<SilentSource>> {
+        let rows = sqlx::query(
+            "SELECT s.name, si.opened_at, si.last_lot_at, si.threshold_days FROM silence si \
+             JOIN source s ON s.id = si.source_id WHERE si.resolved_at IS NULL \
+             ORDER BY si.last_lot_at, s.name",
+        )
+        .fetch_all(&self.pool)
+        .await
+        .doing("listing silent sources")?;
+        Ok(rows
+            .iter()
+            .map(|r| SilentSource {
+                source: r.get(0),
+                since: r.get(1),
+                last_lot_at: r.get(2),
+                threshold_days: r.get(3),
+            })
+            .collect())
+    }
+
     pub async fn status(&self) -> Result<StatusCounts> {
         let r = sqlx::query(
             "SELECT (SELECT COUNT(*) FROM source), (SELECT COUNT(*) FROM series), \
@@ -2233,7 +2478,8 @@ impl Store {
     pub async fn undelivered(&self) -> Result<Vec<UndeliveredRow>> {
         let rows = sqlx::query(
             "SELECT id, channel, recipient, state, attempts, last_error, \
-             CASE WHEN digest_id IS NULL THEN 'alert' ELSE 'digest' END FROM outbox \
+             CASE WHEN digest_id IS NOT NULL THEN 'digest' \
+             WHEN silence_event_id IS NOT NULL THEN 'silence' ELSE 'alert' END FROM outbox \
              WHERE state IN ('failed', 'expired') ORDER BY id",
         )
         .fetch_all(&self.pool)
@@ -2465,6 +2711,65 @@ fn in_list<'a>(prefix: &str, ids: &'a [i64], suffix: &str) -> QueryBuilder<'a, S
     q.push(")");
     q.push(suffix);
     q
+}
+
+/// The columns [`silence_from_row`] reads, for a silence `si` with [`SILENCE_JOINS`].
+const SILENCE_COLUMNS: &str = "si.id, src.name, si.opened_at, ll.code, si.last_lot_at, \
+     si.threshold_days, si.basis, si.intervals, si.median_days, si.resolved_at, rl.code, \
+     si.resolving_lot_at";
+
+const SILENCE_JOINS: &str = "JOIN source src ON src.id = si.source_id \
+     JOIN lot ll ON ll.id = si.last_lot_id LEFT JOIN lot rl ON rl.id = si.resolving_lot_id";
+
+fn silence_from_row(r: &SqliteRow, o: usize) -> SilenceRow {
+    SilenceRow {
+        id: r.get(o),
+        source: r.get(o + 1),
+        opened_at: r.get(o + 2),
+        last_lot: r.get(o + 3),
+        last_lot_at: r.get(o + 4),
+        threshold_days: r.get(o + 5),
+        basis: r.get(o + 6),
+        intervals: r.get(o + 7),
+        median_days: r.get(o + 8),
+        resolved_at: r.get(o + 9),
+        resolving_lot: r.get(o + 10),
+        resolving_lot_at: r.get(o + 11),
+    }
+}
+
+/// Records a silence event and queues one outbox row per (channel, recipient).
+async fn silence_event(
+    tx: &mut Transaction<'static, Sqlite>,
+    silence_id: i64,
+    kind: &str,
+    at: &str,
+    recipients: &[(String, String)],
+) -> Result<()> {
+    let event_id: i64 = sqlx::query_scalar(
+        "INSERT INTO silence_event (silence_id, kind, at) VALUES (?, ?, ?) RETURNING id",
+    )
+    .bind(silence_id)
+    .bind(kind)
+    .bind(at)
+    .fetch_one(&mut **tx)
+    .await
+    .doing("recording a silence event")?;
+    for (channel, recipient) in recipients {
+        sqlx::query(
+            "INSERT INTO outbox (silence_event_id, channel, recipient, state, created_at, \
+             next_attempt_at) VALUES (?, ?, ?, 'pending', ?, ?)",
+        )
+        .bind(event_id)
+        .bind(channel)
+        .bind(recipient)
+        .bind(at)
+        .bind(at)
+        .execute(&mut **tx)
+        .await
+        .doing("queueing a silence message")?;
+    }
+    Ok(())
 }
 
 /// (sample id, sequence number, unit, value, sampled_at) of one measurement row.
@@ -2735,5 +3040,99 @@ mod tests {
         .execute(&pool)
         .await;
         assert!(neither.is_err());
+    }
+
+    /// A database of migrations 0001 and 0002 with queued alert and digest messages keeps
+    /// them, and the digest's listed alerts, when migration 0004 rebuilds the outbox with
+    /// foreign keys on.
+    #[tokio::test]
+    async fn the_silence_migration_keeps_queued_alert_and_digest_messages() {
+        let dir = tempfile::tempdir().unwrap();
+        let old = dir.path().join("m2");
+        std::fs::create_dir(&old).unwrap();
+        for f in ["0001_initial.sql", "0002_digest.sql"] {
+            let from = Path::new(env!("CARGO_MANIFEST_DIR"))
+                .join("migrations")
+                .join(f);
+            std::fs::copy(from, old.join(f)).unwrap();
+        }
+        let db = dir.path().join("old.db");
+        let connect = |fk: bool| {
+            SqlitePoolOptions::new().max_connections(1).connect_with(
+                SqliteConnectOptions::new()
+                    .filename(&db)
+                    .create_if_missing(true)
+                    .foreign_keys(fk),
+            )
+        };
+        // Rows are written without their upstream parents (not needed to move the outbox).
+        let pool = connect(false).await.unwrap();
+        let migrator = sqlx::migrate::Migrator::new(old.as_path()).await.unwrap();
+        migrator.run(&pool).await.unwrap();
+        sqlx::query(
+            "INSERT INTO alert (id, series_id, kind, state, opened_at, opening_evaluation) \
+             VALUES (4, 1, 'mean', 'open', 't', 1); \
+             INSERT INTO alert_event (id, alert_id, kind, at) VALUES (3, 4, 'opened', 't'); \
+             INSERT INTO digest (id, local_date, scheduled_at, created_at, open_alerts) \
+             VALUES (2, '2026-01-01', 't', 't', 1); \
+             INSERT INTO outbox (id, alert_event_id, digest_id, channel, recipient, state, \
+             attempts, created_at, next_attempt_at, last_error) VALUES \
+             (7, 3, NULL, 'email', 'q@x.org', 'pending', 2, 't', 'u', '451 busy'), \
+             (8, NULL, 2, 'email', 'q@x.org', 'pending', 0, 't', 't', NULL); \
+             INSERT INTO digest_item (outbox_id, alert_id) VALUES (8, 4);",
+        )
+        .execute(&pool)
+        .await
+        .unwrap();
+        pool.close().await;
+        let pool = connect(true).await.unwrap();
+        sqlx::migrate!().run(&pool).await.unwrap();
+        // (id, alert event, digest, silence event, attempts, last error) of each row.
+        type Row = (
+            i64,
+            Option<i64>,
+            Option<i64>,
+            Option<i64>,
+            i64,
+            Option<String>,
+        );
+        let rows: Vec<Row> = sqlx::query_as(
+            "SELECT id, alert_event_id, digest_id, silence_event_id, attempts, last_error \
+             FROM outbox ORDER BY id",
+        )
+        .fetch_all(&pool)
+        .await
+        .unwrap();
+        assert_eq!(
+            rows,
+            vec![
+                (7, Some(3), None, None, 2, Some("451 busy".into())),
+                (8, None, Some(2), None, 0, None)
+            ]
+        );
+        let items: Vec<(i64, i64)> = sqlx::query_as("SELECT outbox_id, alert_id FROM digest_item")
+            .fetch_all(&pool)
+            .await
+            .unwrap();
+        assert_eq!(items, vec![(8, 4)]);
+        // digest_item still refers to the (new) outbox, and a row announces exactly one thing.
+        let orphan = sqlx::query("INSERT INTO digest_item (outbox_id, alert_id) VALUES (99, 4)")
+            .execute(&pool)
+            .await;
+        assert!(orphan.is_err());
+        let two = sqlx::query(
+            "INSERT INTO outbox (alert_event_id, digest_id, channel, recipient, state, \
+             created_at, next_attempt_at) VALUES (3, 2, 'log', 'log', 'pending', 'x', 'x')",
+        )
+        .execute(&pool)
+        .await;
+        assert!(two.is_err());
+        let tables: i64 = sqlx::query_scalar(
+            "SELECT COUNT(*) FROM sqlite_master WHERE name IN ('outbox_new', 'digest_item_kept')",
+        )
+        .fetch_one(&pool)
+        .await
+        .unwrap();
+        assert_eq!(tables, 0);
     }
 }

@@ -14,8 +14,19 @@ pub struct Site {
 }
 
 impl Site {
-    /// `lotdrift init`, then `extra` appended to the config (TOML sections).
+    /// `lotdrift init`, then `extra` appended to the config (TOML sections), with the silence
+    /// watch off: the scenarios' fixed sampling dates lie months behind the clock, so every
+    /// source would be silent and send a notice the test is not about.
     pub fn new(extra: &str) -> Site {
+        let site = Site::watching_silence(extra);
+        let cfg = site.config();
+        let text = std::fs::read_to_string(&cfg).unwrap();
+        std::fs::write(&cfg, silence_off(&text)).unwrap();
+        site
+    }
+
+    /// `lotdrift init`, then `extra` appended to the config (TOML sections).
+    pub fn watching_silence(extra: &str) -> Site {
         let dir = tempfile::tempdir().unwrap();
         let out = cmd(dir.path()).args(["init", "."]).output().unwrap();
         assert!(out.status.success(), "init failed: {}", text(&out.stderr));
@@ -110,6 +121,27 @@ impl Site {
         out.sort();
         out
     }
+}
+
+/// The config with `monitor.silence = false` (any other `silence =` line dropped).
+fn silence_off(text: &str) -> String {
+    let mut out = String::new();
+    let mut has_monitor = false;
+    for line in text.lines() {
+        if line.trim_start().starts_with("silence =") {
+            continue;
+        }
+        out.push_str(line);
+        out.push('\n');
+        if line.trim() == "[monitor]" {
+            has_monitor = true;
+            out.push_str("silence = false\n");
+        }
+    }
+    if !has_monitor {
+        out.push_str("[monitor]\nsilence = false\n");
+    }
+    out
 }
 
 fn remove_section(text: &str, header: &str) -> String {
