@@ -512,6 +512,19 @@ pub fn subject(item: &OutboxItem) -> String {
             a.id,
             &a.opened_at[..10.min(a.opened_at.len())]
         ),
+        "reopened" => format!(
+            "lotdrift: {} / {} {} again in lot {} (alert {} reopened, first opened {})",
+            a.source,
+            a.characteristic,
+            if a.kind == "spread" {
+                "spread grew".to_string()
+            } else {
+                format!("mean shifted {}", direction(a))
+            },
+            a.lot,
+            a.id,
+            &a.opened_at[..10.min(a.opened_at.len())]
+        ),
         _ if a.kind == "spread" => format!(
             "lotdrift: {} / {} spread grew in lot {} (alert {})",
             a.source, a.characteristic, a.lot, a.id

@@ -1843,7 +1843,10 @@ impl Store {
     /// Outbox messages due at `now`, oldest first.
     pub async fn due_outbox(&self, now: &str, limit: i64) -> Result<Vec<OutboxItem>> {
         let rows = sqlx::query(&format!(
-            "SELECT o.id, o.channel, o.recipient, o.attempts, o.created_at, ev.id, ev.kind, ev.at, \
+            "SELECT o.id, o.channel, o.recipient, o.attempts, o.created_at, ev.id, \
+             CASE WHEN ev.kind = 'opened' AND EXISTS (SELECT 1 FROM alert_event pe \
+                  WHERE pe.alert_id = ev.alert_id AND pe.kind = 'resolved' AND pe.id < ev.id) \
+                  THEN 'reopened' ELSE ev.kind END, ev.at, \
              (SELECT ol.code FROM evaluation oe JOIN sample os ON os.id = oe.sample_id \
               JOIN lot ol ON ol.id = os.lot_id WHERE oe.id = a.opening_evaluation), \
              {ALERT_COLUMNS} FROM outbox o \
