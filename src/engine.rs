@@ -134,6 +134,7 @@ pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, Engi
             })
             .collect();
         let counts = store.write_pass(&pass, &now_rfc3339()).await?;
+        log_outliers(&chunk, &pass);
         total.baselines += counts.baselines;
         total.evaluations += counts.evaluations;
         total.opened += counts.opened;
@@ -153,6 +154,30 @@ pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, Engi
         );
     }
     Ok(total)
+}
+
+/// Logs each outlier found in a pass (they are stored; this makes them visible as they come).
+fn log_outliers(chunk: &[SeriesWork], pass: &EnginePass) {
+    if pass.outliers.is_empty() {
+        return;
+    }
+    let mut lots: std::collections::HashMap<i64, (&str, &str, &str)> = Default::default();
+    for w in chunk {
+        for s in &w.pending {
+            lots.insert(s.sample_id, (&w.source, &w.characteristic, &s.lot));
+        }
+    }
+    for o in &pass.outliers {
+        let (source, characteristic, lot) = lots.get(&o.sample_id).copied().unwrap_or_default();
+        tracing::info!(
+            %source, %characteristic, %lot, seq = o.seq, value = o.value,
+            distance = format!("{:.1}", o.distance), fence = format!("{:.2}", o.fence),
+            rule = o.rule, set_aside = o.set_aside,
+            "outlier: {source} / {characteristic} lot {lot} unit #{} = {} ({:.1} robust sd from \
+             the lot median; fence {:.2})",
+            o.seq, o.value, o.distance, o.fence
+        );
+    }
 }
 
 /// The (channel, recipient) pairs that announce an alert event of a series: one outbox row
@@ -644,14 +669,16 @@ struct Adjusted<'a> {
     spread: &'a Adjustments,
 }
 
+/// Last announcement of an open mean alert: (when, shift, acknowledged).
+type Notified = (Option<chrono::DateTime<chrono::Utc>>, Option<f64>, bool);
+
 /// The running state of one series while its lots are followed in order.
 struct Follow {
     upper: f64,
     lower: f64,
     mean: lifecycle::Tracker,
     spread: lifecycle::Tracker,
-    /// Last announcement of the open mean alert: (when, shift, acknowledged).
-    notified: Option<(Option<chrono::DateTime<chrono::Utc>>, Option<f64>, bool)>,
+    notified: Option<Notified>,
     online: Option<OnlineFdr>,
 }
 
@@ -707,10 +734,8 @@ fn follow_series(
             AlertAction::Open | AlertAction::Reopen => {
                 f.notified = Some((Some(now), ev.estimate, false));
             }
-            AlertAction::Attach => {
-                if repeat_due(&mut f.notified, repeat, now, ev.estimate) {
-                    action = AlertAction::Repeat;
-                }
+            AlertAction::Attach if repeat_due(&mut f.notified, repeat, now, ev.estimate) => {
+                action = AlertAction::Repeat;
             }
             _ => {}
         }
@@ -749,7 +774,7 @@ fn follow_series(
 /// later lots show a larger shift sends one message, not an opening and a repeat at once);
 /// never when acknowledged. Updates the last announcement when it does.
 fn repeat_due(
-    notified: &mut Option<(Option<chrono::DateTime<chrono::Utc>>, Option<f64>, bool)>,
+    notified: &mut Option<Notified>,
     repeat: Option<std::time::Duration>,
     now: chrono::DateTime<chrono::Utc>,
     estimate: Option<f64>,
