@@ -11,6 +11,8 @@ fn main() {
         ("coarse", Units::Coarse(1.0 / 6.0), 0.0),
         ("lognormal0.5", Units::LogNormal(0.5), 0.0),
         ("lognormal1", Units::LogNormal(1.0), 0.0),
+        ("lnvalues0.5", Units::LogNormalValues(0.5), 0.0),
+        ("lnvalues1", Units::LogNormalValues(1.0), 0.0),
         ("outliers", Units::Normal, 0.002),
         ("all", Units::StudentT(5.0), 0.002),
     ];

@@ -14,6 +14,9 @@ ALTER TABLE baseline ADD COLUMN spread_mean REAL;
 ALTER TABLE baseline ADD COLUMN spread_sd REAL;
 ALTER TABLE baseline ADD COLUMN spread_lots INTEGER;
 ALTER TABLE baseline ADD COLUMN spread_n REAL;
+-- 1 when the series is tested on the log scale (positive, right-skewed baseline; see
+-- engine::screen); NULL or 0: the natural scale.
+ALTER TABLE baseline ADD COLUMN log_scale INTEGER;
 
 -- Alert lifecycle state of a series per kind (engine-owned JSON: recent standardised shifts
 -- since the last significant lot, the resolution margin, lots since the last resolution).

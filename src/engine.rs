@@ -285,6 +285,7 @@ pub fn design(
         normality_p,
         outliers: None,
         spread_base: None,
+        log_scale: false,
     })
 }
 
@@ -426,14 +427,16 @@ fn plan_series(
         .iter()
         .map(|l| w.values.get(&l.sample_id).map(Vec::as_slice))
         .collect();
+    // A minimum shift is in the characteristic's unit: such a series stays on that scale.
+    let log = policy.min_shift == 0.0 && units.as_deref().is_some_and(screen::choose_log_scale);
     let fence = units
         .as_deref()
         .filter(|_| policy.outliers)
-        .and_then(|u| screen::learn_fence(u, monitor.outlier_share()));
+        .and_then(|u| screen::learn_fence(u, monitor.outlier_share(), log));
     let screened: Option<Vec<screen::Screened>> = units.as_ref().map(|u| {
         lots.iter()
             .zip(u)
-            .map(|(l, u)| screen::screen(l.sample_id, u, fence.as_ref()))
+            .filter_map(|(l, u)| screen::screen(l.sample_id, u, fence.as_ref(), log))
             .collect()
     });
     let summaries: Vec<Summary> = match &screened {
@@ -454,6 +457,7 @@ fn plan_series(
         }
     };
     d.outliers = fence;
+    d.log_scale = log;
     if let Some(s) = &screened {
         d.spread_base = spread_baseline(s, fence.as_ref());
         pass.outliers
@@ -513,11 +517,15 @@ fn test_lot(
     let screened = w
         .values
         .get(&s.sample_id)
-        .map(|u| screen::screen(s.sample_id, u, design.outliers.as_ref()));
+        .and_then(|u| screen::screen(s.sample_id, u, design.outliers.as_ref(), design.log_scale));
     let summary = screened.as_ref().map_or(s.summary, |x| x.summary);
     let (alternative, delta) = mean_hypothesis(policy.direction, policy.min_shift);
-    let mean = monitoring::lot_vs_baseline(&design.re, &summary, alternative, delta, 0.95)
-        .map_err(|e| e.to_string());
+    let mean = if design.log_scale && screened.is_none() {
+        Err("the series is tested on the log scale and the lot has no unit above 0".to_string())
+    } else {
+        monitoring::lot_vs_baseline(&design.re, &summary, alternative, delta, 0.95)
+            .map_err(|e| e.to_string())
+    };
     let rank = rank_test(w, design, &policy, s.sample_id, alternative, delta);
     let mean_p = match rank {
         Some((_, p)) => Some(p),
@@ -832,8 +840,12 @@ fn base_evaluation(
         std_error: None,
         cusum: None,
         cusum_signal: false,
-        cpk: lot_cpk(&policy, &t.summary),
-        note: t.screen_note.clone(),
+        // Capability is of the stored values, whatever the test's scale.
+        cpk: lot_cpk(&policy, &s.summary),
+        note: match (plan.design.log_scale, t.screen_note.clone()) {
+            (false, note) => note,
+            (true, note) => Some(join_notes(note, LOG_SCALE_NOTE.to_string())),
+        },
     }
 }
 
@@ -960,6 +972,10 @@ fn spread_evaluation(
     ev
 }
 
+/// The note of every decision of a log-scale series.
+const LOG_SCALE_NOTE: &str = "tested on the log scale: means, estimate and interval are of \
+     ln(value); exp(estimate) is the lot's geometric mean over the baseline's";
+
 /// Two notes as one.
 fn join_notes(first: Option<String>, second: String) -> String {
     match first {
@@ -1046,6 +1062,10 @@ pub fn baseline_cpk(
     monitor: &Monitor,
     characteristic: &str,
 ) -> Option<crate::stats::capability::Cpk> {
+    // The random-effects analysis of a log-scale series is of ln(value).
+    if design.log_scale {
+        return None;
+    }
     let policy = monitor.policy(characteristic);
     if policy.lsl.is_none() && policy.usl.is_none() {
         return None;
@@ -1085,6 +1105,9 @@ fn spread_test(re: &RandomEffects, lot: &Summary) -> Option<SpreadResult> {
 /// that a single lot of typical size is flagged for with 90 % power by the lot test at its
 /// per-lot level (the CUSUM detects smaller sustained shifts over several lots).
 pub fn detectable_shift(design: &Design, monitor: &Monitor, characteristic: &str) -> Option<f64> {
+    if design.log_scale {
+        return None;
+    }
     let re = &design.re;
     let policy = monitor.policy(characteristic);
     let m = re.m as f64;
@@ -1137,6 +1160,17 @@ pub fn design_note(d: &Design, monitor: &Monitor) -> String {
     }
     if let Some(p) = d.normality_p {
         s.push_str(&format!("; Shapiro–Wilk p of residuals {p:.3e}"));
+    }
+    if d.log_scale {
+        s.push_str("; tested on the log scale (positive, right-skewed units)");
+    }
+    if let Some(f) = d.outliers {
+        s.push_str(&format!(
+            "; outlier fence {:.2} robust sd (robust sd {:.4e}{})",
+            f.fence,
+            f.scale,
+            if f.heavy_tailed { ", heavy tails" } else { "" }
+        ));
     }
     s
 }

@@ -161,6 +161,9 @@ pub struct Design {
     pub outliers: Option<OutlierFence>,
     /// The baseline lots' spread statistics; None: spread is tested by the F test.
     pub spread_base: Option<SpreadBaseline>,
+    /// Lots are screened and tested as ln(value) (`engine::screen`); the random-effects
+    /// analysis and the spread statistics are then of ln(value) too.
+    pub log_scale: bool,
 }
 
 /// A frozen baseline.
@@ -627,7 +630,8 @@ pub struct HistoryRow {
 const DESIGN_COLUMNS: &str = "b.lot_count, b.n, b.mean, b.mean_of_means, b.msb, b.msw, \
      b.df_between, b.df_within, b.n0, b.n_harmonic, b.var_between, b.var_within, b.between_p, \
      b.normality_p, b.level_mean, b.level_spread, b.cusum_k, b.cusum_h, b.outlier_scale, \
-     b.outlier_fence, b.heavy_tailed, b.spread_mean, b.spread_sd, b.spread_lots, b.spread_n";
+     b.outlier_fence, b.heavy_tailed, b.spread_mean, b.spread_sd, b.spread_lots, b.spread_n, \
+     b.log_scale";
 
 /// A stored baseline's design, from [`DESIGN_COLUMNS`] starting at column `o`.
 fn design_from_row(r: &SqliteRow, o: usize) -> Design {
@@ -678,6 +682,7 @@ fn design_from_row(r: &SqliteRow, o: usize) -> Design {
             }),
             _ => None,
         },
+        log_scale: r.get::<Option<i64>, _>(o + 25).unwrap_or(0) != 0,
     }
 }
 
@@ -2862,9 +2867,10 @@ async fn insert_baseline(
                  min_value, max_value, last_order_key, mean_of_means, msb, msw, df_between, \
                  df_within, n0, n_harmonic, var_between, var_within, between_p, normality_p, \
                  level_mean, level_spread, cusum_k, cusum_h, design_note, outlier_scale, \
-                 outlier_fence, heavy_tailed, spread_mean, spread_sd, spread_lots, spread_n) \
+                 outlier_fence, heavy_tailed, spread_mean, spread_sd, spread_lots, spread_n, \
+                 log_scale) \
                  VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, \
-                 ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING id",
+                 ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING id",
     )
     .bind(b.series_id)
     .bind(at)
@@ -2899,6 +2905,7 @@ async fn insert_baseline(
     .bind(d.spread_base.map(|b| b.sd))
     .bind(d.spread_base.map(|b| b.lots as i64))
     .bind(d.spread_base.map(|b| b.n))
+    .bind(d.log_scale as i64)
     .fetch_one(&mut **tx)
     .await
     .doing("freezing a baseline")?;

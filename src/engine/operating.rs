@@ -29,6 +29,9 @@ pub enum Units {
     LogNormal(f64),
     /// Normal units read on a gauge with this resolution (in unit sd).
     Coarse(f64),
+    /// Log-normal values (a leakage current): the value is 10 × exp(σ × (the normal model's
+    /// value − 10)), so lot effects, shifts and units act on the log scale with log sd σ.
+    LogNormalValues(f64),
 }
 
 /// One simulated scenario.
@@ -238,6 +241,9 @@ pub fn run(scenario: &Scenario, monitor: &Monitor) -> Outcome {
                     let off = rng.random_range(5.0..10.0);
                     x += if rng.random::<bool>() { off } else { -off };
                     gross += 1;
+                }
+                if let Units::LogNormalValues(sigma) = scenario.unit_dist {
+                    x = 10.0 * (sigma * (x - 10.0)).exp();
                 }
                 units.push((u as i64 + 1, draw.read(x)));
             }

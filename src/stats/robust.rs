@@ -55,6 +55,36 @@ pub fn mad(xs: &[f64], center: f64) -> Result<f64, StatsError> {
     Ok(median_in_place(&mut d))
 }
 
+/// The p-quantile of a sample by linear interpolation between order statistics (Hyndman &
+/// Fan 1996, definition 7; numpy's and R's default).
+pub fn quantile(xs: &[f64], p: f64) -> Result<f64, StatsError> {
+    check(xs)?;
+    if !(0.0..=1.0).contains(&p) {
+        return Err(StatsError::InvalidParameter {
+            name: "p",
+            value: p,
+        });
+    }
+    let mut v = xs.to_vec();
+    v.sort_unstable_by(f64::total_cmp);
+    let h = (v.len() - 1) as f64 * p;
+    let lo = h.floor() as usize;
+    let hi = (lo + 1).min(v.len() - 1);
+    Ok(v[lo] + (h - lo as f64) * (v[hi] - v[lo]))
+}
+
+/// Quartile (Bowley's) skewness (Q3 + Q1 − 2 Q2) / (Q3 − Q1), from quartiles of
+/// [`quantile`]: 0 for a symmetric sample, in [−1, 1].
+pub fn quartile_skewness(xs: &[f64]) -> Result<f64, StatsError> {
+    let q1 = quantile(xs, 0.25)?;
+    let q2 = quantile(xs, 0.5)?;
+    let q3 = quantile(xs, 0.75)?;
+    if q3 <= q1 {
+        return Err(StatsError::ZeroVariance);
+    }
+    Ok((q3 + q1 - 2.0 * q2) / (q3 - q1))
+}
+
 /// The mean absolute deviation from the median: a scale measure that is less sensitive to the
 /// tails than the variance (its logarithm is the lot spread statistic).
 pub fn mean_abs_dev_from_median(xs: &[f64]) -> Result<f64, StatsError> {
