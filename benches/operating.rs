@@ -76,6 +76,16 @@ fn field_table(series: usize) {
         ("coarse gauge (sd/6)", Units::Coarse(1.0 / 6.0), 0.0),
         ("log-normal (sigma 0.5)", Units::LogNormal(0.5), 0.0),
         ("log-normal (sigma 1)", Units::LogNormal(1.0), 0.0),
+        (
+            "log-normal values (sigma 0.5)",
+            Units::LogNormalValues(0.5),
+            0.0,
+        ),
+        (
+            "log-normal values (sigma 1)",
+            Units::LogNormalValues(1.0),
+            0.0,
+        ),
         ("normal + 0.2 % gross outliers", Units::Normal, 0.002),
         ("t 5 df + 0.2 % gross outliers", Units::StudentT(5.0), 0.002),
     ];

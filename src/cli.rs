@@ -261,18 +261,18 @@ pub fn main() -> ExitCode {
     {
         Ok(r) => r,
         Err(e) => {
-            eprintln!("lotdrift: cannot start the runtime: {e}");
+            warn_line!("lotdrift: cannot start the runtime: {e}");
             return ExitCode::from(1);
         }
     };
     match runtime.block_on(dispatch(cli.command)) {
         Ok(()) => ExitCode::SUCCESS,
         Err(Failure::Usage(e)) => {
-            eprintln!("lotdrift: {e:#}");
+            warn_line!("lotdrift: {e:#}");
             ExitCode::from(2)
         }
         Err(Failure::Runtime(e)) => {
-            eprintln!("lotdrift: {e:#}");
+            warn_line!("lotdrift: {e:#}");
             ExitCode::from(1)
         }
     }
@@ -316,7 +316,7 @@ async fn open_existing(config: &Config) -> Result<Store, Failure> {
 }
 
 fn print_json(v: &serde_json::Value) {
-    println!(
+    say!(
         "{}",
         serde_json::to_string_pretty(v).expect("JSON values serialise")
     );
@@ -373,7 +373,7 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
         }
         Command::CheckConfig { config } => {
             let c = load(&config)?;
-            println!("{c:#?}");
+            say!("{c:#?}");
             Ok(())
         }
         Command::Status { config, json } => {
@@ -424,7 +424,7 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                     &silent,
                 ));
             } else {
-                print!(
+                say_part!(
                     "{}",
                     report::status_text(
                         &counts,
@@ -432,8 +432,8 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                         &config.paths.database.display().to_string()
                     )
                 );
-                print!("{}", report::series_text(&series));
-                print!("{}", report::silent_text(&silent));
+                say_part!("{}", report::series_text(&series));
+                say_part!("{}", report::silent_text(&silent));
             }
             Ok(())
         }
@@ -446,7 +446,7 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             let sent = crate::alert::test_email(&config)
                 .await
                 .map_err(|e| Failure::Usage(e.into()))?;
-            print!("{}", crate::alert::test_email_text(&sent));
+            say_part!("{}", crate::alert::test_email_text(&sent));
             match sent.iter().filter(|d| d.outcome.is_err()).count() {
                 0 => Ok(()),
                 n => Err(Failure::Runtime(anyhow::anyhow!(
@@ -481,7 +481,7 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             {
                 return Err(Failure::Runtime(anyhow::anyhow!("no alert with id {id}")));
             }
-            println!("alert {id} acknowledged by {by} at {at}");
+            say!("alert {id} acknowledged by {by} at {at}");
             store.close().await;
             Ok(())
         }
@@ -494,7 +494,7 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             if json {
                 print_json(&report::alerts_json(&alerts));
             } else {
-                print!("{}", report::alerts_text(&alerts));
+                say_part!("{}", report::alerts_text(&alerts));
             }
             Ok(())
         }
@@ -519,9 +519,9 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             if json {
                 print_json(&report::history_json(&rows));
             } else if csv {
-                print!("{}", report::history_csv(&rows));
+                say_part!("{}", report::history_csv(&rows));
             } else {
-                print!("{}", report::history_text(&rows));
+                say_part!("{}", report::history_text(&rows));
             }
             Ok(())
         }
@@ -549,7 +549,7 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             } else {
                 let (a, b) = source_lot_means(&args).await?;
                 if !args.json {
-                    println!(
+                    say!(
                         "lot means of {} ({} lots) against {} ({} lots), {}",
                         args.sources[0],
                         a.len(),
@@ -578,8 +578,8 @@ fn init(dir: &Path, force: bool) -> Result<(), Failure> {
             .with_context(|| format!("creating {}", dir.join(sub).display()))?;
     }
     std::fs::write(&file, STARTER).with_context(|| format!("writing {}", file.display()))?;
-    println!("wrote {}", file.display());
-    println!(
+    say!("wrote {}", file.display());
+    say!(
         "drop lot files in {}, then run: lotdrift run --config {}",
         dir.join("inbox").display(),
         file.display()
@@ -601,10 +601,10 @@ async fn replace(store: &Store, config: &Config, file: &Path, reason: &str) -> R
         .context("replace")?;
     match &outcome[0] {
         crate::store::FileOutcome::Stored { samples, .. } => {
-            println!("stored {samples} sample(s) from {}", file.display());
+            say!("stored {samples} sample(s) from {}", file.display());
         }
         crate::store::FileOutcome::Duplicate { first_name } => {
-            println!(
+            say!(
                 "{} is already stored (as {first_name}); nothing changed",
                 file.display()
             );
@@ -665,11 +665,11 @@ async fn baseline(action: BaselineAction) -> Result<(), Failure> {
         BaselineAction::Show { .. } => {
             match store.baseline_of(series).await.context("baseline")? {
                 Some((definition, note, frozen_at, lots)) => {
-                    println!("{source} / {characteristic}: {definition}, frozen {frozen_at}");
-                    println!("lots: {}", lots.join(", "));
-                    println!("design: {note}");
+                    say!("{source} / {characteristic}: {definition}, frozen {frozen_at}");
+                    say!("lots: {}", lots.join(", "));
+                    say!("design: {note}");
                 }
-                None => println!(
+                None => say!(
                     "{source} / {characteristic}: no baseline yet (the next {} undecided lots \
                      will form it)",
                     config.monitor.baseline_lots
@@ -677,9 +677,9 @@ async fn baseline(action: BaselineAction) -> Result<(), Failure> {
             }
             let changes = store.baseline_changes(series).await.context("baseline")?;
             if !changes.is_empty() {
-                println!("\nchanges:");
+                say!("\nchanges:");
                 for (when, who, why, old, new) in changes {
-                    println!(
+                    say!(
                         "  {when} by {who}: {} -> {new} ({why})",
                         old.unwrap_or_else(|| "none".into())
                     );
@@ -698,7 +698,7 @@ async fn baseline(action: BaselineAction) -> Result<(), Failure> {
                 .change_baseline(series, None, &definition, &by, &reason, &at)
                 .await
                 .context("baseline reset")?;
-            println!("{source} / {characteristic}: baseline retired; {definition} form the next");
+            say!("{source} / {characteristic}: baseline retired; {definition} form the next");
         }
         BaselineAction::Set {
             lots,
@@ -734,6 +734,9 @@ async fn baseline(action: BaselineAction) -> Result<(), Failure> {
                 };
                 let bound = |v: &str, key: &str, end: bool| -> Result<String, Failure> {
                     if v.len() == 10 {
+                        chrono::NaiveDate::parse_from_str(v, "%Y-%m-%d").map_err(|_| {
+                            usage(format!("{key}: {v:?} is not a date (YYYY-MM-DD)"))
+                        })?;
                         Ok(format!(
                             "{v}T{}",
                             if end {
@@ -749,6 +752,9 @@ async fn baseline(action: BaselineAction) -> Result<(), Failure> {
                     }
                 };
                 let (lo, hi) = (bound(&from, "--from", false)?, bound(&to, "--to", true)?);
+                if lo > hi {
+                    return Err(usage(format!("--from {from} is after --to {to}")));
+                }
                 (
                     all.iter()
                         .filter(|s| s.order_time >= lo && s.order_time <= hi)
@@ -788,8 +794,8 @@ async fn baseline(action: BaselineAction) -> Result<(), Failure> {
                 .change_baseline(series, Some(&new), &definition, &by, &reason, &at)
                 .await
                 .context("baseline set")?;
-            println!("{source} / {characteristic}: new baseline, {definition}");
-            println!("design: {}", new.note);
+            say!("{source} / {characteristic}: new baseline, {definition}");
+            say!("design: {}", new.note);
         }
     }
     store.close().await;
@@ -892,7 +898,7 @@ fn compare(args: CompareArgs, a: Vec<f64>, b: Vec<f64>) -> Result<(), Failure> {
     if args.json {
         print_json(&report::compare_json(&result, args.alpha));
     } else {
-        print!("{}", report::compare_text(&result, args.alpha));
+        say_part!("{}", report::compare_text(&result, args.alpha));
     }
     Ok(())
 }
@@ -932,7 +938,7 @@ fn adjust(args: AdjustArgs) -> Result<(), Failure> {
                 ]
             })
             .collect();
-        print!(
+        say_part!(
             "{}",
             report::table(&["p", "adjusted", &format!("at {}", args.level)], &rows)
         );

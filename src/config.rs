@@ -1036,14 +1036,10 @@ fn validate_digest(p: &mut Problems, d: RawDigest) -> Digest {
     }
 }
 
+/// Whether `s` is an address as the mail library parses it ("a@b.c" or "Name <a@b.c>"), so
+/// that `check-config` refuses what sending would refuse later.
 fn looks_like_address(s: &str) -> bool {
-    let addr = match (s.rfind('<'), s.rfind('>')) {
-        (Some(a), Some(b)) if a < b => &s[a + 1..b],
-        _ => s,
-    };
-    let mut parts = addr.split('@');
-    matches!((parts.next(), parts.next(), parts.next()), (Some(l), Some(d), None) if !l.is_empty() && !d.is_empty())
-        && !s.chars().any(char::is_control)
+    !s.chars().any(char::is_control) && s.parse::<lettre::message::Mailbox>().is_ok()
 }
 
 /// The commented starter file written by `lotdrift init`.
@@ -1277,6 +1273,24 @@ mod tests {
         assert_eq!(
             email.all_recipients(),
             vec!["team@x.org", "bw@x.org", "lab@x.org"]
+        );
+    }
+
+    #[test]
+    fn addresses_are_parsed_as_the_mail_library_does() {
+        // Regression: `from = "a@b c"` and `to = ["x y@z"]` passed the check and failed only
+        // when sending.
+        let e = parse("[alerts.email]\nsmtp_host = \"m\"\nfrom = \"a@b c\"\nto = [\"x y@z\"]\n")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("alerts.email.from"), "{e}");
+        assert!(e.contains("\"x y@z\" is not an email address"), "{e}");
+        assert!(
+            parse(
+                "[alerts.email]\nsmtp_host = \"m\"\nfrom = \"Lab <lab@x.org>\"\n\
+                 to = [\"q@x.org\"]\n"
+            )
+            .is_ok()
         );
     }
 

@@ -41,9 +41,9 @@ pub async fn run(dir: &Path) -> Result<(), Failure> {
 
     let abs = |p: &Path| std::fs::canonicalize(p).unwrap_or_else(|_| p.to_path_buf());
     let status = store.status().await.context("demo status")?;
-    println!("lotdrift demo: 18650 battery cells from three invented suppliers");
-    println!();
-    println!(
+    say!("lotdrift demo: 18650 battery cells from three invented suppliers");
+    say!();
+    say!(
         "Files: {} stored, {} duplicate(s) archived, {} quarantined ({} measurements in {} lots).",
         r.ingest.stored(),
         r.ingest.duplicates(),
@@ -51,45 +51,47 @@ pub async fn run(dir: &Path) -> Result<(), Failure> {
         status.measurements,
         status.lots
     );
-    println!();
-    println!("Lots per source:");
+    say!();
+    say!("Lots per source:");
     for (source, lots) in store.lots_per_source().await.context("demo")? {
-        println!("  {source:<14} {lots}");
+        say!("  {source:<14} {lots}");
     }
-    println!();
-    println!(
+    say!();
+    say!(
         "Quarantined files (reasons beside them in {}):",
         abs(&config.paths.quarantine).display()
     );
     for (path, result) in &r.ingest.files {
         if let FileResult::Quarantined { reason, .. } = result {
             let name = path.file_name().unwrap_or_default().to_string_lossy();
-            println!("  {name}");
-            println!("    {}", reason.lines().next().unwrap_or(""));
+            say!("  {name}");
+            say!("    {}", reason.lines().next().unwrap_or(""));
         }
     }
-    println!();
-    println!(
+    say!();
+    say!(
         "Evaluation: each series' first {} lots form its baseline; {} later tests (lot mean \
          against the baseline lot means, spread, CUSUM) under a budget of one false alert per \
          {} lots per series.",
-        config.monitor.baseline_lots, r.engine.evaluations, config.monitor.false_alert_lots
+        config.monitor.baseline_lots,
+        r.engine.evaluations,
+        config.monitor.false_alert_lots
     );
     let alerts = store.alerts(false).await.context("demo alerts")?;
-    println!("Alerts ({} opened):", alerts.len());
-    print!("{}", indent(&report::alerts_text(&alerts)));
-    println!();
+    say!("Alerts ({} opened):", alerts.len());
+    say_part!("{}", indent(&report::alerts_text(&alerts)));
+    say!();
     let db = abs(&config.paths.database);
     let cfg = abs(&config_path);
-    println!("Database: {}", db.display());
-    println!("Next:");
-    println!("  lotdrift alerts --config {}", cfg.display());
-    println!(
+    say!("Database: {}", db.display());
+    say!("Next:");
+    say!("  lotdrift alerts --config {}", cfg.display());
+    say!(
         "  lotdrift history cedar-energy capacity_mah --config {}",
         cfg.display()
     );
-    println!("  lotdrift status --json --config {}", cfg.display());
-    println!(
+    say!("  lotdrift status --json --config {}", cfg.display());
+    say!(
         "  sqlite3 {} \"SELECT * FROM evaluation WHERE significant = 1\"",
         db.display()
     );

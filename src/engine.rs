@@ -286,6 +286,7 @@ pub fn design(
         outliers: None,
         spread_base: None,
         log_scale: false,
+        natural: None,
     })
 }
 
@@ -458,6 +459,7 @@ fn plan_series(
     };
     d.outliers = fence;
     d.log_scale = log;
+    d.natural = merged.sd().map(|sd| (merged.mean(), sd, merged.n()));
     if let Some(s) = &screened {
         d.spread_base = spread_baseline(s, fence.as_ref());
         pass.outliers
@@ -841,7 +843,14 @@ fn base_evaluation(
         cusum: None,
         cusum_signal: false,
         // Capability is of the stored values, whatever the test's scale.
-        cpk: lot_cpk(&policy, &s.summary),
+        cpk: lot_cpk(
+            &policy,
+            if plan.design.log_scale {
+                &s.summary
+            } else {
+                &t.summary
+            },
+        ),
         note: match (plan.design.log_scale, t.screen_note.clone()) {
             (false, note) => note,
             (true, note) => Some(join_notes(note, LOG_SCALE_NOTE.to_string())),
@@ -1045,7 +1054,7 @@ impl OnlineFdr {
 }
 
 /// Cpk of a lot against the characteristic's specification limits, when it has any.
-fn lot_cpk(policy: &crate::config::CharacteristicPolicy, lot: &Summary) -> Option<(f64, f64, f64)> {
+fn lot_cpk(policy: &CharacteristicPolicy, lot: &Summary) -> Option<(f64, f64, f64)> {
     if policy.lsl.is_none() && policy.usl.is_none() {
         return None;
     }
@@ -1062,24 +1071,22 @@ pub fn baseline_cpk(
     monitor: &Monitor,
     characteristic: &str,
 ) -> Option<crate::stats::capability::Cpk> {
-    // The random-effects analysis of a log-scale series is of ln(value).
-    if design.log_scale {
-        return None;
-    }
     let policy = monitor.policy(characteristic);
     if policy.lsl.is_none() && policy.usl.is_none() {
         return None;
     }
     let re = &design.re;
-    crate::stats::capability::cpk(
-        re.mean_of_means,
-        (re.var_between + re.var_within).sqrt(),
-        re.n_total,
-        policy.lsl,
-        policy.usl,
-        0.95,
-    )
-    .ok()
+    // A log-scale series' analysis is of ln(value): its capability comes from the stored
+    // values of its baseline lots instead.
+    let (mean, sd, n) = match design.natural {
+        Some(natural) if design.log_scale => natural,
+        _ => (
+            re.mean_of_means,
+            (re.var_between + re.var_within).sqrt(),
+            re.n_total,
+        ),
+    };
+    crate::stats::capability::cpk(mean, sd, n, policy.lsl, policy.usl, 0.95).ok()
 }
 
 /// One-sided F test of the lot's variance against the baseline's within-lot variance, for

@@ -17,6 +17,31 @@
 //! - [`daemon`]: the tasks of `lotdrift run` and their shutdown; [`demo`]: the bundled tour.
 //! - [`cli`]: the commands; `main.rs` only calls [`cli::main`].
 
+/// `println!` that never panics: a reader that closed its end (`lotdrift history … | head`)
+/// is not a failure of ours, so the rest of the output is dropped quietly.
+macro_rules! say {
+    ($($t:tt)*) => {{
+        use std::io::Write as _;
+        let _ = writeln!(std::io::stdout(), $($t)*);
+    }};
+}
+
+/// `print!` that never panics (see [`say!`]).
+macro_rules! say_part {
+    ($($t:tt)*) => {{
+        use std::io::Write as _;
+        let _ = write!(std::io::stdout(), $($t)*);
+    }};
+}
+
+/// `eprintln!` that never panics (see [`say!`]).
+macro_rules! warn_line {
+    ($($t:tt)*) => {{
+        use std::io::Write as _;
+        let _ = writeln!(std::io::stderr(), $($t)*);
+    }};
+}
+
 pub mod alert;
 pub mod chart;
 pub mod cli;

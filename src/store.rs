@@ -164,6 +164,9 @@ pub struct Design {
     /// Lots are screened and tested as ln(value) (`engine::screen`); the random-effects
     /// analysis and the spread statistics are then of ln(value) too.
     pub log_scale: bool,
+    /// Mean, sd and count of the baseline's stored values (all units): capability of a
+    /// log-scale series is of these.
+    pub natural: Option<(f64, f64, u64)>,
 }
 
 /// A frozen baseline.
@@ -631,7 +634,7 @@ const DESIGN_COLUMNS: &str = "b.lot_count, b.n, b.mean, b.mean_of_means, b.msb, 
      b.df_between, b.df_within, b.n0, b.n_harmonic, b.var_between, b.var_within, b.between_p, \
      b.normality_p, b.level_mean, b.level_spread, b.cusum_k, b.cusum_h, b.outlier_scale, \
      b.outlier_fence, b.heavy_tailed, b.spread_mean, b.spread_sd, b.spread_lots, b.spread_n, \
-     b.log_scale";
+     b.log_scale, b.m2";
 
 /// A stored baseline's design, from [`DESIGN_COLUMNS`] starting at column `o`.
 fn design_from_row(r: &SqliteRow, o: usize) -> Design {
@@ -683,6 +686,11 @@ fn design_from_row(r: &SqliteRow, o: usize) -> Design {
             _ => None,
         },
         log_scale: r.get::<Option<i64>, _>(o + 25).unwrap_or(0) != 0,
+        natural: {
+            let n: i64 = r.get(o + 1);
+            let m2: f64 = r.get(o + 26);
+            (n > 1).then(|| (r.get(o + 2), (m2 / (n - 1) as f64).sqrt(), n as u64))
+        },
     }
 }
 

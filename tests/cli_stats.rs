@@ -276,3 +276,30 @@ fn bad_input_is_a_usage_error_naming_the_problem() {
         text(&out.stderr)
     );
 }
+
+#[test]
+fn a_reader_that_closes_the_pipe_early_is_no_crash() {
+    // Regression: `lotdrift ... | head` panicked (exit 101) writing to the closed pipe. 50,000
+    // adjusted p-values are far more than a pipe buffers, so the writer meets the closed end.
+    let dir = tempfile::tempdir().unwrap();
+    let input = dir.path().join("p.txt");
+    let p: Vec<String> = (1..=50_000)
+        .map(|i| format!("{}", i as f64 / 50_001.0))
+        .collect();
+    std::fs::write(&input, p.join("\n")).unwrap();
+    let script = format!(
+        "'{}' adjust --method bh '{}' 2>&1 | head -n 1 >/dev/null; exit ${{PIPESTATUS[0]}}",
+        env!("CARGO_BIN_EXE_lotdrift"),
+        input.display()
+    );
+    let out = std::process::Command::new("bash")
+        .args(["-c", &script])
+        .output()
+        .unwrap();
+    assert_eq!(
+        out.status.code(),
+        Some(0),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
+}

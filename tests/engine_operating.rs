@@ -172,16 +172,18 @@ fn field(name: &str) -> (Units, f64) {
         "heavy tails (t, 5 df)" => (Units::StudentT(5.0), 0.0),
         "coarse gauge (sd / 6)" => (Units::Coarse(1.0 / 6.0), 0.0),
         "skewed (log-normal, sigma 1)" => (Units::LogNormal(1.0), 0.0),
+        "log-normal values (sigma 0.5)" => (Units::LogNormalValues(0.5), 0.0),
         "gross outliers (0.2 %)" => (Units::Normal, 0.002),
         "all together" => (Units::StudentT(5.0), 0.002),
         _ => unreachable!(),
     }
 }
 
-const FIELD: [&str; 5] = [
+const FIELD: [&str; 6] = [
     "heavy tails (t, 5 df)",
     "coarse gauge (sd / 6)",
     "skewed (log-normal, sigma 1)",
+    "log-normal values (sigma 0.5)",
     "gross outliers (0.2 %)",
     "all together",
 ];

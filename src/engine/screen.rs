@@ -278,6 +278,10 @@ mod tests {
         );
     }
 
+    fn refs(v: &[Vec<(i64, f64)>]) -> Vec<&[(i64, f64)]> {
+        v.iter().map(Vec::as_slice).collect()
+    }
+
     #[test]
     fn log_scale_for_positive_right_skewed_baselines_only() {
         // Residual patterns: exp of normal scores (log-normal, skewed) and normal scores.
@@ -304,7 +308,6 @@ mod tests {
                 )
             })
             .collect();
-        let refs = |v: &Vec<Vec<(i64, f64)>>| v.iter().map(Vec::as_slice).collect::<Vec<_>>();
         assert!(choose_log_scale(&refs(&skewed)));
         assert!(!choose_log_scale(&refs(&normal)));
         // A value <= 0 rules the log scale out.

@@ -148,8 +148,9 @@ const MAD_EFFICIENCY: f64 = 0.37;
 /// sd: a prediction-type fence for a scale estimated from N residuals by the MAD, whose
 /// asymptotic efficiency at the normal is 0.37 (Hampel et al. 1986, *Robust Statistics*),
 /// so its noise does not double the rate of findings. When more than 1 % of the baseline's
-/// units (and at least 3) lie beyond 3 robust sd, its tails are heavier than normal and the
-/// fence is the larger of the normal fence and Weissman's extrapolation with Hill's index
+/// units (and at least 3) lie beyond 3 robust sd, or more than 3 % (and at least 5) beyond
+/// 2.5 robust sd (a normal sample has 0.27 % and 1.24 %), its tails are heavier than normal
+/// and the fence is the larger of the normal fence and Weissman's extrapolation with Hill's index
 /// from the top 5 % (at least 10) of the absolute residuals.
 pub fn outlier_fence(residuals: &[f64], per_unit: f64) -> Result<OutlierFence, StatsError> {
     check(residuals)?;
@@ -170,7 +171,9 @@ pub fn outlier_fence(residuals: &[f64], per_unit: f64) -> Result<OutlierFence, S
     let z: Vec<f64> = residuals.iter().map(|r| r.abs() / scale).collect();
     let normal = t_isf(per_unit / 2.0, MAD_EFFICIENCY * n as f64)?;
     let far = z.iter().filter(|&&v| v > 3.0).count();
-    let heavy_tailed = far >= 3 && far as f64 > HEAVY_SHARE * n as f64;
+    let near = z.iter().filter(|&&v| v > 2.5).count();
+    let heavy_tailed = (far >= 3 && far as f64 > HEAVY_SHARE * n as f64)
+        || (near >= 5 && near as f64 > 0.03 * n as f64);
     let mut fence = normal;
     if heavy_tailed {
         let k = (n / 20).max(10).min(n - 1);
