@@ -115,30 +115,54 @@ pub fn series_text(series: &[SeriesStatus]) -> String {
     )
 }
 
+/// `status --json`, from a typed struct so that no key can be written twice. (An earlier
+/// version wrote `series` twice, a count and then this array; the array is what readers got,
+/// so it keeps the name and the count is `series_count`.)
+#[derive(serde::Serialize)]
+struct StatusJson<'a> {
+    lots: i64,
+    measurements: i64,
+    quarantined: i64,
+    open_alerts: i64,
+    outbox_pending: i64,
+    outbox_failed: i64,
+    outbox_expired: i64,
+    last_digest: Option<&'a str>,
+    sources: i64,
+    series_count: i64,
+    files: i64,
+    evaluations: i64,
+    alerts: i64,
+    outliers: i64,
+    undelivered: &'a [UndeliveredRow],
+    series: &'a [SeriesStatus],
+    silent_sources: &'a [SilentSource],
+}
+
 pub fn status_json(
     s: &StatusCounts,
     undelivered: &[UndeliveredRow],
     series: &[SeriesStatus],
     silent: &[SilentSource],
 ) -> Value {
-    json!({
-        "lots": s.lots,
-        "measurements": s.measurements,
-        "quarantined": s.quarantined,
-        "open_alerts": s.open_alerts,
-        "outbox_pending": s.outbox_pending,
-        "outbox_failed": s.outbox_failed,
-        "outbox_expired": s.outbox_expired,
-        "last_digest": s.last_digest,
-        "sources": s.sources,
-        "series": s.series,
-        "files": s.files,
-        "evaluations": s.evaluations,
-        "alerts": s.alerts,
-        "outliers": s.outliers,
-        "undelivered": undelivered,
-        "series": series,
-        "silent_sources": silent,
+    json!(StatusJson {
+        lots: s.lots,
+        measurements: s.measurements,
+        quarantined: s.quarantined,
+        open_alerts: s.open_alerts,
+        outbox_pending: s.outbox_pending,
+        outbox_failed: s.outbox_failed,
+        outbox_expired: s.outbox_expired,
+        last_digest: s.last_digest.as_deref(),
+        sources: s.sources,
+        series_count: s.series,
+        files: s.files,
+        evaluations: s.evaluations,
+        alerts: s.alerts,
+        outliers: s.outliers,
+        undelivered,
+        series,
+        silent_sources: silent,
     })
 }
 

@@ -722,7 +722,10 @@ impl Store {
             .filename(path)
             .create_if_missing(true)
             .journal_mode(SqliteJournalMode::Wal)
-            .synchronous(SqliteSynchronous::Normal)
+            // FULL: a commit is on disk before ingest moves the batch's files to the archive.
+            // With NORMAL a power cut could roll back the last commits of a WAL database while
+            // their files already sat in the archive, never stored.
+            .synchronous(SqliteSynchronous::Full)
             .busy_timeout(Duration::from_secs(30))
             .foreign_keys(true)
             // 32 MiB of page cache (negative = KiB): a backfill touches the indexes of lots,

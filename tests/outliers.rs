@@ -35,6 +35,10 @@ fn a_mis_keyed_unit_is_an_outlier_not_an_alert() {
     assert_eq!(status["outliers"], 1, "{status}");
     assert_eq!(status["open_alerts"], 0, "{status}");
     assert!(site.alerts().is_empty());
+    // Regression: `series` was written twice (a count, then the list); the count is
+    // `series_count` now.
+    assert_eq!(status["series_count"], 1, "{status}");
+    assert_eq!(status["series"].as_array().unwrap().len(), 1, "{status}");
     let history = site.json(&["history", "alder-cells", "capacity"]);
     let rows = history.as_array().unwrap();
     let row = rows.iter().find(|r| r["lot"] == "AC-025").unwrap();
