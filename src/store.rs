@@ -1194,9 +1194,10 @@ impl Store {
         at: &str,
         reason: Option<&str>,
     ) -> Result<()> {
-        sqlx::query(
+        let replacement_id: i64 = sqlx::query_scalar(
             "INSERT INTO sample_replacement (sample_id, replaced_at, reason, old_file_id, \
-             new_file_id, old_n, old_mean, old_m2, old_digest) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+             new_file_id, old_n, old_mean, old_m2, old_digest) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?) \
+             RETURNING id",
         )
         .bind(old.id)
         .bind(at)
@@ -1207,9 +1208,26 @@ impl Store {
         .bind(old.mean)
         .bind(old.m2)
         .bind(&old.digest)
-        .execute(&mut **tx)
+        .fetch_one(&mut **tx)
         .await
         .doing("recording a replacement")?;
+        // The old values stay in the audit trail; the outliers found among them were findings
+        // about values the sample no longer has.
+        sqlx::query(
+            "INSERT INTO replaced_measurement (replacement_id, seq, unit, value, sampled_at) \
+             SELECT ?, seq, unit, value, sampled_at FROM measurement WHERE sample_id = ? \
+             ORDER BY seq",
+        )
+        .bind(replacement_id)
+        .bind(old.id)
+        .execute(&mut **tx)
+        .await
+        .doing("keeping replaced values")?;
+        sqlx::query("DELETE FROM outlier WHERE sample_id = ?")
+            .bind(old.id)
+            .execute(&mut **tx)
+            .await
+            .doing("removing outliers of replaced values")?;
         sqlx::query("DELETE FROM measurement WHERE sample_id = ?")
             .bind(old.id)
             .execute(&mut **tx)

@@ -173,6 +173,23 @@ fn duplicates_are_archived_and_conflicting_resends_quarantined_until_replaced() 
     let mean = hist[0]["mean"].as_f64().unwrap();
     assert!((mean - (46.5 + 46.9 + 46.4) / 3.0).abs() < 1e-9, "{hist}");
     assert_eq!(site.status()["measurements"], 5);
+    // Regression: the replaced values themselves stay in the audit trail (they were deleted,
+    // only n, mean and m2 were kept).
+    let db = site.path().join("lotdrift.db");
+    let kept: String = tokio::runtime::Runtime::new().unwrap().block_on(async {
+        let pool = sqlx::SqlitePool::connect(&format!("sqlite:{}", db.display()))
+            .await
+            .unwrap();
+        sqlx::query_scalar(
+            "SELECT group_concat(v, ' ') FROM (SELECT printf('%.1f', m.value) AS v \
+             FROM replaced_measurement m JOIN sample_replacement r ON r.id = m.replacement_id \
+             WHERE r.reason = 'typing error in unit 2' ORDER BY m.seq)",
+        )
+        .fetch_one(&pool)
+        .await
+        .unwrap()
+    });
+    assert_eq!(kept, "46.5 46.6 46.4");
 }
 
 #[test]
