@@ -7,7 +7,10 @@ use std::path::Path;
 fn main() {
     println!("cargo:rerun-if-changed=migrations");
     println!("cargo:rerun-if-changed=demo-data/inbox");
-    let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-data/inbox");
+    // Read when the script runs (not `env!` when it is compiled): one compiled build script
+    // can serve checkouts in other folders that share a target directory.
+    let manifest = std::env::var("CARGO_MANIFEST_DIR").expect("cargo sets CARGO_MANIFEST_DIR");
+    let dir = Path::new(&manifest).join("demo-data/inbox");
     let mut names: Vec<_> = std::fs::read_dir(&dir)
         .map(|rd| {
             rd.flatten()

@@ -55,6 +55,48 @@ fn main() {
         }
     }
     field_table(series);
+    spread_table(series);
+}
+
+/// Lots to the first spread alert when the unit sd grows by half or doubles (20 units per lot,
+/// between-lot sd 0.5).
+fn spread_table(series: usize) {
+    let monitor = default_monitor();
+    println!("\nspread increases: 20 units per lot, between-lot sd 0.5, {series} series per row");
+    println!(
+        "{:>30} {:>7} {:>8} {:>14}",
+        "units", "factor", "median", "within 10 lots"
+    );
+    let cases = [
+        ("normal", Units::Normal),
+        ("t, 5 df", Units::StudentT(5.0)),
+        ("log-normal values (sigma 0.5)", Units::LogNormalValues(0.5)),
+    ];
+    for (i, (name, units)) in cases.into_iter().enumerate() {
+        for (j, factor) in [1.5, 2.0].into_iter().enumerate() {
+            let mut s = Scenario::normal(series, 40, 20, 0.5, 0.0, 7000 + 10 * i as u64 + j as u64);
+            s.unit_dist = units;
+            s.spread_factor = factor;
+            let out = run(&s, &monitor);
+            let mut d: Vec<usize> = out
+                .spread_delays
+                .iter()
+                .map(|d| d.unwrap_or(usize::MAX))
+                .collect();
+            d.sort_unstable();
+            let median = d[d.len() / 2];
+            let median = if median == usize::MAX {
+                "> 40".to_string()
+            } else {
+                median.to_string()
+            };
+            let within = d.iter().filter(|&&x| x <= 10).count() as f64 / d.len() as f64;
+            println!(
+                "{name:>30} {factor:>7} {median:>8} {:>13.0}%",
+                100.0 * within
+            );
+        }
+    }
 }
 
 /// The rows for field-like units: 20 units per lot, between-lot sd 0.5 of the unit sd; shifts

@@ -16,6 +16,29 @@ fn main() {
         ("outliers", Units::Normal, 0.002),
         ("all", Units::StudentT(5.0), 0.002),
     ];
+    if std::env::var("SPREAD").is_ok() {
+        for (name, u, rate) in cases {
+            for f in [1.5, 2.0] {
+                let mut s = Scenario::normal(series, 40, 20, 0.5, 0.0, 11);
+                s.unit_dist = u;
+                s.outlier_rate = rate;
+                s.spread_factor = f;
+                let o = run(&s, &monitor);
+                let mut d: Vec<usize> = o.spread_delays.iter().map(|d| d.unwrap_or(999)).collect();
+                d.sort();
+                println!(
+                    "{name:>14} spread x{f}: median lots to spread alert {}, within 10: {:.2}",
+                    d[d.len() / 2],
+                    o.spread_delays
+                        .iter()
+                        .filter(|d| d.is_some_and(|d| d <= 10))
+                        .count() as f64
+                        / series as f64
+                );
+            }
+        }
+        return;
+    }
     if std::env::var("SHIFT").is_ok() {
         for (name, u, rate) in cases {
             for shift in [1.0, 1.5, 2.0] {

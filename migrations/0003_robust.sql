@@ -8,12 +8,14 @@
 ALTER TABLE baseline ADD COLUMN outlier_scale REAL;
 ALTER TABLE baseline ADD COLUMN outlier_fence REAL;
 ALTER TABLE baseline ADD COLUMN heavy_tailed INTEGER;
--- The baseline lots' spread statistic ln(mean |x - lot median|): mean, sd, lot count and
--- median lot size (stats::robust::SpreadBaseline). NULL: spread tested by the F test.
+-- The baseline lots' spread statistic ln(mean |x - lot median|) (outliers set aside): mean,
+-- sd, lot count, median lot size, and the units' excess kurtosis when the pooled z test
+-- applies (stats::robust::SpreadBaseline). NULL spread_mean: spread tested by the F test.
 ALTER TABLE baseline ADD COLUMN spread_mean REAL;
 ALTER TABLE baseline ADD COLUMN spread_sd REAL;
 ALTER TABLE baseline ADD COLUMN spread_lots INTEGER;
 ALTER TABLE baseline ADD COLUMN spread_n REAL;
+ALTER TABLE baseline ADD COLUMN spread_kurtosis REAL;
 -- 1 when the series is tested on the log scale (positive, right-skewed baseline; see
 -- engine::screen); NULL or 0: the natural scale.
 ALTER TABLE baseline ADD COLUMN log_scale INTEGER;

@@ -481,8 +481,8 @@ fn plan_series(
     })
 }
 
-/// The floor of the spread statistic: a millionth of the baseline's robust sd (a coarse gauge
-/// can give a lot whose units are all equal).
+/// The floor of a lot's spread: a millionth of the baseline's robust sd (a coarse gauge can
+/// give a lot whose units are all equal).
 fn spread_floor(fence: Option<&OutlierFence>, lot: &Summary) -> f64 {
     match fence {
         Some(f) => 1e-6 * f.scale,
@@ -501,7 +501,9 @@ fn spread_baseline(
         stats.push(robust::spread_statistic(&l.kept, spread_floor(fence, &l.summary)).ok()?);
         sizes.push(l.kept.len() as f64);
     }
-    SpreadBaseline::new(&stats, &sizes).ok()
+    let kept: Vec<&[f64]> = lots.iter().map(|l| l.kept.as_slice()).collect();
+    let kurtosis = robust::pooled_excess_kurtosis(&kept).ok();
+    SpreadBaseline::new(&stats, &sizes, kurtosis).ok()
 }
 
 /// Screens and tests one pending lot of a series (outliers found are pushed onto `pass`).
@@ -622,9 +624,14 @@ fn robust_spread_test(
 ) -> Option<SpreadResult> {
     let stat = robust::spread_statistic(&lot.kept, spread_floor(fence, &lot.summary)).ok()?;
     let t = base.test(stat, lot.kept.len()).ok()?;
+    let (test, model) = if base.kurtosis.is_some() {
+        ("log-spread-z", "within-lot sampling, normal tails")
+    } else {
+        ("log-spread-t", "lot spreads of the baseline")
+    };
     Some(SpreadResult {
-        test: "log-spread-t",
-        model: "lot spreads of the baseline",
+        test,
+        model,
         statistic: t.statistic,
         df1: t.df,
         df2: None,
@@ -970,7 +977,7 @@ fn spread_evaluation(
     ev.alternative = "greater";
     ev.delta = 0.0;
     ev.statistic = Some(sp.statistic);
-    ev.df = Some(sp.df1);
+    ev.df = Some(sp.df1).filter(|d| d.is_finite());
     ev.df2 = sp.df2;
     ev.p_value = Some(sp.p);
     ev.p_adjusted = Some(p_adj);

@@ -634,7 +634,7 @@ const DESIGN_COLUMNS: &str = "b.lot_count, b.n, b.mean, b.mean_of_means, b.msb, 
      b.df_between, b.df_within, b.n0, b.n_harmonic, b.var_between, b.var_within, b.between_p, \
      b.normality_p, b.level_mean, b.level_spread, b.cusum_k, b.cusum_h, b.outlier_scale, \
      b.outlier_fence, b.heavy_tailed, b.spread_mean, b.spread_sd, b.spread_lots, b.spread_n, \
-     b.log_scale, b.m2";
+     b.log_scale, b.m2, b.spread_kurtosis";
 
 /// A stored baseline's design, from [`DESIGN_COLUMNS`] starting at column `o`.
 fn design_from_row(r: &SqliteRow, o: usize) -> Design {
@@ -682,6 +682,7 @@ fn design_from_row(r: &SqliteRow, o: usize) -> Design {
                 sd,
                 lots: lots as usize,
                 n,
+                kurtosis: r.get(o + 27),
             }),
             _ => None,
         },
@@ -2897,9 +2898,9 @@ async fn insert_baseline(
                  df_within, n0, n_harmonic, var_between, var_within, between_p, normality_p, \
                  level_mean, level_spread, cusum_k, cusum_h, design_note, outlier_scale, \
                  outlier_fence, heavy_tailed, spread_mean, spread_sd, spread_lots, spread_n, \
-                 log_scale) \
+                 log_scale, spread_kurtosis) \
                  VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, \
-                 ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING id",
+                 ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING id",
     )
     .bind(b.series_id)
     .bind(at)
@@ -2935,6 +2936,7 @@ async fn insert_baseline(
     .bind(d.spread_base.map(|b| b.lots as i64))
     .bind(d.spread_base.map(|b| b.n))
     .bind(d.log_scale as i64)
+    .bind(d.spread_base.and_then(|b| b.kurtosis))
     .fetch_one(&mut **tx)
     .await
     .doing("freezing a baseline")?;

@@ -52,6 +52,8 @@ pub struct Scenario {
     pub outlier_rate: f64,
     /// The shift lasts this many lots, then the process is back (None: it never ends).
     pub shift_lots: Option<usize>,
+    /// During the shift the units' deviations are multiplied by this (1 = spread unchanged).
+    pub spread_factor: f64,
 }
 
 impl Scenario {
@@ -74,6 +76,7 @@ impl Scenario {
             unit_dist: Units::Normal,
             outlier_rate: 0.0,
             shift_lots: None,
+            spread_factor: 1.0,
         }
     }
 }
@@ -143,6 +146,8 @@ pub struct Outcome {
     pub mean_openings: Vec<usize>,
     /// Spread alerts opened over all series.
     pub spread_alerts: usize,
+    /// Per series: lots from the start of the shift to the first spread alert.
+    pub spread_delays: Vec<Option<usize>>,
     /// Per series: lots from the end of the shift to the resolution of the mean alert open
     /// then (1 = the first lot after the shift), None when none was open or it never resolved.
     pub resolution_delays: Vec<Option<usize>>,
@@ -224,11 +229,13 @@ pub fn run(scenario: &Scenario, monitor: &Monitor) -> Outcome {
     for s in 0..scenario.series {
         let mut w = empty_work(s);
         for l in 0..m + scenario.lots {
-            let shift = if l >= m && l < end {
+            let shifted = l >= m && l < end;
+            let shift = if shifted {
                 scenario.shift * lot_sd
             } else {
                 0.0
             };
+            let spread = if shifted { scenario.spread_factor } else { 1.0 };
             let effect = if tau > 0.0 {
                 lot_effect.sample(&mut rng)
             } else {
@@ -236,7 +243,7 @@ pub fn run(scenario: &Scenario, monitor: &Monitor) -> Outcome {
             };
             let mut units = Vec::with_capacity(scenario.units);
             for u in 0..scenario.units {
-                let mut x = 10.0 + shift + effect + draw.sample(&mut rng);
+                let mut x = 10.0 + shift + effect + spread * draw.sample(&mut rng);
                 if scenario.outlier_rate > 0.0 && rng.random::<f64>() < scenario.outlier_rate {
                     let off = rng.random_range(5.0..10.0);
                     x += if rng.random::<bool>() { off } else { -off };
@@ -294,6 +301,7 @@ fn tally(pass: &crate::store::EnginePass, scenario: &Scenario, m: usize, end: us
         delays: vec![None; n],
         mean_openings: vec![0; n],
         spread_alerts: 0,
+        spread_delays: vec![None; n],
         resolution_delays: vec![None; n],
         open_at_end: vec![false; n],
         outliers: pass.outliers.len(),
@@ -321,6 +329,9 @@ fn tally(pass: &crate::store::EnginePass, scenario: &Scenario, m: usize, end: us
                     }
                 } else {
                     out.spread_alerts += 1;
+                    if out.spread_delays[series].is_none() && lot >= m {
+                        out.spread_delays[series] = Some(lot + 1 - m);
+                    }
                 }
             }
             (AlertAction::Reopen, kind) => {

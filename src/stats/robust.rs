@@ -6,13 +6,20 @@
 //!   (Hampel 1974; `scipy.stats.median_abs_deviation(scale="normal")`);
 //! - Hill's (1975) estimator of the extreme-value index from the k largest order statistics,
 //!   and Weissman's (1978) extrapolated quantile `x_(k+1) (k / (N p))^γ`;
-//! - a prediction interval for one future observation of a normal sample,
-//!   `x̄ ± t(m−1) s √(1 + 1/m)` (Hahn & Meeker, *Statistical Intervals*, 1991, sect. 4.7),
-//!   applied to the logarithm of a scale estimate, which is close to normal (Bartlett & Kendall
-//!   1946).
+//! - the lot spread statistic ln D, D the mean absolute deviation from the lot median: the
+//!   logarithm of a scale estimate is close to normal (Bartlett & Kendall 1946), and D is far
+//!   less moved by one extreme unit than s². For units with normal-looking tails (pooled excess
+//!   kurtosis within ±0.5) and lots whose spreads vary no more than sampling explains (a
+//!   preliminary χ² test at 0.25, the "sometimes pool" rule of Bozivich, Bancroft & Hartley
+//!   1956), ln D of a lot of n is compared by a z test with its normal-theory sampling variance
+//!   (π/2 − 1)/(n − 1) (the asymptotic variance of the mean absolute deviation, Var D / (E D)²
+//!   = (π/2 − 1)/n, with n − 1 for small lots); otherwise with the baseline lots' own spread of
+//!   ln D by a prediction interval for one future observation, `x̄ ± t(m−1) s √(1 + 1/m)`
+//!   (Hahn & Meeker, *Statistical Intervals*, 1991, sect. 4.7), which assumes nothing about
+//!   the units' tails.
 
 use super::StatsError;
-use super::dist::{t_isf, t_sf};
+use super::dist::{f_sf, normal_sf, t_isf, t_sf};
 
 /// 1 / Φ⁻¹(3/4): makes the median absolute deviation a consistent estimate of a normal sd.
 pub const MAD_NORMAL: f64 = 1.482_602_218_505_602;
@@ -189,30 +196,66 @@ pub fn outlier_fence(residuals: &[f64], per_unit: f64) -> Result<OutlierFence, S
     })
 }
 
-/// The baseline distribution of the lot spread statistic ln(mean |x − median|): its mean and
-/// sd over the baseline lots, their count, and the median lot size they came from.
+/// The baseline distribution of the lot spread statistic ln D: its mean and sd over the
+/// baseline lots, their count, the median lot size they came from, and the units' excess
+/// kurtosis when the pooled z test applies (normal-looking tails, lots varying no more than
+/// sampling explains); None: the prediction t test on the lots' own spread.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct SpreadBaseline {
     pub mean: f64,
     pub sd: f64,
     pub lots: usize,
     pub n: f64,
+    pub kurtosis: Option<f64>,
+}
+
+/// The preliminary test's level for pooling (Bozivich, Bancroft & Hartley 1956 recommend
+/// 0.25 so that a real between-lot component is rarely pooled away).
+const POOL_P: f64 = 0.25;
+
+/// Largest |excess kurtosis| of the baseline's units for which the pooled z test is used.
+const NORMAL_TAILS: f64 = 0.5;
+
+/// Normal-theory sampling variance of ln D for a lot of n units: (π/2 − 1)/(n − 1).
+pub fn spread_sampling_var(n: f64) -> f64 {
+    (std::f64::consts::FRAC_PI_2 - 1.0) / (n - 1.0).max(1.0)
+}
+
+/// Pooled excess kurtosis of units about their lot means: N Σ m4 / (Σ m2)² − 3, from each
+/// lot's sums of 2nd and 4th powers of deviations and the unit count N.
+pub fn pooled_excess_kurtosis(lots: &[&[f64]]) -> Result<f64, StatsError> {
+    let (mut m2, mut m4, mut n) = (0.0, 0.0, 0usize);
+    for lot in lots.iter().filter(|l| l.len() >= 2) {
+        check(lot)?;
+        let mean = lot.iter().sum::<f64>() / lot.len() as f64;
+        for x in lot.iter() {
+            let d2 = (x - mean).powi(2);
+            m2 += d2;
+            m4 += d2 * d2;
+        }
+        n += lot.len();
+    }
+    if m2 <= 0.0 {
+        return Err(StatsError::ZeroVariance);
+    }
+    Ok(n as f64 * m4 / (m2 * m2) - 3.0)
 }
 
 /// One lot's spread against the baseline lots' spreads.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct SpreadTest {
-    /// Prediction t statistic of the lot's ln spread.
+    /// z (pooled) or prediction t statistic of the lot's ln s².
     pub statistic: f64,
+    /// Infinite for the pooled z test.
     pub df: f64,
     /// One-sided (an increase) p-value.
     pub p_value: f64,
-    /// The lot's spread over the baseline's typical spread (exp of the difference of logs).
+    /// The lot's spread over the baseline's typical spread.
     pub ratio: f64,
 }
 
-/// The spread statistic of a lot: ln(mean |x − median|), floored at `floor` (a coarse gauge
-/// can give a lot with every unit equal).
+/// The spread statistic of a lot: ln D (mean absolute deviation from the median), with D
+/// floored at `floor` (a coarse gauge can give a lot with every unit equal).
 pub fn spread_statistic(xs: &[f64], floor: f64) -> Result<f64, StatsError> {
     if xs.len() < 2 {
         return Err(StatsError::TooFewValues {
@@ -224,8 +267,13 @@ pub fn spread_statistic(xs: &[f64], floor: f64) -> Result<f64, StatsError> {
 }
 
 impl SpreadBaseline {
-    /// From the spread statistics of the baseline lots and their sizes (at least 5 lots).
-    pub fn new(stats: &[f64], sizes: &[f64]) -> Result<SpreadBaseline, StatsError> {
+    /// From the spread statistics of the baseline lots, their sizes (at least 5 lots) and the
+    /// units' pooled excess kurtosis (None: always the lots' own spread).
+    pub fn new(
+        stats: &[f64],
+        sizes: &[f64],
+        kurtosis: Option<f64>,
+    ) -> Result<SpreadBaseline, StatsError> {
         check(stats)?;
         let m = stats.len();
         if m < 5 || sizes.len() != m {
@@ -236,11 +284,19 @@ impl SpreadBaseline {
         if var <= 0.0 {
             return Err(StatsError::ZeroVariance);
         }
+        let n = median(sizes)?;
+        // Pool when the χ² test of (m − 1) s² / v against m − 1 df does not show lot-to-lot
+        // variation of the spread (χ²/k is F(k, ∞); a large df2 stands for infinity).
+        let kurtosis = kurtosis.filter(|&g| {
+            g.abs() <= NORMAL_TAILS
+                && f_sf(var / spread_sampling_var(n), (m - 1) as f64, 1e9).is_ok_and(|p| p > POOL_P)
+        });
         Ok(SpreadBaseline {
             mean,
             sd: var.sqrt(),
             lots: m,
-            n: median(sizes)?,
+            n,
+            kurtosis,
         })
     }
 
@@ -254,15 +310,26 @@ impl SpreadBaseline {
             return Err(StatsError::TooFewValues { needed: 2, got: n });
         }
         let m = self.lots as f64;
-        let own = (self.n - 1.0).max(1.0) / (n as f64 - 1.0);
-        let se = self.sd * (own + 1.0 / m).sqrt();
-        let statistic = (stat - self.mean) / se;
-        let df = m - 1.0;
+        let diff = stat - self.mean;
+        let (statistic, df, p) = match self.kurtosis {
+            Some(_) => {
+                let v = spread_sampling_var(n as f64);
+                let vb = spread_sampling_var(self.n);
+                // E ln D ≈ ln E D − v / 2: lots of other sizes are compared without bias.
+                let z = (diff + 0.5 * (v - vb)) / (v + vb / m).sqrt();
+                (z, f64::INFINITY, normal_sf(z)?)
+            }
+            None => {
+                let own = (self.n - 1.0).max(1.0) / (n as f64 - 1.0);
+                let t = diff / (self.sd * (own + 1.0 / m).sqrt());
+                (t, m - 1.0, t_sf(t, m - 1.0)?)
+            }
+        };
         Ok(SpreadTest {
             statistic,
             df,
-            p_value: t_sf(statistic, df)?.clamp(0.0, 1.0),
-            ratio: (stat - self.mean).exp(),
+            p_value: p.clamp(0.0, 1.0),
+            ratio: diff.exp(),
         })
     }
 }
@@ -313,7 +380,7 @@ mod tests {
     #[test]
     fn spread_test_is_a_prediction_t_test() {
         let stats = [0.0, 0.1, -0.1, 0.2, -0.2];
-        let b = SpreadBaseline::new(&stats, &[20.0; 5]).unwrap();
+        let b = SpreadBaseline::new(&stats, &[20.0; 5], None).unwrap();
         // sd of the five values = sqrt(0.1 / 4) = 0.158114; se = sd * sqrt(1 + 1/5).
         let t = b.test(0.5, 20).unwrap();
         let se = 0.158_113_883 * 1.2f64.sqrt();
