@@ -402,7 +402,7 @@ async fn quarantine(
         to: reason_path.clone(),
         source,
     })?;
-    match std::fs::rename(path, &dest) {
+    match move_entry(path, &dest) {
         Ok(()) => {}
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(FileResult::Gone),
         Err(source) => {
@@ -448,7 +448,7 @@ fn move_into(path: &Path, dir: &Path) -> Result<PathBuf, IngestError> {
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
     let dest = free_name(dir, &name);
-    match std::fs::rename(path, &dest) {
+    match move_entry(path, &dest) {
         Ok(()) => Ok(dest),
         // Taken away meanwhile: the store already has it, nothing is lost.
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(dest),
@@ -458,6 +458,61 @@ fn move_into(path: &Path, dir: &Path) -> Result<PathBuf, IngestError> {
             source,
         }),
     }
+}
+
+/// Moves `from` to `to` (a free name): a rename, or across file systems (archive or quarantine
+/// on another mount) a copy under a temporary name in the destination folder, fsynced, renamed
+/// into place, the folder fsynced, and only then the source removed.
+///
+/// A crash in between leaves the file in the inbox as well as at `to`. That is safe: a stored
+/// file's content hash is already in the store, so the file is taken again and archived as a
+/// duplicate; a refused file is refused again. A leftover temporary file is hidden (`.` name).
+fn move_entry(from: &Path, to: &Path) -> std::io::Result<()> {
+    match std::fs::rename(from, to) {
+        Err(e) if is_cross_device(&e) => copy_across(from, to),
+        other => other,
+    }
+}
+
+fn is_cross_device(e: &std::io::Error) -> bool {
+    e.kind() == std::io::ErrorKind::CrossesDevices || e.raw_os_error() == Some(18)
+}
+
+/// The cross-file-system half of [`move_entry`]. A symbolic link is moved as a link (never
+/// followed); other entries that are not regular files cannot be copied and keep the error.
+fn copy_across(from: &Path, to: &Path) -> std::io::Result<()> {
+    let dir = to.parent().unwrap_or(Path::new("."));
+    let name = to
+        .file_name()
+        .map(|n| n.to_string_lossy())
+        .unwrap_or_default();
+    let tmp = dir.join(format!(".{name}.{}.tmp", std::process::id()));
+    let meta = std::fs::symlink_metadata(from)?;
+    let copied = if meta.file_type().is_symlink() {
+        std::fs::read_link(from).and_then(|target| std::os::unix::fs::symlink(target, &tmp))
+    } else if meta.is_file() {
+        copy_synced(from, &tmp)
+    } else {
+        return Err(std::io::Error::from_raw_os_error(18));
+    };
+    let placed = copied.and_then(|()| std::fs::rename(&tmp, to));
+    if let Err(e) = placed {
+        let _ = std::fs::remove_file(&tmp);
+        return Err(e);
+    }
+    std::fs::File::open(dir)?.sync_all()?;
+    std::fs::remove_file(from)
+}
+
+/// Copies a regular file's bytes to a new file `to` and fsyncs it.
+fn copy_synced(from: &Path, to: &Path) -> std::io::Result<()> {
+    let mut src = std::fs::File::open(from)?;
+    let mut dst = std::fs::OpenOptions::new()
+        .write(true)
+        .create_new(true)
+        .open(to)?;
+    std::io::copy(&mut src, &mut dst)?;
+    dst.sync_all()
 }
 
 /// `dir/name`, or `dir/stem-2.ext`, `dir/stem-3.ext`... when taken.
