@@ -195,7 +195,6 @@ async fn write_batch(
             }
             Prepared::Gone(path) => report.files.push((path, FileResult::Gone)),
             Prepared::Unreadable(path, error) => {
-                tracing::warn!(file = %path.display(), %error, "cannot read lot file; will try again");
                 report.files.push((path, FileResult::Unreadable { error }));
             }
         }
@@ -261,11 +260,100 @@ async fn write_batch(
     Ok(())
 }
 
+/// Unreadable files already reported in the log: a file that stays unreadable (permission
+/// denied) is reported once, not at every rescan, and is tried again at each scan.
+#[derive(Debug, Default)]
+pub struct UnreadableLog {
+    reported: HashSet<PathBuf>,
+}
+
+impl UnreadableLog {
+    /// Logs the unreadable files of `report` not reported before; forgets files that were
+    /// taken (so a later failure of the same path is reported again).
+    pub fn note(&mut self, report: &IngestReport) {
+        for (path, result) in &report.files {
+            match result {
+                FileResult::Unreadable { error } => {
+                    if self.reported.insert(path.clone()) {
+                        tracing::warn!(file = %path.display(), %error, "cannot read lot file; left in the inbox, tried again at each scan");
+                    }
+                }
+                _ => {
+                    self.reported.remove(path);
+                }
+            }
+        }
+    }
+}
+
+/// Why an inbox entry that is not a regular file is refused; None for a regular file.
+fn not_a_regular_file(kind: std::fs::FileType) -> Option<&'static str> {
+    use std::os::unix::fs::FileTypeExt;
+    let what = if kind.is_file() {
+        return None;
+    } else if kind.is_symlink() {
+        "a symbolic link; lot files must be regular files, links are not followed"
+    } else if kind.is_fifo() {
+        "a named pipe (FIFO); lot files must be regular files, pipes are not read"
+    } else if kind.is_socket() {
+        "a socket; lot files must be regular files, sockets are not read"
+    } else if kind.is_block_device() || kind.is_char_device() {
+        "a device; lot files must be regular files, devices are not read"
+    } else if kind.is_dir() {
+        "a folder; lot files must be regular files"
+    } else {
+        "not a regular file; lot files must be regular files"
+    };
+    Some(what)
+}
+
+/// Why reading an inbox entry failed.
+enum ReadFailure {
+    NotRegular(&'static str),
+    Io(std::io::Error),
+}
+
+/// The bytes of a regular file, never following a symbolic link and never blocking on a pipe
+/// or device (opened without following and without blocking, then checked again).
+fn read_regular(path: &Path) -> Result<Vec<u8>, ReadFailure> {
+    use std::io::Read;
+    use std::os::unix::fs::OpenOptionsExt;
+    let kind = std::fs::symlink_metadata(path).map_err(ReadFailure::Io)?;
+    if let Some(what) = not_a_regular_file(kind.file_type()) {
+        return Err(ReadFailure::NotRegular(what));
+    }
+    let mut file = std::fs::OpenOptions::new()
+        .read(true)
+        .custom_flags(libc::O_NOFOLLOW | libc::O_NONBLOCK | libc::O_NOCTTY)
+        .open(path)
+        .map_err(ReadFailure::Io)?;
+    // Replaced between the check and the open.
+    let meta = file.metadata().map_err(ReadFailure::Io)?;
+    if let Some(what) = not_a_regular_file(meta.file_type()) {
+        return Err(ReadFailure::NotRegular(what));
+    }
+    let mut bytes = Vec::with_capacity(meta.len() as usize);
+    file.read_to_end(&mut bytes).map_err(ReadFailure::Io)?;
+    Ok(bytes)
+}
+
 fn prepare(path: &Path) -> Prepared {
-    let bytes = match std::fs::read(path) {
+    let bytes = match read_regular(path) {
         Ok(b) => b,
-        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Prepared::Gone(path.into()),
-        Err(e) => return Prepared::Unreadable(path.into(), e.to_string()),
+        Err(ReadFailure::NotRegular(what)) => {
+            // No content to hash: the quarantine record is keyed by what and where it was.
+            let hash = content_hash(format!("{what}\n{}", path.display()).as_bytes());
+            return Prepared::Bad {
+                path: path.into(),
+                hash,
+                reason: what.to_string(),
+            };
+        }
+        Err(ReadFailure::Io(e)) if e.kind() == std::io::ErrorKind::NotFound => {
+            return Prepared::Gone(path.into());
+        }
+        // A symbolic link put in place after the check (O_NOFOLLOW): taken at the next scan.
+        Err(ReadFailure::Io(e)) => return Prepared::Unreadable(path.into(), e.to_string()),
     };
     let hash = hex(&Sha256::digest(&bytes));
     let name = path
@@ -284,6 +372,9 @@ fn prepare(path: &Path) -> Prepared {
 
 /// Parses and summarises one file's bytes.
 pub fn build_file(name: &str, hash: &str, bytes: &[u8]) -> Result<NewFile, String> {
+    if bytes.is_empty() {
+        return Err("empty file: no header, no data".to_string());
+    }
     let parsed = lotfile::parse(name, bytes).map_err(|e| e.to_string())?;
     let mut samples = Vec::with_capacity(parsed.groups.len());
     for g in parsed.groups {
@@ -490,6 +581,8 @@ fn copy_across(from: &Path, to: &Path) -> std::io::Result<()> {
     let meta = std::fs::symlink_metadata(from)?;
     let copied = if meta.file_type().is_symlink() {
         std::fs::read_link(from).and_then(|target| std::os::unix::fs::symlink(target, &tmp))
+    } else if std::os::unix::fs::FileTypeExt::is_fifo(&meta.file_type()) {
+        make_fifo(&tmp)
     } else if meta.is_file() {
         copy_synced(from, &tmp)
     } else {
@@ -502,6 +595,19 @@ fn copy_across(from: &Path, to: &Path) -> std::io::Result<()> {
     }
     std::fs::File::open(dir)?.sync_all()?;
     std::fs::remove_file(from)
+}
+
+/// A new named pipe at `path` (a pipe holds no data: this is its move across file systems).
+fn make_fifo(path: &Path) -> std::io::Result<()> {
+    use std::os::unix::ffi::OsStrExt;
+    let c = std::ffi::CString::new(path.as_os_str().as_bytes())
+        .map_err(|e| std::io::Error::new(std::io::ErrorKind::InvalidInput, e))?;
+    // SAFETY: `c` is a valid NUL-terminated path that lives across the call.
+    if unsafe { libc::mkfifo(c.as_ptr(), 0o600) } == 0 {
+        Ok(())
+    } else {
+        Err(std::io::Error::last_os_error())
+    }
 }
 
 /// Copies a regular file's bytes to a new file `to` and fsyncs it.
