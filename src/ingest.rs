@@ -4,7 +4,9 @@
 //! (`stats::Summary`), store them (`store`), and only after the transaction has committed move
 //! the file to `archive/<yyyy-mm>/` (or `archive/<yyyy-mm>/duplicates/`). A file that cannot be
 //! parsed, or that would change values already stored, goes to `quarantine/` with a
-//! `<file>.reason.txt` beside it. A file is all or nothing, and a crash at any point loses
+//! `<file>.reason.txt` beside it; so does an entry that is not a regular file (a symbolic link,
+//! pipe, socket or device), moved as it is and never followed or read. Moves work across file
+//! systems (copy, fsync, rename, then remove). A file is all or nothing, and a crash at any point loses
 //! nothing and doubles nothing: an unmoved file is simply taken again, and a file whose hash is
 //! stored is archived as a duplicate.
 //!
@@ -268,13 +270,15 @@ pub struct UnreadableLog {
 }
 
 impl UnreadableLog {
-    /// Logs the unreadable files of `report` not reported before; forgets files that were
-    /// taken (so a later failure of the same path is reported again).
-    pub fn note(&mut self, report: &IngestReport) {
+    /// Logs the unreadable files of `report` not reported before and returns how many that
+    /// were; forgets files that were taken (so a later failure of the path is reported again).
+    pub fn note(&mut self, report: &IngestReport) -> usize {
+        let mut logged = 0;
         for (path, result) in &report.files {
             match result {
                 FileResult::Unreadable { error } => {
                     if self.reported.insert(path.clone()) {
+                        logged += 1;
                         tracing::warn!(file = %path.display(), %error, "cannot read lot file; left in the inbox, tried again at each scan");
                     }
                 }
@@ -283,6 +287,7 @@ impl UnreadableLog {
                 }
             }
         }
+        logged
     }
 }
 
@@ -299,8 +304,6 @@ fn not_a_regular_file(kind: std::fs::FileType) -> Option<&'static str> {
         "a socket; lot files must be regular files, sockets are not read"
     } else if kind.is_block_device() || kind.is_char_device() {
         "a device; lot files must be regular files, devices are not read"
-    } else if kind.is_dir() {
-        "a folder; lot files must be regular files"
     } else {
         "not a regular file; lot files must be regular files"
     };
@@ -319,6 +322,10 @@ fn read_regular(path: &Path) -> Result<Vec<u8>, ReadFailure> {
     use std::io::Read;
     use std::os::unix::fs::OpenOptionsExt;
     let kind = std::fs::symlink_metadata(path).map_err(ReadFailure::Io)?;
+    if kind.is_dir() {
+        // Only a race brings a folder here; it is left where it is.
+        return Err(ReadFailure::Io(std::io::ErrorKind::IsADirectory.into()));
+    }
     if let Some(what) = not_a_regular_file(kind.file_type()) {
         return Err(ReadFailure::NotRegular(what));
     }
@@ -664,6 +671,76 @@ mod tests {
         assert_ne!(
             sample_digest(&[1.0, 2.0], &u),
             sample_digest(&[2.0, 1.0], &u)
+        );
+    }
+
+    #[test]
+    fn an_unreadable_file_is_logged_once_until_it_is_taken() {
+        let unreadable = |p: &str| IngestReport {
+            files: vec![(
+                PathBuf::from(p),
+                FileResult::Unreadable {
+                    error: "Permission denied".into(),
+                },
+            )],
+        };
+        let mut log = UnreadableLog::default();
+        assert_eq!(log.note(&unreadable("a.csv")), 1);
+        assert_eq!(log.note(&unreadable("a.csv")), 0, "not at every rescan");
+        assert_eq!(log.note(&unreadable("b.csv")), 1);
+        let taken = IngestReport {
+            files: vec![(PathBuf::from("a.csv"), FileResult::Gone)],
+        };
+        assert_eq!(log.note(&taken), 0);
+        assert_eq!(
+            log.note(&unreadable("a.csv")),
+            1,
+            "a new failure is reported"
+        );
+    }
+
+    #[test]
+    fn links_and_pipes_are_never_read() {
+        let dir = tempfile::tempdir().unwrap();
+        let target = dir.path().join("t.csv");
+        std::fs::write(&target, "source,lot,mass\na,1,2\n").unwrap();
+        let link = dir.path().join("l.csv");
+        std::os::unix::fs::symlink(&target, &link).unwrap();
+        match prepare(&link) {
+            Prepared::Bad { reason, .. } => assert!(reason.contains("symbolic link"), "{reason}"),
+            _ => panic!("a link must be refused"),
+        }
+        assert!(matches!(prepare(dir.path()), Prepared::Unreadable(..)));
+    }
+
+    /// The copy path of a cross-file-system move, run on one file system (the tmpfs test in
+    /// tests/moves.rs runs it for real).
+    #[test]
+    fn copying_across_moves_files_links_and_pipes() {
+        use std::os::unix::fs::FileTypeExt;
+        let src = tempfile::tempdir().unwrap();
+        let dst = tempfile::tempdir().unwrap();
+        let file = src.path().join("a.csv");
+        std::fs::write(&file, b"bytes").unwrap();
+        copy_across(&file, &dst.path().join("a.csv")).unwrap();
+        assert_eq!(std::fs::read(dst.path().join("a.csv")).unwrap(), b"bytes");
+        let link = src.path().join("l.csv");
+        std::os::unix::fs::symlink("/nowhere", &link).unwrap();
+        copy_across(&link, &dst.path().join("l.csv")).unwrap();
+        assert_eq!(
+            std::fs::read_link(dst.path().join("l.csv")).unwrap(),
+            PathBuf::from("/nowhere")
+        );
+        let pipe = src.path().join("p.csv");
+        make_fifo(&pipe).unwrap();
+        copy_across(&pipe, &dst.path().join("p.csv")).unwrap();
+        let moved = std::fs::symlink_metadata(dst.path().join("p.csv")).unwrap();
+        assert!(moved.file_type().is_fifo());
+        assert_eq!(std::fs::read_dir(src.path()).unwrap().count(), 0);
+        assert_eq!(
+            std::fs::read_dir(dst.path()).unwrap().count(),
+            3,
+            "no temporary left"
         );
     }
 
