@@ -113,6 +113,13 @@ enum Command {
         #[command(subcommand)]
         action: BaselineAction,
     },
+    /// Write a consistent copy of the database to FILE (safe while the daemon runs) and check it.
+    Backup {
+        /// Where to write the copy; must not exist.
+        file: PathBuf,
+        #[command(flatten)]
+        config: ConfigArg,
+    },
     /// Two-sample test of two files of numbers, or of two stored sources' lot means.
     Compare(CompareArgs),
     /// Adjust p-values for multiplicity.
@@ -562,6 +569,7 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             }
         }
         Command::Adjust(args) => adjust(args),
+        Command::Backup { file, config } => backup(&load(&config)?, &file).await,
     }
 }
 
@@ -583,6 +591,38 @@ fn init(dir: &Path, force: bool) -> Result<(), Failure> {
         "drop lot files in {}, then run: lotdrift run --config {}",
         dir.join("inbox").display(),
         file.display()
+    );
+    Ok(())
+}
+
+/// `lotdrift backup FILE`: `VACUUM INTO` a new file, then check the copy and print it.
+async fn backup(config: &Config, file: &Path) -> Result<(), Failure> {
+    if std::fs::symlink_metadata(file).is_ok() {
+        return Err(usage(format!(
+            "{} exists; a backup never overwrites a file (choose a new name)",
+            file.display()
+        )));
+    }
+    let store = open_existing(config).await?;
+    let written = store.backup_into(file).await;
+    store.close().await;
+    written.context("backup")?;
+    let check = Store::check_copy(file).await.context("backup")?;
+    if check.integrity != "ok" {
+        return Err(Failure::Runtime(anyhow::anyhow!(
+            "the backup {} failed its integrity check:\n{}",
+            file.display(),
+            check.integrity
+        )));
+    }
+    let size = std::fs::metadata(file)
+        .with_context(|| format!("reading the size of the backup {}", file.display()))?
+        .len();
+    say!(
+        "backup written to {} ({size} bytes; integrity ok): {} lots, {} measurements",
+        file.display(),
+        check.lots,
+        check.measurements
     );
     Ok(())
 }

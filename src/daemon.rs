@@ -22,6 +22,9 @@ use crate::silence::{self, CheckReport};
 use crate::store::{PassCounts, Store};
 use crate::watch;
 
+/// How much longer than the settle interval `run --once` waits for files still being written.
+const ONCE_SETTLE_MARGIN: Duration = Duration::from_secs(1);
+
 /// Drain time allowed after a stop signal before the process gives up waiting.
 const DRAIN_LIMIT: Duration = Duration::from_secs(20);
 
@@ -74,14 +77,16 @@ pub fn ensure_folders(config: &Config) -> Result<(), DaemonError> {
 /// silent sources, drains the outbox once.
 pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, DaemonError> {
     ensure_folders(config)?;
+    // Files still changing after the settle interval (and a margin) are left for the next run.
     let files = watch::settled_files(
         &config.paths.inbox,
         config.watch.settle,
-        config.watch.settle * 10 + Duration::from_secs(5),
+        config.watch.settle + ONCE_SETTLE_MARGIN,
     )
     .await;
     let cancel = CancellationToken::new();
     let ingest = ingest::ingest_files(store, &config.paths, files, None, &cancel).await?;
+    ingest::UnreadableLog::default().note(&ingest);
     let engine = engine::evaluate(store, config).await?;
     crate::digest::schedule_if_due(store, config).await?;
     let silence = silence::check(store, config, chrono::Utc::now()).await?;
@@ -137,6 +142,7 @@ pub async fn run(
     }
     wake.notify_one();
     tracing::info!(inbox = %config.paths.inbox.display(), "watching");
+    let mut unreadable = ingest::UnreadableLog::default();
     while result.is_ok() {
         let files = tokio::select! {
             _ = cancel.cancelled() => break,
@@ -148,6 +154,7 @@ pub async fn run(
         }
         match ingest::ingest_files(&store, &config.paths, files, None, &cancel).await {
             Ok(report) => {
+                unreadable.note(&report);
                 if report.stored() > 0 {
                     match engine::evaluate(&store, &config).await {
                         Ok(_) => wake.notify_one(),

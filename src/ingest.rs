@@ -4,7 +4,9 @@
 //! (`stats::Summary`), store them (`store`), and only after the transaction has committed move
 //! the file to `archive/<yyyy-mm>/` (or `archive/<yyyy-mm>/duplicates/`). A file that cannot be
 //! parsed, or that would change values already stored, goes to `quarantine/` with a
-//! `<file>.reason.txt` beside it. A file is all or nothing, and a crash at any point loses
+//! `<file>.reason.txt` beside it; so does an entry that is not a regular file (a symbolic link,
+//! pipe, socket or device), moved as it is and never followed or read. Moves work across file
+//! systems (copy, fsync, rename, then remove). A file is all or nothing, and a crash at any point loses
 //! nothing and doubles nothing: an unmoved file is simply taken again, and a file whose hash is
 //! stored is archived as a duplicate.
 //!
@@ -195,7 +197,6 @@ async fn write_batch(
             }
             Prepared::Gone(path) => report.files.push((path, FileResult::Gone)),
             Prepared::Unreadable(path, error) => {
-                tracing::warn!(file = %path.display(), %error, "cannot read lot file; will try again");
                 report.files.push((path, FileResult::Unreadable { error }));
             }
         }
@@ -261,11 +262,105 @@ async fn write_batch(
     Ok(())
 }
 
+/// Unreadable files already reported in the log: a file that stays unreadable (permission
+/// denied) is reported once, not at every rescan, and is tried again at each scan.
+#[derive(Debug, Default)]
+pub struct UnreadableLog {
+    reported: HashSet<PathBuf>,
+}
+
+impl UnreadableLog {
+    /// Logs the unreadable files of `report` not reported before and returns how many that
+    /// were; forgets files that were taken (so a later failure of the path is reported again).
+    pub fn note(&mut self, report: &IngestReport) -> usize {
+        let mut logged = 0;
+        for (path, result) in &report.files {
+            match result {
+                FileResult::Unreadable { error } => {
+                    if self.reported.insert(path.clone()) {
+                        logged += 1;
+                        tracing::warn!(file = %path.display(), %error, "cannot read lot file; left in the inbox, tried again at each scan");
+                    }
+                }
+                _ => {
+                    self.reported.remove(path);
+                }
+            }
+        }
+        logged
+    }
+}
+
+/// Why an inbox entry that is not a regular file is refused; None for a regular file.
+fn not_a_regular_file(kind: std::fs::FileType) -> Option<&'static str> {
+    use std::os::unix::fs::FileTypeExt;
+    let what = if kind.is_file() {
+        return None;
+    } else if kind.is_symlink() {
+        "a symbolic link; lot files must be regular files, links are not followed"
+    } else if kind.is_fifo() {
+        "a named pipe (FIFO); lot files must be regular files, pipes are not read"
+    } else if kind.is_socket() {
+        "a socket; lot files must be regular files, sockets are not read"
+    } else if kind.is_block_device() || kind.is_char_device() {
+        "a device; lot files must be regular files, devices are not read"
+    } else {
+        "not a regular file; lot files must be regular files"
+    };
+    Some(what)
+}
+
+/// Why reading an inbox entry failed.
+enum ReadFailure {
+    NotRegular(&'static str),
+    Io(std::io::Error),
+}
+
+/// The bytes of a regular file, never following a symbolic link and never blocking on a pipe
+/// or device (opened without following and without blocking, then checked again).
+fn read_regular(path: &Path) -> Result<Vec<u8>, ReadFailure> {
+    use std::io::Read;
+    use std::os::unix::fs::OpenOptionsExt;
+    let kind = std::fs::symlink_metadata(path).map_err(ReadFailure::Io)?;
+    if kind.is_dir() {
+        // Only a race brings a folder here; it is left where it is.
+        return Err(ReadFailure::Io(std::io::ErrorKind::IsADirectory.into()));
+    }
+    if let Some(what) = not_a_regular_file(kind.file_type()) {
+        return Err(ReadFailure::NotRegular(what));
+    }
+    let mut file = std::fs::OpenOptions::new()
+        .read(true)
+        .custom_flags(libc::O_NOFOLLOW | libc::O_NONBLOCK | libc::O_NOCTTY)
+        .open(path)
+        .map_err(ReadFailure::Io)?;
+    // Replaced between the check and the open.
+    let meta = file.metadata().map_err(ReadFailure::Io)?;
+    if let Some(what) = not_a_regular_file(meta.file_type()) {
+        return Err(ReadFailure::NotRegular(what));
+    }
+    let mut bytes = Vec::with_capacity(meta.len() as usize);
+    file.read_to_end(&mut bytes).map_err(ReadFailure::Io)?;
+    Ok(bytes)
+}
+
 fn prepare(path: &Path) -> Prepared {
-    let bytes = match std::fs::read(path) {
+    let bytes = match read_regular(path) {
         Ok(b) => b,
-        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Prepared::Gone(path.into()),
-        Err(e) => return Prepared::Unreadable(path.into(), e.to_string()),
+        Err(ReadFailure::NotRegular(what)) => {
+            // No content to hash: the quarantine record is keyed by what and where it was.
+            let hash = content_hash(format!("{what}\n{}", path.display()).as_bytes());
+            return Prepared::Bad {
+                path: path.into(),
+                hash,
+                reason: what.to_string(),
+            };
+        }
+        Err(ReadFailure::Io(e)) if e.kind() == std::io::ErrorKind::NotFound => {
+            return Prepared::Gone(path.into());
+        }
+        // A symbolic link put in place after the check (O_NOFOLLOW): taken at the next scan.
+        Err(ReadFailure::Io(e)) => return Prepared::Unreadable(path.into(), e.to_string()),
     };
     let hash = hex(&Sha256::digest(&bytes));
     let name = path
@@ -284,6 +379,9 @@ fn prepare(path: &Path) -> Prepared {
 
 /// Parses and summarises one file's bytes.
 pub fn build_file(name: &str, hash: &str, bytes: &[u8]) -> Result<NewFile, String> {
+    if bytes.is_empty() {
+        return Err("empty file: no header, no data".to_string());
+    }
     let parsed = lotfile::parse(name, bytes).map_err(|e| e.to_string())?;
     let mut samples = Vec::with_capacity(parsed.groups.len());
     for g in parsed.groups {
@@ -402,7 +500,7 @@ async fn quarantine(
         to: reason_path.clone(),
         source,
     })?;
-    match std::fs::rename(path, &dest) {
+    match move_entry(path, &dest) {
         Ok(()) => {}
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(FileResult::Gone),
         Err(source) => {
@@ -448,7 +546,7 @@ fn move_into(path: &Path, dir: &Path) -> Result<PathBuf, IngestError> {
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
     let dest = free_name(dir, &name);
-    match std::fs::rename(path, &dest) {
+    match move_entry(path, &dest) {
         Ok(()) => Ok(dest),
         // Taken away meanwhile: the store already has it, nothing is lost.
         Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(dest),
@@ -458,6 +556,76 @@ fn move_into(path: &Path, dir: &Path) -> Result<PathBuf, IngestError> {
             source,
         }),
     }
+}
+
+/// Moves `from` to `to` (a free name): a rename, or across file systems (archive or quarantine
+/// on another mount) a copy under a temporary name in the destination folder, fsynced, renamed
+/// into place, the folder fsynced, and only then the source removed.
+///
+/// A crash in between leaves the file in the inbox as well as at `to`. That is safe: a stored
+/// file's content hash is already in the store, so the file is taken again and archived as a
+/// duplicate; a refused file is refused again. A leftover temporary file is hidden (`.` name).
+fn move_entry(from: &Path, to: &Path) -> std::io::Result<()> {
+    match std::fs::rename(from, to) {
+        Err(e) if is_cross_device(&e) => copy_across(from, to),
+        other => other,
+    }
+}
+
+fn is_cross_device(e: &std::io::Error) -> bool {
+    e.kind() == std::io::ErrorKind::CrossesDevices || e.raw_os_error() == Some(18)
+}
+
+/// The cross-file-system half of [`move_entry`]. A symbolic link is moved as a link (never
+/// followed); other entries that are not regular files cannot be copied and keep the error.
+fn copy_across(from: &Path, to: &Path) -> std::io::Result<()> {
+    let dir = to.parent().unwrap_or(Path::new("."));
+    let name = to
+        .file_name()
+        .map(|n| n.to_string_lossy())
+        .unwrap_or_default();
+    let tmp = dir.join(format!(".{name}.{}.tmp", std::process::id()));
+    let meta = std::fs::symlink_metadata(from)?;
+    let copied = if meta.file_type().is_symlink() {
+        std::fs::read_link(from).and_then(|target| std::os::unix::fs::symlink(target, &tmp))
+    } else if std::os::unix::fs::FileTypeExt::is_fifo(&meta.file_type()) {
+        make_fifo(&tmp)
+    } else if meta.is_file() {
+        copy_synced(from, &tmp)
+    } else {
+        return Err(std::io::Error::from_raw_os_error(18));
+    };
+    let placed = copied.and_then(|()| std::fs::rename(&tmp, to));
+    if let Err(e) = placed {
+        let _ = std::fs::remove_file(&tmp);
+        return Err(e);
+    }
+    std::fs::File::open(dir)?.sync_all()?;
+    std::fs::remove_file(from)
+}
+
+/// A new named pipe at `path` (a pipe holds no data: this is its move across file systems).
+fn make_fifo(path: &Path) -> std::io::Result<()> {
+    use std::os::unix::ffi::OsStrExt;
+    let c = std::ffi::CString::new(path.as_os_str().as_bytes())
+        .map_err(|e| std::io::Error::new(std::io::ErrorKind::InvalidInput, e))?;
+    // SAFETY: `c` is a valid NUL-terminated path that lives across the call.
+    if unsafe { libc::mkfifo(c.as_ptr(), 0o600) } == 0 {
+        Ok(())
+    } else {
+        Err(std::io::Error::last_os_error())
+    }
+}
+
+/// Copies a regular file's bytes to a new file `to` and fsyncs it.
+fn copy_synced(from: &Path, to: &Path) -> std::io::Result<()> {
+    let mut src = std::fs::File::open(from)?;
+    let mut dst = std::fs::OpenOptions::new()
+        .write(true)
+        .create_new(true)
+        .open(to)?;
+    std::io::copy(&mut src, &mut dst)?;
+    dst.sync_all()
 }
 
 /// `dir/name`, or `dir/stem-2.ext`, `dir/stem-3.ext`... when taken.
@@ -503,6 +671,76 @@ mod tests {
         assert_ne!(
             sample_digest(&[1.0, 2.0], &u),
             sample_digest(&[2.0, 1.0], &u)
+        );
+    }
+
+    #[test]
+    fn an_unreadable_file_is_logged_once_until_it_is_taken() {
+        let unreadable = |p: &str| IngestReport {
+            files: vec![(
+                PathBuf::from(p),
+                FileResult::Unreadable {
+                    error: "Permission denied".into(),
+                },
+            )],
+        };
+        let mut log = UnreadableLog::default();
+        assert_eq!(log.note(&unreadable("a.csv")), 1);
+        assert_eq!(log.note(&unreadable("a.csv")), 0, "not at every rescan");
+        assert_eq!(log.note(&unreadable("b.csv")), 1);
+        let taken = IngestReport {
+            files: vec![(PathBuf::from("a.csv"), FileResult::Gone)],
+        };
+        assert_eq!(log.note(&taken), 0);
+        assert_eq!(
+            log.note(&unreadable("a.csv")),
+            1,
+            "a new failure is reported"
+        );
+    }
+
+    #[test]
+    fn links_and_pipes_are_never_read() {
+        let dir = tempfile::tempdir().unwrap();
+        let target = dir.path().join("t.csv");
+        std::fs::write(&target, "source,lot,mass\na,1,2\n").unwrap();
+        let link = dir.path().join("l.csv");
+        std::os::unix::fs::symlink(&target, &link).unwrap();
+        match prepare(&link) {
+            Prepared::Bad { reason, .. } => assert!(reason.contains("symbolic link"), "{reason}"),
+            _ => panic!("a link must be refused"),
+        }
+        assert!(matches!(prepare(dir.path()), Prepared::Unreadable(..)));
+    }
+
+    /// The copy path of a cross-file-system move, run on one file system (the tmpfs test in
+    /// tests/moves.rs runs it for real).
+    #[test]
+    fn copying_across_moves_files_links_and_pipes() {
+        use std::os::unix::fs::FileTypeExt;
+        let src = tempfile::tempdir().unwrap();
+        let dst = tempfile::tempdir().unwrap();
+        let file = src.path().join("a.csv");
+        std::fs::write(&file, b"bytes").unwrap();
+        copy_across(&file, &dst.path().join("a.csv")).unwrap();
+        assert_eq!(std::fs::read(dst.path().join("a.csv")).unwrap(), b"bytes");
+        let link = src.path().join("l.csv");
+        std::os::unix::fs::symlink("/nowhere", &link).unwrap();
+        copy_across(&link, &dst.path().join("l.csv")).unwrap();
+        assert_eq!(
+            std::fs::read_link(dst.path().join("l.csv")).unwrap(),
+            PathBuf::from("/nowhere")
+        );
+        let pipe = src.path().join("p.csv");
+        make_fifo(&pipe).unwrap();
+        copy_across(&pipe, &dst.path().join("p.csv")).unwrap();
+        let moved = std::fs::symlink_metadata(dst.path().join("p.csv")).unwrap();
+        assert!(moved.file_type().is_fifo());
+        assert_eq!(std::fs::read_dir(src.path()).unwrap().count(), 0);
+        assert_eq!(
+            std::fs::read_dir(dst.path()).unwrap().count(),
+            3,
+            "no temporary left"
         );
     }
 

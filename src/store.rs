@@ -43,6 +43,10 @@ pub enum StoreError {
     },
     #[error("stored data is inconsistent: {0}")]
     Corrupt(String),
+    #[error("cannot back up the database into {path}")]
+    Backup { path: String, source: sqlx::Error },
+    #[error("cannot check the backup {path}")]
+    CheckCopy { path: String, source: sqlx::Error },
 }
 
 type Result<T> = std::result::Result<T, StoreError>;
@@ -569,6 +573,15 @@ pub struct AckRow {
     pub note: String,
 }
 
+/// What `PRAGMA integrity_check` and the counts say of a database copy.
+#[derive(Debug, Clone, serde::Serialize)]
+pub struct CopyCheck {
+    /// "ok", or SQLite's first findings, one per line.
+    pub integrity: String,
+    pub lots: i64,
+    pub measurements: i64,
+}
+
 /// Counts for `lotdrift status`.
 #[derive(Debug, Clone, Default, serde::Serialize)]
 pub struct StatusCounts {
@@ -752,6 +765,52 @@ impl Store {
         Ok(Store {
             pool,
             names: Mutex::new(NameCache::default()),
+        })
+    }
+
+    /// Writes a consistent copy of the database to `dest` (`VACUUM INTO`: one read
+    /// transaction, so a daemon writing meanwhile is neither blocked nor half-copied). SQLite
+    /// refuses a `dest` that exists and is not empty.
+    pub async fn backup_into(&self, dest: &Path) -> Result<()> {
+        let shown = dest.display().to_string();
+        sqlx::query("VACUUM INTO ?")
+            .bind(dest.to_string_lossy().into_owned())
+            .execute(&self.pool)
+            .await
+            .map_err(|source| StoreError::Backup {
+                path: shown,
+                source,
+            })?;
+        Ok(())
+    }
+
+    /// Opens a database copy read-only (no migrations), runs `PRAGMA integrity_check` and
+    /// counts its lots and measurements.
+    pub async fn check_copy(path: &Path) -> Result<CopyCheck> {
+        let err = |source| StoreError::CheckCopy {
+            path: path.display().to_string(),
+            source,
+        };
+        let mut conn = SqliteConnectOptions::new()
+            .filename(path)
+            .read_only(true)
+            .connect()
+            .await
+            .map_err(err)?;
+        let findings: Vec<String> = sqlx::query_scalar("PRAGMA integrity_check")
+            .fetch_all(&mut conn)
+            .await
+            .map_err(err)?;
+        let (lots, measurements): (i64, i64) =
+            sqlx::query_as("SELECT (SELECT COUNT(*) FROM lot), (SELECT COUNT(*) FROM measurement)")
+                .fetch_one(&mut conn)
+                .await
+                .map_err(err)?;
+        let _ = sqlx::Connection::close(conn).await;
+        Ok(CopyCheck {
+            integrity: findings.join("\n"),
+            lots,
+            measurements,
         })
     }
 

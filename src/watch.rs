@@ -5,10 +5,11 @@
 //! periodic full rescan (events are lost on overflow, and never arrive for files written by
 //! other machines on a share). A file is complete when it was renamed into the inbox, or when
 //! its size and mtime have stayed unchanged for the settle interval. Names starting with `.`
-//! or ending in `.part`/`.tmp` are never taken. This module only hands paths on; it never
-//! reads a file's content.
+//! or ending in `.part`/`.tmp` are never taken. A symbolic link, pipe, socket or device is
+//! handed on at once, for ingest to quarantine; a folder named like a lot file is reported
+//! once. This module only hands paths on; it never reads a file's content or follows a link.
 
-use std::collections::HashMap;
+use std::collections::{HashMap, HashSet};
 use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant, SystemTime};
 
@@ -32,6 +33,9 @@ pub struct WatchError {
 struct Candidate {
     size: u64,
     mtime: Option<SystemTime>,
+    /// False for a symbolic link, pipe, socket or device: handed on without settling, so that
+    /// ingest quarantines it (it is never followed or read).
+    regular: bool,
     /// When size and mtime were last seen to change.
     stable_since: Instant,
 }
@@ -40,27 +44,80 @@ struct Candidate {
 #[derive(Debug, Default)]
 pub struct Tracker {
     candidates: HashMap<PathBuf, Candidate>,
+    /// Empty files settle like others (`run --once`) instead of waiting much longer.
+    empty_files_settle_alike: bool,
+    /// Folders named like lot files, already reported in the log.
+    folders_reported: HashSet<PathBuf>,
 }
 
-/// A file's size and mtime, or None when it is not a regular file (any more).
-fn stat(path: &Path) -> Option<(u64, Option<SystemTime>)> {
-    let meta = std::fs::metadata(path).ok()?;
-    meta.is_file().then(|| (meta.len(), meta.modified().ok()))
+/// An inbox entry's size, mtime and whether it is a regular file, without following a
+/// symbolic link; None for a folder or when it is gone.
+fn stat(path: &Path) -> Option<(u64, Option<SystemTime>, bool)> {
+    let meta = std::fs::symlink_metadata(path).ok()?;
+    (!meta.is_dir()).then(|| (meta.len(), meta.modified().ok(), meta.is_file()))
+}
+
+/// True for a folder itself (a symbolic link to a folder is not one).
+fn is_real_dir(path: &Path) -> bool {
+    std::fs::symlink_metadata(path).is_ok_and(|m| m.is_dir())
+}
+
+/// True for names a lot file would have (`.csv`, `.tsv`, `.txt`).
+fn lot_file_name(path: &Path) -> bool {
+    path.extension().and_then(|e| e.to_str()).is_some_and(|e| {
+        ["csv", "tsv", "txt"]
+            .iter()
+            .any(|x| e.eq_ignore_ascii_case(x))
+    })
 }
 
 impl Tracker {
+    /// For `run --once`: an empty file settles in the same interval as any other.
+    pub fn for_once() -> Tracker {
+        Tracker {
+            empty_files_settle_alike: true,
+            ..Tracker::default()
+        }
+    }
+
+    /// Scans the inbox (see [`scan`]): entries ready now are returned, others watched; a folder
+    /// named like a lot file is reported once.
+    pub fn scan(&mut self, dir: &Path, settle: Duration, now: Instant) -> Vec<PathBuf> {
+        let found = scan(dir);
+        self.note_folders(&found.lot_named_folders);
+        found
+            .entries
+            .into_iter()
+            .filter(|p| self.found(p, settle, now))
+            .collect()
+    }
+
+    /// Warns once per folder that is named like a lot file (its files are taken, not it).
+    fn note_folders(&mut self, folders: &[PathBuf]) {
+        for f in folders {
+            if self.folders_reported.insert(f.clone()) {
+                tracing::warn!(
+                    folder = %f.display(),
+                    "a folder named like a lot file is in the inbox; it is left where it is \
+                     (lot files must be regular files; files inside it are taken)"
+                );
+            }
+        }
+    }
+
     /// A file was (maybe) written: it must now stay unchanged for the settle interval.
     pub fn touched(&mut self, path: &Path, now: Instant) {
         if is_ignored_name(path) {
             return;
         }
         match stat(path) {
-            Some((size, mtime)) => {
+            Some((size, mtime, regular)) => {
                 self.candidates.insert(
                     path.to_path_buf(),
                     Candidate {
                         size,
                         mtime,
+                        regular,
                         stable_since: now,
                     },
                 );
@@ -77,13 +134,13 @@ impl Tracker {
         if is_ignored_name(path) || self.candidates.contains_key(path) {
             return false;
         }
-        let Some((size, mtime)) = stat(path) else {
+        let Some((size, mtime, regular)) = stat(path) else {
             return false;
         };
         let age = mtime
             .and_then(|m| SystemTime::now().duration_since(m).ok())
             .unwrap_or_default();
-        if age >= settle_for(size, settle) {
+        if age >= settle_for(size, regular, settle, self.empty_files_settle_alike) {
             return true;
         }
         self.candidates.insert(
@@ -91,6 +148,7 @@ impl Tracker {
             Candidate {
                 size,
                 mtime,
+                regular,
                 stable_since: now,
             },
         );
@@ -104,15 +162,19 @@ impl Tracker {
     /// Files whose size and mtime have not changed for `settle`; they leave the tracker.
     pub fn ready(&mut self, settle: Duration, now: Instant) -> Vec<PathBuf> {
         let mut ready = Vec::new();
+        let alike = self.empty_files_settle_alike;
         self.candidates.retain(|path, c| match stat(path) {
             None => false,
-            Some((size, mtime)) => {
-                if size != c.size || mtime != c.mtime {
+            Some((size, mtime, regular)) => {
+                if size != c.size || mtime != c.mtime || regular != c.regular {
                     c.size = size;
                     c.mtime = mtime;
+                    c.regular = regular;
                     c.stable_since = now;
                     true
-                } else if now.duration_since(c.stable_since) >= settle_for(size, settle) {
+                } else if now.duration_since(c.stable_since)
+                    >= settle_for(size, regular, settle, alike)
+                {
                     ready.push(path.clone());
                     false
                 } else {
@@ -129,19 +191,35 @@ impl Tracker {
     }
 }
 
-/// How long a file must stay unchanged: an empty file is usually one whose writer has only
-/// created it, so it gets much longer (and is then taken, to be quarantined as empty).
-fn settle_for(size: u64, settle: Duration) -> Duration {
-    if size == 0 {
+/// How long an entry must stay unchanged. An entry that is not a regular file has nothing to
+/// wait for. The daemon gives an empty file much longer: it is usually one whose writer has
+/// only created it (it is then taken, to be quarantined as empty). `run --once`
+/// (`empty_alike`) takes a settled empty file like any other, so it never waits longer than
+/// the settle interval.
+fn settle_for(size: u64, regular: bool, settle: Duration, empty_alike: bool) -> Duration {
+    if !regular {
+        Duration::ZERO
+    } else if size == 0 && !empty_alike {
         (settle * 10).max(Duration::from_secs(30))
     } else {
         settle
     }
 }
 
-/// Every regular file below `dir` (recursively), sorted, skipping ignored names.
-pub fn scan(dir: &Path) -> Vec<PathBuf> {
+/// What a scan of the inbox found.
+#[derive(Debug, Default)]
+pub struct Scan {
+    /// Every entry below the inbox that is not a folder (regular files, and symbolic links,
+    /// pipes, sockets and devices for ingest to quarantine), sorted, skipping ignored names.
+    pub entries: Vec<PathBuf>,
+    /// Folders named like lot files (they are searched like any folder, and reported).
+    pub lot_named_folders: Vec<PathBuf>,
+}
+
+/// Every entry below `dir` (recursively, never through a symbolic link); see [`Scan`].
+pub fn scan(dir: &Path) -> Scan {
     let mut out = Vec::new();
+    let mut folders = Vec::new();
     let mut stack = vec![dir.to_path_buf()];
     while let Some(d) = stack.pop() {
         let Ok(entries) = std::fs::read_dir(&d) else {
@@ -157,28 +235,30 @@ pub fn scan(dir: &Path) -> Vec<PathBuf> {
                     .file_name()
                     .is_some_and(|n| n.to_string_lossy().starts_with('.'))
                 {
+                    if lot_file_name(&path) {
+                        folders.push(path.clone());
+                    }
                     stack.push(path);
                 }
-            } else if kind.is_file() && !is_ignored_name(&path) {
+            } else if !is_ignored_name(&path) {
                 out.push(path);
             }
         }
     }
     out.sort();
-    out
+    folders.sort();
+    Scan {
+        entries: out,
+        lot_named_folders: folders,
+    }
 }
 
 /// For `run --once`: the files in the inbox now, waiting (at most `limit`) for files still
 /// being written to settle.
 pub async fn settled_files(inbox: &Path, settle: Duration, limit: Duration) -> Vec<PathBuf> {
     let start = Instant::now();
-    let mut tracker = Tracker::default();
-    let mut ready = Vec::new();
-    for path in scan(inbox) {
-        if tracker.found(&path, settle, start) {
-            ready.push(path);
-        }
-    }
+    let mut tracker = Tracker::for_once();
+    let mut ready = tracker.scan(inbox, settle, start);
     while tracker.pending() > 0 && start.elapsed() < limit {
         tokio::time::sleep(tick(settle)).await;
         ready.extend(tracker.ready(settle, Instant::now()));
@@ -220,12 +300,7 @@ pub async fn run(
     let mut tracker = Tracker::default();
     let mut out: Vec<PathBuf> = Vec::new();
     let full_scan = |tracker: &mut Tracker, out: &mut Vec<PathBuf>| {
-        let now = Instant::now();
-        for path in scan(&inbox) {
-            if tracker.found(&path, cfg.settle, now) {
-                out.push(path);
-            }
-        }
+        out.extend(tracker.scan(&inbox, cfg.settle, Instant::now()));
     };
     full_scan(&mut tracker, &mut out);
     tracing::debug!(files = out.len(), "startup scan");
@@ -304,12 +379,10 @@ fn handle_event(tracker: &mut Tracker, out: &mut Vec<PathBuf>, ev: &Event, now: 
         EventKind::Access(_) => {}
         EventKind::Create(_) => {
             for p in &ev.paths {
-                if p.is_dir() {
+                if is_real_dir(p) {
                     // A folder created in the inbox: files written before its watch was added
                     // have no events of their own.
-                    for f in scan(p) {
-                        tracker.touched(&f, now);
-                    }
+                    created_folder(tracker, p, now);
                 } else {
                     tracker.touched(p, now);
                 }
@@ -317,7 +390,7 @@ fn handle_event(tracker: &mut Tracker, out: &mut Vec<PathBuf>, ev: &Event, now: 
         }
         EventKind::Modify(_) | EventKind::Any => {
             for p in &ev.paths {
-                if !p.is_dir() {
+                if !is_real_dir(p) {
                     tracker.touched(p, now);
                 }
             }
@@ -327,13 +400,23 @@ fn handle_event(tracker: &mut Tracker, out: &mut Vec<PathBuf>, ev: &Event, now: 
 }
 
 fn renamed_in(tracker: &mut Tracker, out: &mut Vec<PathBuf>, path: &Path, now: Instant) {
-    if path.is_dir() {
-        for f in scan(path) {
-            tracker.touched(&f, now);
-        }
-    } else if !is_ignored_name(path) && path.is_file() {
+    if is_real_dir(path) {
+        created_folder(tracker, path, now);
+    } else if !is_ignored_name(path) && stat(path).is_some() {
         tracker.forget(path);
         out.push(path.to_path_buf());
+    }
+}
+
+/// A folder that appeared in the inbox: its entries are watched like written files.
+fn created_folder(tracker: &mut Tracker, dir: &Path, now: Instant) {
+    let found = scan(dir);
+    if lot_file_name(dir) {
+        tracker.note_folders(&[dir.to_path_buf()]);
+    }
+    tracker.note_folders(&found.lot_named_folders);
+    for f in found.entries {
+        tracker.touched(&f, now);
     }
 }
 
@@ -367,11 +450,39 @@ mod tests {
         }
         std::fs::create_dir(dir.path().join("sub")).unwrap();
         std::fs::write(dir.path().join("sub/e.csv"), "x").unwrap();
-        let found = scan(dir.path());
+        let found = scan(dir.path()).entries;
         assert_eq!(
             found,
             vec![dir.path().join("a.csv"), dir.path().join("sub/e.csv")]
         );
+    }
+
+    #[test]
+    fn empty_files_wait_longer_except_for_run_once() {
+        let dir = tempfile::tempdir().unwrap();
+        let f = dir.path().join("empty.csv");
+        std::fs::write(&f, "").unwrap();
+        let settle = Duration::from_millis(100);
+        let t0 = Instant::now();
+        let mut daemon = Tracker::default();
+        daemon.touched(&f, t0);
+        assert!(daemon.ready(settle, t0 + Duration::from_secs(1)).is_empty());
+        let mut once = Tracker::for_once();
+        once.touched(&f, t0);
+        assert_eq!(once.ready(settle, t0 + Duration::from_secs(1)), vec![f]);
+    }
+
+    #[test]
+    fn links_and_pipes_are_entries_ready_at_once() {
+        let dir = tempfile::tempdir().unwrap();
+        let link = dir.path().join("l.csv");
+        std::os::unix::fs::symlink(dir.path().join("nowhere"), &link).unwrap();
+        std::fs::create_dir(dir.path().join("x.csv")).unwrap();
+        let found = scan(dir.path());
+        assert_eq!(found.entries, vec![link.clone()]);
+        assert_eq!(found.lot_named_folders, vec![dir.path().join("x.csv")]);
+        let mut t = Tracker::default();
+        assert!(t.found(&link, Duration::from_secs(3600), Instant::now()));
     }
 
     #[test]

@@ -106,8 +106,7 @@ pub fn screen(
     if !log {
         return Some(screen_on_scale(sample_id, units, fence, None));
     }
-    type Units = Vec<(i64, f64)>;
-    let (positive, other): (Units, Units) = units.iter().partition(|u| u.1 > 0.0);
+    let (positive, other): (Vec<_>, Vec<_>) = units.iter().copied().partition(|u| u.1 > 0.0);
     let logged: Vec<(i64, f64)> = positive.iter().map(|u| (u.0, u.1.ln())).collect();
     if logged.is_empty() {
         return None;
