@@ -183,13 +183,22 @@ fn log_outliers(chunk: &[SeriesWork], pass: &EnginePass) {
 /// The (channel, recipient) pairs that announce an alert event of a series: one outbox row
 /// each. Email goes to the default list plus the source's and the characteristic's lists.
 pub fn recipients(config: &Config, source: &str, characteristic: &str) -> Vec<(String, String)> {
+    channel_recipients(config, |email| email.recipients_for(source, characteristic))
+}
+
+/// One (channel, recipient) pair for the log channel when configured, and one per address
+/// that `emails` picks from the email settings.
+pub fn channel_recipients(
+    config: &Config,
+    emails: impl Fn(&crate::config::Email) -> Vec<String>,
+) -> Vec<(String, String)> {
     let mut out = Vec::new();
     for channel in &config.alerts.channels {
         match channel {
             Channel::Log => out.push(("log".to_string(), "log".to_string())),
             Channel::Email => {
                 if let Some(email) = &config.alerts.email {
-                    for to in email.recipients_for(source, characteristic) {
+                    for to in emails(email) {
                         out.push(("email".to_string(), to));
                     }
                 }

@@ -16,7 +16,7 @@
 
 use chrono::{DateTime, Utc};
 
-use crate::config::{Channel, Config, Monitor, SilenceWatch};
+use crate::config::{Config, Monitor, SilenceWatch};
 use crate::store::{NewSilence, OpenSilence, SilenceEnd, SourceLots, Store, StoreError};
 use crate::time::{format_utc, parse_utc};
 
@@ -209,20 +209,7 @@ fn parse_times(s: &SourceLots) -> Result<Vec<DateTime<Utc>>, SilenceError> {
 /// Who is told about a source's silence: the log, and by email the default list plus the
 /// source's list.
 pub fn recipients(config: &Config, source: &str) -> Vec<(String, String)> {
-    let mut out = Vec::new();
-    for channel in &config.alerts.channels {
-        match channel {
-            Channel::Log => out.push(("log".to_string(), "log".to_string())),
-            Channel::Email => {
-                if let Some(email) = &config.alerts.email {
-                    for to in email.recipients_for_source(source) {
-                        out.push(("email".to_string(), to));
-                    }
-                }
-            }
-        }
-    }
-    out
+    crate::engine::channel_recipients(config, |email| email.recipients_for_source(source))
 }
 
 /// What one check wrote.

@@ -77,22 +77,13 @@ pub fn choose_log_scale(lots: &[&[(i64, f64)]]) -> bool {
 /// `per_lot` of outlier findings in in-control lots. None when the lots are too small or too
 /// few, or more than half of the residuals are zero (a gauge too coarse for a robust scale).
 pub fn learn_fence(lots: &[&[(i64, f64)]], per_lot: f64, log: bool) -> Option<OutlierFence> {
-    let mut residuals = Vec::new();
-    let mut sizes = Vec::new();
-    for lot in lots.iter().filter(|l| l.len() >= MIN_UNITS) {
-        let values: Vec<f64> = lot
-            .iter()
-            .map(|u| if log { u.1.ln() } else { u.1 })
-            .collect();
-        let med = median(&values).ok()?;
-        residuals.extend(values.iter().map(|v| v - med));
-        sizes.push(values.len() as f64);
-    }
-    if sizes.is_empty() {
-        return None;
-    }
+    let sizes: Vec<f64> = lots
+        .iter()
+        .filter(|l| l.len() >= MIN_UNITS)
+        .map(|l| l.len() as f64)
+        .collect();
     let typical = median(&sizes).ok()?;
-    outlier_fence(&residuals, per_lot / typical).ok()
+    outlier_fence(&residuals(lots, log), per_lot / typical).ok()
 }
 
 /// Screens one lot (on the log scale when `log`). Without a fence (or with too few units)
