@@ -301,17 +301,17 @@ pub async fn run(
     let mut silence_checked: Option<tokio::time::Instant> = None;
     loop {
         if let Err(e) = digest::schedule_if_due(&store, &config).await {
-            tracing::error!(error = %e, "cannot queue the daily digest");
+            tracing::error!(error = %crate::errors::chain(&e), "cannot queue the daily digest");
         }
         if woken || silence_checked.is_none_or(|t| t.elapsed() >= SILENCE_EVERY) {
             if let Err(e) = silence::check(&store, &config, Utc::now()).await {
-                tracing::error!(error = %e, "cannot check for silent sources");
+                tracing::error!(error = %crate::errors::chain(&e), "cannot check for silent sources");
             }
             silence_checked = Some(tokio::time::Instant::now());
         }
         match drain_once(&store, &config).await {
             Ok(_) => {}
-            Err(e) => tracing::error!(error = %e, "outbox drain failed"),
+            Err(e) => tracing::error!(error = %crate::errors::chain(&e), "outbox drain failed"),
         }
         woken = tokio::select! {
             _ = cancel.cancelled() => return,
@@ -326,7 +326,7 @@ fn build_mailer(config: &Config) -> Result<Mailer, String> {
         return Err("no [alerts.email] section configured".into());
     };
     Mailer::new(email).map_err(|e| {
-        tracing::error!(error = %e, "cannot set up the SMTP client; email messages wait");
+        tracing::error!(error = %crate::errors::chain(&e), "cannot set up the SMTP client; email messages wait");
         e.to_string()
     })
 }
@@ -365,7 +365,7 @@ async fn chart_for(store: &Store, item: &OutboxItem) -> Option<Vec<u8>> {
     {
         Ok(l) => l,
         Err(e) => {
-            tracing::warn!(error = %e, alert = a.id, "cannot read the series for the chart");
+            tracing::warn!(error = %crate::errors::chain(&e), alert = a.id, "cannot read the series for the chart");
             return None;
         }
     };
@@ -388,11 +388,11 @@ async fn chart_for(store: &Store, item: &OutboxItem) -> Option<Vec<u8>> {
     match rendered {
         Ok(Ok(png)) => Some(png),
         Ok(Err(e)) => {
-            tracing::warn!(error = %e, alert = a.id, "cannot draw the chart");
+            tracing::warn!(error = %crate::errors::chain(&e), alert = a.id, "cannot draw the chart");
             None
         }
         Err(e) => {
-            tracing::warn!(error = %e, alert = a.id, "chart task failed");
+            tracing::warn!(error = %crate::errors::chain(&e), alert = a.id, "chart task failed");
             None
         }
     }

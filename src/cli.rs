@@ -275,11 +275,17 @@ pub fn main() -> ExitCode {
     match runtime.block_on(dispatch(cli.command)) {
         Ok(()) => ExitCode::SUCCESS,
         Err(Failure::Usage(e)) => {
-            warn_line!("lotdrift: {e:#}");
+            warn_line!(
+                "lotdrift: {}",
+                crate::errors::join(e.chain().map(|c| c.to_string()))
+            );
             ExitCode::from(2)
         }
         Err(Failure::Runtime(e)) => {
-            warn_line!("lotdrift: {e:#}");
+            warn_line!(
+                "lotdrift: {}",
+                crate::errors::join(e.chain().map(|c| c.to_string()))
+            );
             ExitCode::from(1)
         }
     }

@@ -15,7 +15,7 @@ use serde::Deserialize;
 /// A configuration problem, always naming the file and the key (or the TOML position).
 #[derive(Debug, thiserror::Error)]
 pub enum ConfigError {
-    #[error("cannot read config file {path}: {source}")]
+    #[error("cannot read config file {path}")]
     Read {
         path: PathBuf,
         source: std::io::Error,

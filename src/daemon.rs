@@ -42,7 +42,7 @@ pub enum DaemonError {
     Watch(#[from] watch::WatchError),
     #[error(transparent)]
     Silence(#[from] silence::SilenceError),
-    #[error("cannot create folder {path}: {source}")]
+    #[error("cannot create folder {path}")]
     Folder {
         path: std::path::PathBuf,
         source: std::io::Error,
@@ -164,7 +164,7 @@ pub async fn run(
             }
             Err(e) => {
                 // The files stay in the inbox and are taken again at the next rescan.
-                tracing::error!(error = %e, "ingest failed; files left in the inbox");
+                tracing::error!(error = %crate::errors::chain(&e), "ingest failed; files left in the inbox");
             }
         }
     }

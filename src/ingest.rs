@@ -35,7 +35,7 @@ const BATCH_VALUES: usize = 40_000;
 pub enum IngestError {
     #[error(transparent)]
     Store(#[from] StoreError),
-    #[error("cannot move {from} to {to}: {source}")]
+    #[error("cannot move {from} to {to}")]
     Move {
         from: PathBuf,
         to: PathBuf,

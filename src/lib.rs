@@ -50,6 +50,7 @@ pub mod daemon;
 pub mod demo;
 pub mod digest;
 pub mod engine;
+pub mod errors;
 pub mod ingest;
 pub mod lotfile;
 pub mod report;

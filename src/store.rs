@@ -29,14 +29,14 @@ use crate::stats::robust::{OutlierFence, SpreadBaseline};
 /// their own variants; everything else is the database's error with what we were doing.
 #[derive(Debug, thiserror::Error)]
 pub enum StoreError {
-    #[error("cannot open database {path}: {source}")]
+    #[error("cannot open database {path}")]
     Open { path: String, source: sqlx::Error },
-    #[error("cannot migrate database {path}: {source}")]
+    #[error("cannot migrate database {path}")]
     Migrate {
         path: String,
         source: sqlx::migrate::MigrateError,
     },
-    #[error("database error while {doing}: {source}")]
+    #[error("database error while {doing}")]
     Sql {
         doing: &'static str,
         source: sqlx::Error,

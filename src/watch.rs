@@ -22,7 +22,7 @@ use crate::config::Watch;
 use crate::ingest::is_ignored_name;
 
 #[derive(Debug, thiserror::Error)]
-#[error("cannot watch {path}: {source}")]
+#[error("cannot watch {path}")]
 pub struct WatchError {
     path: PathBuf,
     source: notify::Error,
@@ -337,7 +337,7 @@ pub async fn run(
                         handle_event(&mut tracker, &mut out, &ev, now);
                     }
                     Err(e) => {
-                        tracing::warn!(error = %e, "file watcher error; rescanning the inbox");
+                        tracing::warn!(error = %crate::errors::chain(&e), "file watcher error; rescanning the inbox");
                         full_scan(&mut tracker, &mut out);
                     }
                 }

@@ -303,3 +303,21 @@ fn a_reader_that_closes_the_pipe_early_is_no_crash() {
         String::from_utf8_lossy(&out.stderr)
     );
 }
+
+#[test]
+fn an_error_says_what_failed_where_and_its_cause_once() {
+    // Regression: causes were printed twice (the variant's text and the chain both carried
+    // them).
+    let dir = tempfile::tempdir().unwrap();
+    let missing = dir.path().join("nowhere/lotdrift.toml");
+    let out = std::process::Command::new(env!("CARGO_BIN_EXE_lotdrift"))
+        .args(["status", "--config"])
+        .arg(&missing)
+        .output()
+        .unwrap();
+    let err = String::from_utf8_lossy(&out.stderr);
+    assert_eq!(out.status.code(), Some(2), "{err}");
+    assert!(err.contains("cannot read config file"), "{err}");
+    assert!(err.contains(&missing.display().to_string()), "{err}");
+    assert_eq!(err.matches("No such file or directory").count(), 1, "{err}");
+}
