@@ -148,24 +148,15 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
             break;
         }
         for item in fresh {
-            let outcome = match item.channel.as_str() {
-                "email" => {
-                    let mailer = mailer.get_or_insert_with(|| build_mailer(config));
-                    let message = mailer
-                        .as_ref()
-                        .map_err(Clone::clone)
-                        .and_then(|m| digest_message(&m.from, &item));
-                    let attempt = Attempt::of_digest(&item);
-                    send_email(&attempt, config, mailer, message).await
-                }
-                "log" => {
-                    log_digest(&item);
-                    DeliveryOutcome::Delivered
-                }
-                other => DeliveryOutcome::Failed {
-                    error: format!("unknown channel {other:?}"),
-                },
-            };
+            let outcome = deliver(
+                &item.channel,
+                config,
+                &mut mailer,
+                &Attempt::of_digest(&item),
+                |from| digest_message(from, &item),
+                || log_digest(&item),
+            )
+            .await;
             tally(&mut report, &item.channel, &item.recipient, &outcome);
             store
                 .outbox_attempted(item.id, &outcome, &now_rfc3339())
@@ -197,23 +188,15 @@ async fn drain_silences(
             break;
         }
         for item in fresh {
-            let outcome = match item.channel.as_str() {
-                "email" => {
-                    let mailer = mailer.get_or_insert_with(|| build_mailer(config));
-                    let message = mailer
-                        .as_ref()
-                        .map_err(Clone::clone)
-                        .and_then(|m| silence_message(&m.from, &item));
-                    send_email(&Attempt::of_silence(&item), config, mailer, message).await
-                }
-                "log" => {
-                    log_silence(&item);
-                    DeliveryOutcome::Delivered
-                }
-                other => DeliveryOutcome::Failed {
-                    error: format!("unknown channel {other:?}"),
-                },
-            };
+            let outcome = deliver(
+                &item.channel,
+                config,
+                mailer,
+                &Attempt::of_silence(&item),
+                |from| silence_message(from, &item),
+                || log_silence(&item),
+            )
+            .await;
             tally(report, &item.channel, &item.recipient, &outcome);
             store
                 .outbox_attempted(item.id, &outcome, &now_rfc3339())
@@ -224,6 +207,35 @@ async fn drain_silences(
         }
     }
     Ok(())
+}
+
+/// Delivers one digest or silence message through its channel: by email, built by `message`
+/// (the SMTP transport is built on first use), or to the log by `log`.
+async fn deliver(
+    channel: &str,
+    config: &Config,
+    mailer: &mut Option<Result<Mailer, String>>,
+    attempt: &Attempt<'_>,
+    message: impl FnOnce(&Mailbox) -> Result<Message, String>,
+    log: impl FnOnce(),
+) -> DeliveryOutcome {
+    match channel {
+        "email" => {
+            let mailer = mailer.get_or_insert_with(|| build_mailer(config));
+            let message = mailer
+                .as_ref()
+                .map_err(Clone::clone)
+                .and_then(|m| message(&m.from));
+            send_email(attempt, config, mailer, message).await
+        }
+        "log" => {
+            log();
+            DeliveryOutcome::Delivered
+        }
+        other => DeliveryOutcome::Failed {
+            error: format!("unknown channel {other:?}"),
+        },
+    }
 }
 
 /// Counts an outcome and logs a failure.

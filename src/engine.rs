@@ -74,6 +74,12 @@ pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, Engi
             end += 1;
         }
         let mut chunk: Vec<SeriesWork> = work.drain(..end).collect();
+        // Unit values of every lot to be screened: the pending lots (a baseline about to be
+        // frozen is among them). Read once; the checks below use them too.
+        for w in &mut chunk {
+            let ids: Vec<i64> = w.pending.iter().map(|s| s.sample_id).collect();
+            w.values = store.unit_values(&ids).await?;
+        }
         // Baselines about to be frozen get their residuals' normality checked; series whose
         // baseline is clearly non-normal without a between-lot component are tested on their
         // unit values, distribution-free.
@@ -86,7 +92,7 @@ pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, Engi
                 Some(_) => None,
                 None if w.pending.len() >= n => {
                     let ids: Vec<i64> = w.pending[..n].iter().map(|s| s.sample_id).collect();
-                    let residuals = store.residuals(&ids, 5000).await?;
+                    let residuals = residuals_of(&w.values, &w.pending[..n], RESIDUALS_LIMIT);
                     let summaries: Vec<Summary> =
                         w.pending[..n].iter().map(|s| s.summary).collect();
                     let non_normal = crate::stats::normality::shapiro_wilk(&residuals)
@@ -99,24 +105,18 @@ pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, Engi
                 None => None,
             };
             if let Some(base_ids) = baseline_ids {
-                let lot_ids: Vec<i64> = w
-                    .pending
+                let lots = w
+                    .values
                     .iter()
-                    .map(|s| s.sample_id)
-                    .filter(|id| !base_ids.contains(id))
+                    .filter(|(id, _)| !base_ids.contains(id))
+                    .map(|(id, units)| (*id, units.iter().map(|u| u.1).collect()))
                     .collect();
                 let base = store.values(&base_ids).await?;
                 w.units = Some(crate::store::UnitValues {
                     baseline: base.into_values().flatten().collect(),
-                    lots: store.values(&lot_ids).await?,
+                    lots,
                 });
             }
-        }
-        // Unit values of every lot to be screened: the pending lots (a baseline about to be
-        // frozen is among them).
-        for w in &mut chunk {
-            let ids: Vec<i64> = w.pending.iter().map(|s| s.sample_id).collect();
-            w.values = store.unit_values(&ids).await?;
         }
         let mut pass = decide_at(
             &chunk,
@@ -154,6 +154,38 @@ pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, Engi
         );
     }
     Ok(total)
+}
+
+/// Most baseline residuals given to the normality check.
+const RESIDUALS_LIMIT: usize = 5000;
+
+/// Within-lot residuals (value − its lot's mean) of `samples`, in sample id and unit order as
+/// `Store::residuals` gives them, at most `limit` (taken evenly through them when more).
+fn residuals_of(
+    values: &std::collections::HashMap<i64, Vec<(i64, f64)>>,
+    samples: &[crate::store::SeriesSample],
+    limit: usize,
+) -> Vec<f64> {
+    let mut sorted: Vec<&crate::store::SeriesSample> = samples.iter().collect();
+    sorted.sort_by_key(|s| s.sample_id);
+    let out: Vec<f64> = sorted
+        .iter()
+        .flat_map(|s| {
+            let mean = s.summary.mean();
+            values
+                .get(&s.sample_id)
+                .into_iter()
+                .flatten()
+                .map(move |u| u.1 - mean)
+        })
+        .collect();
+    if out.len() <= limit {
+        return out;
+    }
+    let step = out.len() as f64 / limit as f64;
+    (0..limit)
+        .map(|i| out[(i as f64 * step) as usize])
+        .collect()
 }
 
 /// Logs each outlier found in a pass (they are stored; this makes them visible as they come).
