@@ -41,6 +41,11 @@ pub enum StoreError {
         doing: &'static str,
         source: sqlx::Error,
     },
+    #[error("cannot lock {path} to migrate the database")]
+    Lock {
+        path: String,
+        source: std::io::Error,
+    },
     #[error("stored data is inconsistent: {0}")]
     Corrupt(String),
     #[error("cannot back up the database into {path}")]
@@ -755,13 +760,16 @@ impl Store {
                 path: shown.clone(),
                 source,
             })?;
-        sqlx::migrate!()
-            .run(&pool)
-            .await
-            .map_err(|source| StoreError::Migrate {
-                path: shown,
-                source,
-            })?;
+        // Two processes opening a new database at once (the daemon starting, `status` run
+        // beside it) would both apply the first migration and one would fail ("table already
+        // exists"): migrations run under an exclusive lock on a file beside the database.
+        let lock = migration_lock(path).await?;
+        let migrated = sqlx::migrate!().run(&pool).await;
+        drop(lock);
+        migrated.map_err(|source| StoreError::Migrate {
+            path: shown,
+            source,
+        })?;
         Ok(Store {
             pool,
             names: Mutex::new(NameCache::default()),
@@ -2913,6 +2921,31 @@ async fn upsert_name(
 }
 
 /// Inserts a frozen baseline and its lots; returns its id.
+/// An exclusive lock on `<database>.migrate-lock`, held while migrations run (blocking on
+/// another process's migration, which takes well under a second).
+async fn migration_lock(db: &Path) -> Result<std::fs::File> {
+    let mut name = db.file_name().unwrap_or_default().to_os_string();
+    name.push(".migrate-lock");
+    let path = db.with_file_name(name);
+    let shown = path.display().to_string();
+    tokio::task::spawn_blocking(move || {
+        let file = std::fs::OpenOptions::new()
+            .create(true)
+            .truncate(false)
+            .write(true)
+            .open(&path)?;
+        file.lock()?;
+        Ok(file)
+    })
+    .await
+    .map_err(|e| std::io::Error::other(e.to_string()))
+    .and_then(|r| r)
+    .map_err(|source| StoreError::Lock {
+        path: shown,
+        source,
+    })
+}
+
 /// Records outliers (a unit already recorded is left as it is).
 async fn insert_outliers(
     tx: &mut Transaction<'static, Sqlite>,

@@ -517,3 +517,26 @@ fn an_open_alert_is_announced_again_when_its_shift_grows_unless_acknowledged() {
     let log = run(true);
     assert!(!log.contains("still shifted"), "{log}");
 }
+
+#[test]
+fn processes_opening_a_new_database_at_once_all_succeed() {
+    // Regression: the daemon starting and `status` run beside it both applied the first
+    // migration of a new database, and one failed with "table source already exists". Six
+    // `run --once` on a new site create and migrate the database at the same moment.
+    let site = Site::new("");
+    let children: Vec<_> = (0..6)
+        .map(|_| {
+            common::cmd(site.path())
+                .args(["run", "--once", "--config"])
+                .arg(site.config())
+                .stdout(std::process::Stdio::null())
+                .stderr(std::process::Stdio::piped())
+                .spawn()
+                .unwrap()
+        })
+        .collect();
+    for child in children {
+        let out = child.wait_with_output().unwrap();
+        assert!(out.status.success(), "{}", text(&out.stderr));
+    }
+}
