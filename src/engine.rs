@@ -256,6 +256,12 @@ pub fn distribution_free(design: &Design) -> bool {
 /// a backfill designs hundreds of series with the same few parameters.
 type HCache = std::collections::HashMap<(u64, u64, usize, u64, bool), f64>;
 
+/// Calibrated CUSUM intervals by design key, for the life of the process: one calibration
+/// costs about as much as deciding a thousand lots, and a backfill freezes hundreds of
+/// baselines with the same few keys. The interval is a pure function of its key.
+static H_CACHE: std::sync::LazyLock<std::sync::Mutex<HCache>> =
+    std::sync::LazyLock::new(Default::default);
+
 /// Designs a series from its baseline lots.
 pub fn design(
     lots: &[Summary],
@@ -409,7 +415,7 @@ pub fn decide_at(
     now: chrono::DateTime<chrono::Utc>,
 ) -> EnginePass {
     let mut pass = EnginePass::default();
-    let mut cache = HCache::new();
+    let mut cache = H_CACHE.lock().unwrap_or_else(|e| e.into_inner());
     let mut plans: Vec<Option<Plan>> = vec![None; work.len()];
     let mut tested: Vec<Tested> = Vec::new();
     for (i, w) in work.iter().enumerate() {

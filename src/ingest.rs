@@ -21,7 +21,7 @@ use tokio::sync::mpsc;
 use tokio_util::sync::CancellationToken;
 
 use crate::config::Paths;
-use crate::lotfile::{self, Layout};
+use crate::lotfile::{self, Layout, LotFile};
 use crate::stats::Summary;
 use crate::store::{FileOutcome, NewFile, NewSample, Store, StoreError};
 use crate::time::now_rfc3339;
@@ -367,7 +367,9 @@ fn prepare(path: &Path) -> Prepared {
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
-    match build_file(&name, &hash, &bytes) {
+    // The bytes go as soon as they are parsed: a large file's values are held once.
+    let parsed = parse_bytes(&name, bytes);
+    match parsed.and_then(|p| summarise(&name, &hash, p)) {
         Ok(f) => Prepared::Good(path.into(), f),
         Err(reason) => Prepared::Bad {
             path: path.into(),
@@ -383,6 +385,22 @@ pub fn build_file(name: &str, hash: &str, bytes: &[u8]) -> Result<NewFile, Strin
         return Err("empty file: no header, no data".to_string());
     }
     let parsed = lotfile::parse(name, bytes).map_err(|e| e.to_string())?;
+    summarise(name, hash, parsed)
+}
+
+fn parse_bytes(name: &str, bytes: Vec<u8>) -> Result<LotFile, String> {
+    if bytes.is_empty() {
+        return Err("empty file: no header, no data".to_string());
+    }
+    lotfile::parse(name, &bytes).map_err(|e| e.to_string())
+}
+
+/// Summarises a parsed file's groups into samples, moving the values (not copying them).
+fn summarise(name: &str, hash: &str, parsed: LotFile) -> Result<NewFile, String> {
+    let layout = match parsed.layout {
+        Layout::Long => "long",
+        Layout::Wide => "wide",
+    };
     let mut samples = Vec::with_capacity(parsed.groups.len());
     for g in parsed.groups {
         let summary = Summary::from_slice(&g.values).map_err(|e| {
@@ -391,23 +409,7 @@ pub fn build_file(name: &str, hash: &str, bytes: &[u8]) -> Result<NewFile, Strin
                 g.first_line, g.source, g.lot, g.characteristic
             )
         })?;
-        // Units of a lot usually share one sampling time: format each distinct time once.
-        let mut last: Option<(lotfile::Timestamp, String)> = None;
-        let sampled_at: Vec<Option<String>> = g
-            .sampled_at
-            .iter()
-            .map(|t| {
-                t.as_ref().map(|t| match &last {
-                    Some((prev, text)) if prev == t => text.clone(),
-                    _ => {
-                        let text = t.to_rfc3339();
-                        last = Some((*t, text.clone()));
-                        text
-                    }
-                })
-            })
-            .collect();
-        let earliest = sampled_at.iter().flatten().min().cloned();
+        let earliest = g.sampled_at.iter().flatten().min().map(|t| t.to_rfc3339());
         let digest = sample_digest(&g.values, &g.units);
         samples.push(NewSample {
             source: g.source,
@@ -415,7 +417,7 @@ pub fn build_file(name: &str, hash: &str, bytes: &[u8]) -> Result<NewFile, Strin
             characteristic: g.characteristic,
             values: g.values,
             units: g.units,
-            sampled_at,
+            sampled_at: g.sampled_at,
             summary,
             digest,
             earliest,
@@ -424,10 +426,7 @@ pub fn build_file(name: &str, hash: &str, bytes: &[u8]) -> Result<NewFile, Strin
     Ok(NewFile {
         name: name.to_string(),
         hash: hash.to_string(),
-        layout: match parsed.layout {
-            Layout::Long => "long",
-            Layout::Wide => "wide",
-        },
+        layout,
         rows: parsed.rows,
         samples,
     })

@@ -3,7 +3,9 @@
 //! A source's lot times are its lots' sampling times (the arrival time where a lot has none);
 //! its silence runs from its last lot time to now. The expected gap is configured
 //! (`monitor.silence_days`, `monitor.silence_days_by_source`) or learned from the source's
-//! own intervals between consecutive distinct lot times, from [`MIN_INTERVALS`] intervals on:
+//! own intervals between consecutive distinct lot times of its last [`HISTORY_LOTS`] lots (its
+//! current cadence, read at a cost that does not grow with the history), from
+//! [`MIN_INTERVALS`] intervals on:
 //! the largest of [`MEDIAN_FACTOR`] × their median, [`RECENT_FACTOR`] × the largest of the
 //! last [`RECENT_INTERVALS`], and [`MIN_THRESHOLD_DAYS`]. A source without enough lots and
 //! without a configured gap is not watched.
@@ -20,6 +22,8 @@ use crate::config::{Config, Monitor, SilenceWatch};
 use crate::store::{NewSilence, OpenSilence, SilenceEnd, SourceLots, Store, StoreError};
 use crate::time::{format_utc, parse_utc};
 
+/// Lots per source (most recent first) whose times the learned threshold looks at.
+pub const HISTORY_LOTS: usize = 201;
 /// Intervals needed to learn a source's threshold (that is, 8 distinct lot times).
 pub const MIN_INTERVALS: usize = 7;
 /// The learned threshold is at least this many times the median interval.
@@ -228,7 +232,7 @@ pub async fn check(
     if !config.monitor.silence.enabled {
         return Ok(CheckReport::default());
     }
-    let (sources, open) = store.silence_inputs().await?;
+    let (sources, open) = store.silence_inputs(HISTORY_LOTS).await?;
     let plan = plan(&config.monitor, &sources, &open, now, |source| {
         recipients(config, source)
     })?;

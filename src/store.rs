@@ -21,6 +21,9 @@ use sqlx::sqlite::{
 };
 use sqlx::{ConnectOptions, QueryBuilder, Row, Sqlite, Transaction};
 
+mod bulk;
+
+use crate::lotfile::Timestamp;
 use crate::stats::Summary;
 use crate::stats::monitoring::RandomEffects;
 use crate::stats::robust::{OutlierFence, SpreadBaseline};
@@ -52,6 +55,11 @@ pub enum StoreError {
     Backup { path: String, source: sqlx::Error },
     #[error("cannot check the backup {path}")]
     CheckCopy { path: String, source: sqlx::Error },
+    #[error("database error while {doing}")]
+    Bulk {
+        doing: &'static str,
+        source: rusqlite::Error,
+    },
 }
 
 type Result<T> = std::result::Result<T, StoreError>;
@@ -107,8 +115,8 @@ pub struct NewSample {
     pub characteristic: String,
     pub values: Vec<f64>,
     pub units: Vec<Option<String>>,
-    /// Per value, RFC 3339 UTC text (fixed width) or None.
-    pub sampled_at: Vec<Option<String>>,
+    /// Per value, its sampling time (stored as fixed-width RFC 3339 UTC text) or None.
+    pub sampled_at: Vec<Option<Timestamp>>,
     pub summary: Summary,
     /// Order-independent digest of (unit, value) pairs: equal digests mean equal content.
     pub digest: String,
@@ -1223,34 +1231,18 @@ impl Store {
             .collect())
     }
 
+    /// Writes the unit values of `samples` inside the open transaction, through the
+    /// connection's own SQLite handle with one prepared statement (see [`bulk`]).
     async fn insert_measurements(
         &self,
         tx: &mut Transaction<'static, Sqlite>,
         samples: &[(i64, &NewSample)],
     ) -> Result<()> {
-        let rows = samples.iter().flat_map(|(id, s)| {
-            (0..s.values.len()).map(move |k| {
-                (
-                    *id,
-                    k as i64,
-                    s.units[k].as_deref(),
-                    s.values[k],
-                    s.sampled_at[k].as_deref(),
-                )
-            })
-        });
-        let mut buf = Vec::with_capacity(ROWS_PER_INSERT);
-        for row in rows {
-            buf.push(row);
-            if buf.len() == ROWS_PER_INSERT {
-                insert_measurement_rows(tx, &buf).await?;
-                buf.clear();
-            }
-        }
-        if !buf.is_empty() {
-            insert_measurement_rows(tx, &buf).await?;
-        }
-        Ok(())
+        let mut handle = tx
+            .lock_handle()
+            .await
+            .doing("taking the connection for the unit values")?;
+        bulk::insert_measurements(handle.as_raw_handle(), samples)
     }
 
     async fn replace_sample(
@@ -1431,10 +1423,7 @@ impl Store {
              JOIN source src ON src.id = s.source_id \
              JOIN characteristic ch ON ch.id = s.characteristic_id \
              LEFT JOIN series_state st ON st.series_id = s.id \
-             WHERE EXISTS (SELECT 1 FROM sample sm \
-                 LEFT JOIN evaluation e ON e.sample_id = sm.id AND e.kind = 'mean' \
-                 LEFT JOIN baseline_lot bl ON bl.sample_id = sm.id \
-                 WHERE sm.series_id = s.id AND e.id IS NULL AND bl.sample_id IS NULL) \
+             WHERE s.id IN (SELECT series_id FROM pending_sample) \
              ORDER BY src.name, ch.name",
         )
         .fetch_all(&self.pool)
@@ -1478,7 +1467,8 @@ impl Store {
 
         for r in sqlx::query(&format!(
             "SELECT b.series_id, b.id, b.n, b.mean, b.m2, b.min_value, b.max_value, b.definition, \
-             {DESIGN_COLUMNS} FROM baseline b WHERE b.retired_at IS NULL"
+             {DESIGN_COLUMNS} FROM baseline b WHERE b.retired_at IS NULL \
+             AND b.series_id IN (SELECT series_id FROM pending_sample)"
         ))
         .fetch_all(&self.pool)
         .await
@@ -1527,10 +1517,8 @@ impl Store {
         let mut rows = sqlx::query(
             "SELECT sm.series_id, sm.id, l.id, l.code, COALESCE(l.sampled_at, l.first_seen_at), \
                     sm.n, sm.mean, sm.m2, sm.min_value, sm.max_value \
-             FROM sample sm JOIN lot l ON l.id = sm.lot_id \
-             LEFT JOIN evaluation e ON e.sample_id = sm.id AND e.kind = 'mean' \
-             LEFT JOIN baseline_lot bl ON bl.sample_id = sm.id \
-             WHERE e.id IS NULL AND bl.sample_id IS NULL \
+             FROM pending_sample p JOIN sample sm ON sm.id = p.sample_id \
+             JOIN lot l ON l.id = sm.lot_id \
              ORDER BY sm.series_id, COALESCE(l.sampled_at, l.first_seen_at), l.code",
         )
         .fetch(&self.pool);
@@ -1549,42 +1537,21 @@ impl Store {
         Ok(work)
     }
 
-    /// The unit values of the given samples, by sample id, in file order.
-    pub async fn values(&self, sample_ids: &[i64]) -> Result<HashMap<i64, Vec<f64>>> {
-        let mut out: HashMap<i64, Vec<f64>> = HashMap::new();
-        for chunk in sample_ids.chunks(ROWS_PER_INSERT) {
-            let mut q = in_list(
-                "SELECT sample_id, value FROM measurement WHERE sample_id IN",
-                chunk,
-                " ORDER BY sample_id, seq",
-            );
-            for r in q
-                .build()
-                .fetch_all(&self.pool)
-                .await
-                .doing("reading unit values")?
-            {
-                out.entry(r.get(0)).or_default().push(r.get(1));
-            }
-        }
-        Ok(out)
+    /// (seq, value) of every unit of the given samples, in seq order (see [`bulk`]).
+    pub async fn unit_values(&self, sample_ids: &[i64]) -> Result<HashMap<i64, Vec<(i64, f64)>>> {
+        let mut conn = self.pool.acquire().await.doing("reading unit values")?;
+        let mut handle = conn.lock_handle().await.doing("reading unit values")?;
+        bulk::unit_values(handle.as_raw_handle(), sample_ids)
     }
 
-    /// (seq, value) of every unit of the given samples, in seq order.
-    pub async fn unit_values(&self, sample_ids: &[i64]) -> Result<HashMap<i64, Vec<(i64, f64)>>> {
-        let mut out: HashMap<i64, Vec<(i64, f64)>> = HashMap::new();
-        for chunk in sample_ids.chunks(ROWS_PER_INSERT) {
-            let mut q = in_list(
-                "SELECT sample_id, seq, value FROM measurement WHERE sample_id IN",
-                chunk,
-                " ORDER BY sample_id, seq",
-            );
-            let mut rows = q.build().fetch(&self.pool);
-            while let Some(r) = rows.try_next().await.doing("reading unit values")? {
-                out.entry(r.get(0)).or_default().push((r.get(1), r.get(2)));
-            }
-        }
-        Ok(out)
+    /// The unit values of the given samples, by sample id, in file order.
+    pub async fn values(&self, sample_ids: &[i64]) -> Result<HashMap<i64, Vec<f64>>> {
+        Ok(self
+            .unit_values(sample_ids)
+            .await?
+            .into_iter()
+            .map(|(id, units)| (id, units.into_iter().map(|(_, v)| v).collect()))
+            .collect())
     }
 
     /// The samples of a baseline.
@@ -2206,12 +2173,20 @@ impl Store {
         Ok(items)
     }
 
-    /// Every source's lots for the silence watch, and the open silences.
-    pub async fn silence_inputs(&self) -> Result<(Vec<SourceLots>, Vec<OpenSilence>)> {
+    /// Every source's most recent `recent` lots (by lot time, read through an index, so the
+    /// cost does not grow with the history) for the silence watch, and the open silences.
+    pub async fn silence_inputs(
+        &self,
+        recent: usize,
+    ) -> Result<(Vec<SourceLots>, Vec<OpenSilence>)> {
         let rows = sqlx::query(
-            "SELECT l.source_id, s.name, l.id, l.code, COALESCE(l.sampled_at, l.first_seen_at) t \
-             FROM lot l JOIN source s ON s.id = l.source_id ORDER BY l.source_id, t, l.code",
+            "SELECT s.id, s.name, l.id, l.code, COALESCE(l.sampled_at, l.first_seen_at) t \
+             FROM source s JOIN lot l ON l.id IN ( \
+                 SELECT r.id FROM lot r WHERE r.source_id = s.id \
+                 ORDER BY COALESCE(r.sampled_at, r.first_seen_at) DESC, r.code DESC LIMIT ?) \
+             ORDER BY s.id, t, l.code",
         )
+        .bind(recent as i64)
         .fetch_all(&self.pool)
         .await
         .doing("reading lot times")?;
@@ -2363,14 +2338,13 @@ impl Store {
     pub async fn status(&self) -> Result<StatusCounts> {
         let r = sqlx::query(
             "SELECT (SELECT COUNT(*) FROM source), (SELECT COUNT(*) FROM series), \
-             (SELECT COUNT(*) FROM ingested_file), (SELECT COUNT(*) FROM lot), \
-             (SELECT COUNT(*) FROM measurement), (SELECT COUNT(*) FROM quarantined_file), \
-             (SELECT COUNT(*) FROM evaluation), \
+             t.files, t.lots, t.measurements, (SELECT COUNT(*) FROM quarantined_file), \
+             t.evaluations, \
              (SELECT COUNT(*) FROM alert WHERE state = 'open'), (SELECT COUNT(*) FROM alert), \
              (SELECT COUNT(*) FROM outbox WHERE state = 'pending'), \
              (SELECT COUNT(*) FROM outbox WHERE state = 'failed'), \
              (SELECT COUNT(*) FROM outbox WHERE state = 'expired'), \
-             (SELECT MAX(local_date) FROM digest), (SELECT COUNT(*) FROM outlier)",
+             (SELECT MAX(local_date) FROM digest), t.outliers FROM tally t WHERE t.id = 1",
         )
         .fetch_one(&self.pool)
         .await
@@ -2877,30 +2851,6 @@ async fn silence_event(
     Ok(())
 }
 
-/// (sample id, sequence number, unit, value, sampled_at) of one measurement row.
-type MeasurementRow<'a> = (i64, i64, Option<&'a str>, f64, Option<&'a str>);
-
-async fn insert_measurement_rows(
-    tx: &mut Transaction<'static, Sqlite>,
-    rows: &[MeasurementRow<'_>],
-) -> Result<()> {
-    let mut q = QueryBuilder::<Sqlite>::new(
-        "INSERT INTO measurement (sample_id, seq, unit, value, sampled_at) ",
-    );
-    q.push_values(rows, |mut b, (sample, seq, unit, value, at)| {
-        b.push_bind(*sample)
-            .push_bind(*seq)
-            .push_bind(*unit)
-            .push_bind(*value)
-            .push_bind(*at);
-    });
-    q.build()
-        .execute(&mut **tx)
-        .await
-        .doing("recording measurements")?;
-    Ok(())
-}
-
 async fn upsert_name(
     tx: &mut Transaction<'static, Sqlite>,
     table: &'static str,
@@ -3112,6 +3062,106 @@ impl Store {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// A database with the migrations whose file names sort before `next`, without foreign
+    /// keys (rows can be added in any order).
+    async fn database_before(dir: &Path, next: &str) -> SqlitePool {
+        let migrations = dir.join(format!("m-{next}"));
+        std::fs::create_dir(&migrations).unwrap();
+        let all = concat!(env!("CARGO_MANIFEST_DIR"), "/migrations");
+        for entry in std::fs::read_dir(all).unwrap() {
+            let path = entry.unwrap().path();
+            let name = path.file_name().unwrap().to_str().unwrap().to_string();
+            if name.as_str() < next {
+                std::fs::copy(&path, migrations.join(&name)).unwrap();
+            }
+        }
+        let options = SqliteConnectOptions::new()
+            .filename(dir.join("old.db"))
+            .create_if_missing(true)
+            .foreign_keys(false);
+        let pool = SqlitePoolOptions::new()
+            .max_connections(1)
+            .connect_with(options)
+            .await
+            .unwrap();
+        sqlx::migrate::Migrator::new(migrations.as_path())
+            .await
+            .unwrap()
+            .run(&pool)
+            .await
+            .unwrap();
+        pool
+    }
+
+    async fn count(pool: &SqlitePool, sql: &str) -> i64 {
+        sqlx::query_scalar(sql).fetch_one(pool).await.unwrap()
+    }
+
+    #[tokio::test]
+    async fn the_flat_cost_migration_finds_pending_samples_and_keeps_counts() {
+        let dir = tempfile::tempdir().unwrap();
+        let pool = database_before(dir.path(), "0007").await;
+        // Sample 1 is a baseline lot, sample 2 was decided, sample 3 waits.
+        sqlx::raw_sql(
+            "INSERT INTO ingested_file VALUES (1, 'h', 'f.csv', 't', 'long', 7); \
+             INSERT INTO lot VALUES (1, 1, 'L1', NULL, 't'), (2, 1, 'L2', NULL, 't'), \
+                                    (3, 1, 'L3', NULL, 't'); \
+             INSERT INTO sample (id, lot_id, series_id, file_id, n, mean, m2, min_value, \
+                 max_value, content_digest) VALUES (1, 1, 5, 1, 2, 1, 0, 1, 1, 'a'), \
+                 (2, 2, 5, 1, 3, 1, 0, 1, 1, 'b'), (3, 3, 5, 1, 2, 1, 0, 1, 1, 'c'); \
+             INSERT INTO measurement (sample_id, seq, unit, value, sampled_at) VALUES \
+                 (1, 0, 'u1', 1.5, NULL), (1, 1, 'u2', 2.5, NULL), (2, 0, NULL, 3.5, 'x'), \
+                 (2, 1, NULL, 4.5, NULL), (2, 2, NULL, 5.5, NULL), (3, 0, NULL, 6.5, NULL), \
+                 (3, 1, NULL, 7.5, NULL); \
+             INSERT INTO baseline_lot VALUES (9, 1); \
+             INSERT INTO evaluation (sample_id, series_id, baseline_id, kind, decided_at, test, \
+                 alternative, method, family_size, level, significant, baseline_n, \
+                 baseline_mean, lot_n, lot_mean) VALUES \
+                 (2, 5, 9, 'mean', 't', 'welch', 'two-sided', 'holm', 1, 0.01, 0, 2, 1, 3, 1), \
+                 (3, 5, 9, 'spread', 't', 'f', 'two-sided', 'holm', 1, 0.01, 0, 2, 1, 2, 1);",
+        )
+        .execute(&pool)
+        .await
+        .unwrap();
+        sqlx::migrate!().run(&pool).await.unwrap();
+
+        let pending = "SELECT group_concat(sample_id) FROM pending_sample";
+        let one: Option<String> = sqlx::query_scalar(pending).fetch_one(&pool).await.unwrap();
+        assert_eq!(one.as_deref(), Some("3"));
+        let tally = "SELECT files || ' ' || lots || ' ' || measurements || ' ' || evaluations \
+                     || ' ' || outliers FROM tally";
+        let t: String = sqlx::query_scalar(tally).fetch_one(&pool).await.unwrap();
+        assert_eq!(t, "1 3 7 2 0");
+        // Every unit value came across, in (sample, seq) order.
+        let values: Vec<f64> =
+            sqlx::query_scalar("SELECT value FROM measurement ORDER BY sample_id, seq")
+                .fetch_all(&pool)
+                .await
+                .unwrap();
+        assert_eq!(values, [1.5, 2.5, 3.5, 4.5, 5.5, 6.5, 7.5]);
+
+        // The triggers keep both as rows come and go.
+        sqlx::raw_sql(
+            "INSERT INTO sample (id, lot_id, series_id, file_id, n, mean, m2, min_value, \
+                 max_value, content_digest) VALUES (4, 3, 6, 1, 4, 1, 0, 1, 1, 'd'); \
+             INSERT INTO baseline_lot VALUES (10, 3); \
+             UPDATE sample SET n = 5 WHERE id = 2; \
+             INSERT INTO lot VALUES (4, 1, 'L4', NULL, 't');",
+        )
+        .execute(&pool)
+        .await
+        .unwrap();
+        let one: Option<String> = sqlx::query_scalar(pending).fetch_one(&pool).await.unwrap();
+        assert_eq!(one.as_deref(), Some("4"));
+        let t: String = sqlx::query_scalar(tally).fetch_one(&pool).await.unwrap();
+        assert_eq!(t, "1 4 13 2 0");
+        sqlx::raw_sql("DELETE FROM baseline_lot WHERE sample_id = 3")
+            .execute(&pool)
+            .await
+            .unwrap();
+        assert_eq!(count(&pool, "SELECT COUNT(*) FROM pending_sample").await, 2);
+    }
 
     /// A database made before the digest (migration 0001 only) keeps its outbox rows when
     /// migration 0002 rebuilds the table.
