@@ -755,9 +755,10 @@ impl Store {
             .synchronous(SqliteSynchronous::Full)
             .busy_timeout(Duration::from_secs(30))
             .foreign_keys(true)
-            // 32 MiB of page cache (negative = KiB): a backfill touches the indexes of lots,
-            // files and samples at random; the default 2 MiB makes it read pages back.
-            .pragma("cache_size", "-32768")
+            // 16 MiB of page cache per connection (negative = KiB), at most four: a backfill
+            // touches the indexes of lots, files and samples at random, and the default 2 MiB
+            // makes it read pages back; 32 MiB each put a backfill's peak memory near 250 MiB.
+            .pragma("cache_size", "-16384")
             // A backfill's large statements are expected; only report them at debug level.
             .log_slow_statements(tracing::log::LevelFilter::Debug, Duration::from_secs(5));
         let pool = SqlitePoolOptions::new()
