@@ -12,6 +12,9 @@ use std::time::Duration;
 
 use serde::Deserialize;
 
+mod input;
+pub use input::{Delimiter, Encoding, Input, OUR_COLUMNS, Profile, RawInput, RawProfile, Zone};
+
 /// A configuration problem, always naming the file and the key (or the TOML position).
 #[derive(Debug, thiserror::Error)]
 pub enum ConfigError {
@@ -46,6 +49,9 @@ pub struct RawConfig {
     pub alerts: RawAlerts,
     #[serde(default)]
     pub log: RawLog,
+    /// Input profiles, `[[input.profile]]`.
+    #[serde(default)]
+    pub input: RawInput,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -152,6 +158,7 @@ pub struct Config {
     pub monitor: Monitor,
     pub alerts: Alerts,
     pub log: Log,
+    pub input: Input,
 }
 
 #[derive(Debug, Clone)]
@@ -845,6 +852,7 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
         format,
         level: level_name,
     };
+    let input = input::validate_input(&mut p, raw.input);
 
     if !p.0.is_empty() {
         return Err(ConfigError::Invalid {
@@ -859,6 +867,7 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
         monitor,
         alerts,
         log,
+        input,
     })
 }
 

@@ -20,7 +20,8 @@ use sha2::{Digest, Sha256};
 use tokio::sync::mpsc;
 use tokio_util::sync::CancellationToken;
 
-use crate::config::Paths;
+use crate::config::{Input, Paths, Profile};
+use crate::intake;
 use crate::lotfile::{self, Layout};
 use crate::stats::Summary;
 use crate::store::{FileOutcome, NewFile, NewSample, Store, StoreError};
@@ -119,6 +120,7 @@ pub fn is_ignored_name(path: &Path) -> bool {
 pub async fn ingest_files(
     store: &Store,
     paths: &Paths,
+    input: &Input,
     files: Vec<PathBuf>,
     replace: Option<&str>,
     cancel: &CancellationToken,
@@ -134,6 +136,7 @@ pub async fn ingest_files(
     }
     let (tx, mut rx) = mpsc::channel::<Vec<Prepared>>(2);
     let parse_cancel = cancel.clone();
+    let (inbox, input) = (paths.inbox.clone(), input.clone());
     let parser = tokio::task::spawn_blocking(move || {
         let mut batch = Vec::new();
         let mut values = 0usize;
@@ -141,7 +144,7 @@ pub async fn ingest_files(
             if parse_cancel.is_cancelled() {
                 break;
             }
-            let prepared = prepare(&path);
+            let prepared = prepare(&path, &inbox, &input);
             if let Prepared::Good(_, f) = &prepared {
                 values += f.samples.iter().map(|s| s.values.len()).sum::<usize>();
             }
@@ -344,7 +347,8 @@ fn read_regular(path: &Path) -> Result<Vec<u8>, ReadFailure> {
     Ok(bytes)
 }
 
-fn prepare(path: &Path) -> Prepared {
+/// Reads, hashes and parses one inbox file, with the input profile that applies to it.
+fn prepare(path: &Path, inbox: &Path, input: &Input) -> Prepared {
     let bytes = match read_regular(path) {
         Ok(b) => b,
         Err(ReadFailure::NotRegular(what)) => {
@@ -367,7 +371,7 @@ fn prepare(path: &Path) -> Prepared {
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
-    match build_file(&name, &hash, &bytes) {
+    match build_file_as(&name, &hash, &bytes, input.choose(inbox, path)) {
         Ok(f) => Prepared::Good(path.into(), f),
         Err(reason) => Prepared::Bad {
             path: path.into(),
@@ -377,12 +381,22 @@ fn prepare(path: &Path) -> Prepared {
     }
 }
 
-/// Parses and summarises one file's bytes.
+/// Parses and summarises one file's bytes (built-in dialect, or a workbook).
 pub fn build_file(name: &str, hash: &str, bytes: &[u8]) -> Result<NewFile, String> {
+    build_file_as(name, hash, bytes, None)
+}
+
+/// Parses (with `profile`, see [`intake::read`]) and summarises one file's bytes.
+pub fn build_file_as(
+    name: &str,
+    hash: &str,
+    bytes: &[u8],
+    profile: Option<&Profile>,
+) -> Result<NewFile, String> {
     if bytes.is_empty() {
         return Err("empty file: no header, no data".to_string());
     }
-    let parsed = lotfile::parse(name, bytes).map_err(|e| e.to_string())?;
+    let parsed = intake::read(name, bytes, profile).map_err(|e| e.to_string())?;
     let mut samples = Vec::with_capacity(parsed.groups.len());
     for g in parsed.groups {
         let summary = Summary::from_slice(&g.values).map_err(|e| {
@@ -706,11 +720,14 @@ mod tests {
         std::fs::write(&target, "source,lot,mass\na,1,2\n").unwrap();
         let link = dir.path().join("l.csv");
         std::os::unix::fs::symlink(&target, &link).unwrap();
-        match prepare(&link) {
+        match prepare(&link, dir.path(), &Input::default()) {
             Prepared::Bad { reason, .. } => assert!(reason.contains("symbolic link"), "{reason}"),
             _ => panic!("a link must be refused"),
         }
-        assert!(matches!(prepare(dir.path()), Prepared::Unreadable(..)));
+        assert!(matches!(
+            prepare(dir.path(), dir.path(), &Input::default()),
+            Prepared::Unreadable(..)
+        ));
     }
 
     /// The copy path of a cross-file-system move, run on one file system (the tmpfs test in

@@ -1,0 +1,135 @@
+//! Sampling times under a profile: RFC 3339 (with an offset) as the built-in dialect, local
+//! `YYYY-MM-DD HH:MM[:SS]` and the profile's `date_format` in its zone, and workbook date
+//! cells. A local time the zone's clock change made ambiguous or skipped is an error.
+
+use chrono::{DateTime, Datelike, LocalResult, NaiveDate, NaiveDateTime, NaiveTime, Utc};
+
+use super::{Cell, Ctx, describe};
+use crate::intake::{Kind, Problem};
+use crate::lotfile::{self, ErrorKind, Timestamp, found};
+
+/// Local date-time forms always accepted (besides RFC 3339 and a bare date).
+const LOCAL_FORMATS: [&str; 4] = [
+    "%Y-%m-%d %H:%M:%S%.f",
+    "%Y-%m-%dT%H:%M:%S%.f",
+    "%Y-%m-%d %H:%M",
+    "%Y-%m-%dT%H:%M",
+];
+
+/// A `sampled_at` cell; `None` when empty.
+pub(super) fn timestamp(
+    ctx: &Ctx,
+    row: u64,
+    col: usize,
+    cell: &Cell,
+) -> Result<Option<Timestamp>, Problem> {
+    let fail = |kind: Kind, message: String| ctx.problem(row, Some(col), kind, message);
+    let (local, shown) = match cell {
+        Cell::Empty => return Ok(None),
+        Cell::Date(d) if d.time() == NaiveTime::MIN => {
+            return in_range(d.and_utc(), true)
+                .map(Some)
+                .ok_or_else(|| fail(ErrorKind::BadTimestamp.into(), out_of_range(cell)));
+        }
+        Cell::Date(d) => (*d, d.format("%Y-%m-%d %H:%M:%S").to_string()),
+        Cell::Text(t) => match parse_text(t.trim(), ctx.profile.date_format.as_deref()) {
+            Parsed::Done(ts) => return Ok(Some(ts)),
+            Parsed::Local(d) => (d, t.trim().to_owned()),
+            Parsed::Bad => return Err(fail(ErrorKind::BadTimestamp.into(), expected(ctx, t))),
+        },
+        other => {
+            return Err(fail(
+                Kind::CellType,
+                format!(
+                    "expected a date cell or a date as text, found {}",
+                    describe(other)
+                ),
+            ));
+        }
+    };
+    let zone = ctx.profile.zone;
+    match zone.to_utc(&local) {
+        LocalResult::Single(utc) => in_range(utc, false)
+            .map(Some)
+            .ok_or_else(|| fail(ErrorKind::BadTimestamp.into(), out_of_range(cell))),
+        LocalResult::Ambiguous(early, late) => Err(fail(
+            Kind::AmbiguousTime,
+            format!(
+                "expected an unambiguous local time, found {} which happened twice in {zone} \
+                 (the clock went back: {} or {}); write it with an offset or in UTC",
+                found(&shown),
+                early.format("%Y-%m-%dT%H:%M:%SZ"),
+                late.format("%Y-%m-%dT%H:%M:%SZ")
+            ),
+        )),
+        LocalResult::None => Err(fail(
+            Kind::SkippedTime,
+            format!(
+                "expected an existing local time, found {} which never happened in {zone} \
+                 (the clock went forward over it)",
+                found(&shown)
+            ),
+        )),
+    }
+}
+
+enum Parsed {
+    /// Fully determined (an offset was given, or only a date).
+    Done(Timestamp),
+    /// A local date-time, still to be placed in the zone.
+    Local(NaiveDateTime),
+    Bad,
+}
+
+fn parse_text(t: &str, date_format: Option<&str>) -> Parsed {
+    if let Some(ts) = lotfile::parse_timestamp(t) {
+        return Parsed::Done(ts);
+    }
+    if let Some(d) = LOCAL_FORMATS
+        .iter()
+        .find_map(|f| NaiveDateTime::parse_from_str(t, f).ok())
+    {
+        return Parsed::Local(d);
+    }
+    let Some(f) = date_format else {
+        return Parsed::Bad;
+    };
+    if let Ok(d) = DateTime::parse_from_str(t, f) {
+        return in_range(d.with_timezone(&Utc), false).map_or(Parsed::Bad, Parsed::Done);
+    }
+    if let Ok(d) = NaiveDateTime::parse_from_str(t, f) {
+        return Parsed::Local(d);
+    }
+    match NaiveDate::parse_from_str(t, f) {
+        Ok(d) => {
+            in_range(d.and_time(NaiveTime::MIN).and_utc(), true).map_or(Parsed::Bad, Parsed::Done)
+        }
+        Err(_) => Parsed::Bad,
+    }
+}
+
+fn in_range(utc: DateTime<Utc>, date_only: bool) -> Option<Timestamp> {
+    (0..=9999)
+        .contains(&utc.year())
+        .then_some(Timestamp { utc, date_only })
+}
+
+fn out_of_range(cell: &Cell) -> String {
+    format!(
+        "expected a date in the years 0000-9999, found {}",
+        describe(cell)
+    )
+}
+
+fn expected(ctx: &Ctx, t: &str) -> String {
+    let custom = match &ctx.profile.date_format {
+        Some(f) => format!(", or {f:?} (date_format of profile {:?})", ctx.profile.name),
+        None => String::new(),
+    };
+    format!(
+        "expected a date-time such as 2026-03-01 08:30[:00] (local, in {}), RFC 3339 with an \
+         offset, or a date 2026-03-01{custom}; found {}",
+        ctx.profile.zone,
+        found(t.trim())
+    )
+}
