@@ -236,32 +236,30 @@ pub fn read(file_name: &str, bytes: &[u8], profile: Option<&Profile>) -> Result<
 
 /// For a file refused by the built-in dialect: the profile keys that would likely read it.
 fn hint_for(e: &LotFileError, bytes: &[u8]) -> Option<String> {
-    let mut keys: Vec<&str> = Vec::new();
+    let mut keys: Vec<String> = Vec::new();
     if bytes.starts_with(b"\xFF\xFE") || bytes.starts_with(b"\xFE\xFF") {
-        keys.push("encoding = \"auto\"  # UTF-16 with a byte-order mark");
-        keys.push("delimiter = \"auto\"");
+        keys.push("encoding = \"auto\"  # UTF-16 with a byte-order mark".into());
+        keys.push("delimiter = \"auto\"".into());
     } else {
-        let first = first_line(bytes);
-        let count = |b: u8| first.iter().filter(|&&c| c == b).count();
-        if count(b';') > count(b',') {
-            keys.push("delimiter = \";\"");
-            keys.push("decimal = \",\"   # if numbers are written 2,05");
-        } else if count(b'\t') > count(b',') {
-            keys.push("delimiter = \"\\t\"");
-        }
+        keys.extend(layout_hint(bytes));
     }
     match e.kind {
-        ErrorKind::BadNumber if e.message.contains(',') => keys.push("decimal = \",\""),
+        ErrorKind::BadNumber
+            if e.message.contains(',') && !keys.iter().any(|k| k.starts_with("decimal")) =>
+        {
+            keys.push("decimal = \",\"".into())
+        }
         ErrorKind::BadTimestamp => {
-            keys.push("timezone = \"Europe/Berlin\"  # the zone of times without an offset");
-            keys.push("date_format = \"%d.%m.%Y %H:%M\"  # if dates are not YYYY-MM-DD");
+            keys.push("timezone = \"Europe/Berlin\"  # the zone of times without an offset".into());
+            keys.push("date_format = \"%d.%m.%Y %H:%M\"  # if dates are not YYYY-MM-DD".into());
         }
         ErrorKind::Encoding if !keys.iter().any(|k| k.starts_with("encoding")) => {
-            keys.push("encoding = \"windows-1252\"  # or the encoding the station writes");
+            keys.push("encoding = \"windows-1252\"  # or the encoding the station writes".into());
         }
         ErrorKind::MissingColumn | ErrorKind::UnknownColumn if keys.is_empty() => {
             keys.push(
-                "[input.profile.columns]  # our name = their header, e.g. lot = \"Batch No.\"",
+                "[input.profile.columns]  # our name = their header, e.g. lot = \"Batch No.\""
+                    .into(),
             );
         }
         _ => {}
@@ -278,13 +276,39 @@ fn hint_for(e: &LotFileError, bytes: &[u8]) -> Option<String> {
     ))
 }
 
-/// The first line that is not a comment or blank, at most 4 KiB.
-fn first_line(bytes: &[u8]) -> &[u8] {
+/// Delimiter and header line suggested by the first lines of a text file: the most frequent
+/// of ';' and tab (when more frequent than ','), and the first line that has the most of it.
+fn layout_hint(bytes: &[u8]) -> Vec<String> {
     let data = bytes.strip_prefix(b"\xEF\xBB\xBF").unwrap_or(bytes);
-    data.split(|&b| b == b'\n')
-        .find(|l| !l.starts_with(b"#") && !l.trim_ascii().is_empty())
-        .map(|l| &l[..l.len().min(4096)])
-        .unwrap_or_default()
+    let lines: Vec<&[u8]> = data.split(|&b| b == b'\n').take(20).collect();
+    let count = |l: &[u8], d: u8| l.iter().filter(|&&c| c == d).count();
+    let total = |d: u8| lines.iter().map(|l| count(l, d)).sum::<usize>();
+    let (comma, semicolon, tab) = (total(b','), total(b';'), total(b'\t'));
+    let (delimiter, keys): (u8, &[&'static str]) = if semicolon > comma && semicolon >= tab {
+        (
+            b';',
+            &[
+                "delimiter = \";\"",
+                "decimal = \",\"   # if numbers are written 2,05",
+            ],
+        )
+    } else if tab > comma {
+        (b'\t', &["delimiter = \"\\t\""])
+    } else {
+        (b',', &[])
+    };
+    let mut out: Vec<String> = keys.iter().map(|k| k.to_string()).collect();
+    let most = lines.iter().map(|l| count(l, delimiter)).max().unwrap_or(0);
+    let header = lines
+        .iter()
+        .position(|l| most > 0 && count(l, delimiter) == most);
+    if let Some(i) = header.filter(|&i| i > 0) {
+        out.push(format!(
+            "header_row = {}   # the lines above the header are skipped",
+            i + 1
+        ));
+    }
+    out
 }
 
 #[cfg(test)]
