@@ -86,7 +86,7 @@ pub fn check(file_name: &str, bytes: &[u8], profile: Option<&Profile>) -> FileCh
     };
     if bytes.is_empty() {
         out.problems.push(ProblemCheck::from(&Problem {
-            file: file_name.to_owned(),
+            file: file_name.into(),
             place: Place::File,
             column_name: None,
             kind: super::Kind::Lot(crate::lotfile::ErrorKind::NoData),
@@ -178,7 +178,9 @@ impl From<&Problem> for ProblemCheck {
         let (line, sheet, row, column) = match &p.place {
             Place::File => (None, None, None, None),
             Place::Line { line, column } => (Some(*line), None, None, *column),
-            Place::Cell { sheet, row, column } => (None, Some(sheet.clone()), Some(*row), *column),
+            Place::Cell { sheet, row, column } => {
+                (None, Some(sheet.to_string()), Some(*row), *column)
+            }
         };
         ProblemCheck {
             position: p.position(),

@@ -21,6 +21,7 @@ mod text;
 mod workbook;
 
 use std::fmt;
+use std::sync::Arc;
 
 use crate::config::Profile;
 use crate::lotfile::{self, ErrorKind, LotFile, LotFileError};
@@ -82,7 +83,7 @@ pub enum Place {
     Line { line: u64, column: Option<u64> },
     /// A workbook: sheet, 1-based row and column as the spreadsheet shows them.
     Cell {
-        sheet: String,
+        sheet: Arc<str>,
         row: u64,
         column: Option<u64>,
     },
@@ -91,7 +92,7 @@ pub enum Place {
 /// One problem of a refused file.
 #[derive(Debug, Clone, PartialEq, Eq)]
 pub struct Problem {
-    pub file: String,
+    pub file: Arc<str>,
     pub place: Place,
     /// The header text of the column, when known.
     pub column_name: Option<String>,
@@ -147,7 +148,7 @@ impl fmt::Display for Problem {
 impl From<LotFileError> for Problem {
     fn from(e: LotFileError) -> Problem {
         Problem {
-            file: e.file,
+            file: e.file.into(),
             place: Place::Line {
                 line: e.line,
                 column: e.column,
@@ -245,7 +246,10 @@ fn hint_for(e: &LotFileError, bytes: &[u8]) -> Option<String> {
     }
     match e.kind {
         ErrorKind::BadNumber
-            if e.message.contains(',') && !keys.iter().any(|k| k.starts_with("decimal")) =>
+            if e.message
+                .rsplit_once("found ")
+                .is_some_and(|(_, f)| f.contains(','))
+                && !keys.iter().any(|k| k.starts_with("decimal")) =>
         {
             keys.push("decimal = \",\"".into())
         }

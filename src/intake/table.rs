@@ -76,13 +76,13 @@ impl Ctx<'_> {
         let place = match &self.table.origin {
             Origin::Text => Place::Line { line: row, column },
             Origin::Sheet(sheet) => Place::Cell {
-                sheet: sheet.clone(),
+                sheet: sheet.as_str().into(),
                 row,
                 column,
             },
         };
         Problem {
-            file: self.file.to_owned(),
+            file: self.file.into(),
             place,
             column_name: col.and_then(|c| self.names.get(c)).cloned(),
             kind,

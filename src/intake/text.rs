@@ -16,7 +16,7 @@ const AUTO_DELIMITERS: [u8; 4] = [b';', b'\t', b',', b'|'];
 
 fn problem(file: &str, line: u64, kind: Kind, message: String) -> Problem {
     Problem {
-        file: file.to_owned(),
+        file: file.into(),
         place: Place::Line { line, column: None },
         column_name: None,
         kind,

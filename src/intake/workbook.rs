@@ -14,7 +14,7 @@ use crate::lotfile::ErrorKind;
 
 fn problem(file: &str, place: Place, kind: Kind, message: String) -> Problem {
     Problem {
-        file: file.to_owned(),
+        file: file.into(),
         place,
         column_name: None,
         kind,
@@ -120,7 +120,7 @@ fn to_table(
         return Err(problem(
             file,
             Place::Cell {
-                sheet: sheet.to_owned(),
+                sheet: sheet.into(),
                 row: h as u64,
                 column: None,
             },

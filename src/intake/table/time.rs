@@ -16,6 +16,9 @@ const LOCAL_FORMATS: [&str; 4] = [
     "%Y-%m-%dT%H:%M",
 ];
 
+/// Date-times with an offset but without seconds (RFC 3339 needs them).
+const OFFSET_FORMATS: [&str; 2] = ["%Y-%m-%d %H:%M%#z", "%Y-%m-%dT%H:%M%#z"];
+
 /// A `sampled_at` cell; `None` when empty.
 pub(super) fn timestamp(
     ctx: &Ctx,
@@ -84,6 +87,12 @@ enum Parsed {
 fn parse_text(t: &str, date_format: Option<&str>) -> Parsed {
     if let Some(ts) = lotfile::parse_timestamp(t) {
         return Parsed::Done(ts);
+    }
+    if let Some(d) = OFFSET_FORMATS
+        .iter()
+        .find_map(|f| DateTime::parse_from_str(t, f).ok())
+    {
+        return in_range(d.with_timezone(&Utc), false).map_or(Parsed::Bad, Parsed::Done);
     }
     if let Some(d) = LOCAL_FORMATS
         .iter()
