@@ -1130,6 +1130,30 @@ repeat_hours = 24        # announce a still-shifting open alert again after this
 [log]
 format = "text"          # "text" or "json"
 level = "info"
+
+# Input profiles: how a station's or supplier's files look, when not like the built-in dialect
+# (UTF-8, ',' separated, '.' decimals, RFC 3339 times, our column names). Chosen per file by
+# a glob on its name (match) or the inbox subfolder it is dropped in (folder); the first
+# profile that matches wins. Workbooks (.xlsx, .xlsm, .xlsb, .xls, .ods) are read without one.
+# `lotdrift check-file FILE` shows how a file would be read, and stores nothing.
+# [[input.profile]]
+# name = "birchworks-lab"
+# match = "birchworks_*"          # glob on the file name (case-insensitive); or folder = "birchworks"
+# delimiter = ";"                 # "," ";" "\t" "|" or "auto" (from the header line)
+# decimal = ","                   # "." or ","
+# encoding = "auto"               # "auto" (BOM: UTF-8/UTF-16LE/UTF-16BE, else UTF-8), "windows-1252", ...
+# timezone = "Europe/Berlin"      # of date-times without an offset; default: the machine's zone
+# date_format = "%d.%m.%Y %H:%M"  # besides RFC 3339 and YYYY-MM-DD HH:MM[:SS]
+# header_row = 3                  # lines (rows) above the header are skipped
+# sheet = "Messwerte"             # workbooks: the sheet (default: the first)
+# ignore = ["Operator"]           # their columns to skip
+# [input.profile.columns]         # our name = their column header (case-insensitive)
+# source = "Supplier"             # or a fixed source for every row: source = "birchworks" above
+# lot = "Batch No."
+# unit = "Serial"
+# sampled_at = "Date"
+# [input.profile.characteristics] # their column (or characteristic) = our characteristic
+# "Capacity [mAh]" = "capacity_mah"
 "#;
 
 #[cfg(test)]

@@ -60,7 +60,7 @@ pub const OUR_COLUMNS: [&str; 6] = [
 ];
 
 /// How to read the files of one station.
-#[derive(Debug, Clone)]
+#[derive(Clone)]
 pub struct Profile {
     pub name: String,
     /// Glob on the file name (case-insensitive).
@@ -129,6 +129,36 @@ impl fmt::Display for Zone {
             Zone::Named(tz) => f.write_str(tz.name()),
             Zone::Machine => f.write_str("the machine's time zone"),
         }
+    }
+}
+
+/// Readable in `check-config`: the settings as written, not the glob's tokens.
+impl fmt::Debug for Profile {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        let delimiter = match self.delimiter {
+            Delimiter::Byte(b) => char::from(b).escape_default().to_string(),
+            Delimiter::Auto => "auto".to_owned(),
+        };
+        let encoding = match self.encoding {
+            Encoding::Auto => "auto",
+            Encoding::Fixed(e) => e.name(),
+        };
+        f.debug_struct("Profile")
+            .field("name", &self.name)
+            .field("match", &self.pattern.as_ref().map(glob::Pattern::as_str))
+            .field("folder", &self.folder)
+            .field("delimiter", &delimiter)
+            .field("decimal", &char::from(self.decimal))
+            .field("encoding", &encoding)
+            .field("timezone", &self.zone.to_string())
+            .field("date_format", &self.date_format)
+            .field("header_row", &self.header_row)
+            .field("sheet", &self.sheet)
+            .field("source", &self.source)
+            .field("ignore", &self.ignore)
+            .field("columns", &self.columns)
+            .field("characteristics", &self.characteristics)
+            .finish()
     }
 }
 
@@ -413,6 +443,93 @@ fn check_names(p: &mut Problems, key: &dyn Fn(&str) -> String, profile: &Profile
                 &key(&format!("characteristics.{theirs:?}")),
                 "needs a non-empty column header and characteristic name",
             );
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use std::path::Path;
+
+    use super::super::{Config, STARTER};
+    use super::*;
+
+    /// The starter file's commented profile, uncommented.
+    fn uncommented_profile() -> String {
+        let start = STARTER
+            .find("# [[input.profile]]")
+            .expect("a commented profile");
+        let mut text = String::new();
+        for line in STARTER[start..].lines() {
+            text.push_str(line.strip_prefix("# ").unwrap_or(line));
+            text.push('\n');
+        }
+        text
+    }
+
+    #[test]
+    fn the_commented_profile_is_valid_when_uncommented() {
+        let text = format!(
+            "{}\n{}",
+            &STARTER[..STARTER.find("# [[input").unwrap()],
+            uncommented_profile()
+        );
+        let c = Config::from_toml(Path::new("/etc/lotdrift/lotdrift.toml"), &text).unwrap();
+        let p = &c.input.profiles[0];
+        assert_eq!(p.delimiter, Delimiter::Byte(b';'));
+        assert_eq!(p.decimal, b',');
+        assert_eq!(p.zone, Zone::Named(chrono_tz::Europe::Berlin));
+        assert_eq!(p.header_row, Some(3));
+        assert_eq!(p.columns["lot"], "Batch No.");
+        assert_eq!(p.characteristics["Capacity [mAh]"], "capacity_mah");
+        let inbox = Path::new("/in");
+        assert!(
+            c.input
+                .choose(inbox, Path::new("/in/BIRCHWORKS_7.csv"))
+                .is_some()
+        );
+        assert!(
+            c.input
+                .choose(inbox, Path::new("/in/sub/birchworks_7.csv"))
+                .is_some()
+        );
+        assert!(
+            c.input
+                .choose(inbox, Path::new("/in/alder_7.csv"))
+                .is_none()
+        );
+    }
+
+    #[test]
+    fn folder_profiles_match_the_first_folder_below_the_inbox() {
+        let text = "[[input.profile]]\nname = \"a\"\nfolder = \"cedar\"\n\
+                    [[input.profile]]\nname = \"b\"\nmatch = \"*.csv\"\n";
+        let c = Config::from_toml(Path::new("/x/lotdrift.toml"), text).unwrap();
+        let inbox = Path::new("/x/inbox");
+        let name = |p: &str| c.input.choose(inbox, Path::new(p)).map(|p| p.name.clone());
+        assert_eq!(name("/x/inbox/cedar/2026/f.csv").as_deref(), Some("a"));
+        assert_eq!(name("/x/inbox/cedar.csv").as_deref(), Some("b"));
+        assert_eq!(name("/x/inbox/other/f.txt"), None);
+        // Outside the inbox only the name counts.
+        assert_eq!(name("/tmp/cedar/f.txt"), None);
+    }
+
+    #[test]
+    fn bad_profiles_name_their_keys() {
+        let text = "[[input.profile]]\nname = \"x\"\nmatch = \"[\"\ndecimal = \",\"\n\
+                    [[input.profile]]\nname = \"x\"\nfolder = \"a/b\"\nsource = \"s\"\n\
+                    [input.profile.columns]\nsource = \"Supplier\"\n";
+        let err = Config::from_toml(Path::new("/x/lotdrift.toml"), text)
+            .unwrap_err()
+            .to_string();
+        for want in [
+            "input.profile[x].match: \"[\" is not a glob pattern",
+            "input.profile[x].decimal: \",\" needs another delimiter",
+            "input.profile[x].folder: \"a/b\" must be the name of one folder",
+            "input.profile[x].source: set either source",
+            "input.profile[x].name: is used by an earlier profile",
+        ] {
+            assert!(err.contains(want), "{want} missing in {err}");
         }
     }
 }
