@@ -97,7 +97,8 @@ pub enum Delimiter {
 
 #[derive(Debug, Clone, Copy, PartialEq, Eq)]
 pub enum Encoding {
-    /// A byte-order mark (UTF-8, UTF-16LE, UTF-16BE) if present, else UTF-8.
+    /// A byte-order mark (UTF-8, UTF-16LE, UTF-16BE) if present, else UTF-16 when the first
+    /// characters are ASCII with zero bytes between them, else UTF-8.
     Auto,
     Fixed(&'static encoding_rs::Encoding),
 }

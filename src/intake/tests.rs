@@ -77,6 +77,11 @@ fn auto_delimiter_and_utf16_in_both_byte_orders() {
         let f = ok(&p, &utf16(text, be));
         assert_eq!(f.groups[0].values, vec![1.5]);
     }
+    // Without a byte-order mark, "auto" tells UTF-16 by the zero bytes of ASCII text.
+    for be in [false, true] {
+        let f = ok(&p, &utf16(text, be)[2..]);
+        assert_eq!(f.groups[0].values, vec![1.5]);
+    }
     let e = fail(&p, b"just one column\nx\n");
     assert_eq!(e.problems[0].kind, Kind::Delimiter);
 }

@@ -82,7 +82,7 @@ fn decode<'a>(file: &str, bytes: &'a [u8], profile: &Profile) -> Result<Cow<'a, 
     let bom = encoding_rs::Encoding::for_bom(bytes);
     let (encoding, body) = match (profile.encoding, bom) {
         (Encoding::Auto, Some((enc, n))) => (enc, &bytes[n..]),
-        (Encoding::Auto, None) => (UTF_8, bytes),
+        (Encoding::Auto, None) => (sniff_utf16(bytes).unwrap_or(UTF_8), bytes),
         (Encoding::Fixed(enc), Some((b, n))) if b == enc => (enc, &bytes[n..]),
         (Encoding::Fixed(enc), _) => (enc, bytes),
     };
@@ -117,6 +117,24 @@ fn decode<'a>(file: &str, bytes: &'a [u8], profile: &Profile) -> Result<Cow<'a, 
         ));
     }
     Ok(Cow::Owned(text.into_owned()))
+}
+
+/// UTF-16 without a byte-order mark, told by the zero bytes of ASCII text in the first
+/// characters: `x\0y\0` is little-endian, `\0x\0y` big-endian.
+fn sniff_utf16(bytes: &[u8]) -> Option<&'static encoding_rs::Encoding> {
+    let head = &bytes[..bytes.len().min(64) & !1];
+    if head.len() < 4 {
+        return None;
+    }
+    let zeros = |offset: usize| head.iter().skip(offset).step_by(2).all(|&b| b == 0);
+    let text = |offset: usize| head.iter().skip(offset).step_by(2).all(|&b| b != 0);
+    if zeros(1) && text(0) {
+        Some(encoding_rs::UTF_16LE)
+    } else if zeros(0) && text(1) {
+        Some(encoding_rs::UTF_16BE)
+    } else {
+        None
+    }
 }
 
 /// Byte offset where 1-based line `n` starts.
