@@ -13,6 +13,8 @@ use std::time::Duration;
 use serde::Deserialize;
 
 mod input;
+/// The decoder type of [`Encoding::Fixed`] (re-exported so callers need no encoding_rs).
+pub use encoding_rs::Encoding as EncodingRs;
 pub use input::{Delimiter, Encoding, Input, OUR_COLUMNS, Profile, RawInput, RawProfile, Zone};
 
 /// A configuration problem, always naming the file and the key (or the TOML position).
