@@ -302,3 +302,44 @@ proptest! {
         }
     }
 }
+
+/// Prints the profile reader's speed beside the built-in parser's on the same 40,000 rows
+/// (`cargo test --lib intake::tests::throughput -- --nocapture`); asserts only the counts.
+#[test]
+fn throughput_40k_rows_against_the_built_in_parser() {
+    let mut builtin = String::from("source,lot,unit,sampled_at,capacity_mah,mass_g\n");
+    for i in 0..40_000 {
+        builtin.push_str(&format!(
+            "birchworks,BW-{},S{i:06},2026-03-02T08:{:02}:00Z,{}.{},{}.{}\n",
+            i / 500,
+            i % 60,
+            3000 + i % 17,
+            i % 10,
+            45 + i % 3,
+            i % 7
+        ));
+    }
+    let profiled = builtin
+        .replace(',', ";")
+        .replace('.', ",")
+        .replace("Z;", ";");
+    let p = Profile {
+        delimiter: Delimiter::Byte(b';'),
+        decimal: b',',
+        ..profile()
+    };
+    let timed = |f: &dyn Fn() -> LotFile| {
+        let start = std::time::Instant::now();
+        let lots = f();
+        (lots, start.elapsed().as_secs_f64())
+    };
+    let (a, a_secs) = timed(&|| crate::lotfile::parse("b.csv", builtin.as_bytes()).unwrap());
+    let (b, b_secs) = timed(&|| ok(&p, profiled.as_bytes()));
+    assert_eq!((a.rows, a.values), (40_000, 80_000));
+    assert_eq!((b.rows, b.values), (a.rows, a.values));
+    println!(
+        "40,000 rows: built-in {:.0} rows/s, profile (';', decimal ',', local times) {:.0} rows/s",
+        40_000.0 / a_secs,
+        40_000.0 / b_secs
+    );
+}
