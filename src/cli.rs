@@ -663,7 +663,7 @@ async fn replace(store: &Store, config: &Config, file: &Path, reason: &str) -> R
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
-    let profile = config.input.choose(&config.paths.inbox, file);
+    let profile = check_file::profile_for(config, file);
     let parsed = ingest::build_file_as(&name, &ingest::content_hash(&bytes), &bytes, profile)
         .map_err(|e| Failure::Runtime(anyhow::anyhow!("{e}")))?;
     let outcome = store

@@ -322,6 +322,13 @@ fn check_file_prints_what_would_be_stored_or_every_problem_and_stores_nothing() 
         "{}",
         text(&out.stderr)
     );
+    // Inside the inbox the subfolder selects the profile, however the path is written.
+    std::fs::create_dir_all(site.inbox().join("cedar")).unwrap();
+    std::fs::copy(fixture("cedar_ansi.csv"), site.inbox().join("cedar/c.csv")).unwrap();
+    let out = site.run(&["check-file", "./inbox/../inbox/cedar/c.csv", "--json"]);
+    assert!(out.status.success(), "{}", text(&out.stdout));
+    let v: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    assert_eq!(v["profile"], "cedar-ansi");
     assert!(
         !site.path().join("lotdrift.db").exists(),
         "check-file stores nothing"

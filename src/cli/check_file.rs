@@ -6,7 +6,7 @@ use std::path::Path;
 use anyhow::Context as _;
 
 use super::Failure;
-use crate::config::Config;
+use crate::config::{Config, Profile};
 use crate::intake::{self, check::FileCheck};
 
 /// Reads `file` with the profile `name` (or the one the file would get in the inbox) and
@@ -35,7 +35,7 @@ pub(super) fn run(
                 }
             ))
         })?),
-        None => config.input.choose(&config.paths.inbox, file),
+        None => profile_for(config, file),
     };
     let bytes = std::fs::read(file).with_context(|| format!("reading {}", file.display()))?;
     let file_name = file
@@ -57,6 +57,13 @@ pub(super) fn run(
             check.problems.len() + check.more_problems
         )))
     }
+}
+
+/// The profile a file gets: by its name and, inside the inbox, its subfolder (paths compared
+/// after resolving `.`, `..` and links, so `./site/inbox/cedar/x.csv` finds `folder = "cedar"`).
+pub(super) fn profile_for<'c>(config: &'c Config, file: &Path) -> Option<&'c Profile> {
+    let real = |p: &Path| std::fs::canonicalize(p).unwrap_or_else(|_| p.to_path_buf());
+    config.input.choose(&real(&config.paths.inbox), &real(file))
 }
 
 fn print_text(c: &FileCheck) {
