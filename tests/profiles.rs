@@ -426,3 +426,36 @@ fn the_daemon_takes_files_renamed_into_a_profile_subfolder() {
     assert!(status.success());
     assert_eq!(site.files_in("archive").len(), 1);
 }
+
+#[test]
+fn an_opendocument_sheet_reads_like_a_workbook() {
+    let site = Site::new(
+        "[[input.profile]]\nname = \"cedar-ods\"\nmatch = \"*.ods\"\ntimezone = \"Europe/Berlin\"\n",
+    );
+    drop_fixture(&site, None, "cedar_sheet.ods");
+    drop_fixture(&site, None, "cedar_sheet_bad.ods");
+    site.once();
+    let status = site.status();
+    assert_eq!(
+        (
+            &status["lots"],
+            &status["measurements"],
+            &status["quarantined"]
+        ),
+        (
+            &serde_json::json!(1),
+            &serde_json::json!(4),
+            &serde_json::json!(1)
+        ),
+        "{status}"
+    );
+    let hist = site.json(&["history", "cedar-energy", "capacity_mah"]);
+    // 09:00 in Berlin in July (CEST) is 07:00 UTC.
+    assert_eq!(hist[0]["sampled_at"], "2026-07-01T07:00:00.000Z", "{hist}");
+    assert!((hist[0]["mean"].as_f64().unwrap() - 2991.5).abs() < 1e-9);
+    let r = reason(&site, "cedar_sheet_bad.ods");
+    assert!(
+        r.contains("cedar_sheet_bad.ods: Pruefung!D4 (column value): expected a numeric cell, found text \"tbd\""),
+        "{r}"
+    );
+}

@@ -2,7 +2,8 @@
 """Writes the input-profile fixtures of tests/profiles.rs, each the way a station writes it.
 
 Run from anywhere: python3 tests/data/profiles/make_fixtures.py
-Needs XlsxWriter (pip install xlsxwriter; written with 3.3.1). Output is deterministic:
+Needs XlsxWriter (pip install xlsxwriter; written with 3.3.1) and odfpy (pip install odfpy;
+written with 1.4.1) for the OpenDocument sheet. Output is deterministic:
 workbooks get a fixed creation date, text files are encoded by Python's codecs.
 
 Invented suppliers: alder-cells, birchworks, cedar-energy. Local times are Europe/Berlin.
@@ -11,8 +12,12 @@ import csv
 import datetime as dt
 import io
 import os
+import zipfile
 
 import xlsxwriter
+from odf.opendocument import OpenDocumentSpreadsheet
+from odf.table import Table, TableCell, TableRow
+from odf.text import P
 
 HERE = os.path.dirname(os.path.abspath(__file__))
 
@@ -101,6 +106,50 @@ def workbook(name, date_1904=False, bad=False):
     wb.close()
 
 
+# 5. cedar-energy: an OpenDocument sheet (long layout, our column names): float cells, date
+#    cells as the format stores them (ISO text), a text cell where a number belongs when bad.
+def ods(name, bad=False):
+    doc = OpenDocumentSpreadsheet()
+    table = Table(name="Pruefung")
+
+    def row(cells):
+        tr = TableRow()
+        for c in cells:
+            if isinstance(c, float):
+                cell = TableCell(valuetype="float", value=c)
+                cell.addElement(P(text=str(c)))
+            elif isinstance(c, dt.datetime):
+                cell = TableCell(valuetype="date", datevalue=c.strftime("%Y-%m-%dT%H:%M:%S"))
+                cell.addElement(P(text=c.strftime("%d.%m.%Y %H:%M")))
+            else:
+                cell = TableCell(valuetype="string")
+                cell.addElement(P(text=c))
+            tr.addElement(cell)
+        table.addElement(tr)
+
+    row(["source", "characteristic", "lot", "value", "sampled_at", "unit"])
+    for i in range(4):
+        value = "tbd" if bad and i == 2 else 2990.0 + i
+        row(["cedar-energy", "capacity_mah", "CE-9", value, dt.datetime(2026, 7, 1, 9, i), f"C{i}"])
+    doc.spreadsheet.addElement(table)
+    path = os.path.join(HERE, name)
+    doc.save(path)
+    fix_zip_times(path)
+
+
+def fix_zip_times(path):
+    """odfpy stamps the zip entries with the time of writing: fixed here, so the file is
+    the same on every run."""
+    with zipfile.ZipFile(path) as z:
+        entries = [(i, z.read(i.filename)) for i in z.infolist()]
+    with zipfile.ZipFile(path, "w") as z:
+        for info, data in entries:
+            fixed = zipfile.ZipInfo(info.filename, date_time=(2026, 3, 1, 12, 0, 0))
+            fixed.compress_type = info.compress_type
+            fixed.external_attr = info.external_attr
+            z.writestr(fixed, data)
+
+
 write("birchworks_2026-03-29.csv", birchworks(False))
 write("birchworks_2026-03-29_bad.csv", birchworks(True))
 write("alder_unicode.txt", alder_unicode(False))
@@ -110,3 +159,5 @@ write("cedar_ansi_bad.csv", cedar(True))
 workbook("alder_cells.xlsx")
 workbook("alder_cells_1904.xlsx", date_1904=True)
 workbook("alder_cells_bad.xlsx", bad=True)
+ods("cedar_sheet.ods")
+ods("cedar_sheet_bad.ods", bad=True)
