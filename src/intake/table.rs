@@ -193,55 +193,20 @@ fn header_names(ctx: &Ctx) -> Result<Vec<String>, Problem> {
 }
 
 fn columns(ctx: &Ctx) -> Result<Columns, Problem> {
-    let names = &ctx.names;
-    let header_text = found(&names.join(","));
-    let find = |want: &str| names.iter().position(|n| n.eq_ignore_ascii_case(want));
-    let col_of = |ours: &str| -> Result<Option<usize>, Problem> {
-        match ctx.profile.columns.get(ours) {
-            None => Ok(find(ours)),
-            Some(theirs) => find(theirs).map(Some).ok_or_else(|| {
-                ctx.header_problem(
-                    None,
-                    ErrorKind::MissingColumn,
-                    format!(
-                        "expected a column {} ({}), found header {header_text}",
-                        found(theirs),
-                        ctx.key(&format!("columns.{ours}"))
-                    ),
-                )
-            }),
-        }
-    };
-    let mut skipped: Vec<usize> = (0..names.len())
-        .filter(|&c| {
-            ctx.profile
-                .ignore
-                .iter()
-                .any(|i| i.eq_ignore_ascii_case(&names[c]))
-        })
-        .collect();
-    let source = match &ctx.profile.source {
-        Some(_) => {
-            skipped.extend(find("source"));
-            None
-        }
-        None => col_of("source")?,
-    };
-    let (lot, characteristic, value) =
-        (col_of("lot")?, col_of("characteristic")?, col_of("value")?);
-    let (unit, sampled_at) = (col_of("unit")?, col_of("sampled_at")?);
-    let long = characteristic.is_some() || value.is_some();
+    let header_text = found(&ctx.names.join(","));
+    let mut cols = locate(ctx, &header_text)?;
+    let long = cols.layout == Layout::Long;
     let mut missing: Vec<&str> = Vec::new();
-    if source.is_none() && ctx.profile.source.is_none() {
+    if cols.source.is_none() && ctx.profile.source.is_none() {
         missing.push("source");
     }
-    if lot.is_none() {
+    if cols.lot == usize::MAX {
         missing.push("lot");
     }
-    if long && characteristic.is_none() {
+    if long && cols.characteristic.is_none() {
         missing.push("characteristic");
     }
-    if long && value.is_none() {
+    if long && cols.value.is_none() {
         missing.push("value");
     }
     if !missing.is_empty() {
@@ -256,38 +221,90 @@ fn columns(ctx: &Ctx) -> Result<Columns, Problem> {
             ),
         ));
     }
-    let used = [source, lot, characteristic, value, unit, sampled_at];
-    let rest: Vec<usize> = (0..names.len())
-        .filter(|c| !used.contains(&Some(*c)) && !skipped.contains(c))
-        .collect();
-    let mut cols = Columns {
-        layout: if long { Layout::Long } else { Layout::Wide },
-        width: names.len(),
-        source,
-        lot: lot.unwrap_or_default(),
-        characteristic,
-        value,
-        unit,
-        sampled_at,
-        wide: Vec::new(),
-    };
-    if long {
-        if let Some(&c) = rest.first() {
-            return Err(ctx.header_problem(
-                Some(c),
-                ErrorKind::UnknownColumn,
-                format!(
-                    "expected only the long-layout columns, found unknown column {} \
-                     (map it in [input.profile.columns] or list it in {})",
-                    found(&names[c]),
-                    ctx.key("ignore")
-                ),
-            ));
-        }
-    } else {
+    let rest = unused_columns(ctx, &cols);
+    if !long {
         cols.wide = wide_columns(ctx, &rest, &header_text)?;
+    } else if let Some(&c) = rest.first() {
+        return Err(ctx.header_problem(
+            Some(c),
+            ErrorKind::UnknownColumn,
+            format!(
+                "expected only the long-layout columns, found unknown column {} \
+                 (map it in [input.profile.columns] or list it in {})",
+                found(&ctx.names[c]),
+                ctx.key("ignore")
+            ),
+        ));
     }
     Ok(cols)
+}
+
+/// Our columns in the header (their names where the profile maps them); `lot` is
+/// `usize::MAX` when absent. A mapped column that is missing is an error.
+fn locate(ctx: &Ctx, header_text: &str) -> Result<Columns, Problem> {
+    let find = |want: &str| ctx.names.iter().position(|n| n.eq_ignore_ascii_case(want));
+    let col_of = |ours: &str| -> Result<Option<usize>, Problem> {
+        let Some(theirs) = ctx.profile.columns.get(ours) else {
+            return Ok(find(ours));
+        };
+        find(theirs).map(Some).ok_or_else(|| {
+            ctx.header_problem(
+                None,
+                ErrorKind::MissingColumn,
+                format!(
+                    "expected a column {} ({}), found header {header_text}",
+                    found(theirs),
+                    ctx.key(&format!("columns.{ours}"))
+                ),
+            )
+        })
+    };
+    let source = match ctx.profile.source {
+        Some(_) => None,
+        None => col_of("source")?,
+    };
+    let (characteristic, value) = (col_of("characteristic")?, col_of("value")?);
+    Ok(Columns {
+        layout: if characteristic.is_some() || value.is_some() {
+            Layout::Long
+        } else {
+            Layout::Wide
+        },
+        width: ctx.names.len(),
+        source,
+        lot: col_of("lot")?.unwrap_or(usize::MAX),
+        characteristic,
+        value,
+        unit: col_of("unit")?,
+        sampled_at: col_of("sampled_at")?,
+        wide: Vec::new(),
+    })
+}
+
+/// Columns that are neither ours nor skipped (`ignore`, and a `source` column under a fixed
+/// source), in header order.
+fn unused_columns(ctx: &Ctx, cols: &Columns) -> Vec<usize> {
+    let used = [
+        cols.source,
+        Some(cols.lot),
+        cols.characteristic,
+        cols.value,
+        cols.unit,
+        cols.sampled_at,
+    ];
+    let skipped = |c: usize| {
+        let name = &ctx.names[c];
+        let fixed_source = ctx.profile.source.is_some() && name.eq_ignore_ascii_case("source");
+        fixed_source
+            || ctx
+                .profile
+                .ignore
+                .iter()
+                .any(|i| i.eq_ignore_ascii_case(name))
+    };
+    (0..ctx.names.len())
+        .filter(|&c| !used.contains(&Some(c)) && !skipped(c))
+        .collect()
 }
 
 /// The characteristic columns of a wide header, named by the profile's map or their header.
@@ -481,9 +498,10 @@ use time::timestamp;
 #[derive(Default)]
 struct Builder {
     groups: Vec<Group>,
-    ids: HashMap<(String, String, String), usize>,
-    /// (group, unit) → row of its first measurement.
-    seen: HashMap<(usize, String), u64>,
+    /// source → lot → characteristic → group (looked up without allocating).
+    ids: HashMap<String, HashMap<String, HashMap<String, usize>>>,
+    /// Per group: unit → row of its first measurement.
+    seen: Vec<HashMap<String, u64>>,
     rows: usize,
     values: usize,
 }
@@ -504,20 +522,7 @@ impl Builder {
         self.rows += 1;
         let mut first = None;
         for (characteristic, value) in parsed.values {
-            let key = (parsed.source.clone(), parsed.lot.clone(), characteristic);
-            let next = self.groups.len();
-            let g = *self.ids.entry(key.clone()).or_insert_with(|| next);
-            if g == next {
-                self.groups.push(Group {
-                    source: key.0,
-                    lot: key.1,
-                    characteristic: key.2,
-                    values: Vec::new(),
-                    units: Vec::new(),
-                    sampled_at: Vec::new(),
-                    first_line: row.number,
-                });
-            }
+            let g = self.group(&parsed.source, &parsed.lot, characteristic, row.number);
             // Wide rows measure one unit for all characteristics: checked on the first.
             if first.is_none() || cols.layout == Layout::Long {
                 first = Some(g);
@@ -533,6 +538,36 @@ impl Builder {
         Ok(())
     }
 
+    /// The group of (source, lot, characteristic), created at `line` when new.
+    fn group(&mut self, source: &str, lot: &str, characteristic: String, line: u64) -> usize {
+        let known = self
+            .ids
+            .get(source)
+            .and_then(|lots| lots.get(lot))
+            .and_then(|chars| chars.get(&characteristic));
+        if let Some(&g) = known {
+            return g;
+        }
+        let g = self.groups.len();
+        self.ids
+            .entry(source.to_owned())
+            .or_default()
+            .entry(lot.to_owned())
+            .or_default()
+            .insert(characteristic.clone(), g);
+        self.groups.push(Group {
+            source: source.to_owned(),
+            lot: lot.to_owned(),
+            characteristic,
+            values: Vec::new(),
+            units: Vec::new(),
+            sampled_at: Vec::new(),
+            first_line: line,
+        });
+        self.seen.push(HashMap::new());
+        g
+    }
+
     fn check_repeat(
         &mut self,
         ctx: &Ctx,
@@ -542,8 +577,8 @@ impl Builder {
         at: u64,
     ) -> Result<(), Problem> {
         let Some(unit) = unit else { return Ok(()) };
-        let Some(&before) = self.seen.get(&(g, unit.to_owned())) else {
-            self.seen.insert((g, unit.to_owned()), at);
+        let Some(&before) = self.seen[g].get(unit) else {
+            self.seen[g].insert(unit.to_owned(), at);
             return Ok(());
         };
         let group = &self.groups[g];
@@ -570,78 +605,38 @@ impl Builder {
 
 /// Every field of a row, or every problem in it.
 fn parse_row(ctx: &Ctx, cols: &Columns, row: &Row) -> Result<Parsed, Vec<Problem>> {
-    let n = row.number;
-    let extra = row.cells.iter().skip(cols.width).any(|c| !c.is_empty());
-    if !ctx.is_sheet() && (row.cells.len() < cols.width || extra) {
-        return Err(vec![ctx.problem(
-            n,
-            None,
-            ErrorKind::FieldCount.into(),
-            format!(
-                "expected {} fields as in the header on line {}, found {} fields on line {n}",
-                cols.width,
-                ctx.table.header.number,
-                row.cells.len()
-            ),
-        )]);
-    }
-    let empty = Cell::Empty;
-    let cell = |c: usize| row.cells.get(c).unwrap_or(&empty);
-    let mut problems = Vec::new();
-    let mut required = |col: Option<usize>, what: &str, fixed: Option<&String>| -> String {
-        if let Some(f) = fixed {
-            return f.clone();
-        }
-        let c = col.unwrap_or_default();
-        match name_of(ctx, n, c, cell(c), what) {
-            Ok(Some(t)) => t,
-            Ok(None) => {
-                problems.push(ctx.problem(
-                    n,
-                    Some(c),
-                    ErrorKind::EmptyField.into(),
-                    format!("expected a non-empty {what}, found an empty cell"),
-                ));
-                String::new()
-            }
-            Err(p) => {
-                problems.push(p);
-                String::new()
-            }
-        }
+    check_width(ctx, cols, row).map_err(|p| vec![p])?;
+    let mut r = Fields {
+        ctx,
+        row,
+        problems: Vec::new(),
     };
-    let source = required(cols.source, "source", ctx.profile.source.as_ref());
-    let lot = required(Some(cols.lot), "lot", None);
-    let long_characteristic = cols
+    let source = match &ctx.profile.source {
+        Some(fixed) => fixed.clone(),
+        None => r.required(cols.source, "source"),
+    };
+    let lot = r.required(Some(cols.lot), "lot");
+    let characteristic = cols
         .characteristic
-        .map(|c| required(Some(c), "characteristic", None));
-    let unit = match cols.unit {
-        Some(c) => name_of(ctx, n, c, cell(c), "unit serial").unwrap_or_else(|p| {
-            problems.push(p);
-            None
-        }),
-        None => None,
-    };
-    let sampled_at = match cols.sampled_at {
-        Some(c) => timestamp(ctx, n, c, cell(c)).unwrap_or_else(|p| {
-            problems.push(p);
-            None
-        }),
-        None => None,
-    };
-    let mut values = Vec::new();
-    let measured: Vec<(usize, String)> = match (cols.value, long_characteristic) {
+        .map(|c| r.required(Some(c), "characteristic"));
+    let unit = cols
+        .unit
+        .and_then(|c| r.kept(name_of(ctx, row.number, c, r.cell(c), "unit serial")));
+    let sampled_at = cols
+        .sampled_at
+        .and_then(|c| r.kept(timestamp(ctx, row.number, c, r.cell(c))));
+    let measured: Vec<(usize, String)> = match (cols.value, characteristic) {
         (Some(v), Some(ch)) => vec![(v, characteristic_name(ctx.profile, &ch))],
         _ => cols.wide.clone(),
     };
+    let mut values = Vec::with_capacity(measured.len());
     for (c, name) in measured {
-        match number(ctx, n, c, cell(c)) {
-            Ok(v) => values.push((name, v)),
-            Err(p) => problems.push(p),
+        if let Some(v) = r.kept(number(ctx, row.number, c, r.cell(c)).map(Some)) {
+            values.push((name, v));
         }
     }
-    if !problems.is_empty() {
-        return Err(problems);
+    if !r.problems.is_empty() {
+        return Err(r.problems);
     }
     Ok(Parsed {
         source,
@@ -650,4 +645,69 @@ fn parse_row(ctx: &Ctx, cols: &Columns, row: &Row) -> Result<Parsed, Vec<Problem
         sampled_at,
         values,
     })
+}
+
+/// A text row must have the header's fields (extra empty ones, from a trailing delimiter,
+/// are fine); sheet rows are as wide as the sheet's used range.
+fn check_width(ctx: &Ctx, cols: &Columns, row: &Row) -> Result<(), Problem> {
+    let extra = row.cells.iter().skip(cols.width).any(|c| !c.is_empty());
+    if ctx.is_sheet() || (row.cells.len() >= cols.width && !extra) {
+        return Ok(());
+    }
+    let n = row.number;
+    Err(ctx.problem(
+        n,
+        None,
+        ErrorKind::FieldCount.into(),
+        format!(
+            "expected {} fields as in the header on line {}, found {} fields on line {n}",
+            cols.width,
+            ctx.table.header.number,
+            row.cells.len()
+        ),
+    ))
+}
+
+/// Reads the cells of one row, collecting every problem.
+struct Fields<'a> {
+    ctx: &'a Ctx<'a>,
+    row: &'a Row,
+    problems: Vec<Problem>,
+}
+
+impl<'a> Fields<'a> {
+    fn cell(&self, c: usize) -> &'a Cell {
+        const EMPTY: &Cell = &Cell::Empty;
+        self.row.cells.get(c).unwrap_or(EMPTY)
+    }
+
+    /// The value, or `None` with the problem kept.
+    fn kept<T>(&mut self, r: Result<Option<T>, Problem>) -> Option<T> {
+        r.unwrap_or_else(|p| {
+            self.problems.push(p);
+            None
+        })
+    }
+
+    /// A non-empty name; an empty string (and a kept problem) otherwise.
+    fn required(&mut self, col: Option<usize>, what: &str) -> String {
+        let (ctx, n) = (self.ctx, self.row.number);
+        let c = col.unwrap_or_default();
+        match name_of(ctx, n, c, self.cell(c), what) {
+            Ok(Some(t)) => t,
+            Ok(None) => {
+                self.problems.push(ctx.problem(
+                    n,
+                    Some(c),
+                    ErrorKind::EmptyField.into(),
+                    format!("expected a non-empty {what}, found an empty cell"),
+                ));
+                String::new()
+            }
+            Err(p) => {
+                self.problems.push(p);
+                String::new()
+            }
+        }
+    }
 }
