@@ -73,16 +73,7 @@ fn print_text(c: &FileCheck) {
         format!("with input profile {:?}", c.profile)
     };
     if !c.ok {
-        say!("{}: would be refused, read {how}:", c.file);
-        for p in &c.problems {
-            say!("  {}", p.text);
-        }
-        if c.more_problems > 0 {
-            say!("  … and {} more problem(s)", c.more_problems);
-        }
-        if let Some(h) = &c.hint {
-            say!("{h}");
-        }
+        print_refused(c, &how);
         return;
     }
     say!("{}: read {how}", c.file);
@@ -122,5 +113,18 @@ fn print_text(c: &FileCheck) {
             v.value,
             v.sampled_at.as_deref().unwrap_or("-")
         );
+    }
+}
+
+fn print_refused(c: &FileCheck, how: &str) {
+    say!("{}: would be refused, read {how}:", c.file);
+    for p in &c.problems {
+        say!("  {}", p.text);
+    }
+    if c.more_problems > 0 {
+        say!("  … and {} more problem(s)", c.more_problems);
+    }
+    if let Some(h) = &c.hint {
+        say!("{h}");
     }
 }

@@ -256,49 +256,8 @@ fn validate_profile(
             "is required (a name without control characters)",
         );
     }
-    let pattern = r
-        .pattern
-        .as_deref()
-        .and_then(|g| match glob::Pattern::new(g) {
-            Ok(pat) => Some(pat),
-            Err(e) => {
-                p.push(
-                    &key("match"),
-                    format!("{g:?} is not a glob pattern: {}", e.msg),
-                );
-                None
-            }
-        });
-    let folder = r.folder.clone();
-    if let Some(f) = &folder
-        && (f.is_empty() || f.contains(['/', '\\']) || f == "." || f == "..")
-    {
-        p.push(
-            &key("folder"),
-            format!("{f:?} must be the name of one folder directly in the inbox"),
-        );
-    }
-    if r.pattern.is_none() && folder.is_none() {
-        p.push(
-            &key("match"),
-            "a profile needs match = \"GLOB\" (file name) or folder = \"NAME\" (inbox subfolder)",
-        );
-    }
-    let delimiter = validate_delimiter(p, key, r.delimiter.as_deref());
-    let decimal = match r.decimal.as_deref() {
-        None | Some(".") => b'.',
-        Some(",") => b',',
-        Some(d) => {
-            p.push(&key("decimal"), format!("{d:?} must be \".\" or \",\""));
-            b'.'
-        }
-    };
-    if decimal == b',' && delimiter == Delimiter::Byte(b',') {
-        p.push(
-            &key("decimal"),
-            "\",\" needs another delimiter (delimiter = \";\", \"\\t\" or \"auto\")",
-        );
-    }
+    let (pattern, folder) = validate_choice(p, key, &r);
+    let (delimiter, decimal) = validate_numbers(p, key, &r);
     let profile = Profile {
         name: if name.trim().is_empty() {
             label.to_owned()
@@ -330,6 +289,67 @@ fn validate_profile(
     };
     check_names(p, key, &profile);
     profile
+}
+
+/// `match` and `folder`: at least one, a valid glob, one folder name.
+fn validate_choice(
+    p: &mut Problems,
+    key: &dyn Fn(&str) -> String,
+    r: &RawProfile,
+) -> (Option<glob::Pattern>, Option<String>) {
+    let pattern = r
+        .pattern
+        .as_deref()
+        .and_then(|g| match glob::Pattern::new(g) {
+            Ok(pat) => Some(pat),
+            Err(e) => {
+                p.push(
+                    &key("match"),
+                    format!("{g:?} is not a glob pattern: {}", e.msg),
+                );
+                None
+            }
+        });
+    let folder = r.folder.clone();
+    if let Some(f) = &folder
+        && (f.is_empty() || f.contains(['/', '\\']) || f == "." || f == "..")
+    {
+        p.push(
+            &key("folder"),
+            format!("{f:?} must be the name of one folder directly in the inbox"),
+        );
+    }
+    if r.pattern.is_none() && folder.is_none() {
+        p.push(
+            &key("match"),
+            "a profile needs match = \"GLOB\" (file name) or folder = \"NAME\" (inbox subfolder)",
+        );
+    }
+    (pattern, folder)
+}
+
+/// `delimiter` and `decimal`, which must differ.
+fn validate_numbers(
+    p: &mut Problems,
+    key: &dyn Fn(&str) -> String,
+    r: &RawProfile,
+) -> (Delimiter, u8) {
+    let delimiter = validate_delimiter(p, key, r.delimiter.as_deref());
+    let decimal = match r.decimal.as_deref() {
+        None | Some(".") => b'.',
+        Some(",") => b',',
+        Some(d) => {
+            p.push(&key("decimal"), format!("{d:?} must be \".\" or \",\""));
+            b'.'
+        }
+    };
+    if decimal == b',' && delimiter == Delimiter::Byte(b',') {
+        p.push(
+            &key("decimal"),
+            "\",\" needs another delimiter (delimiter = \";\", \"\\t\" or \"auto\")",
+        );
+    }
+    (delimiter, decimal)
 }
 
 fn validate_delimiter(

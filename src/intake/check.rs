@@ -5,7 +5,7 @@ use serde::Serialize;
 
 use super::{Place, Problem, Refusal};
 use crate::config::Profile;
-use crate::lotfile::{Layout, LotFile};
+use crate::lotfile::{Group, Layout, LotFile};
 
 /// Values listed in `first_values`.
 const FIRST_VALUES: usize = 10;
@@ -128,25 +128,7 @@ fn summarise(out: &mut FileCheck, f: &LotFile) {
             .flatten()
             .map(|t| t.to_rfc3339())
             .collect();
-        let at = out
-            .lots
-            .iter()
-            .position(|l| l.source == g.source && l.lot == g.lot);
-        let lot = match at {
-            Some(i) => &mut out.lots[i],
-            None => {
-                out.lots.push(LotCheck {
-                    source: g.source.clone(),
-                    lot: g.lot.clone(),
-                    characteristics: Vec::new(),
-                    units: 0,
-                    values: 0,
-                    first_sampled_at: None,
-                    last_sampled_at: None,
-                });
-                out.lots.last_mut().expect("just pushed")
-            }
-        };
+        let lot = lot_entry(&mut out.lots, g);
         lot.characteristics.push(g.characteristic.clone());
         let mut units: Vec<&String> = g.units.iter().flatten().collect();
         units.sort();
@@ -169,6 +151,29 @@ fn summarise(out: &mut FileCheck, f: &LotFile) {
                 value: g.values[i],
                 sampled_at: g.sampled_at[i].map(|t| t.to_rfc3339()),
             });
+        }
+    }
+}
+
+/// The summary of the group's lot, added when new.
+fn lot_entry<'a>(lots: &'a mut Vec<LotCheck>, g: &Group) -> &'a mut LotCheck {
+    match lots
+        .iter()
+        .position(|l| l.source == g.source && l.lot == g.lot)
+    {
+        Some(i) => &mut lots[i],
+        None => {
+            lots.push(LotCheck {
+                source: g.source.clone(),
+                lot: g.lot.clone(),
+                characteristics: Vec::new(),
+                units: 0,
+                values: 0,
+                first_sampled_at: None,
+                last_sampled_at: None,
+            });
+            let last = lots.len() - 1;
+            &mut lots[last]
         }
     }
 }

@@ -210,23 +210,31 @@ fn split(file: &str, body: &[u8], first_line: u64, delimiter: u8) -> Result<Tabl
         if record.iter().all(|f| f.trim_ascii().is_empty()) {
             continue;
         }
-        let cells = record
-            .iter()
-            .map(|f| {
-                // The whole text was decoded, and delimiters are ASCII: fields are UTF-8.
-                let f = String::from_utf8_lossy(f);
-                if f.trim().is_empty() {
-                    Cell::Empty
-                } else {
-                    Cell::Text(f.into_owned())
-                }
-            })
-            .collect();
         rows.push(Row {
             number: line,
-            cells,
+            cells: cells_of(&record),
         });
     }
+    into_table(file, first_line, rows)
+}
+
+fn cells_of(record: &csv::ByteRecord) -> Vec<Cell> {
+    record
+        .iter()
+        .map(|f| {
+            // The whole text was decoded, and delimiters are ASCII: fields are UTF-8.
+            let f = String::from_utf8_lossy(f);
+            if f.trim().is_empty() {
+                Cell::Empty
+            } else {
+                Cell::Text(f.into_owned())
+            }
+        })
+        .collect()
+}
+
+/// The first row is the header.
+fn into_table(file: &str, first_line: u64, rows: Vec<Row>) -> Result<Table, Problem> {
     let mut rows = rows.into_iter();
     let Some(header) = rows.next() else {
         return Err(problem(
