@@ -459,3 +459,18 @@ fn an_opendocument_sheet_reads_like_a_workbook() {
         "{r}"
     );
 }
+
+#[test]
+fn a_workbook_in_our_column_names_needs_no_profile_and_may_start_right_of_a1() {
+    let site = Site::new("");
+    let (code, v) = check_file(&site, &fixture("birchworks_offset.xlsx"), &[]);
+    assert_eq!(code, Some(0), "{v}");
+    assert_eq!(v["profile"], "built-in");
+    assert_eq!(v["values"], 3);
+    // A date cell without a time is a date, whatever the machine's zone.
+    assert_eq!(
+        v["first_values"][0]["sampled_at"],
+        "2026-03-05T00:00:00.000Z"
+    );
+    assert_eq!(v["first_values"][2]["value"], 3003.0);
+}

@@ -153,7 +153,8 @@ pub(crate) fn to_lot_file(
     })
 }
 
-/// The header's cells as names; trailing empty cells are dropped (a trailing delimiter).
+/// The header's cells as names; trailing empty cells are dropped (a trailing delimiter), an
+/// empty name is allowed only over an empty column.
 fn header_names(ctx: &Ctx) -> Result<Vec<String>, Problem> {
     let cells = &ctx.table.header.cells;
     let width = cells
@@ -166,17 +167,17 @@ fn header_names(ctx: &Ctx) -> Result<Vec<String>, Problem> {
         names.push(name.unwrap_or_default());
     }
     for (col, name) in names.iter().enumerate() {
-        if name.is_empty() {
+        if name.is_empty() && !column_is_empty(ctx.table, col) {
             return Err(ctx.header_problem(
                 Some(col),
                 ErrorKind::EmptyField,
                 "expected a non-empty column name, found an empty cell".to_owned(),
             ));
         }
-        if let Some(first) = names[..col]
+        let earlier = names[..col]
             .iter()
-            .position(|n| n.eq_ignore_ascii_case(name))
-        {
+            .position(|n| !n.is_empty() && n.eq_ignore_ascii_case(name));
+        if let Some(first) = earlier {
             return Err(ctx.header_problem(
                 Some(col),
                 ErrorKind::DuplicateColumn,
@@ -190,6 +191,15 @@ fn header_names(ctx: &Ctx) -> Result<Vec<String>, Problem> {
         }
     }
     Ok(names)
+}
+
+/// True for a spacer column: no header text and no cell below it (a sheet whose used
+/// range starts right of column A has such columns on its left, too).
+fn column_is_empty(table: &Table, col: usize) -> bool {
+    table
+        .rows
+        .iter()
+        .all(|r| r.cells.get(col).is_none_or(Cell::is_empty))
 }
 
 fn columns(ctx: &Ctx) -> Result<Columns, Problem> {
@@ -295,7 +305,8 @@ fn unused_columns(ctx: &Ctx, cols: &Columns) -> Vec<usize> {
     let skipped = |c: usize| {
         let name = &ctx.names[c];
         let fixed_source = ctx.profile.source.is_some() && name.eq_ignore_ascii_case("source");
-        fixed_source
+        name.is_empty()
+            || fixed_source
             || ctx
                 .profile
                 .ignore

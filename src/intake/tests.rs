@@ -234,6 +234,11 @@ fn trailing_delimiters_and_short_rows() {
         ..profile()
     };
     assert_eq!(ok(&p, b"source;lot;x;\nS;L;1;\n").values, 1);
+    // A spacer column without a header is skipped when it is empty throughout.
+    assert_eq!(ok(&p, b";source;;lot;x\n;S;;L;1\n").values, 1);
+    let e = fail(&p, b"source;;lot;x\nS;z;L;1\n");
+    assert_eq!(e.problems[0].kind, Kind::Lot(ErrorKind::EmptyField));
+    assert_eq!(e.problems[0].position(), "1:2");
     let e = fail(&p, b"source;lot;x;y\nS;L;1\n");
     assert_eq!(e.problems[0].kind, Kind::Lot(ErrorKind::FieldCount));
 }

@@ -106,6 +106,23 @@ def workbook(name, date_1904=False, bad=False):
     wb.close()
 
 
+# 4b. birchworks: a workbook in our own column names (no profile needed), the table right of
+#     and below A1 with an empty spacer column, date cells without a time (dates).
+def offset_workbook(name):
+    wb = xlsxwriter.Workbook(os.path.join(HERE, name))
+    wb.set_properties({"created": dt.datetime(2026, 3, 1, 12, 0, 0)})
+    ws = wb.add_worksheet()
+    date_fmt = wb.add_format({"num_format": "yyyy-mm-dd"})
+    ws.write_row("C3", ["source", "lot", None, "sampled_at", "capacity_mah"])
+    for i in range(3):
+        r = 3 + i
+        ws.write_string(r, 2, "birchworks")
+        ws.write_string(r, 3, "BW-0011")
+        ws.write_datetime(r, 5, dt.datetime(2026, 3, 5), date_fmt)
+        ws.write_number(r, 6, 3001 + i)
+    wb.close()
+
+
 # 5. cedar-energy: an OpenDocument sheet (long layout, our column names): float cells, date
 #    cells as the format stores them (ISO text), a text cell where a number belongs when bad.
 def ods(name, bad=False):
@@ -159,5 +176,6 @@ write("cedar_ansi_bad.csv", cedar(True))
 workbook("alder_cells.xlsx")
 workbook("alder_cells_1904.xlsx", date_1904=True)
 workbook("alder_cells_bad.xlsx", bad=True)
+offset_workbook("birchworks_offset.xlsx")
 ods("cedar_sheet.ods")
 ods("cedar_sheet_bad.ods", bad=True)
