@@ -88,6 +88,9 @@ fn parse_text(t: &str, date_format: Option<&str>) -> Parsed {
     if let Some(ts) = lotfile::parse_timestamp(t) {
         return Parsed::Done(ts);
     }
+    if let Some(d) = fast_local(t) {
+        return Parsed::Local(d);
+    }
     if let Some(d) = OFFSET_FORMATS
         .iter()
         .find_map(|f| DateTime::parse_from_str(t, f).ok())
@@ -117,6 +120,34 @@ fn parse_text(t: &str, date_format: Option<&str>) -> Parsed {
     }
 }
 
+/// `YYYY-MM-DD HH:MM[:SS]` (space or `T`), the common local form, read without a format
+/// string; other forms fall through to chrono's parser.
+fn fast_local(t: &str) -> Option<NaiveDateTime> {
+    let b = t.as_bytes();
+    let seconds = match b.len() {
+        16 => false,
+        19 if b[16] == b':' => true,
+        _ => return None,
+    };
+    let digits: &[usize] = if seconds {
+        &[0, 1, 2, 3, 5, 6, 8, 9, 11, 12, 14, 15, 17, 18]
+    } else {
+        &[0, 1, 2, 3, 5, 6, 8, 9, 11, 12, 14, 15]
+    };
+    let shape = b[4] == b'-' && b[7] == b'-' && matches!(b[10], b' ' | b'T') && b[13] == b':';
+    if !shape || !digits.iter().all(|&i| b[i].is_ascii_digit()) {
+        return None;
+    }
+    let num = |i: usize, n: usize| {
+        b[i..i + n]
+            .iter()
+            .fold(0u32, |acc, &d| acc * 10 + u32::from(d - b'0'))
+    };
+    let date = NaiveDate::from_ymd_opt(i32::try_from(num(0, 4)).ok()?, num(5, 2), num(8, 2))?;
+    let second = if seconds { num(17, 2) } else { 0 };
+    date.and_hms_opt(num(11, 2), num(14, 2), second)
+}
+
 fn in_range(utc: DateTime<Utc>, date_only: bool) -> Option<Timestamp> {
     (0..=9999)
         .contains(&utc.year())
@@ -141,4 +172,39 @@ fn expected(ctx: &Ctx, t: &str) -> String {
         ctx.profile.zone,
         found(t.trim())
     )
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_fast_local_form_agrees_with_chrono() {
+        for t in [
+            "2026-03-01 08:30",
+            "2026-03-01T08:30:59",
+            "2024-02-29 23:59:00",
+        ] {
+            assert!(fast_local(t).is_some(), "{t}");
+        }
+        for t in [
+            "2026-03-01 08:30",
+            "2026-03-01T08:30:59",
+            "2024-02-29 23:59:00",
+            "2026-02-29 08:30",
+            "2026-13-01 08:30",
+            "2026-03-01 24:00",
+            "2026-03-01 08:30:60",
+            "2026-03-01 08:30:5",
+            "2026-03-01x08:30",
+            "+026-03-01 08:30",
+        ] {
+            let slow = LOCAL_FORMATS
+                .iter()
+                .find_map(|f| NaiveDateTime::parse_from_str(t, f).ok());
+            // Where the fast form declines (a leap second), chrono's parser still runs.
+            let fast = fast_local(t);
+            assert!(fast.is_none() || fast == slow, "{t}: {fast:?} vs {slow:?}");
+        }
+    }
 }
