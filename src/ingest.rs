@@ -1,6 +1,7 @@
 //! Ingest: files from the inbox into the store, end to end.
 //!
-//! For each file: read the bytes, hash them, parse them (`lotfile`), summarise every sample
+//! For each file: read the bytes, hash them, parse them (`intake`: with the input profile that
+//! applies to the file, else the built-in `lotfile` dialect), summarise every sample
 //! (`stats::Summary`), store them (`store`), and only after the transaction has committed move
 //! the file to `archive/<yyyy-mm>/` (or `archive/<yyyy-mm>/duplicates/`). A file that cannot be
 //! parsed, or that would change values already stored, goes to `quarantine/` with a
