@@ -185,18 +185,23 @@ impl Profile {
         }
     }
 
-    /// True when this profile applies to `path`; `folder` is the first folder of the path
-    /// below the inbox, if the file lies in one.
-    pub fn applies(&self, file_name: &str, folder: Option<&str>) -> bool {
+    /// True when this profile applies to a file. `match` is tried on the file name, or, when
+    /// it has a `/`, on `relative` (the path below the inbox, `/`-separated); `folder` is the
+    /// first folder of that path, if the file lies in one.
+    pub fn applies(&self, file_name: &str, relative: &str, folder: Option<&str>) -> bool {
         let options = glob::MatchOptions {
             case_sensitive: false,
             require_literal_separator: true,
             require_literal_leading_dot: false,
         };
-        let by_name = self
-            .pattern
-            .as_ref()
-            .is_none_or(|p| p.matches_with(file_name, options));
+        let by_name = self.pattern.as_ref().is_none_or(|p| {
+            let subject = if p.as_str().contains('/') {
+                relative
+            } else {
+                file_name
+            };
+            p.matches_with(subject, options)
+        });
         let by_folder = self.folder.as_deref().is_none_or(|f| folder == Some(f));
         by_name && by_folder
     }
@@ -206,15 +211,18 @@ impl Input {
     /// The first profile that applies to `path` (a file in `inbox` or anywhere else).
     pub fn choose(&self, inbox: &Path, path: &Path) -> Option<&Profile> {
         let name = path.file_name()?.to_string_lossy();
-        let folder = path
-            .strip_prefix(inbox)
-            .ok()
-            .filter(|rel| rel.components().count() > 1)
-            .and_then(|rel| rel.components().next())
-            .map(|c| c.as_os_str().to_string_lossy().into_owned());
+        let parts: Vec<String> = match path.strip_prefix(inbox) {
+            Ok(rel) => rel
+                .components()
+                .map(|c| c.as_os_str().to_string_lossy().into_owned())
+                .collect(),
+            Err(_) => vec![name.to_string()],
+        };
+        let folder = (parts.len() > 1).then(|| parts[0].as_str());
+        let relative = parts.join("/");
         self.profiles
             .iter()
-            .find(|p| p.applies(&name, folder.as_deref()))
+            .find(|p| p.applies(&name, &relative, folder))
     }
 
     pub fn by_name(&self, name: &str) -> Option<&Profile> {
@@ -377,7 +385,7 @@ fn validate_encoding(p: &mut Problems, key: &dyn Fn(&str) -> String, e: Option<&
     match e {
         None => Encoding::Auto,
         Some(label) if label.eq_ignore_ascii_case("auto") => Encoding::Auto,
-        Some(label) => match encoding_rs::Encoding::for_label(label.as_bytes()) {
+        Some(label) => match encoding_by_label(label) {
             Some(enc) => Encoding::Fixed(enc),
             None => {
                 p.push(
@@ -391,6 +399,15 @@ fn validate_encoding(p: &mut Problems, key: &dyn Fn(&str) -> String, e: Option<&
             }
         },
     }
+}
+
+/// A WHATWG encoding label, also written with `_` for `-` or without the `-` (`latin-1`,
+/// `utf_16le`, `cp-1252`).
+fn encoding_by_label(label: &str) -> Option<&'static encoding_rs::Encoding> {
+    let dashed = label.replace('_', "-");
+    [label.to_owned(), dashed.clone(), dashed.replace('-', "")]
+        .iter()
+        .find_map(|l| encoding_rs::Encoding::for_label(l.as_bytes()))
 }
 
 fn validate_zone(p: &mut Problems, key: &dyn Fn(&str) -> String, z: Option<&str>) -> Zone {
@@ -531,8 +548,41 @@ mod tests {
         assert_eq!(name("/x/inbox/cedar/2026/f.csv").as_deref(), Some("a"));
         assert_eq!(name("/x/inbox/cedar.csv").as_deref(), Some("b"));
         assert_eq!(name("/x/inbox/other/f.txt"), None);
+        // A pattern with a '/' is matched on the path below the inbox.
+        let text = "[[input.profile]]\nname = \"deep\"\nmatch = \"lab*/*.TXT\"\n";
+        let c = Config::from_toml(Path::new("/x/lotdrift.toml"), text).unwrap();
+        assert!(
+            c.input
+                .choose(inbox, Path::new("/x/inbox/lab2/f.txt"))
+                .is_some()
+        );
+        assert!(c.input.choose(inbox, Path::new("/x/inbox/f.txt")).is_none());
+        assert!(
+            c.input
+                .choose(inbox, Path::new("/x/inbox/lab2/sub/f.txt"))
+                .is_none()
+        );
         // Outside the inbox only the name counts.
         assert_eq!(name("/tmp/cedar/f.txt"), None);
+    }
+
+    #[test]
+    fn encoding_labels_are_read_leniently() {
+        for (label, want) in [
+            ("windows-1252", "windows-1252"),
+            ("latin-1", "windows-1252"),
+            ("cp1252", "windows-1252"),
+            ("UTF_16LE", "UTF-16LE"),
+            ("utf-16", "UTF-16LE"),
+            ("iso-8859-15", "ISO-8859-15"),
+        ] {
+            assert_eq!(
+                encoding_by_label(label).map(|e| e.name()),
+                Some(want),
+                "{label}"
+            );
+        }
+        assert!(encoding_by_label("klingon").is_none());
     }
 
     #[test]
