@@ -1359,6 +1359,13 @@ mod tests {
     fn bundled_configs_are_valid() {
         let example = parse(include_str!("../config/lotdrift.example.toml")).unwrap();
         assert_eq!(example.alerts.channels, vec![Channel::Log, Channel::Email]);
+        let names: Vec<&str> = example
+            .input
+            .profiles
+            .iter()
+            .map(|p| p.name.as_str())
+            .collect();
+        assert_eq!(names, ["birchworks-lab", "alder-workbook"]);
         let demo = parse(include_str!("../config/demo.toml")).unwrap();
         assert_eq!(demo.watch.settle, Duration::ZERO);
     }
