@@ -102,13 +102,15 @@ enum Prepared {
     Unreadable(PathBuf, String),
 }
 
-/// True for names the inbox never takes: hidden files and files still being written under a
-/// temporary name.
+/// True for names the inbox never takes: hidden files, files still being written under a
+/// temporary name, and a spreadsheet program's owner files (`~$book.xlsx`).
 pub fn is_ignored_name(path: &Path) -> bool {
     let Some(name) = path.file_name().and_then(|n| n.to_str()) else {
         return true;
     };
+    // `~$name.xlsx`: the owner file a spreadsheet program keeps beside a workbook it has open.
     name.starts_with('.')
+        || name.starts_with("~$")
         || name.ends_with(".part")
         || name.ends_with(".tmp")
         || name.ends_with(".reason.txt")
@@ -665,7 +667,13 @@ mod tests {
 
     #[test]
     fn ignored_names() {
-        for n in [".hidden.csv", "a.csv.part", "a.csv.tmp", "x.csv.reason.txt"] {
+        for n in [
+            ".hidden.csv",
+            "a.csv.part",
+            "a.csv.tmp",
+            "x.csv.reason.txt",
+            "~$alder_cells.xlsx",
+        ] {
             assert!(is_ignored_name(Path::new(n)), "{n}");
         }
         assert!(!is_ignored_name(Path::new("inbox/lot-17.csv")));
