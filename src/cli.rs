@@ -20,6 +20,8 @@ use crate::report;
 use crate::stats;
 use crate::store::Store;
 
+mod check_file;
+
 #[derive(Parser, Debug)]
 #[command(
     name = "lotdrift",
@@ -68,6 +70,19 @@ enum Command {
     CheckConfig {
         #[command(flatten)]
         config: ConfigArg,
+    },
+    /// Read a lot file with the input profile it would get and print what would be stored
+    /// (lots, characteristics, units, first values with times in UTC) or every problem.
+    /// Stores nothing; exit 1 when the file would be refused.
+    CheckFile {
+        file: PathBuf,
+        /// Read with this profile instead of the one the file's name and folder select.
+        #[arg(long, value_name = "NAME")]
+        profile: Option<String>,
+        #[command(flatten)]
+        config: ConfigArg,
+        #[arg(long)]
+        json: bool,
     },
     /// Counts of what is stored, open alerts and undelivered messages.
     Status {
@@ -389,6 +404,15 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             say!("{c:#?}");
             Ok(())
         }
+        Command::CheckFile {
+            file,
+            profile,
+            config,
+            json,
+        } => {
+            let config = load(&config)?;
+            check_file::run(&config, &file, profile.as_deref(), json)
+        }
         Command::Status { config, json } => {
             let config = load(&config)?;
             let store = open_existing(&config).await?;
@@ -639,7 +663,8 @@ async fn replace(store: &Store, config: &Config, file: &Path, reason: &str) -> R
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
-    let parsed = ingest::build_file(&name, &ingest::content_hash(&bytes), &bytes)
+    let profile = check_file::profile_for(config, file);
+    let parsed = ingest::build_file_as(&name, &ingest::content_hash(&bytes), &bytes, profile)
         .map_err(|e| Failure::Runtime(anyhow::anyhow!("{e}")))?;
     let outcome = store
         .ingest_batch(&[parsed], &crate::time::now_rfc3339(), Some(reason))

@@ -12,6 +12,11 @@ use std::time::Duration;
 
 use serde::Deserialize;
 
+mod input;
+/// The decoder type of [`Encoding::Fixed`] (re-exported so callers need no encoding_rs).
+pub use encoding_rs::Encoding as EncodingRs;
+pub use input::{Delimiter, Encoding, Input, OUR_COLUMNS, Profile, RawInput, RawProfile, Zone};
+
 /// A configuration problem, always naming the file and the key (or the TOML position).
 #[derive(Debug, thiserror::Error)]
 pub enum ConfigError {
@@ -46,6 +51,9 @@ pub struct RawConfig {
     pub alerts: RawAlerts,
     #[serde(default)]
     pub log: RawLog,
+    /// Input profiles, `[[input.profile]]`.
+    #[serde(default)]
+    pub input: RawInput,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -152,6 +160,7 @@ pub struct Config {
     pub monitor: Monitor,
     pub alerts: Alerts,
     pub log: Log,
+    pub input: Input,
 }
 
 #[derive(Debug, Clone)]
@@ -845,6 +854,7 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
         format,
         level: level_name,
     };
+    let input = input::validate_input(&mut p, raw.input);
 
     if !p.0.is_empty() {
         return Err(ConfigError::Invalid {
@@ -859,6 +869,7 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
         monitor,
         alerts,
         log,
+        input,
     })
 }
 
@@ -1121,6 +1132,30 @@ repeat_hours = 24        # announce a still-shifting open alert again after this
 [log]
 format = "text"          # "text" or "json"
 level = "info"
+
+# Input profiles: how a station's or supplier's files look, when not like the built-in dialect
+# (UTF-8, ',' separated, '.' decimals, RFC 3339 times, our column names). Chosen per file by
+# a glob on its name (match) or the inbox subfolder it is dropped in (folder); the first
+# profile that matches wins. Workbooks (.xlsx, .xlsm, .xlsb, .xls, .ods) are read without one.
+# `lotdrift check-file FILE` shows how a file would be read, and stores nothing.
+# [[input.profile]]
+# name = "birchworks-lab"
+# match = "birchworks_*"          # glob on the file name (case-insensitive); or folder = "birchworks"
+# delimiter = ";"                 # "," ";" "\t" "|" or "auto" (from the header line)
+# decimal = ","                   # "." or ","
+# encoding = "auto"               # "auto" (BOM: UTF-8/UTF-16LE/UTF-16BE, else UTF-8), "windows-1252", ...
+# timezone = "Europe/Berlin"      # of date-times without an offset; default: the machine's zone
+# date_format = "%d.%m.%Y %H:%M"  # besides RFC 3339 and YYYY-MM-DD HH:MM[:SS]
+# header_row = 3                  # lines (rows) above the header are skipped
+# sheet = "Messwerte"             # workbooks: the sheet (default: the first)
+# ignore = ["Operator"]           # their columns to skip
+# [input.profile.columns]         # our name = their column header (case-insensitive)
+# source = "Supplier"             # or a fixed source for every row: source = "birchworks" above
+# lot = "Batch No."
+# unit = "Serial"
+# sampled_at = "Date"
+# [input.profile.characteristics] # their column (or characteristic) = our characteristic
+# "Capacity [mAh]" = "capacity_mah"
 "#;
 
 #[cfg(test)]
@@ -1324,6 +1359,13 @@ mod tests {
     fn bundled_configs_are_valid() {
         let example = parse(include_str!("../config/lotdrift.example.toml")).unwrap();
         assert_eq!(example.alerts.channels, vec![Channel::Log, Channel::Email]);
+        let names: Vec<&str> = example
+            .input
+            .profiles
+            .iter()
+            .map(|p| p.name.as_str())
+            .collect();
+        assert_eq!(names, ["birchworks-lab", "alder-workbook"]);
         let demo = parse(include_str!("../config/demo.toml")).unwrap();
         assert_eq!(demo.watch.settle, Duration::ZERO);
     }

@@ -85,7 +85,8 @@ pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, Daem
     )
     .await;
     let cancel = CancellationToken::new();
-    let ingest = ingest::ingest_files(store, &config.paths, files, None, &cancel).await?;
+    let ingest =
+        ingest::ingest_files(store, &config.paths, &config.input, files, None, &cancel).await?;
     ingest::UnreadableLog::default().note(&ingest);
     let engine = engine::evaluate(store, config).await?;
     crate::digest::schedule_if_due(store, config).await?;
@@ -152,7 +153,8 @@ pub async fn run(
         while let Ok(more) = ready_rx.try_recv() {
             files.extend(more);
         }
-        match ingest::ingest_files(&store, &config.paths, files, None, &cancel).await {
+        match ingest::ingest_files(&store, &config.paths, &config.input, files, None, &cancel).await
+        {
             Ok(report) => {
                 unreadable.note(&report);
                 if report.stored() > 0 {

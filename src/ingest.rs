@@ -1,6 +1,7 @@
 //! Ingest: files from the inbox into the store, end to end.
 //!
-//! For each file: read the bytes, hash them, parse them (`lotfile`), summarise every sample
+//! For each file: read the bytes, hash them, parse them (`intake`: with the input profile that
+//! applies to the file, else the built-in `lotfile` dialect), summarise every sample
 //! (`stats::Summary`), store them (`store`), and only after the transaction has committed move
 //! the file to `archive/<yyyy-mm>/` (or `archive/<yyyy-mm>/duplicates/`). A file that cannot be
 //! parsed, or that would change values already stored, goes to `quarantine/` with a
@@ -20,8 +21,9 @@ use sha2::{Digest, Sha256};
 use tokio::sync::mpsc;
 use tokio_util::sync::CancellationToken;
 
-use crate::config::Paths;
-use crate::lotfile::{self, Layout, LotFile};
+use crate::config::{Input, Paths, Profile};
+use crate::intake;
+use crate::lotfile::{Layout, LotFile};
 use crate::stats::Summary;
 use crate::store::{FileOutcome, NewFile, NewSample, Store, StoreError};
 use crate::time::now_rfc3339;
@@ -100,13 +102,15 @@ enum Prepared {
     Unreadable(PathBuf, String),
 }
 
-/// True for names the inbox never takes: hidden files and files still being written under a
-/// temporary name.
+/// True for names the inbox never takes: hidden files, files still being written under a
+/// temporary name, and a spreadsheet program's owner files (`~$book.xlsx`).
 pub fn is_ignored_name(path: &Path) -> bool {
     let Some(name) = path.file_name().and_then(|n| n.to_str()) else {
         return true;
     };
+    // `~$name.xlsx`: the owner file a spreadsheet program keeps beside a workbook it has open.
     name.starts_with('.')
+        || name.starts_with("~$")
         || name.ends_with(".part")
         || name.ends_with(".tmp")
         || name.ends_with(".reason.txt")
@@ -119,6 +123,7 @@ pub fn is_ignored_name(path: &Path) -> bool {
 pub async fn ingest_files(
     store: &Store,
     paths: &Paths,
+    input: &Input,
     files: Vec<PathBuf>,
     replace: Option<&str>,
     cancel: &CancellationToken,
@@ -134,6 +139,7 @@ pub async fn ingest_files(
     }
     let (tx, mut rx) = mpsc::channel::<Vec<Prepared>>(2);
     let parse_cancel = cancel.clone();
+    let (inbox, input) = (paths.inbox.clone(), input.clone());
     let parser = tokio::task::spawn_blocking(move || {
         let mut batch = Vec::new();
         let mut values = 0usize;
@@ -141,7 +147,7 @@ pub async fn ingest_files(
             if parse_cancel.is_cancelled() {
                 break;
             }
-            let prepared = prepare(&path);
+            let prepared = prepare(&path, &inbox, &input);
             if let Prepared::Good(_, f) = &prepared {
                 values += f.samples.iter().map(|s| s.values.len()).sum::<usize>();
             }
@@ -344,7 +350,8 @@ fn read_regular(path: &Path) -> Result<Vec<u8>, ReadFailure> {
     Ok(bytes)
 }
 
-fn prepare(path: &Path) -> Prepared {
+/// Reads, hashes and parses one inbox file, with the input profile that applies to it.
+fn prepare(path: &Path, inbox: &Path, input: &Input) -> Prepared {
     let bytes = match read_regular(path) {
         Ok(b) => b,
         Err(ReadFailure::NotRegular(what)) => {
@@ -368,7 +375,7 @@ fn prepare(path: &Path) -> Prepared {
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
     // The bytes go as soon as they are parsed: a large file's values are held once.
-    let parsed = parse_bytes(&name, bytes);
+    let parsed = parse_bytes(&name, bytes, input.choose(inbox, path));
     match parsed.and_then(|p| summarise(&name, &hash, p)) {
         Ok(f) => Prepared::Good(path.into(), f),
         Err(reason) => Prepared::Bad {
@@ -379,20 +386,30 @@ fn prepare(path: &Path) -> Prepared {
     }
 }
 
-/// Parses and summarises one file's bytes.
+/// Parses and summarises one file's bytes (built-in dialect, or a workbook).
 pub fn build_file(name: &str, hash: &str, bytes: &[u8]) -> Result<NewFile, String> {
+    build_file_as(name, hash, bytes, None)
+}
+
+/// Parses (with `profile`, see [`intake::read`]) and summarises one file's bytes.
+pub fn build_file_as(
+    name: &str,
+    hash: &str,
+    bytes: &[u8],
+    profile: Option<&Profile>,
+) -> Result<NewFile, String> {
     if bytes.is_empty() {
         return Err("empty file: no header, no data".to_string());
     }
-    let parsed = lotfile::parse(name, bytes).map_err(|e| e.to_string())?;
+    let parsed = intake::read(name, bytes, profile).map_err(|e| e.to_string())?;
     summarise(name, hash, parsed)
 }
 
-fn parse_bytes(name: &str, bytes: Vec<u8>) -> Result<LotFile, String> {
+fn parse_bytes(name: &str, bytes: Vec<u8>, profile: Option<&Profile>) -> Result<LotFile, String> {
     if bytes.is_empty() {
         return Err("empty file: no header, no data".to_string());
     }
-    lotfile::parse(name, &bytes).map_err(|e| e.to_string())
+    intake::read(name, &bytes, profile).map_err(|e| e.to_string())
 }
 
 /// Summarises a parsed file's groups into samples, moving the values (not copying them).
@@ -649,7 +666,13 @@ mod tests {
 
     #[test]
     fn ignored_names() {
-        for n in [".hidden.csv", "a.csv.part", "a.csv.tmp", "x.csv.reason.txt"] {
+        for n in [
+            ".hidden.csv",
+            "a.csv.part",
+            "a.csv.tmp",
+            "x.csv.reason.txt",
+            "~$alder_cells.xlsx",
+        ] {
             assert!(is_ignored_name(Path::new(n)), "{n}");
         }
         assert!(!is_ignored_name(Path::new("inbox/lot-17.csv")));
@@ -705,11 +728,14 @@ mod tests {
         std::fs::write(&target, "source,lot,mass\na,1,2\n").unwrap();
         let link = dir.path().join("l.csv");
         std::os::unix::fs::symlink(&target, &link).unwrap();
-        match prepare(&link) {
+        match prepare(&link, dir.path(), &Input::default()) {
             Prepared::Bad { reason, .. } => assert!(reason.contains("symbolic link"), "{reason}"),
             _ => panic!("a link must be refused"),
         }
-        assert!(matches!(prepare(dir.path()), Prepared::Unreadable(..)));
+        assert!(matches!(
+            prepare(dir.path(), dir.path(), &Input::default()),
+            Prepared::Unreadable(..)
+        ));
     }
 
     /// The copy path of a cross-file-system move, run on one file system (the tmpfs test in

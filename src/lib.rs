@@ -5,6 +5,8 @@
 //! The crate follows the data flow, one module per stage:
 //!
 //! - [`lotfile`]: pure parsing of lot files (CSV, long and wide layouts) into typed lots.
+//! - [`intake`]: input profiles: other delimiters, decimal commas, encodings, local times,
+//!   column names and workbooks, read into the same typed lots.
 //! - [`watch`]: which inbox files are complete (file events, startup scan, periodic rescan).
 //! - [`ingest`]: one file end to end: read, hash, parse, store, then archive or quarantine.
 //! - [`store`]: the only module that speaks SQL (sqlx, SQLite in WAL mode, embedded migrations).
@@ -52,6 +54,7 @@ pub mod digest;
 pub mod engine;
 pub mod errors;
 pub mod ingest;
+pub mod intake;
 pub mod lotfile;
 pub mod report;
 pub mod silence;

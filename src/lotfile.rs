@@ -234,7 +234,7 @@ pub fn parse(file_name: &str, bytes: &[u8]) -> Result<LotFile, LotFileError> {
 // Text helpers
 
 /// Quotes a found text for a message: escaped, at most [`FOUND_CHARS`] characters.
-fn found(text: &str) -> String {
+pub(crate) fn found(text: &str) -> String {
     let mut out = String::with_capacity(text.len().min(FOUND_CHARS * 2) + 4);
     out.push('"');
     let mut chars = text.chars();
@@ -254,7 +254,7 @@ fn trim(s: &str) -> &str {
     s.trim_ascii()
 }
 
-fn count_newlines(bytes: &[u8]) -> u64 {
+pub(crate) fn count_newlines(bytes: &[u8]) -> u64 {
     bytes.iter().filter(|&&b| b == b'\n').count() as u64
 }
 
@@ -264,7 +264,7 @@ fn to_usize(n: u64) -> usize {
 
 /// Where the csv reader really starts its next record when it starts reading
 /// at `i`: it skips line-end bytes and `#` comment lines (which run to LF).
-fn record_start(data: &[u8], mut i: usize) -> usize {
+pub(crate) fn record_start(data: &[u8], mut i: usize) -> usize {
     loop {
         while i < data.len() && (data[i] == b'\r' || data[i] == b'\n') {
             i += 1;
@@ -357,14 +357,14 @@ fn check_quotes(raw: &[u8]) -> Result<(), QuoteProblem> {
 }
 
 /// Why a value cell was rejected.
-enum NumberError {
+pub(crate) enum NumberError {
     Empty,
     Bad,
     NonFinite,
     Overflow,
 }
 
-fn parse_number(text: &str) -> Result<f64, NumberError> {
+pub(crate) fn parse_number(text: &str) -> Result<f64, NumberError> {
     let t = trim(text);
     if t.is_empty() {
         return Err(NumberError::Empty);
@@ -390,7 +390,7 @@ fn parse_number(text: &str) -> Result<f64, NumberError> {
     }
 }
 
-fn parse_timestamp(text: &str) -> Option<Timestamp> {
+pub(crate) fn parse_timestamp(text: &str) -> Option<Timestamp> {
     let b = text.as_bytes();
     let ts = if b.len() == 10 {
         let digits = [0, 1, 2, 3, 5, 6, 8, 9];

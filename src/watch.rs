@@ -62,10 +62,10 @@ fn is_real_dir(path: &Path) -> bool {
     std::fs::symlink_metadata(path).is_ok_and(|m| m.is_dir())
 }
 
-/// True for names a lot file would have (`.csv`, `.tsv`, `.txt`).
+/// True for names a lot file would have (`.csv`, `.tsv`, `.txt`, workbooks).
 fn lot_file_name(path: &Path) -> bool {
     path.extension().and_then(|e| e.to_str()).is_some_and(|e| {
-        ["csv", "tsv", "txt"]
+        ["csv", "tsv", "txt", "xlsx", "xlsm", "xlsb", "xls", "ods"]
             .iter()
             .any(|x| e.eq_ignore_ascii_case(x))
     })
