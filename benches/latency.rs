@@ -4,7 +4,9 @@
 //! pipe, waits for the `watching` event, then feeds the inbox at a steady rate from a folder
 //! of lot files (each written as `NAME.part`, then renamed to `NAME`: the watcher ignores
 //! `.part` names and takes a renamed-in file at once) and every `interval` seconds drops one
-//! lot of a probe source the same way. A drop's latency runs from just before its rename to
+//! lot of a probe source the same way, on a fixed schedule (open loop: the next drop does not
+//! wait for the previous alert, so a daemon that falls behind shows growing latencies rather
+//! than a lighter load). A drop's latency runs from just before its rename to
 //! the moment the first `lotdrift::alert` log event naming the probe's source is read from
 //! the pipe (a thread reads the log line by line, so nothing is polled). The log's own
 //! timestamp of that event, against the wall clock of the rename, is printed beside it as a
@@ -19,7 +21,8 @@
 //!   of other lot files, sent in order of their lot code (the part of the name after its
 //!   last `_`), then name.
 //! - `LATENCY_WARMUP` (2.0): seconds of feed before the first drop.
-//! - `LATENCY_TIMEOUT` (10): seconds to wait for one drop's alert (then it counts as missed).
+//! - `LATENCY_TIMEOUT` (10): seconds to wait for one drop's alert (then it counts as missed);
+//!   the feed goes on until the last drop has its alert or times out.
 //! - `LATENCY_START_TIMEOUT` (300): seconds to wait for the daemon's `watching` event.
 //! - `LATENCY_LOG`: where to copy the daemon's log (default: not kept).
 
@@ -272,23 +275,93 @@ fn feed(
     Ok(())
 }
 
-/// Waits for the first alert event naming `source`; None on timeout.
-fn wait_alert(
+/// A dropped probe lot, waiting for its alert.
+struct Dropped {
+    /// 1-based, in drop order.
+    number: usize,
+    source: String,
+    renamed: Instant,
+    renamed_wall: SystemTime,
+}
+
+/// The drops' results so far.
+#[derive(Default)]
+struct Outcome {
+    latencies: Vec<f64>,
+    log_latencies: Vec<f64>,
+    missed: usize,
+}
+
+impl Outcome {
+    fn settle(&mut self, d: &Dropped, read_at: Instant, logged_at: Option<SystemTime>, n: usize) {
+        let ms = (read_at - d.renamed).as_secs_f64() * 1e3;
+        let log_ms = logged_at
+            .and_then(|t| t.duration_since(d.renamed_wall).ok())
+            .map(|l| l.as_secs_f64() * 1e3);
+        self.latencies.push(ms);
+        if let Some(l) = log_ms {
+            self.log_latencies.push(l);
+        }
+        println!(
+            "latency: drop {}/{n} source={} ms={ms:.3} log_ms={}",
+            d.number,
+            d.source,
+            log_ms.map_or("-".into(), |l| format!("{l:.3}"))
+        );
+    }
+
+    fn miss(&mut self, d: &Dropped, timeout: Duration, n: usize) {
+        self.missed += 1;
+        println!(
+            "latency: drop {}/{n} source={} missed (no alert within {timeout:?})",
+            d.number, d.source
+        );
+    }
+}
+
+/// Reads log events until `until` (or, with `until_empty`, until nothing is pending): the
+/// first alert naming a pending probe's source settles it; a probe pending for longer than
+/// `timeout` is missed.
+fn collect(
     events: &Receiver<LogEvent>,
-    source: &str,
-    deadline: Instant,
-) -> Result<Option<(Instant, Option<SystemTime>)>> {
+    pending: &mut Vec<Dropped>,
+    out: &mut Outcome,
+    until: Instant,
+    until_empty: bool,
+    timeout: Duration,
+    n: usize,
+) -> Result<()> {
     loop {
-        let left = deadline.saturating_duration_since(Instant::now());
-        match events.recv_timeout(left) {
+        let now = Instant::now();
+        pending.retain(|d| {
+            let expired = now.duration_since(d.renamed) > timeout;
+            if expired {
+                out.miss(d, timeout, n);
+            }
+            !expired
+        });
+        if now >= until || (until_empty && pending.is_empty()) {
+            return Ok(());
+        }
+        // Wake at least every 100 ms to expire probes on time.
+        let wait = (until - now).min(Duration::from_millis(100));
+        match events.recv_timeout(wait) {
             Ok(LogEvent::Alert {
-                source: s,
+                source,
                 read_at,
                 logged_at,
-            }) if s == source => return Ok(Some((read_at, logged_at))),
+            }) => {
+                if let Some(i) = pending.iter().position(|d| d.source == source) {
+                    let d = pending.remove(i);
+                    if read_at.duration_since(d.renamed) > timeout {
+                        out.miss(&d, timeout, n);
+                    } else {
+                        out.settle(&d, read_at, logged_at, n);
+                    }
+                }
+            }
             Ok(LogEvent::Closed) => bail!("the daemon's log closed (did it exit?)"),
-            Ok(_) => {}
-            Err(RecvTimeoutError::Timeout) => return Ok(None),
+            Ok(LogEvent::Ready) | Err(RecvTimeoutError::Timeout) => {}
             Err(RecvTimeoutError::Disconnected) => bail!("the log reader stopped"),
         }
     }
@@ -404,44 +477,32 @@ fn measure(s: &Settings, child: &mut Child, spawned: Instant) -> Result<()> {
             Duration::ZERO
         };
 
-    let mut latencies = Vec::new();
-    let mut log_latencies = Vec::new();
-    let mut missed = 0;
+    // Drops follow their schedule whatever the daemon does (open loop): a daemon that falls
+    // behind shows growing latencies (and misses), not a slower schedule.
     let n = s.drops.len();
+    let mut out = Outcome::default();
+    let mut pending = Vec::new();
     for (i, probe) in s.drops.iter().enumerate() {
-        sleep_until(first_drop + s.interval.mul_f64(i as f64));
+        let due = first_drop + s.interval.mul_f64(i as f64);
+        collect(&events, &mut pending, &mut out, due, false, s.timeout, n)?;
         let (part, target) = stage(&probe.path, &s.inbox)?;
         let renamed_wall = SystemTime::now();
         let renamed = Instant::now();
         std::fs::rename(&part, &target)?;
-        match wait_alert(&events, &probe.source, renamed + s.timeout)? {
-            Some((read_at, logged_at)) => {
-                let ms = (read_at - renamed).as_secs_f64() * 1e3;
-                let log_ms = logged_at
-                    .and_then(|t| t.duration_since(renamed_wall).ok())
-                    .map(|d| d.as_secs_f64() * 1e3);
-                latencies.push(ms);
-                if let Some(l) = log_ms {
-                    log_latencies.push(l);
-                }
-                println!(
-                    "latency: drop {}/{n} source={} ms={ms:.3} log_ms={}",
-                    i + 1,
-                    probe.source,
-                    log_ms.map_or("-".into(), |l| format!("{l:.3}"))
-                );
-            }
-            None => {
-                missed += 1;
-                println!(
-                    "latency: drop {}/{n} source={} missed (no alert within {:?})",
-                    i + 1,
-                    probe.source,
-                    s.timeout
-                );
-            }
-        }
+        pending.push(Dropped {
+            number: i + 1,
+            source: probe.source.clone(),
+            renamed,
+            renamed_wall,
+        });
     }
+    let last = Instant::now() + s.timeout + Duration::from_millis(200);
+    collect(&events, &mut pending, &mut out, last, true, s.timeout, n)?;
+    let Outcome {
+        mut latencies,
+        mut log_latencies,
+        missed,
+    } = out;
     let feed_seconds = feed_started.elapsed().as_secs_f64();
     let (peak_rss, rss) = rss_mib(child.id());
     stop.store(true, Ordering::Relaxed);

@@ -17,7 +17,9 @@
 #      `cargo bench --bench latency --no-run`): it feeds the inbox (FEED_RATE files per second
 #      on the large database, SMALL_FEED_RATE on the small one), drops one probe lot every
 #      DROP_INTERVAL seconds (written as NAME.part, then renamed), and times each rename to
-#      the first alert event of that probe's source read from the daemon's log pipe.
+#      the first alert event of that probe's source read from the daemon's log pipe. Drops
+#      keep their schedule whatever the daemon does (open loop): a daemon that cannot keep up
+#      shows growing latencies, and drops without an alert within TIMEOUT s count as missed.
 #   3. prints each drop and run, then per database and binary p50 / p99 / max over all drops
 #      of all rounds, and with B the ratios B / A.
 #
@@ -94,8 +96,9 @@ if [[ ! -f "$probes/.done" ]]; then
 fi
 
 # Lots per source generated for the large set: LOTS stored, the rest fed during a run.
-feed_needed=$(awk -v r="$FEED_RATE" -v w="$WARMUP" -v d="$DROPS" -v i="$DROP_INTERVAL" \
-    'BEGIN { printf "%d", r * (w + d * i + 10) + 0.999 }')
+# The feed lasts the warm-up, the drops and the wait for the last drop's alert.
+feed_needed=$(awk -v r="$FEED_RATE" -v w="$WARMUP" -v d="$DROPS" -v i="$DROP_INTERVAL" -v t="$TIMEOUT" \
+    'BEGIN { printf "%d", r * (w + d * i + t + 1) + 0.999 }')
 extra=$(( (feed_needed + SOURCES - 1) / SOURCES ))
 (( extra >= 1 )) || extra=1
 large="$CACHE/large-s$SOURCES-c$CHARACTERISTICS-l$LOTS+$extra-u$UNITS-s$SEED"
@@ -186,7 +189,7 @@ one_run() { # db label round
         LATENCY_INBOX="$run/inbox" LATENCY_DROP_DIR="$probes/drops" LATENCY_DROPS="$DROPS" \
         LATENCY_DROP_INTERVAL="$DROP_INTERVAL" LATENCY_FEED_DIR="$feed_dir" \
         LATENCY_FEED_RATE="$rate" LATENCY_WARMUP="$WARMUP" LATENCY_TIMEOUT="$TIMEOUT" \
-        LATENCY_LOG="$run/daemon.log" "$timer" | tee "$out" | grep -v '^latency: values_ms=' ||
+        LATENCY_LOG="$run/daemon.log" "$timer" | tee "$out" | grep --line-buffered -v '^latency: values_ms=' ||
         die "the timer failed (KEEP=1 keeps $run)"
     local summary values
     summary="$(grep '^latency: drops=' "$out")" || die "no summary line from the timer"
