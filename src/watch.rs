@@ -310,20 +310,20 @@ pub async fn run(
     rescan.set_missed_tick_behavior(tokio::time::MissedTickBehavior::Delay);
     rescan.tick().await;
 
+    // Ready files are handed on whenever the worker's queue has room; while it is full (the
+    // worker is busy with a batch) they gather here, so the next batch takes all of them
+    // instead of one event's worth.
     loop {
-        if !out.is_empty() {
-            out.sort();
-            out.dedup();
-            tracing::debug!(files = out.len(), "files ready");
-            tokio::select! {
-                _ = cancel.cancelled() => return Ok(()),
-                sent = ready.send(std::mem::take(&mut out)) => {
-                    if sent.is_err() { return Ok(()); }
-                }
-            }
-        }
+        out.sort();
+        out.dedup();
         tokio::select! {
+            biased;
             _ = cancel.cancelled() => return Ok(()),
+            permit = ready.reserve(), if !out.is_empty() => {
+                let Ok(permit) = permit else { return Ok(()) };
+                tracing::debug!(files = out.len(), "files ready");
+                permit.send(std::mem::take(&mut out));
+            }
             ev = ev_rx.recv() => {
                 let Some(ev) = ev else { return Ok(()) };
                 tracing::trace!(?ev, "file event");
