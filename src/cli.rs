@@ -429,12 +429,19 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                 })
                 .collect();
             let silent = store.silent_sources().await.context("status")?;
+            let health = crate::health::status(
+                &store.health().await.context("status")?,
+                &counts,
+                config.health.notice_after,
+                chrono::Utc::now(),
+            );
             if json {
                 print_json(&report::status_json(
                     &counts,
                     &undelivered,
                     &series,
                     &silent,
+                    &health,
                 ));
             } else {
                 say_part!(
@@ -447,6 +454,7 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                 );
                 say_part!("{}", report::series_text(&series));
                 say_part!("{}", report::silent_text(&silent));
+                say_part!("{}", report::health_text(&health));
             }
             Ok(())
         }

@@ -17,6 +17,7 @@ use tokio_util::task::TaskTracker;
 use crate::alert::{self, DrainReport};
 use crate::config::Config;
 use crate::engine;
+use crate::health::{self, Component};
 use crate::ingest::{self, IngestReport};
 use crate::silence::{self, CheckReport};
 use crate::store::{PassCounts, Store};
@@ -85,11 +86,12 @@ pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, Daem
     )
     .await;
     let cancel = CancellationToken::new();
-    let ingest = ingest::ingest_files(store, &config.paths, files, None, &cancel).await?;
+    let ingest = ingest_noting_health(store, config, files, &cancel).await?;
     ingest::UnreadableLog::default().note(&ingest);
     let engine = engine::evaluate(store, config).await?;
     crate::digest::schedule_if_due(store, config).await?;
     let silence = silence::check(store, config, chrono::Utc::now()).await?;
+    health::check(store, config, chrono::Utc::now()).await?;
     let delivery = alert::drain_once(store, config).await?;
     Ok(OnceReport {
         ingest,
@@ -97,6 +99,22 @@ pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, Daem
         silence,
         delivery,
     })
+}
+
+/// Ingests `files` and records the outcome for the health watch: a failure (the files stay in
+/// the inbox) continues or starts the failing streak of ingest, a success ends it.
+async fn ingest_noting_health(
+    store: &Store,
+    config: &Config,
+    files: Vec<std::path::PathBuf>,
+    cancel: &CancellationToken,
+) -> Result<IngestReport, ingest::IngestError> {
+    let result = ingest::ingest_files(store, &config.paths, files, None, cancel).await;
+    match &result {
+        Ok(_) => health::succeeded(store, config, Component::Ingest).await,
+        Err(e) => health::failed(store, Component::Ingest, &crate::errors::chain(e)).await,
+    }
+    result
 }
 
 /// Runs until SIGTERM/SIGINT (or `cancel`).
@@ -152,7 +170,7 @@ pub async fn run(
         while let Ok(more) = ready_rx.try_recv() {
             files.extend(more);
         }
-        match ingest::ingest_files(&store, &config.paths, files, None, &cancel).await {
+        match ingest_noting_health(&store, &config, files, &cancel).await {
             Ok(report) => {
                 unreadable.note(&report);
                 if report.stored() > 0 {
