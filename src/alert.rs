@@ -174,9 +174,14 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
     }
     drain_silences(store, config, &mut mailer, &mut attempted, &mut report).await?;
     drain_health(store, config, &mut mailer, &mut attempted, &mut report).await?;
-    match &report.email {
-        Some(Ok(())) => health::succeeded(store, config, Component::Delivery).await,
-        Some(Err(error)) => health::failed(store, Component::Delivery, error).await,
+    match report.email.clone() {
+        Some(Ok(())) => {
+            // Email works again: the recovery notice (by email too) goes out in this drain.
+            if health::succeeded(store, config, Component::Delivery).await {
+                drain_health(store, config, &mut mailer, &mut attempted, &mut report).await?;
+            }
+        }
+        Some(Err(error)) => health::failed(store, Component::Delivery, &error).await,
         None => {}
     }
     Ok(report)

@@ -1,9 +1,10 @@
 //! The daemon: wires the stages together and owns their lifetimes.
 //!
 //! Tasks: the watcher (`watch`) sends batches of complete files; the ingest worker stores them
-//! (`ingest`) and then runs an engine pass (`engine`); the notifier (`alert`) queues the daily
-//! digest and silence notices (`silence`) and drains the outbox, whenever it is woken and on a
-//! timer. All share one cancellation token; SIGTERM or SIGINT cancels it, the file batch in
+//! (`ingest`), records the outcome for the health watch (`health`) and then runs an engine
+//! pass (`engine`); the notifier (`alert`) queues the daily digest, silence notices
+//! (`silence`) and notices of a stuck ingest or delivery (`health`) and drains the outbox,
+//! whenever it is woken and on a timer. All share one cancellation token; SIGTERM or SIGINT cancels it, the file batch in
 //! flight completes, and the process exits 0. `run_once` is the
 //! same pipeline run a single time over what is in the inbox.
 
@@ -86,7 +87,15 @@ pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, Daem
     )
     .await;
     let cancel = CancellationToken::new();
-    let ingest = ingest_noting_health(store, config, files, &cancel).await?;
+    let ingest = match ingest_noting_health(store, config, files, &cancel).await {
+        Ok(report) => report,
+        Err(e) => {
+            // A cron user's runs fail one after the other: the notice that ingest is stuck
+            // (once, past health.notice_after_minutes) still goes out before the exit.
+            notify_stuck(store, config).await;
+            return Err(e.into());
+        }
+    };
     ingest::UnreadableLog::default().note(&ingest);
     let engine = engine::evaluate(store, config).await?;
     crate::digest::schedule_if_due(store, config).await?;
@@ -111,10 +120,23 @@ async fn ingest_noting_health(
 ) -> Result<IngestReport, ingest::IngestError> {
     let result = ingest::ingest_files(store, &config.paths, files, None, cancel).await;
     match &result {
-        Ok(_) => health::succeeded(store, config, Component::Ingest).await,
+        Ok(_) => {
+            health::succeeded(store, config, Component::Ingest).await;
+        }
         Err(e) => health::failed(store, Component::Ingest, &crate::errors::chain(e)).await,
     }
     result
+}
+
+/// Queues the notices of a stuck ingest or delivery that are due and drains the outbox;
+/// failures are logged (the caller is returning an error of its own).
+async fn notify_stuck(store: &Store, config: &Config) {
+    if let Err(e) = health::check(store, config, chrono::Utc::now()).await {
+        tracing::error!(error = %crate::errors::chain(&e), "cannot check the health of ingest and delivery");
+    }
+    if let Err(e) = alert::drain_once(store, config).await {
+        tracing::error!(error = %crate::errors::chain(&e), "outbox drain failed");
+    }
 }
 
 /// Runs until SIGTERM/SIGINT (or `cancel`).
@@ -181,8 +203,11 @@ pub async fn run(
                 }
             }
             Err(e) => {
-                // The files stay in the inbox and are taken again at the next rescan.
+                // The files stay in the inbox and are taken again at the next rescan. The
+                // notifier checks at once whether the failure has lasted long enough for a
+                // notice.
                 tracing::error!(error = %crate::errors::chain(&e), "ingest failed; files left in the inbox");
+                wake.notify_one();
             }
         }
     }

@@ -144,10 +144,15 @@ pub async fn failed(store: &Store, component: Component, error: &str) {
 }
 
 /// Records a success of `component`: ends its failing streak, if one runs, and queues the
-/// "recovered" notice when the streak's "stuck" notice went out. Errors are logged.
-pub async fn succeeded(store: &Store, config: &Config, component: Component) {
-    if let Err(e) = end_streak(store, config, component).await {
-        tracing::error!(component = component.as_str(), error = %crate::errors::chain(&e), "cannot record the recovery in the database");
+/// "recovered" notice when the streak's "stuck" notice went out (then returns true). Errors
+/// are logged.
+pub async fn succeeded(store: &Store, config: &Config, component: Component) -> bool {
+    match end_streak(store, config, component).await {
+        Ok(queued) => queued,
+        Err(e) => {
+            tracing::error!(component = component.as_str(), error = %crate::errors::chain(&e), "cannot record the recovery in the database");
+            false
+        }
     }
 }
 
@@ -155,7 +160,7 @@ async fn end_streak(
     store: &Store,
     config: &Config,
     component: Component,
-) -> Result<(), StoreError> {
+) -> Result<bool, StoreError> {
     // A read first: a success while healthy (nearly always) writes nothing.
     let failing = store
         .health()
@@ -163,20 +168,20 @@ async fn end_streak(
         .iter()
         .any(|r| r.component == component.as_str() && r.failing_since.is_some());
     if !failing {
-        return Ok(());
+        return Ok(false);
     }
     let to = recipients(config, component, Notice::Recovered);
     let now = crate::time::now_rfc3339();
-    if store
+    let queued = store
         .health_recovered(component.as_str(), &now, &to)
-        .await?
-    {
+        .await?;
+    if queued {
         tracing::info!(
             component = component.as_str(),
             "working again; recovery notice queued"
         );
     }
-    Ok(())
+    Ok(queued)
 }
 
 /// Queues the "stuck" notice of every component failing for longer than
