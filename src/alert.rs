@@ -174,15 +174,17 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
     }
     drain_silences(store, config, &mut mailer, &mut attempted, &mut report).await?;
     drain_health(store, config, &mut mailer, &mut attempted, &mut report).await?;
-    match report.email.clone() {
-        Some(Ok(())) => {
-            // Email works again: the recovery notice (by email too) goes out in this drain.
-            if health::succeeded(store, config, Component::Delivery).await {
-                drain_health(store, config, &mut mailer, &mut attempted, &mut report).await?;
-            }
+    let recovered = match report.email.clone() {
+        Some(Ok(())) => health::succeeded(store, config, Component::Delivery).await,
+        Some(Err(error)) => {
+            health::failed(store, Component::Delivery, &error).await;
+            false
         }
-        Some(Err(error)) => health::failed(store, Component::Delivery, &error).await,
-        None => {}
+        None => false,
+    };
+    if recovered {
+        // Email works again: the recovery notice (by email too) goes out in this drain.
+        drain_health(store, config, &mut mailer, &mut attempted, &mut report).await?;
     }
     Ok(report)
 }
@@ -1141,6 +1143,33 @@ fn health_message(from: &Mailbox, item: &HealthItem) -> Result<Message, String> 
         .header(ContentType::TEXT_PLAIN)
         .body(health_body(item))
         .map_err(|e| format!("cannot build message: {e}"))
+}
+
+/// Logs a notice that could not be queued (the database cannot record the streak), in the
+/// same form as a queued one; `error` is the latest failure (empty for a recovery).
+pub fn log_unqueued(component: Component, told: &health::Unqueued, error: &str) {
+    let kind = match told.notice {
+        health::Notice::Stuck => "stuck",
+        health::Notice::Recovered => "recovered",
+    };
+    log_health(&HealthItem {
+        id: 0,
+        channel: "log".into(),
+        recipient: "log".into(),
+        attempts: 0,
+        created_at: now_rfc3339(),
+        event_id: 0,
+        component: component.as_str().into(),
+        kind: kind.into(),
+        at: now_rfc3339(),
+        failing_since: format_utc(told.since),
+        failures: told.failures,
+        last_error: if error.is_empty() {
+            "(not recorded: the database could not be written)".into()
+        } else {
+            format!("{error} (not recorded: the database could not be written)")
+        },
+    });
 }
 
 fn log_health(item: &HealthItem) {

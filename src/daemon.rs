@@ -18,7 +18,7 @@ use tokio_util::task::TaskTracker;
 use crate::alert::{self, DrainReport};
 use crate::config::Config;
 use crate::engine;
-use crate::health::{self, Component};
+use crate::health::{self, Component, Unrecorded};
 use crate::ingest::{self, IngestReport};
 use crate::silence::{self, CheckReport};
 use crate::store::{PassCounts, Store};
@@ -87,7 +87,8 @@ pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, Daem
     )
     .await;
     let cancel = CancellationToken::new();
-    let ingest = match ingest_noting_health(store, config, files, &cancel).await {
+    let mut unrecorded = Unrecorded::default();
+    let ingest = match ingest_noting_health(store, config, files, &cancel, &mut unrecorded).await {
         Ok(report) => report,
         Err(e) => {
             // A cron user's runs fail one after the other: the notice that ingest is stuck
@@ -112,18 +113,33 @@ pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, Daem
 
 /// Ingests `files` and records the outcome for the health watch: a failure (the files stay in
 /// the inbox) continues or starts the failing streak of ingest, a success ends it.
+/// When the database cannot record the failure either, `unrecorded` follows the streak and
+/// its notices go straight to the log.
 async fn ingest_noting_health(
     store: &Store,
     config: &Config,
     files: Vec<std::path::PathBuf>,
     cancel: &CancellationToken,
+    unrecorded: &mut Unrecorded,
 ) -> Result<IngestReport, ingest::IngestError> {
     let result = ingest::ingest_files(store, &config.paths, files, None, cancel).await;
-    match &result {
+    let (told, error) = match &result {
         Ok(_) => {
             health::succeeded(store, config, Component::Ingest).await;
+            (unrecorded.succeeded(), String::new())
         }
-        Err(e) => health::failed(store, Component::Ingest, &crate::errors::chain(e)).await,
+        Err(e) => {
+            let error = crate::errors::chain(e);
+            let recorded = health::failed(store, Component::Ingest, &error).await;
+            let now = chrono::Utc::now();
+            (
+                unrecorded.failed(recorded, now, config.health.notice_after),
+                error,
+            )
+        }
+    };
+    if let Some(told) = told {
+        alert::log_unqueued(Component::Ingest, &told, &error);
     }
     result
 }
@@ -183,6 +199,7 @@ pub async fn run(
     wake.notify_one();
     tracing::info!(inbox = %config.paths.inbox.display(), "watching");
     let mut unreadable = ingest::UnreadableLog::default();
+    let mut unrecorded = Unrecorded::default();
     while result.is_ok() {
         let files = tokio::select! {
             _ = cancel.cancelled() => break,
@@ -192,7 +209,7 @@ pub async fn run(
         while let Ok(more) = ready_rx.try_recv() {
             files.extend(more);
         }
-        match ingest_noting_health(&store, &config, files, &cancel).await {
+        match ingest_noting_health(&store, &config, files, &cancel, &mut unrecorded).await {
             Ok(report) => {
                 unreadable.note(&report);
                 if report.stored() > 0 {

@@ -134,12 +134,74 @@ pub fn status(
     }
 }
 
-/// Records a failure of `component` with its error text (logged, not returned, when the
-/// store cannot record it: the caller has logged the failure itself already).
-pub async fn failed(store: &Store, component: Component, error: &str) {
+/// Records a failure of `component` with its error text; false (and the store's error
+/// logged) when the store cannot record it (see [`Unrecorded`]).
+pub async fn failed(store: &Store, component: Component, error: &str) -> bool {
     let at = crate::time::now_rfc3339();
-    if let Err(e) = store.health_failed(component.as_str(), error, &at).await {
-        tracing::error!(component = component.as_str(), error = %crate::errors::chain(&e), "cannot record the failure in the database");
+    match store.health_failed(component.as_str(), error, &at).await {
+        Ok(()) => true,
+        Err(e) => {
+            tracing::error!(component = component.as_str(), error = %crate::errors::chain(&e), "cannot record the failure in the database");
+            false
+        }
+    }
+}
+
+/// A notice that goes straight to the log (see [`Unrecorded`]).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Unqueued {
+    pub notice: Notice,
+    pub since: DateTime<Utc>,
+    pub failures: i64,
+}
+
+/// A failing streak as this process saw it, for when the database cannot record it (a full
+/// disk, an unwritable database file): nothing can be queued in the outbox then, so the
+/// "stuck" notice goes straight to the log, once per streak, and so does its "recovered".
+#[derive(Debug, Default)]
+pub struct Unrecorded {
+    since: Option<DateTime<Utc>>,
+    failures: i64,
+    told: bool,
+}
+
+impl Unrecorded {
+    /// A failure at `now`, `recorded` in the database or not; the notice due now, if any.
+    pub fn failed(
+        &mut self,
+        recorded: bool,
+        now: DateTime<Utc>,
+        after: Duration,
+    ) -> Option<Unqueued> {
+        if recorded && !self.told {
+            // The database holds the streak; the outbox tells it.
+            *self = Unrecorded::default();
+            return None;
+        }
+        let since = *self.since.get_or_insert(now);
+        self.failures += 1;
+        if self.told || !is_stuck(since, now, after) {
+            return None;
+        }
+        self.told = true;
+        Some(Unqueued {
+            notice: Notice::Stuck,
+            since,
+            failures: self.failures,
+        })
+    }
+
+    /// A success: the "recovered" notice when this streak's "stuck" notice went to the log.
+    pub fn succeeded(&mut self) -> Option<Unqueued> {
+        let told = std::mem::take(self);
+        match (told.told, told.since) {
+            (true, Some(since)) => Some(Unqueued {
+                notice: Notice::Recovered,
+                since,
+                failures: told.failures,
+            }),
+            _ => None,
+        }
     }
 }
 
@@ -284,5 +346,39 @@ mod tests {
             state(&row, t0 + chrono::Duration::minutes(31), after),
             "stuck"
         );
+    }
+
+    #[test]
+    fn an_unrecorded_streak_is_told_to_the_log_once_and_its_end_once() {
+        let t0 = parse_utc("2026-03-01T08:00:00.000Z").unwrap();
+        let after = Duration::from_secs(60);
+        let at = |s: i64| t0 + chrono::Duration::seconds(s);
+        let mut u = Unrecorded::default();
+        // Recorded failures are the outbox's business.
+        assert_eq!(u.failed(true, at(0), after), None);
+        assert_eq!(u.failed(true, at(120), after), None);
+        assert_eq!(u.succeeded(), None);
+        assert_eq!(u.failed(false, at(0), after), None);
+        assert_eq!(u.failed(false, at(30), after), None);
+        let told = u.failed(false, at(61), after).unwrap();
+        assert_eq!(
+            (told.notice, told.since, told.failures),
+            (Notice::Stuck, at(0), 3)
+        );
+        assert_eq!(u.failed(false, at(90), after), None, "once per streak");
+        assert_eq!(
+            u.failed(true, at(95), after),
+            None,
+            "the database works again"
+        );
+        let end = u.succeeded().unwrap();
+        assert_eq!(
+            (end.notice, end.since, end.failures),
+            (Notice::Recovered, at(0), 5)
+        );
+        assert_eq!(u.succeeded(), None);
+        // A short unrecorded streak ends without a word.
+        assert_eq!(u.failed(false, at(200), after), None);
+        assert_eq!(u.succeeded(), None);
     }
 }
