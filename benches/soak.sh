@@ -178,8 +178,11 @@ reader_pid=$!
 pids+=("$reader_pid")
 
 # --- the mail server down and up; RSS samples ------------------------------------
+# Seconds, VmRSS and VmHWM (KiB) of the daemon, and the database file's size (bytes).
 sample() {
-    awk -v t="$1" '/^VmRSS:/ {r=$2} /^VmHWM:/ {h=$2} END {print t, r, h}' \
+    local db
+    db=$(stat -c %s "$site/lotdrift.db" 2>/dev/null || echo 0)
+    awk -v t="$1" -v db="$db" '/^VmRSS:/ {r=$2} /^VmHWM:/ {h=$2} END {print t, r, h, db}' \
         "/proc/$daemon_pid/status" >> "$work/rss" 2>/dev/null || true
 }
 say "soaking for $DURATION s (mail server up $SMTP_UP s, down $SMTP_DOWN s, in turn); work folder $work"
@@ -307,17 +310,21 @@ samples = []
 with open(f"{work}/rss") as f:
     for line in f:
         parts = line.split()
-        if len(parts) == 3:
-            samples.append((int(parts[0]), int(parts[1]) / 1024, int(parts[2]) / 1024))
-rss = [r for _, r, _ in samples]
+        if len(parts) == 4:
+            samples.append((int(parts[0]), int(parts[1]) / 1024, int(parts[2]) / 1024,
+                            int(parts[3]) / 2**20))
+rss = [r for _, r, _, _ in samples]
 third = max(1, len(rss) // 3)
 middle, last = rss[third:2 * third], rss[-third:]
-peak, final = max(h for *_, h in samples), rss[-1]
+peak, final = max(h for _, _, h, _ in samples), rss[-1]
 m_mid, m_last = statistics.median(middle), statistics.median(last)
 allowed = max(5.0, 0.10 * m_mid)
 print(f"\nMemory ({len(samples)} samples over {samples[-1][0]} s): peak (VmHWM) {peak:.1f} MiB, final (VmRSS) {final:.1f} MiB; "
       f"median RSS in the middle third {m_mid:.1f} MiB, in the last third {m_last:.1f} MiB "
-      f"({m_last - m_mid:+.1f} MiB)")
+      f"({m_last - m_mid:+.1f} MiB); the database file grew to {samples[-1][3]:.1f} MiB")
+step = max(1, len(samples) // 12)
+print("  t (s) / RSS (MiB) / database (MiB): " + ", ".join(
+    f"{t}/{r:.0f}/{d:.0f}" for t, r, _, d in samples[::step]))
 check(m_last - m_mid <= allowed, f"memory flat: the last third's median at most {allowed:.1f} MiB "
       "(10 %, at least 5 MiB) above the middle third's")
 
