@@ -174,6 +174,19 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
     }
     drain_silences(store, config, &mut mailer, &mut attempted, &mut report).await?;
     drain_health(store, config, &mut mailer, &mut attempted, &mut report).await?;
+    note_delivery(store, config, &mut mailer, &mut attempted, &mut report).await?;
+    Ok(report)
+}
+
+/// Tells the health watch how the drain's latest email attempt went; when that ends a noticed
+/// failing streak, the recovery notice (by email too) goes out in this same drain.
+async fn note_delivery(
+    store: &Store,
+    config: &Config,
+    mailer: &mut Option<Result<Mailer, String>>,
+    attempted: &mut HashSet<i64>,
+    report: &mut DrainReport,
+) -> Result<(), AlertError> {
     let recovered = match report.email.clone() {
         Some(Ok(())) => health::succeeded(store, config, Component::Delivery).await,
         Some(Err(error)) => {
@@ -183,10 +196,9 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
         None => false,
     };
     if recovered {
-        // Email works again: the recovery notice (by email too) goes out in this drain.
-        drain_health(store, config, &mut mailer, &mut attempted, &mut report).await?;
+        drain_health(store, config, mailer, attempted, report).await?;
     }
-    Ok(report)
+    Ok(())
 }
 
 /// Delivers the due operational notices, once each per drain (see [`drain_once`]).
