@@ -113,8 +113,9 @@ pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, Daem
 
 /// Ingests `files` and records the outcome for the health watch: a failure (the files stay in
 /// the inbox) continues or starts the failing streak of ingest, a success ends it.
-/// When the database cannot record the failure either, `unrecorded` follows the streak and
-/// its notices go straight to the log.
+/// A failure's notice is queued here as soon as it is due; when the database can record
+/// neither the failure nor the notice (a full disk), `unrecorded` follows the streak and its
+/// notices go straight to the log.
 async fn ingest_noting_health(
     store: &Store,
     config: &Config,
@@ -130,8 +131,9 @@ async fn ingest_noting_health(
         }
         Err(e) => {
             let error = crate::errors::chain(e);
-            let recorded = health::failed(store, Component::Ingest, &error).await;
             let now = chrono::Utc::now();
+            let recorded = health::failed(store, Component::Ingest, &error).await
+                && health::notice_if_due(store, config, Component::Ingest, now).await;
             (
                 unrecorded.failed(recorded, now, config.health.notice_after),
                 error,

@@ -253,32 +253,74 @@ pub async fn check(
     config: &Config,
     now: DateTime<Utc>,
 ) -> Result<usize, StoreError> {
-    let after = chrono::Duration::from_std(config.health.notice_after).unwrap_or_default();
-    let failing_before = format_utc(now - after);
-    let at = format_utc(now);
     let mut queued = 0;
     for row in store.health().await? {
-        let Some(component) = Component::ALL
-            .into_iter()
-            .find(|c| c.as_str() == row.component)
-        else {
-            continue;
-        };
-        if row.notice_sent || row.failing_since.is_none() {
-            continue;
-        }
-        let to = recipients(config, component, Notice::Stuck);
-        if store
-            .health_stuck(component.as_str(), &failing_before, &at, &to)
-            .await?
-        {
-            tracing::warn!(
-                component = component.as_str(),
-                since = row.failing_since.as_deref().unwrap_or("-"),
-                "failing for longer than health.notice_after_minutes; notice queued"
-            );
+        if queue_if_due(store, config, &row, now).await? {
             queued += 1;
         }
+    }
+    Ok(queued)
+}
+
+/// After a recorded failure of `component`: queues its "stuck" notice if due now. False when
+/// the store cannot (the error logged): the caller then tells the log itself
+/// ([`Unrecorded`]), since the outbox cannot.
+pub async fn notice_if_due(
+    store: &Store,
+    config: &Config,
+    component: Component,
+    now: DateTime<Utc>,
+) -> bool {
+    let result = async {
+        for row in store.health().await? {
+            if row.component == component.as_str() {
+                queue_if_due(store, config, &row, now).await?;
+            }
+        }
+        Ok::<(), StoreError>(())
+    }
+    .await;
+    match result {
+        Ok(()) => true,
+        Err(e) => {
+            tracing::error!(component = component.as_str(), error = %crate::errors::chain(&e), "cannot queue the notice in the database");
+            false
+        }
+    }
+}
+
+/// Queues the "stuck" notice of `row`'s streak when it has lasted long enough and has none.
+async fn queue_if_due(
+    store: &Store,
+    config: &Config,
+    row: &HealthRow,
+    now: DateTime<Utc>,
+) -> Result<bool, StoreError> {
+    let Some(component) = Component::ALL
+        .into_iter()
+        .find(|c| c.as_str() == row.component)
+    else {
+        return Ok(false);
+    };
+    let after = chrono::Duration::from_std(config.health.notice_after).unwrap_or_default();
+    let failing_before = format_utc(now - after);
+    let due = row
+        .failing_since
+        .as_deref()
+        .is_some_and(|since| since <= failing_before.as_str());
+    if row.notice_sent || !due {
+        return Ok(false);
+    }
+    let to = recipients(config, component, Notice::Stuck);
+    let queued = store
+        .health_stuck(component.as_str(), &failing_before, &format_utc(now), &to)
+        .await?;
+    if queued {
+        tracing::warn!(
+            component = component.as_str(),
+            since = row.failing_since.as_deref().unwrap_or("-"),
+            "failing for longer than health.notice_after_minutes; notice queued"
+        );
     }
     Ok(queued)
 }
