@@ -797,6 +797,7 @@ impl Store {
             .log_slow_statements(tracing::log::LevelFilter::Debug, Duration::from_secs(5));
         let pool = SqlitePoolOptions::new()
             .max_connections(4)
+            .after_release(|conn, _| Box::pin(async move { reusable(conn).await }))
             .connect_with(options)
             .await
             .map_err(|source| StoreError::Open {
@@ -3157,6 +3158,22 @@ async fn upsert_name(
         .fetch_one(&mut **tx)
         .await
         .doing("looking up a name")
+}
+
+/// Whether a connection handed back to the pool can be used again. A COMMIT that fails
+/// (database or disk full) leaves the transaction rolled back by SQLite but still counted by
+/// sqlx; the ROLLBACK sqlx then sends fails as well ("no transaction is active"), and every
+/// later BEGIN on that connection would fail with "non-zero transaction depth", so ingest
+/// would never recover once space is freed. Such a connection is closed instead (the pool
+/// opens a new one). The ping first lets the connection's worker finish a queued rollback.
+async fn reusable(conn: &mut sqlx::SqliteConnection) -> std::result::Result<bool, sqlx::Error> {
+    use sqlx::Connection as _;
+    conn.ping().await?;
+    if conn.is_in_transaction() {
+        tracing::warn!("a database connection was left inside a failed transaction; closing it");
+        return Ok(false);
+    }
+    Ok(true)
 }
 
 /// Inserts a frozen baseline and its lots; returns its id.

@@ -320,3 +320,112 @@ fn check_config_names_a_bad_notice_after_minutes() {
     let err = text(&out.stderr);
     assert!(err.contains("health.notice_after_minutes"), "{err}");
 }
+
+/// A tmpfs of `size` mounted on `dir` for one test, unmounted when dropped; None (and a
+/// SKIPPED line) without root.
+struct SmallDisk {
+    dir: PathBuf,
+}
+
+impl SmallDisk {
+    fn mount(dir: &std::path::Path, size: &str) -> Option<SmallDisk> {
+        std::fs::create_dir_all(dir).unwrap();
+        let out = std::process::Command::new("mount")
+            .args(["-t", "tmpfs", "-o", &format!("size={size}"), "tmpfs"])
+            .arg(dir)
+            .output();
+        match out {
+            Ok(o) if o.status.success() => Some(SmallDisk { dir: dir.into() }),
+            other => {
+                eprintln!(
+                    "SKIPPED: cannot mount a tmpfs on {} ({other:?}); the full disk is not \
+                     checked by this run (it needs root or CAP_SYS_ADMIN)",
+                    dir.display()
+                );
+                None
+            }
+        }
+    }
+}
+
+impl Drop for SmallDisk {
+    fn drop(&mut self) {
+        let _ = std::process::Command::new("umount").arg(&self.dir).status();
+    }
+}
+
+/// Writes `path` until the file system is full.
+fn fill(path: &std::path::Path) {
+    use std::io::Write;
+    let mut f = std::fs::File::create(path).unwrap();
+    let chunk = vec![0u8; 64 * 1024];
+    while f.write_all(&chunk).is_ok() {}
+    let _ = f.sync_all();
+}
+
+#[test]
+fn a_full_disk_under_the_database_is_noticed_once_in_the_log_and_its_end_once() {
+    let site = Site::new(
+        "[paths]\ndatabase = \"db/lotdrift.db\"\n\
+         [watch]\nsettle_seconds = 0.0\nrescan_seconds = 0.2\n\
+         [health]\nnotice_after_minutes = 0.02\n",
+    );
+    let Some(_disk) = SmallDisk::mount(&site.path().join("db"), "8m") else {
+        return;
+    };
+    let daemon = site.spawn_daemon();
+    assert!(wait_until(LIMIT, || log_of(&site).contains("watching")));
+    let filler = site.path().join("db").join("filler");
+    fill(&filler);
+    // A lot large enough (2 × 15,000 values) that its pages cannot fit in the space left.
+    let chars = [
+        ("capacity_mah", lot_values(15_000, 100.0, 1.0, 1)),
+        ("mass_g", lot_values(15_000, 50.0, 1.0, 2)),
+    ];
+    let text = long_file("alder-cells", "AL-001", "2026-01-05", &chars);
+    drop_file(&site.inbox(), "alder-cells_AL-001.csv", &text);
+    assert!(
+        wait_until(LIMIT, || log_of(&site)
+            .contains("lotdrift: ingest stuck for")),
+        "{}",
+        log_of(&site)
+    );
+    let log = log_of(&site);
+    assert!(log.contains("full"), "{log}");
+    // More failed scans: no second notice.
+    let failed_scans = |log: &str| {
+        log.matches("ingest failed; files left in the inbox")
+            .count()
+    };
+    let seen = failed_scans(&log);
+    assert!(wait_until(LIMIT, || failed_scans(&log_of(&site)) >= seen + 5));
+    std::fs::remove_file(&filler).unwrap();
+    assert!(
+        wait_until(LIMIT, || log_of(&site)
+            .contains("lotdrift: ingest working again")),
+        "{}",
+        log_of(&site)
+    );
+    stop(daemon);
+    let log = log_of(&site);
+    // Regression: a failed COMMIT left pooled connections that refused every later BEGIN, so
+    // ingest and the health record never recovered once space was freed.
+    assert!(!log.contains("non-zero transaction depth"), "{log}");
+    assert_eq!(
+        log.matches("lotdrift: ingest stuck for").count(),
+        1,
+        "{log}"
+    );
+    assert_eq!(
+        log.matches("lotdrift: ingest working again").count(),
+        1,
+        "{log}"
+    );
+    let status = site.status();
+    assert_eq!(status["lots"], 1, "{status:#}");
+    assert_eq!(status["measurements"], 30_000);
+    assert_eq!(
+        status["health"]["ingest"]["state"], "ok",
+        "{status:#}\n{log}"
+    );
+}
