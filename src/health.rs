@@ -18,7 +18,8 @@
 //!
 //! Owns the rule and what a check decides; never formats or delivers (`alert` does) and never
 //! speaks SQL (`store` does). A failure to record health is logged and never stops the
-//! daemon.
+//! daemon; when the database can record neither an ingest failure nor its notice (a full
+//! disk), the streak is followed in memory and told to the log directly ([`Unrecorded`]).
 
 use std::time::Duration;
 
