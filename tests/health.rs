@@ -94,9 +94,24 @@ fn one_lot(site: &Site) {
     drop_file(&site.inbox(), "alder-cells_AL-001.csv", &text);
 }
 
-fn stop(mut daemon: std::process::Child) {
-    sigterm(&daemon);
-    let status = wait_exit(&mut daemon, LIMIT);
+/// The daemon of a test, killed when dropped, so a failing test leaves no process behind
+/// (nor a busy tmpfs).
+struct Daemon(std::process::Child);
+
+impl Drop for Daemon {
+    fn drop(&mut self) {
+        let _ = self.0.kill();
+        let _ = self.0.wait();
+    }
+}
+
+fn start(site: &Site) -> Daemon {
+    Daemon(site.spawn_daemon())
+}
+
+fn stop(mut daemon: Daemon) {
+    sigterm(&daemon.0);
+    let status = wait_exit(&mut daemon.0, LIMIT);
     assert!(status.success(), "daemon exit {status:?}");
 }
 
@@ -114,7 +129,7 @@ fn stuck_ingest_is_noticed_once_by_log_and_email_across_a_restart_and_its_recove
     let site = health_site(server.port);
     let blocked = block_archive(&site);
     one_lot(&site);
-    let daemon = site.spawn_daemon();
+    let daemon = start(&site);
     assert!(
         wait_until(LIMIT, || received_with(&server, "ingest stuck") >= 1),
         "{}",
@@ -146,7 +161,7 @@ fn stuck_ingest_is_noticed_once_by_log_and_email_across_a_restart_and_its_recove
     // The streak is stored: a new daemon goes on failing in the same streak, without a notice.
     let stopped = site.status();
     assert_eq!(stopped["health"]["ingest"]["failing_since"], since.as_str());
-    let daemon = site.spawn_daemon();
+    let daemon = start(&site);
     let f = failures(&site, "ingest");
     assert!(wait_until(LIMIT, || failures(&site, "ingest") >= f + 5));
 
@@ -276,7 +291,7 @@ fn the_daemon_notices_failing_delivery_once_and_its_recovery_once() {
     let port = free_port();
     let site = health_site(port);
     drifting_series(&site);
-    let daemon = site.spawn_daemon();
+    let daemon = start(&site);
     assert!(
         wait_until(LIMIT, || log_of(&site)
             .contains("lotdrift: email delivery failing for")),
@@ -373,7 +388,7 @@ fn a_full_disk_under_the_database_is_noticed_once_in_the_log_and_its_end_once() 
     let Some(_disk) = SmallDisk::mount(&site.path().join("db"), "8m") else {
         return;
     };
-    let daemon = site.spawn_daemon();
+    let daemon = start(&site);
     assert!(wait_until(LIMIT, || log_of(&site).contains("watching")));
     let filler = site.path().join("db").join("filler");
     fill(&filler);
