@@ -11,9 +11,11 @@
 //! SMTP. The SMTP password comes from `LOTDRIFT_SMTP_PASSWORD` or
 //! `alerts.email.password_file` and is never logged.
 //!
-//! Besides alert events the outbox carries daily digests (text from [`crate::digest`]) and
+//! Besides alert events the outbox carries daily digests (text from [`crate::digest`]),
 //! silence notices (a source sent no lot for longer than usual, [`crate::silence`]; plain
-//! text from [`silence_body`]).
+//! text from [`silence_body`]) and operational notices (ingest or delivery stuck, and
+//! recovered, [`crate::health`]; plain text from [`health_body`]). Every drain reports the
+//! outcome of its latest email attempt to [`crate::health`].
 //!
 //! An alert message is multipart/mixed: a multipart/alternative of plain text and HTML (both
 //! built from the same rows by [`facts`]; names cleaned of control characters, HTML escaped),
@@ -37,9 +39,10 @@ use tokio_util::sync::CancellationToken;
 use crate::chart::{self, ChartPoint};
 use crate::config::{Config, Email, Tls};
 use crate::digest;
+use crate::health::{self, Component};
 use crate::silence;
 use crate::store::{
-    AlertRow, DeliveryOutcome, DigestItem, OutboxItem, SilenceItem, Store, StoreError,
+    AlertRow, DeliveryOutcome, DigestItem, HealthItem, OutboxItem, SilenceItem, Store, StoreError,
 };
 use crate::time::{format_utc, now_rfc3339, parse_utc};
 
@@ -67,12 +70,15 @@ pub enum AlertError {
 }
 
 /// Counts of one drain.
-#[derive(Debug, Default, Clone, Copy, PartialEq, Eq)]
+#[derive(Debug, Default, Clone, PartialEq, Eq)]
 pub struct DrainReport {
     pub delivered: usize,
     pub retrying: usize,
     pub failed: usize,
     pub expired: usize,
+    /// The outcome of the drain's latest email attempt (its error when not delivered); None
+    /// when no email was attempted.
+    pub email: Option<Result<(), String>>,
 }
 
 /// Delivers every message due now, once each (alert events first, then digests). Returns
@@ -167,7 +173,71 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
         }
     }
     drain_silences(store, config, &mut mailer, &mut attempted, &mut report).await?;
+    drain_health(store, config, &mut mailer, &mut attempted, &mut report).await?;
+    note_delivery(store, config, &mut mailer, &mut attempted, &mut report).await?;
     Ok(report)
+}
+
+/// Tells the health watch how the drain's latest email attempt went; when that ends a noticed
+/// failing streak, the recovery notice (by email too) goes out in this same drain.
+async fn note_delivery(
+    store: &Store,
+    config: &Config,
+    mailer: &mut Option<Result<Mailer, String>>,
+    attempted: &mut HashSet<i64>,
+    report: &mut DrainReport,
+) -> Result<(), AlertError> {
+    let recovered = match report.email.clone() {
+        Some(Ok(())) => health::succeeded(store, config, Component::Delivery).await,
+        Some(Err(error)) => {
+            health::failed(store, Component::Delivery, &error).await;
+            false
+        }
+        None => false,
+    };
+    if recovered {
+        drain_health(store, config, mailer, attempted, report).await?;
+    }
+    Ok(())
+}
+
+/// Delivers the due operational notices, once each per drain (see [`drain_once`]).
+async fn drain_health(
+    store: &Store,
+    config: &Config,
+    mailer: &mut Option<Result<Mailer, String>>,
+    attempted: &mut HashSet<i64>,
+    report: &mut DrainReport,
+) -> Result<(), AlertError> {
+    loop {
+        let due = store
+            .due_health_messages(&now_rfc3339(), DRAIN_BATCH)
+            .await?;
+        let batch = due.len();
+        let fresh: Vec<HealthItem> = due.into_iter().filter(|i| attempted.insert(i.id)).collect();
+        if fresh.is_empty() {
+            break;
+        }
+        for item in fresh {
+            let outcome = deliver(
+                &item.channel,
+                config,
+                mailer,
+                &Attempt::of_health(&item),
+                |from| health_message(from, &item),
+                || log_health(&item),
+            )
+            .await;
+            tally(report, &item.channel, &item.recipient, &outcome);
+            store
+                .outbox_attempted(item.id, &outcome, &now_rfc3339())
+                .await?;
+        }
+        if (batch as i64) < DRAIN_BATCH {
+            break;
+        }
+    }
+    Ok(())
 }
 
 /// Delivers the due messages about silent sources, once each per drain (see [`drain_once`]).
@@ -238,8 +308,16 @@ async fn deliver(
     }
 }
 
-/// Counts an outcome and logs a failure.
+/// Counts an outcome, keeps the latest email outcome, and logs a failure.
 fn tally(report: &mut DrainReport, channel: &str, recipient: &str, outcome: &DeliveryOutcome) {
+    if channel == "email" {
+        report.email = Some(match outcome {
+            DeliveryOutcome::Delivered => Ok(()),
+            DeliveryOutcome::Retry { error, .. }
+            | DeliveryOutcome::Failed { error }
+            | DeliveryOutcome::Expired { error } => Err(error.clone()),
+        });
+    }
     match outcome {
         DeliveryOutcome::Delivered => report.delivered += 1,
         DeliveryOutcome::Retry { error, next_at } => {
@@ -297,10 +375,21 @@ impl<'a> Attempt<'a> {
             what: format!("silence event {}", item.event_id),
         }
     }
+
+    fn of_health(item: &'a HealthItem) -> Attempt<'a> {
+        Attempt {
+            id: item.id,
+            recipient: &item.recipient,
+            attempts: item.attempts,
+            created_at: &item.created_at,
+            what: format!("health event {}", item.event_id),
+        }
+    }
 }
 
 /// Queues the daily digest when it is due, checks for silent sources (when woken, and at
-/// least every [`SILENCE_EVERY`]) and drains the outbox, whenever `wake` is notified and at
+/// least every [`SILENCE_EVERY`]), queues the notices of a stuck ingest or delivery
+/// ([`health::check`]) and drains the outbox, whenever `wake` is notified and at
 /// least every `poll`, until cancelled.
 pub async fn run(
     store: Arc<Store>,
@@ -320,6 +409,9 @@ pub async fn run(
                 tracing::error!(error = %crate::errors::chain(&e), "cannot check for silent sources");
             }
             silence_checked = Some(tokio::time::Instant::now());
+        }
+        if let Err(e) = health::check(&store, &config, Utc::now()).await {
+            tracing::error!(error = %crate::errors::chain(&e), "cannot check the health of ingest and delivery");
         }
         match drain_once(&store, &config).await {
             Ok(_) => {}
@@ -955,6 +1047,169 @@ fn log_silence(item: &SilenceItem) {
     }
 }
 
+/// A duration as people read it: "40 s", "35 min", "2.5 h", "3.1 days".
+fn span_text(seconds: f64) -> String {
+    let s = seconds.max(0.0);
+    if s < 90.0 {
+        format!("{s:.0} s")
+    } else if s < 90.0 * 60.0 {
+        format!("{:.0} min", s / 60.0)
+    } else if s < 48.0 * 3600.0 {
+        format!("{:.1} h", s / 3600.0)
+    } else {
+        format!("{:.1} days", s / 86_400.0)
+    }
+}
+
+/// What the component is called in a notice.
+fn component_text(component: &str) -> &'static str {
+    if component == "delivery" {
+        "email delivery"
+    } else {
+        "ingest"
+    }
+}
+
+/// The one-line summary of an operational notice, used as log message and email subject.
+pub fn health_subject(item: &HealthItem) -> String {
+    let span = parse_utc(&item.failing_since)
+        .zip(parse_utc(&item.at))
+        .map_or("-".into(), |(a, b)| span_text((b - a).as_seconds_f64()));
+    let what = component_text(&item.component);
+    let text = match (item.kind.as_str(), item.component.as_str()) {
+        ("recovered", _) => format!("lotdrift: {what} working again after {span}"),
+        (_, "delivery") => {
+            format!("lotdrift: {what} failing for {span}; messages wait in the outbox")
+        }
+        _ => format!("lotdrift: {what} stuck for {span}; files stay in the inbox"),
+    };
+    clean(&text)
+}
+
+/// What an operational notice asks of the reader.
+fn health_advice(item: &HealthItem) -> &'static str {
+    match (item.kind.as_str(), item.component.as_str()) {
+        ("recovered", "delivery") => {
+            "Messages queued meanwhile are being delivered now, late. The notice that \
+             delivery was failing could only reach the log."
+        }
+        ("recovered", _) => {
+            "Files that waited in the inbox are being stored now; nothing was lost."
+        }
+        (_, "delivery") => {
+            "Messages wait in the outbox and are retried with backoff (they expire after \
+             alerts.expire_hours). This notice reaches the log only, since email is what \
+             fails. Check the mail server and `lotdrift alerts test-email`."
+        }
+        _ => {
+            "Nothing is lost: the files stay in the inbox and are taken again at every scan, \
+             and are stored once the cause is fixed. See `lotdrift status` for the latest \
+             error."
+        }
+    }
+}
+
+/// The plain-text body of an operational notice.
+pub fn health_body(item: &HealthItem) -> String {
+    let mut s = health_subject(item);
+    s.push_str("\n\n");
+    let mut rows = vec![
+        ("Component", component_text(&item.component).to_string()),
+        ("Failing since", item.failing_since.clone()),
+        ("Failures", item.failures.to_string()),
+        ("Last error", clean(&item.last_error)),
+    ];
+    if item.kind == "recovered" {
+        rows.push(("Working since", item.at.clone()));
+    } else {
+        rows.push(("Noticed", item.at.clone()));
+    }
+    for (label, value) in rows {
+        s.push_str(&format!("{:<15}{value}\n", format!("{label}:")));
+    }
+    s.push_str(&format!(
+        "\n{}\nOne notice is sent when a failure lasts longer than \
+         health.notice_after_minutes, and one when it ends.\n",
+        health_advice(item)
+    ));
+    s
+}
+
+/// An operational notice to `item.recipient`: plain text. Its Message-ID is derived from the
+/// health event, the same for every attempt and recipient.
+fn health_message(from: &Mailbox, item: &HealthItem) -> Result<Message, String> {
+    let to: Mailbox = item
+        .recipient
+        .parse()
+        .map_err(|e| format!("recipient {:?}: {e}", item.recipient))?;
+    let stamp: String = item.at.chars().filter(char::is_ascii_digit).collect();
+    Message::builder()
+        .from(from.clone())
+        .to(to)
+        .subject(health_subject(item))
+        .message_id(Some(format!(
+            "<lotdrift.health-{}.{stamp}@{}>",
+            item.event_id,
+            from.email.domain()
+        )))
+        .header(ContentType::TEXT_PLAIN)
+        .body(health_body(item))
+        .map_err(|e| format!("cannot build message: {e}"))
+}
+
+/// Logs a notice that could not be queued (the database cannot record the streak), in the
+/// same form as a queued one; `error` is the latest failure (empty for a recovery).
+pub fn log_unqueued(component: Component, told: &health::Unqueued, error: &str) {
+    let kind = match told.notice {
+        health::Notice::Stuck => "stuck",
+        health::Notice::Recovered => "recovered",
+    };
+    log_health(&HealthItem {
+        id: 0,
+        channel: "log".into(),
+        recipient: "log".into(),
+        attempts: 0,
+        created_at: now_rfc3339(),
+        event_id: 0,
+        component: component.as_str().into(),
+        kind: kind.into(),
+        at: now_rfc3339(),
+        failing_since: format_utc(told.since),
+        failures: told.failures,
+        last_error: if error.is_empty() {
+            "(not recorded: the database could not be written)".into()
+        } else {
+            format!("{error} (not recorded: the database could not be written)")
+        },
+    });
+}
+
+fn log_health(item: &HealthItem) {
+    if item.kind == "recovered" {
+        tracing::info!(
+            target: "lotdrift::alert",
+            event = "recovered",
+            component = %item.component,
+            failing_since = %item.failing_since,
+            failures = item.failures,
+            last_error = %item.last_error,
+            "{}",
+            health_subject(item)
+        );
+    } else {
+        tracing::error!(
+            target: "lotdrift::alert",
+            event = "stuck",
+            component = %item.component,
+            failing_since = %item.failing_since,
+            failures = item.failures,
+            last_error = %item.last_error,
+            "{}",
+            health_subject(item)
+        );
+    }
+}
+
 /// What the server said to a test message for one recipient.
 #[derive(Debug, Clone)]
 pub struct TestDelivery {
@@ -1378,6 +1633,63 @@ mod tests {
         let raw = String::from_utf8(raw.formatted()).unwrap();
         assert!(
             raw.contains("Message-ID: <lotdrift.silence-6.20260321080000000@example.org>"),
+            "{raw}"
+        );
+        assert!(!raw.contains("\r\nBcc:"), "{raw}");
+    }
+
+    fn health_item(component: &str, kind: &str) -> HealthItem {
+        HealthItem {
+            id: 5,
+            channel: "email".into(),
+            recipient: "quality@example.org".into(),
+            attempts: 0,
+            created_at: "2026-03-01T08:40:00.000Z".into(),
+            event_id: 2,
+            component: component.into(),
+            kind: kind.into(),
+            at: "2026-03-01T08:40:00.000Z".into(),
+            failing_since: "2026-03-01T08:05:00.000Z".into(),
+            failures: 12,
+            last_error: "cannot move a\r\nBcc: x@y".into(),
+        }
+    }
+
+    #[test]
+    fn health_subjects_say_what_is_stuck_for_how_long_and_what_waits() {
+        assert_eq!(
+            health_subject(&health_item("ingest", "stuck")),
+            "lotdrift: ingest stuck for 35 min; files stay in the inbox"
+        );
+        assert_eq!(
+            health_subject(&health_item("delivery", "stuck")),
+            "lotdrift: email delivery failing for 35 min; messages wait in the outbox"
+        );
+        assert_eq!(
+            health_subject(&health_item("delivery", "recovered")),
+            "lotdrift: email delivery working again after 35 min"
+        );
+        assert_eq!(span_text(40.0), "40 s");
+        assert_eq!(span_text(9000.0), "2.5 h");
+        assert_eq!(span_text(3.0 * 86_400.0), "3.0 days");
+    }
+
+    #[test]
+    fn health_messages_carry_the_streak_and_a_stable_message_id() {
+        let item = health_item("ingest", "stuck");
+        let body = health_body(&item);
+        for needle in [
+            "Failing since: 2026-03-01T08:05:00.000Z",
+            "Failures:      12",
+            "Last error:    cannot move a  Bcc: x@y",
+            "stay in the inbox",
+        ] {
+            assert!(body.contains(needle), "{needle} missing in {body}");
+        }
+        let from: Mailbox = "lotdrift <lotdrift@example.org>".parse().unwrap();
+        let raw = String::from_utf8(health_message(&from, &item).unwrap().formatted()).unwrap();
+        assert!(
+            raw.contains("Message-ID: <lotdrift.health-2.20260301084000000@example.org>"),
             "{raw}"
         );
         assert!(!raw.contains("\r\nBcc:"), "{raw}");

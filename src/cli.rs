@@ -413,67 +413,7 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             let config = load(&config)?;
             check_file::run(&config, &file, profile.as_deref(), json)
         }
-        Command::Status { config, json } => {
-            let config = load(&config)?;
-            let store = open_existing(&config).await?;
-            let counts = store.status().await.context("status")?;
-            let undelivered = store.undelivered().await.context("status")?;
-            let series: Vec<report::SeriesStatus> = store
-                .series_designs()
-                .await
-                .context("status")?
-                .into_iter()
-                .map(|(source, characteristic, d)| report::SeriesStatus {
-                    baseline_cpk: crate::engine::baseline_cpk(&d, &config.monitor, &characteristic)
-                        .map(|c| [c.cpk, c.low, c.high]),
-                    detectable_shift: crate::engine::detectable_shift(
-                        &d,
-                        &config.monitor,
-                        &characteristic,
-                    ),
-                    source,
-                    characteristic,
-                    baseline_lots: d.re.m,
-                    baseline_mean: d.re.mean_of_means,
-                    between_lot_sd: d.re.var_between.sqrt(),
-                    within_lot_sd: d.re.var_within.sqrt(),
-                    model: if d.re.var_between > 0.0 {
-                        "lot-means"
-                    } else {
-                        "units"
-                    },
-                    level_mean: d.level_mean,
-                    cusum_h: d.cusum.map(|c| c.1),
-                    normality_p: d.normality_p,
-                    test: if crate::engine::distribution_free(&d) {
-                        "mann-whitney"
-                    } else {
-                        "lot-mean-t"
-                    },
-                })
-                .collect();
-            let silent = store.silent_sources().await.context("status")?;
-            if json {
-                print_json(&report::status_json(
-                    &counts,
-                    &undelivered,
-                    &series,
-                    &silent,
-                ));
-            } else {
-                say_part!(
-                    "{}",
-                    report::status_text(
-                        &counts,
-                        &undelivered,
-                        &config.paths.database.display().to_string()
-                    )
-                );
-                say_part!("{}", report::series_text(&series));
-                say_part!("{}", report::silent_text(&silent));
-            }
-            Ok(())
-        }
+        Command::Status { config, json } => status(&load(&config)?, json).await,
         Command::Alerts {
             action: Some(AlertsAction::TestEmail { config: own }),
             config,
@@ -601,6 +541,72 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
         Command::Adjust(args) => adjust(args),
         Command::Backup { file, config } => backup(&load(&config)?, &file).await,
     }
+}
+
+/// `lotdrift status`: counts, undelivered messages, series, silent sources and health.
+async fn status(config: &Config, json: bool) -> Result<(), Failure> {
+    let store = open_existing(config).await?;
+    let counts = store.status().await.context("status")?;
+    let undelivered = store.undelivered().await.context("status")?;
+    let series = series_status(&store, config).await?;
+    let silent = store.silent_sources().await.context("status")?;
+    let health = crate::health::status(
+        &store.health().await.context("status")?,
+        &counts,
+        config.health.notice_after,
+        chrono::Utc::now(),
+    );
+    if json {
+        print_json(&report::status_json(
+            &counts,
+            &undelivered,
+            &series,
+            &silent,
+            &health,
+        ));
+    } else {
+        let db = config.paths.database.display().to_string();
+        say_part!("{}", report::status_text(&counts, &undelivered, &db));
+        say_part!("{}", report::series_text(&series));
+        say_part!("{}", report::silent_text(&silent));
+        say_part!("{}", report::health_text(&health));
+    }
+    Ok(())
+}
+
+/// Every series with a frozen baseline, as `status` shows it.
+async fn series_status(
+    store: &Store,
+    config: &Config,
+) -> Result<Vec<report::SeriesStatus>, Failure> {
+    let designs = store.series_designs().await.context("status")?;
+    Ok(designs
+        .into_iter()
+        .map(|(source, characteristic, d)| report::SeriesStatus {
+            baseline_cpk: crate::engine::baseline_cpk(&d, &config.monitor, &characteristic)
+                .map(|c| [c.cpk, c.low, c.high]),
+            detectable_shift: crate::engine::detectable_shift(&d, &config.monitor, &characteristic),
+            source,
+            characteristic,
+            baseline_lots: d.re.m,
+            baseline_mean: d.re.mean_of_means,
+            between_lot_sd: d.re.var_between.sqrt(),
+            within_lot_sd: d.re.var_within.sqrt(),
+            model: if d.re.var_between > 0.0 {
+                "lot-means"
+            } else {
+                "units"
+            },
+            level_mean: d.level_mean,
+            cusum_h: d.cusum.map(|c| c.1),
+            normality_p: d.normality_p,
+            test: if crate::engine::distribution_free(&d) {
+                "mann-whitney"
+            } else {
+                "lot-mean-t"
+            },
+        })
+        .collect())
 }
 
 fn init(dir: &Path, force: bool) -> Result<(), Failure> {

@@ -50,10 +50,18 @@ pub struct RawConfig {
     #[serde(default)]
     pub alerts: RawAlerts,
     #[serde(default)]
+    pub health: RawHealth,
+    #[serde(default)]
     pub log: RawLog,
     /// Input profiles, `[[input.profile]]`.
     #[serde(default)]
     pub input: RawInput,
+}
+
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawHealth {
+    pub notice_after_minutes: Option<f64>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -159,8 +167,17 @@ pub struct Config {
     pub watch: Watch,
     pub monitor: Monitor,
     pub alerts: Alerts,
+    pub health: Health,
     pub log: Log,
     pub input: Input,
+}
+
+/// When the daemon says it is stuck (`crate::health`).
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Health {
+    /// `health.notice_after_minutes`: ingest or delivery failing for longer than this sends
+    /// one notice (and one when it recovers). Fractions of a minute are allowed.
+    pub notice_after: Duration,
 }
 
 #[derive(Debug, Clone)]
@@ -491,6 +508,7 @@ pub mod defaults {
     pub const RETRY_MAX_SECONDS: f64 = 3600.0;
     pub const EXPIRE_HOURS: f64 = 72.0;
     pub const SMTP_TIMEOUT_SECONDS: f64 = 30.0;
+    pub const NOTICE_AFTER_MINUTES: f64 = 30.0;
 }
 
 impl Config {
@@ -832,6 +850,8 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
         digest,
     };
 
+    let health = validate_health(&mut p, raw.health);
+
     let format = match raw.log.format.as_deref() {
         None | Some("text") => LogFormat::Text,
         Some("json") => LogFormat::Json,
@@ -868,9 +888,33 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
         watch,
         monitor,
         alerts,
+        health,
         log,
         input,
     })
+}
+
+/// Longest `health.notice_after_minutes` accepted: a week.
+const MAX_NOTICE_AFTER_MINUTES: f64 = 7.0 * 24.0 * 60.0;
+
+fn validate_health(p: &mut Problems, raw: RawHealth) -> Health {
+    let minutes = raw
+        .notice_after_minutes
+        .unwrap_or(defaults::NOTICE_AFTER_MINUTES);
+    if !(minutes.is_finite() && minutes > 0.0 && minutes <= MAX_NOTICE_AFTER_MINUTES) {
+        p.push(
+            "health.notice_after_minutes",
+            format!(
+                "must be a number of minutes > 0, at most {MAX_NOTICE_AFTER_MINUTES} (got {minutes})"
+            ),
+        );
+        return Health {
+            notice_after: Duration::from_secs_f64(defaults::NOTICE_AFTER_MINUTES * 60.0),
+        };
+    }
+    Health {
+        notice_after: Duration::from_secs_f64(minutes * 60.0),
+    }
 }
 
 fn validate_email(p: &mut Problems, base: &Path, e: RawEmail) -> Email {
@@ -1129,6 +1173,11 @@ repeat_hours = 24        # announce a still-shifting open alert again after this
 # at = "07:30"
 # when_empty = false       # true: also send it when no alert is open
 
+[health]
+# Ingest or delivery failing for longer than this sends one notice (log always; email too
+# unless email delivery is what fails), and one when it works again. Fractions are allowed.
+notice_after_minutes = 30
+
 [log]
 format = "text"          # "text" or "json"
 level = "info"
@@ -1175,6 +1224,27 @@ mod tests {
         assert_eq!(c.alerts.channels, vec![Channel::Log]);
         let d = parse("").unwrap();
         assert_eq!(d.watch.settle, c.watch.settle);
+        assert_eq!(d.health, c.health);
+        assert_eq!(d.health.notice_after, Duration::from_secs(1800));
+    }
+
+    #[test]
+    fn notice_after_minutes_takes_fractions_and_bad_values_name_the_key() {
+        let c = parse("[health]\nnotice_after_minutes = 0.05\n").unwrap();
+        assert_eq!(c.health.notice_after, Duration::from_secs(3));
+        for bad in ["0", "-1", "nan", "inf", "20000"] {
+            let e = parse(&format!("[health]\nnotice_after_minutes = {bad}\n"))
+                .unwrap_err()
+                .to_string();
+            assert!(
+                e.contains("health.notice_after_minutes: must be"),
+                "{bad}: {e}"
+            );
+        }
+        let e = parse("[health]\nnotice_after = 3\n")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("notice_after"), "{e}");
     }
 
     #[test]

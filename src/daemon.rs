@@ -1,9 +1,10 @@
 //! The daemon: wires the stages together and owns their lifetimes.
 //!
 //! Tasks: the watcher (`watch`) sends batches of complete files; the ingest worker stores them
-//! (`ingest`) and then runs an engine pass (`engine`); the notifier (`alert`) queues the daily
-//! digest and silence notices (`silence`) and drains the outbox, whenever it is woken and on a
-//! timer. All share one cancellation token; SIGTERM or SIGINT cancels it, the file batch in
+//! (`ingest`), records the outcome for the health watch (`health`) and then runs an engine
+//! pass (`engine`); the notifier (`alert`) queues the daily digest, silence notices
+//! (`silence`) and notices of a stuck ingest or delivery (`health`) and drains the outbox,
+//! whenever it is woken and on a timer. All share one cancellation token; SIGTERM or SIGINT cancels it, the file batch in
 //! flight completes, and the process exits 0. `run_once` is the
 //! same pipeline run a single time over what is in the inbox.
 
@@ -17,6 +18,7 @@ use tokio_util::task::TaskTracker;
 use crate::alert::{self, DrainReport};
 use crate::config::Config;
 use crate::engine;
+use crate::health::{self, Component, Unrecorded};
 use crate::ingest::{self, IngestReport};
 use crate::silence::{self, CheckReport};
 use crate::store::{PassCounts, Store};
@@ -85,12 +87,21 @@ pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, Daem
     )
     .await;
     let cancel = CancellationToken::new();
-    let ingest =
-        ingest::ingest_files(store, &config.paths, &config.input, files, None, &cancel).await?;
+    let mut unrecorded = Unrecorded::default();
+    let ingest = match ingest_noting_health(store, config, files, &cancel, &mut unrecorded).await {
+        Ok(report) => report,
+        Err(e) => {
+            // A cron user's runs fail one after the other: the notice that ingest is stuck
+            // (once, past health.notice_after_minutes) still goes out before the exit.
+            notify_stuck(store, config).await;
+            return Err(e.into());
+        }
+    };
     ingest::UnreadableLog::default().note(&ingest);
     let engine = engine::evaluate(store, config).await?;
     crate::digest::schedule_if_due(store, config).await?;
     let silence = silence::check(store, config, chrono::Utc::now()).await?;
+    health::check(store, config, chrono::Utc::now()).await?;
     let delivery = alert::drain_once(store, config).await?;
     Ok(OnceReport {
         ingest,
@@ -98,6 +109,53 @@ pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, Daem
         silence,
         delivery,
     })
+}
+
+/// Ingests `files` and records the outcome for the health watch: a failure (the files stay in
+/// the inbox) continues or starts the failing streak of ingest, a success ends it.
+/// A failure's notice is queued here as soon as it is due; when the database can record
+/// neither the failure nor the notice (a full disk), `unrecorded` follows the streak and its
+/// notices go straight to the log.
+async fn ingest_noting_health(
+    store: &Store,
+    config: &Config,
+    files: Vec<std::path::PathBuf>,
+    cancel: &CancellationToken,
+    unrecorded: &mut Unrecorded,
+) -> Result<IngestReport, ingest::IngestError> {
+    let result =
+        ingest::ingest_files(store, &config.paths, &config.input, files, None, cancel).await;
+    let (told, error) = match &result {
+        Ok(_) => {
+            health::succeeded(store, config, Component::Ingest).await;
+            (unrecorded.succeeded(), String::new())
+        }
+        Err(e) => {
+            let error = crate::errors::chain(e);
+            let now = chrono::Utc::now();
+            let recorded = health::failed(store, Component::Ingest, &error).await
+                && health::notice_if_due(store, config, Component::Ingest, now).await;
+            (
+                unrecorded.failed(recorded, now, config.health.notice_after),
+                error,
+            )
+        }
+    };
+    if let Some(told) = told {
+        alert::log_unqueued(Component::Ingest, &told, &error);
+    }
+    result
+}
+
+/// Queues the notices of a stuck ingest or delivery that are due and drains the outbox;
+/// failures are logged (the caller is returning an error of its own).
+async fn notify_stuck(store: &Store, config: &Config) {
+    if let Err(e) = health::check(store, config, chrono::Utc::now()).await {
+        tracing::error!(error = %crate::errors::chain(&e), "cannot check the health of ingest and delivery");
+    }
+    if let Err(e) = alert::drain_once(store, config).await {
+        tracing::error!(error = %crate::errors::chain(&e), "outbox drain failed");
+    }
 }
 
 /// Runs until SIGTERM/SIGINT (or `cancel`).
@@ -144,6 +202,7 @@ pub async fn run(
     wake.notify_one();
     tracing::info!(inbox = %config.paths.inbox.display(), "watching");
     let mut unreadable = ingest::UnreadableLog::default();
+    let mut unrecorded = Unrecorded::default();
     while result.is_ok() {
         let files = tokio::select! {
             _ = cancel.cancelled() => break,
@@ -153,8 +212,7 @@ pub async fn run(
         while let Ok(more) = ready_rx.try_recv() {
             files.extend(more);
         }
-        match ingest::ingest_files(&store, &config.paths, &config.input, files, None, &cancel).await
-        {
+        match ingest_noting_health(&store, &config, files, &cancel, &mut unrecorded).await {
             Ok(report) => {
                 unreadable.note(&report);
                 if report.stored() > 0 {
@@ -165,8 +223,11 @@ pub async fn run(
                 }
             }
             Err(e) => {
-                // The files stay in the inbox and are taken again at the next rescan.
+                // The files stay in the inbox and are taken again at the next rescan. The
+                // notifier checks at once whether the failure has lasted long enough for a
+                // notice.
                 tracing::error!(error = %crate::errors::chain(&e), "ingest failed; files left in the inbox");
+                wake.notify_one();
             }
         }
     }

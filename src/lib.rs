@@ -15,6 +15,7 @@
 //! - [`alert`]: outbox delivery through the channels (log, SMTP email).
 //! - [`report`]: stored state formatted for people and scripts.
 //! - [`silence`]: the watch for sources that sent no lot for longer than they usually do.
+//! - [`health`]: the daemon says when ingest or delivery is stuck, and when it recovers.
 //! - [`config`]: TOML into a typed, validated configuration.
 //! - [`daemon`]: the tasks of `lotdrift run` and their shutdown; [`demo`]: the bundled tour.
 //! - [`cli`]: the commands; `main.rs` only calls [`cli::main`].
@@ -53,6 +54,7 @@ pub mod demo;
 pub mod digest;
 pub mod engine;
 pub mod errors;
+pub mod health;
 pub mod ingest;
 pub mod intake;
 pub mod lotfile;

@@ -5,6 +5,7 @@
 
 use serde_json::{Value, json};
 
+use crate::health::{ComponentStatus, HealthStatus};
 use crate::stats::compare::{Comparison, Df};
 use crate::store::{AlertRow, HistoryRow, SilentSource, StatusCounts, UndeliveredRow};
 
@@ -137,6 +138,7 @@ struct StatusJson<'a> {
     undelivered: &'a [UndeliveredRow],
     series: &'a [SeriesStatus],
     silent_sources: &'a [SilentSource],
+    health: &'a HealthStatus,
 }
 
 pub fn status_json(
@@ -144,6 +146,7 @@ pub fn status_json(
     undelivered: &[UndeliveredRow],
     series: &[SeriesStatus],
     silent: &[SilentSource],
+    health: &HealthStatus,
 ) -> Value {
     json!(StatusJson {
         lots: s.lots,
@@ -163,7 +166,49 @@ pub fn status_json(
         undelivered,
         series,
         silent_sources: silent,
+        health,
     })
+}
+
+/// Ingest and delivery: state, failing streak, latest success and latest error.
+pub fn health_text(h: &HealthStatus) -> String {
+    let row = |name: &str, c: &ComponentStatus, success: &str| {
+        let r = &c.row;
+        let error = match (&r.last_error_at, &r.last_error) {
+            (Some(at), Some(e)) => format!("{at}: {e}"),
+            _ => "-".into(),
+        };
+        vec![
+            name.to_string(),
+            c.state.to_string(),
+            r.failing_since.clone().unwrap_or_else(|| "-".into()),
+            r.failures.to_string(),
+            format!(
+                "{success} {}",
+                c.last_success_at.as_deref().unwrap_or("never")
+            ),
+            error,
+        ]
+    };
+    let rows = vec![
+        row("ingest", &h.ingest, "file stored"),
+        row("delivery", &h.delivery, "message delivered"),
+    ];
+    format!(
+        "\nHealth (a notice after {} min of failing):\n{}",
+        h.notice_after_minutes,
+        table(
+            &[
+                "",
+                "state",
+                "failing since",
+                "failures",
+                "latest success",
+                "latest error"
+            ],
+            &rows
+        )
+    )
 }
 
 /// The sources with an open silence, as a table (nothing when there are none).

@@ -522,6 +522,43 @@ pub struct SilentSource {
     pub threshold_days: f64,
 }
 
+/// The health of one component ("ingest" or "delivery") as stored: the current failing streak
+/// (none while the latest attempt succeeded) and the latest error, kept after a recovery.
+#[derive(Debug, Clone, Default, PartialEq, serde::Serialize)]
+pub struct HealthRow {
+    #[serde(skip)]
+    pub component: String,
+    /// The first failure not followed by a success.
+    pub failing_since: Option<String>,
+    /// Failures in the current streak.
+    pub failures: i64,
+    pub last_error: Option<String>,
+    pub last_error_at: Option<String>,
+    /// When the latest failing streak ended.
+    pub recovered_at: Option<String>,
+    /// The "stuck" notice of the current streak is queued (it is sent once per streak).
+    pub notice_sent: bool,
+}
+
+/// One operational notice to deliver: a component stuck, or recovered.
+#[derive(Debug, Clone, PartialEq)]
+pub struct HealthItem {
+    pub id: i64,
+    pub channel: String,
+    pub recipient: String,
+    pub attempts: i64,
+    pub created_at: String,
+    pub event_id: i64,
+    /// "ingest" or "delivery".
+    pub component: String,
+    /// "stuck" or "recovered".
+    pub kind: String,
+    pub at: String,
+    pub failing_since: String,
+    pub failures: i64,
+    pub last_error: String,
+}
+
 /// An alert with the numbers of the evaluation that opened it.
 #[derive(Debug, Clone, serde::Serialize)]
 pub struct AlertRow {
@@ -614,6 +651,11 @@ pub struct StatusCounts {
     pub last_digest: Option<String>,
     /// Units found as outliers.
     pub outliers: i64,
+    /// When the newest stored file was received.
+    pub last_stored_at: Option<String>,
+    /// When the newest message was delivered (any channel), and by email.
+    pub last_delivered_at: Option<String>,
+    pub last_email_delivered_at: Option<String>,
 }
 
 /// A failed or expired outbox message, for `status`.
@@ -625,7 +667,8 @@ pub struct UndeliveredRow {
     pub state: String,
     pub attempts: i64,
     pub last_error: Option<String>,
-    /// What the message announces: "alert" (an alert event), "digest" or "silence".
+    /// What the message announces: "alert" (an alert event), "digest", "silence" or
+    /// "health" (an operational notice).
     pub message: String,
 }
 
@@ -763,6 +806,7 @@ impl Store {
             .log_slow_statements(tracing::log::LevelFilter::Debug, Duration::from_secs(5));
         let pool = SqlitePoolOptions::new()
             .max_connections(4)
+            .after_release(|conn, _| Box::pin(async move { reusable(conn).await }))
             .connect_with(options)
             .await
             .map_err(|source| StoreError::Open {
@@ -2338,6 +2382,128 @@ impl Store {
             .collect())
     }
 
+    /// The health of every component, "ingest" first.
+    pub async fn health(&self) -> Result<Vec<HealthRow>> {
+        let rows = sqlx::query(
+            "SELECT component, failing_since, failures, last_error, last_error_at, \
+             recovered_at, notice_event_id IS NOT NULL FROM health \
+             ORDER BY component = 'delivery', component",
+        )
+        .fetch_all(&self.pool)
+        .await
+        .doing("reading the health of ingest and delivery")?;
+        Ok(rows.iter().map(health_from_row).collect())
+    }
+
+    /// Records a failure of `component`: starts a failing streak at `at` unless one runs.
+    pub async fn health_failed(&self, component: &str, error: &str, at: &str) -> Result<()> {
+        sqlx::query(
+            "UPDATE health SET failing_since = COALESCE(failing_since, ?), \
+             failures = failures + 1, last_error = ?, last_error_at = ? WHERE component = ?",
+        )
+        .bind(at)
+        .bind(error)
+        .bind(at)
+        .bind(component)
+        .execute(&self.pool)
+        .await
+        .doing("recording a failure")?;
+        Ok(())
+    }
+
+    /// Ends the failing streak of `component` (if one runs) at `at`; when its "stuck" notice
+    /// was queued, queues the "recovered" notice to `recipients` in the same transaction.
+    /// Returns whether a notice was queued.
+    pub async fn health_recovered(
+        &self,
+        component: &str,
+        at: &str,
+        recipients: &[(String, String)],
+    ) -> Result<bool> {
+        let mut tx = self.begin().await?;
+        let row = health_of(&mut tx, component).await?;
+        if row.failing_since.is_none() {
+            return Ok(false);
+        }
+        if row.notice_sent {
+            health_event(&mut tx, &row, "recovered", at, recipients).await?;
+        }
+        sqlx::query(
+            "UPDATE health SET failing_since = NULL, failures = 0, notice_event_id = NULL, \
+             recovered_at = ? WHERE component = ?",
+        )
+        .bind(at)
+        .bind(component)
+        .execute(&mut *tx)
+        .await
+        .doing("recording a recovery")?;
+        tx.commit().await.doing("committing a recovery")?;
+        Ok(row.notice_sent)
+    }
+
+    /// Queues the "stuck" notice of `component` to `recipients` when it has been failing since
+    /// `failing_before` or earlier and its streak has no notice yet (once per streak).
+    /// Returns whether a notice was queued.
+    pub async fn health_stuck(
+        &self,
+        component: &str,
+        failing_before: &str,
+        at: &str,
+        recipients: &[(String, String)],
+    ) -> Result<bool> {
+        let mut tx = self.begin().await?;
+        let row = health_of(&mut tx, component).await?;
+        let due = row
+            .failing_since
+            .as_deref()
+            .is_some_and(|since| since <= failing_before);
+        if !due || row.notice_sent {
+            return Ok(false);
+        }
+        let event = health_event(&mut tx, &row, "stuck", at, recipients).await?;
+        sqlx::query("UPDATE health SET notice_event_id = ? WHERE component = ?")
+            .bind(event)
+            .bind(component)
+            .execute(&mut *tx)
+            .await
+            .doing("recording a notice")?;
+        tx.commit().await.doing("committing a notice")?;
+        Ok(true)
+    }
+
+    /// Operational notices due at `now`, oldest first.
+    pub async fn due_health_messages(&self, now: &str, limit: i64) -> Result<Vec<HealthItem>> {
+        let rows = sqlx::query(
+            "SELECT o.id, o.channel, o.recipient, o.attempts, o.created_at, ev.id, \
+             ev.component, ev.kind, ev.at, ev.failing_since, ev.failures, ev.last_error \
+             FROM outbox o JOIN health_event ev ON ev.id = o.health_event_id \
+             WHERE o.state = 'pending' AND o.next_attempt_at <= ? \
+             ORDER BY o.next_attempt_at, o.id LIMIT ?",
+        )
+        .bind(now)
+        .bind(limit)
+        .fetch_all(&self.pool)
+        .await
+        .doing("reading the outbox")?;
+        Ok(rows
+            .iter()
+            .map(|r| HealthItem {
+                id: r.get(0),
+                channel: r.get(1),
+                recipient: r.get(2),
+                attempts: r.get(3),
+                created_at: r.get(4),
+                event_id: r.get(5),
+                component: r.get(6),
+                kind: r.get(7),
+                at: r.get(8),
+                failing_since: r.get(9),
+                failures: r.get(10),
+                last_error: r.get(11),
+            })
+            .collect())
+    }
+
     pub async fn status(&self) -> Result<StatusCounts> {
         let r = sqlx::query(
             "SELECT (SELECT COUNT(*) FROM source), (SELECT COUNT(*) FROM series), \
@@ -2347,7 +2513,11 @@ impl Store {
              (SELECT COUNT(*) FROM outbox WHERE state = 'pending'), \
              (SELECT COUNT(*) FROM outbox WHERE state = 'failed'), \
              (SELECT COUNT(*) FROM outbox WHERE state = 'expired'), \
-             (SELECT MAX(local_date) FROM digest), t.outliers FROM tally t WHERE t.id = 1",
+             (SELECT MAX(local_date) FROM digest), t.outliers, \
+             (SELECT received_at FROM ingested_file ORDER BY id DESC LIMIT 1), \
+             (SELECT MAX(delivered_at) FROM outbox WHERE state = 'delivered'), \
+             (SELECT MAX(delivered_at) FROM outbox WHERE state = 'delivered' \
+              AND channel = 'email') FROM tally t WHERE t.id = 1",
         )
         .fetch_one(&self.pool)
         .await
@@ -2367,6 +2537,9 @@ impl Store {
             outbox_expired: r.get(11),
             last_digest: r.get(12),
             outliers: r.get(13),
+            last_stored_at: r.get(14),
+            last_delivered_at: r.get(15),
+            last_email_delivered_at: r.get(16),
         })
     }
 
@@ -2561,7 +2734,8 @@ impl Store {
         let rows = sqlx::query(
             "SELECT id, channel, recipient, state, attempts, last_error, \
              CASE WHEN digest_id IS NOT NULL THEN 'digest' \
-             WHEN silence_event_id IS NOT NULL THEN 'silence' ELSE 'alert' END FROM outbox \
+             WHEN silence_event_id IS NOT NULL THEN 'silence' \
+             WHEN health_event_id IS NOT NULL THEN 'health' ELSE 'alert' END FROM outbox \
              WHERE state IN ('failed', 'expired') ORDER BY id",
         )
         .fetch_all(&self.pool)
@@ -2868,6 +3042,72 @@ async fn silence_event(
     Ok(())
 }
 
+fn health_from_row(r: &SqliteRow) -> HealthRow {
+    HealthRow {
+        component: r.get(0),
+        failing_since: r.get(1),
+        failures: r.get(2),
+        last_error: r.get(3),
+        last_error_at: r.get(4),
+        recovered_at: r.get(5),
+        notice_sent: r.get(6),
+    }
+}
+
+/// The health row of `component`, read inside a write transaction.
+async fn health_of(tx: &mut Transaction<'static, Sqlite>, component: &str) -> Result<HealthRow> {
+    let row = sqlx::query(
+        "SELECT component, failing_since, failures, last_error, last_error_at, recovered_at, \
+         notice_event_id IS NOT NULL FROM health WHERE component = ?",
+    )
+    .bind(component)
+    .fetch_optional(&mut **tx)
+    .await
+    .doing("reading the health of a component")?;
+    row.as_ref()
+        .map(health_from_row)
+        .ok_or_else(|| StoreError::Corrupt(format!("no health row for {component:?}")))
+}
+
+/// Records a notice about the streak of `row` and queues one outbox row per (channel,
+/// recipient); returns the event's id.
+async fn health_event(
+    tx: &mut Transaction<'static, Sqlite>,
+    row: &HealthRow,
+    kind: &str,
+    at: &str,
+    recipients: &[(String, String)],
+) -> Result<i64> {
+    let event_id: i64 = sqlx::query_scalar(
+        "INSERT INTO health_event (component, kind, at, failing_since, failures, last_error) \
+         VALUES (?, ?, ?, ?, ?, ?) RETURNING id",
+    )
+    .bind(&row.component)
+    .bind(kind)
+    .bind(at)
+    .bind(&row.failing_since)
+    .bind(row.failures)
+    .bind(row.last_error.as_deref().unwrap_or("-"))
+    .fetch_one(&mut **tx)
+    .await
+    .doing("recording a notice")?;
+    for (channel, recipient) in recipients {
+        sqlx::query(
+            "INSERT INTO outbox (health_event_id, channel, recipient, state, created_at, \
+             next_attempt_at) VALUES (?, ?, ?, 'pending', ?, ?)",
+        )
+        .bind(event_id)
+        .bind(channel)
+        .bind(recipient)
+        .bind(at)
+        .bind(at)
+        .execute(&mut **tx)
+        .await
+        .doing("queueing a notice")?;
+    }
+    Ok(event_id)
+}
+
 async fn upsert_name(
     tx: &mut Transaction<'static, Sqlite>,
     table: &'static str,
@@ -2885,6 +3125,22 @@ async fn upsert_name(
         .fetch_one(&mut **tx)
         .await
         .doing("looking up a name")
+}
+
+/// Whether a connection handed back to the pool can be used again. A COMMIT that fails
+/// (database or disk full) leaves the transaction rolled back by SQLite but still counted by
+/// sqlx; the ROLLBACK sqlx then sends fails as well ("no transaction is active"), and every
+/// later BEGIN on that connection would fail with "non-zero transaction depth", so ingest
+/// would never recover once space is freed. Such a connection is closed instead (the pool
+/// opens a new one). The ping first lets the connection's worker finish a queued rollback.
+async fn reusable(conn: &mut sqlx::SqliteConnection) -> std::result::Result<bool, sqlx::Error> {
+    use sqlx::Connection as _;
+    conn.ping().await?;
+    if conn.is_in_transaction() {
+        tracing::warn!("a database connection was left inside a failed transaction; closing it");
+        return Ok(false);
+    }
+    Ok(true)
 }
 
 /// Inserts a frozen baseline and its lots; returns its id.
@@ -3334,5 +3590,198 @@ mod tests {
         .await
         .unwrap();
         assert_eq!(tables, 0);
+    }
+
+    /// A database of migrations 0001 to 0005 with queued alert, digest and silence messages
+    /// keeps them, and the digest's listed alerts, when migration 0006 rebuilds the outbox
+    /// with foreign keys on; both components start healthy.
+    #[tokio::test]
+    async fn the_health_migration_keeps_queued_messages_and_starts_healthy() {
+        let dir = tempfile::tempdir().unwrap();
+        let old = dir.path().join("m5");
+        std::fs::create_dir(&old).unwrap();
+        for f in [
+            "0001_initial.sql",
+            "0002_digest.sql",
+            "0003_robust.sql",
+            "0004_silence.sql",
+            "0005_replaced_values.sql",
+        ] {
+            let from = Path::new(env!("CARGO_MANIFEST_DIR"))
+                .join("migrations")
+                .join(f);
+            std::fs::copy(from, old.join(f)).unwrap();
+        }
+        let db = dir.path().join("old.db");
+        let connect = |fk: bool| {
+            SqlitePoolOptions::new().max_connections(1).connect_with(
+                SqliteConnectOptions::new()
+                    .filename(&db)
+                    .create_if_missing(true)
+                    .foreign_keys(fk),
+            )
+        };
+        let pool = connect(false).await.unwrap();
+        let migrator = sqlx::migrate::Migrator::new(old.as_path()).await.unwrap();
+        migrator.run(&pool).await.unwrap();
+        sqlx::query(
+            "INSERT INTO alert (id, series_id, kind, state, opened_at, opening_evaluation) \
+             VALUES (4, 1, 'mean', 'open', 't', 1); \
+             INSERT INTO alert_event (id, alert_id, kind, at) VALUES (3, 4, 'opened', 't'); \
+             INSERT INTO digest (id, local_date, scheduled_at, created_at, open_alerts) \
+             VALUES (2, '2026-01-01', 't', 't', 1); \
+             INSERT INTO silence (id, source_id, opened_at, last_lot_id, last_lot_at, \
+             threshold_days, basis) VALUES (1, 1, 't', 1, 't', 3.0, 'configured'); \
+             INSERT INTO silence_event (id, silence_id, kind, at) VALUES (6, 1, 'opened', 't'); \
+             INSERT INTO outbox (id, alert_event_id, digest_id, silence_event_id, channel, \
+             recipient, state, attempts, created_at, next_attempt_at, last_error) VALUES \
+             (7, 3, NULL, NULL, 'email', 'q@x.org', 'pending', 2, 't', 'u', '451 busy'), \
+             (8, NULL, 2, NULL, 'email', 'q@x.org', 'pending', 0, 't', 't', NULL), \
+             (9, NULL, NULL, 6, 'log', 'log', 'delivered', 1, 't', 't', NULL); \
+             INSERT INTO digest_item (outbox_id, alert_id) VALUES (8, 4);",
+        )
+        .execute(&pool)
+        .await
+        .unwrap();
+        pool.close().await;
+        let pool = connect(true).await.unwrap();
+        sqlx::migrate!().run(&pool).await.unwrap();
+        type Row = (i64, Option<i64>, Option<i64>, Option<i64>, Option<i64>, i64);
+        let rows: Vec<Row> = sqlx::query_as(
+            "SELECT id, alert_event_id, digest_id, silence_event_id, health_event_id, attempts \
+             FROM outbox ORDER BY id",
+        )
+        .fetch_all(&pool)
+        .await
+        .unwrap();
+        assert_eq!(
+            rows,
+            vec![
+                (7, Some(3), None, None, None, 2),
+                (8, None, Some(2), None, None, 0),
+                (9, None, None, Some(6), None, 1)
+            ]
+        );
+        let items: Vec<(i64, i64)> = sqlx::query_as("SELECT outbox_id, alert_id FROM digest_item")
+            .fetch_all(&pool)
+            .await
+            .unwrap();
+        assert_eq!(items, vec![(8, 4)]);
+        let health: Vec<(String, Option<String>, i64)> =
+            sqlx::query_as("SELECT component, failing_since, failures FROM health ORDER BY 1")
+                .fetch_all(&pool)
+                .await
+                .unwrap();
+        assert_eq!(
+            health,
+            vec![("delivery".into(), None, 0), ("ingest".into(), None, 0)]
+        );
+        // A row announces exactly one thing, a health event included.
+        sqlx::query(
+            "INSERT INTO health_event (id, component, kind, at, failing_since, failures, \
+             last_error) VALUES (1, 'ingest', 'stuck', 't', 't', 3, 'e')",
+        )
+        .execute(&pool)
+        .await
+        .unwrap();
+        let two = sqlx::query(
+            "INSERT INTO outbox (silence_event_id, health_event_id, channel, recipient, state, \
+             created_at, next_attempt_at) VALUES (6, 1, 'log', 'log', 'pending', 'x', 'x')",
+        )
+        .execute(&pool)
+        .await;
+        assert!(two.is_err());
+        let tables: i64 = sqlx::query_scalar(
+            "SELECT COUNT(*) FROM sqlite_master WHERE name IN ('outbox_new', 'digest_item_kept')",
+        )
+        .fetch_one(&pool)
+        .await
+        .unwrap();
+        assert_eq!(tables, 0);
+    }
+
+    /// A failing streak gets one "stuck" notice however often it is checked, and one
+    /// "recovered" notice when it ends; a short streak ends without any.
+    #[tokio::test]
+    async fn a_streak_is_noticed_once_and_its_end_once() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Store::open(&dir.path().join("h.db")).await.unwrap();
+        let log = [("log".to_string(), "log".to_string())];
+        assert!(!store.health_stuck("ingest", "z", "t1", &log).await.unwrap());
+        store
+            .health_failed("ingest", "disk full", "2026-01-01T00:00:00.000Z")
+            .await
+            .unwrap();
+        store
+            .health_failed("ingest", "still full", "2026-01-01T00:01:00.000Z")
+            .await
+            .unwrap();
+        // Not failing long enough yet.
+        let before = "2025-12-31T23:59:00.000Z";
+        assert!(
+            !store
+                .health_stuck("ingest", before, "t", &log)
+                .await
+                .unwrap()
+        );
+        let later = "2026-01-01T00:30:00.000Z";
+        assert!(
+            store
+                .health_stuck("ingest", later, later, &log)
+                .await
+                .unwrap()
+        );
+        assert!(
+            !store
+                .health_stuck("ingest", later, later, &log)
+                .await
+                .unwrap()
+        );
+        let rows = store.health().await.unwrap();
+        assert_eq!(rows[0].component, "ingest");
+        assert_eq!(
+            rows[0].failing_since.as_deref(),
+            Some("2026-01-01T00:00:00.000Z")
+        );
+        assert_eq!((rows[0].failures, rows[0].notice_sent), (2, true));
+        assert_eq!(rows[0].last_error.as_deref(), Some("still full"));
+        let due = store.due_health_messages("9999", 10).await.unwrap();
+        assert_eq!(due.len(), 1);
+        assert_eq!((due[0].kind.as_str(), due[0].failures), ("stuck", 2));
+        assert!(
+            store
+                .health_recovered("ingest", "2026-01-01T01:00:00.000Z", &log)
+                .await
+                .unwrap()
+        );
+        assert!(
+            !store
+                .health_recovered("ingest", "2026-01-01T01:01:00.000Z", &log)
+                .await
+                .unwrap()
+        );
+        let due = store.due_health_messages("9999", 10).await.unwrap();
+        assert_eq!(due.len(), 2);
+        assert_eq!(due[1].kind, "recovered");
+        // A short streak: no notice either way, but the error stays for `status`.
+        store
+            .health_failed("delivery", "refused", "t4")
+            .await
+            .unwrap();
+        assert!(
+            !store
+                .health_recovered("delivery", "t5", &log)
+                .await
+                .unwrap()
+        );
+        let rows = store.health().await.unwrap();
+        assert_eq!(rows[1].failing_since, None);
+        assert_eq!(rows[1].last_error.as_deref(), Some("refused"));
+        assert_eq!(rows[1].recovered_at.as_deref(), Some("t5"));
+        assert_eq!(
+            store.due_health_messages("9999", 10).await.unwrap().len(),
+            2
+        );
+        store.close().await;
     }
 }
