@@ -209,35 +209,8 @@ async fn drain_health(
     attempted: &mut HashSet<i64>,
     report: &mut DrainReport,
 ) -> Result<(), AlertError> {
-    loop {
-        let due = store
-            .due_health_messages(&now_rfc3339(), DRAIN_BATCH)
-            .await?;
-        let batch = due.len();
-        let fresh: Vec<HealthItem> = due.into_iter().filter(|i| attempted.insert(i.id)).collect();
-        if fresh.is_empty() {
-            break;
-        }
-        for item in fresh {
-            let outcome = deliver(
-                &item.channel,
-                config,
-                mailer,
-                &Attempt::of_health(&item),
-                |from| health_message(from, &item),
-                || log_health(&item),
-            )
-            .await;
-            tally(report, &item.channel, &item.recipient, &outcome);
-            store
-                .outbox_attempted(item.id, &outcome, &now_rfc3339())
-                .await?;
-        }
-        if (batch as i64) < DRAIN_BATCH {
-            break;
-        }
-    }
-    Ok(())
+    let due = || async { store.due_health_messages(&now_rfc3339(), DRAIN_BATCH).await };
+    drain_notices(store, config, mailer, attempted, report, due).await
 }
 
 /// Delivers the due messages about silent sources, once each per drain (see [`drain_once`]).
@@ -248,28 +221,103 @@ async fn drain_silences(
     attempted: &mut HashSet<i64>,
     report: &mut DrainReport,
 ) -> Result<(), AlertError> {
-    loop {
-        let due = store
+    let due = || async {
+        store
             .due_silence_messages(&now_rfc3339(), DRAIN_BATCH)
-            .await?;
+            .await
+    };
+    drain_notices(store, config, mailer, attempted, report, due).await
+}
+
+/// A queued message that is not an alert event (a silence or health notice): what the
+/// shared drain needs of it.
+trait Notice {
+    fn outbox_id(&self) -> i64;
+    fn channel(&self) -> &str;
+    fn recipient(&self) -> &str;
+    fn attempt(&self) -> Attempt<'_>;
+    fn message(&self, from: &Mailbox) -> Result<Message, String>;
+    fn log(&self);
+}
+
+impl Notice for SilenceItem {
+    fn outbox_id(&self) -> i64 {
+        self.id
+    }
+    fn channel(&self) -> &str {
+        &self.channel
+    }
+    fn recipient(&self) -> &str {
+        &self.recipient
+    }
+    fn attempt(&self) -> Attempt<'_> {
+        Attempt::of_silence(self)
+    }
+    fn message(&self, from: &Mailbox) -> Result<Message, String> {
+        silence_message(from, self)
+    }
+    fn log(&self) {
+        log_silence(self)
+    }
+}
+
+impl Notice for HealthItem {
+    fn outbox_id(&self) -> i64 {
+        self.id
+    }
+    fn channel(&self) -> &str {
+        &self.channel
+    }
+    fn recipient(&self) -> &str {
+        &self.recipient
+    }
+    fn attempt(&self) -> Attempt<'_> {
+        Attempt::of_health(self)
+    }
+    fn message(&self, from: &Mailbox) -> Result<Message, String> {
+        health_message(from, self)
+    }
+    fn log(&self) {
+        log_health(self)
+    }
+}
+
+/// Delivers what `due` returns, batch after batch, each message once per drain; its outcome
+/// is recorded before the next one is sent.
+async fn drain_notices<T: Notice, Fut>(
+    store: &Store,
+    config: &Config,
+    mailer: &mut Option<Result<Mailer, String>>,
+    attempted: &mut HashSet<i64>,
+    report: &mut DrainReport,
+    due: impl Fn() -> Fut,
+) -> Result<(), AlertError>
+where
+    Fut: std::future::Future<Output = Result<Vec<T>, StoreError>>,
+{
+    loop {
+        let due = due().await?;
         let batch = due.len();
-        let fresh: Vec<SilenceItem> = due.into_iter().filter(|i| attempted.insert(i.id)).collect();
+        let fresh: Vec<T> = due
+            .into_iter()
+            .filter(|i| attempted.insert(i.outbox_id()))
+            .collect();
         if fresh.is_empty() {
             break;
         }
         for item in fresh {
             let outcome = deliver(
-                &item.channel,
+                item.channel(),
                 config,
                 mailer,
-                &Attempt::of_silence(&item),
-                |from| silence_message(from, &item),
-                || log_silence(&item),
+                &item.attempt(),
+                |from| item.message(from),
+                || item.log(),
             )
             .await;
-            tally(report, &item.channel, &item.recipient, &outcome);
+            tally(report, item.channel(), item.recipient(), &outcome);
             store
-                .outbox_attempted(item.id, &outcome, &now_rfc3339())
+                .outbox_attempted(item.outbox_id(), &outcome, &now_rfc3339())
                 .await?;
         }
         if (batch as i64) < DRAIN_BATCH {
