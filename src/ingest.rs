@@ -374,8 +374,9 @@ fn prepare(path: &Path, inbox: &Path, input: &Input) -> Prepared {
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
+    let parsed = parse(&name, &bytes, input.choose(inbox, path));
     // The bytes go as soon as they are parsed: a large file's values are held once.
-    let parsed = parse_bytes(&name, bytes, input.choose(inbox, path));
+    drop(bytes);
     match parsed.and_then(|p| summarise(&name, &hash, p)) {
         Ok(f) => Prepared::Good(path.into(), f),
         Err(reason) => Prepared::Bad {
@@ -398,18 +399,15 @@ pub fn build_file_as(
     bytes: &[u8],
     profile: Option<&Profile>,
 ) -> Result<NewFile, String> {
-    if bytes.is_empty() {
-        return Err("empty file: no header, no data".to_string());
-    }
-    let parsed = intake::read(name, bytes, profile).map_err(|e| e.to_string())?;
-    summarise(name, hash, parsed)
+    summarise(name, hash, parse(name, bytes, profile)?)
 }
 
-fn parse_bytes(name: &str, bytes: Vec<u8>, profile: Option<&Profile>) -> Result<LotFile, String> {
+/// Parses one file's bytes with `profile` (see [`intake::read`]); an empty file is refused.
+fn parse(name: &str, bytes: &[u8], profile: Option<&Profile>) -> Result<LotFile, String> {
     if bytes.is_empty() {
         return Err("empty file: no header, no data".to_string());
     }
-    intake::read(name, &bytes, profile).map_err(|e| e.to_string())
+    intake::read(name, bytes, profile).map_err(|e| e.to_string())
 }
 
 /// Summarises a parsed file's groups into samples, moving the values (not copying them).
