@@ -23,7 +23,7 @@ use tokio_util::sync::CancellationToken;
 
 use crate::config::{Input, Paths, Profile};
 use crate::intake;
-use crate::lotfile::{Layout, LotFile};
+use crate::lotfile::{Layout, LotFile, Serials};
 use crate::stats::Summary;
 use crate::store::{FileOutcome, NewFile, NewSample, Store, StoreError};
 use crate::time::now_rfc3339;
@@ -322,10 +322,9 @@ enum ReadFailure {
     Io(std::io::Error),
 }
 
-/// The bytes of a regular file, never following a symbolic link and never blocking on a pipe
-/// or device (opened without following and without blocking, then checked again).
-fn read_regular(path: &Path) -> Result<Vec<u8>, ReadFailure> {
-    use std::io::Read;
+/// A regular file opened for reading, never following a symbolic link and never blocking on
+/// a pipe or device (opened without following and without blocking, then checked again).
+fn open_regular(path: &Path) -> Result<std::fs::File, ReadFailure> {
     use std::os::unix::fs::OpenOptionsExt;
     let kind = std::fs::symlink_metadata(path).map_err(ReadFailure::Io)?;
     if kind.is_dir() {
@@ -335,7 +334,7 @@ fn read_regular(path: &Path) -> Result<Vec<u8>, ReadFailure> {
     if let Some(what) = not_a_regular_file(kind.file_type()) {
         return Err(ReadFailure::NotRegular(what));
     }
-    let mut file = std::fs::OpenOptions::new()
+    let file = std::fs::OpenOptions::new()
         .read(true)
         .custom_flags(libc::O_NOFOLLOW | libc::O_NONBLOCK | libc::O_NOCTTY)
         .open(path)
@@ -345,38 +344,69 @@ fn read_regular(path: &Path) -> Result<Vec<u8>, ReadFailure> {
     if let Some(what) = not_a_regular_file(meta.file_type()) {
         return Err(ReadFailure::NotRegular(what));
     }
-    let mut bytes = Vec::with_capacity(meta.len() as usize);
-    file.read_to_end(&mut bytes).map_err(ReadFailure::Io)?;
-    Ok(bytes)
+    Ok(file)
+}
+
+/// What becomes of an inbox entry that could not be read.
+fn read_failed(path: &Path, failure: ReadFailure) -> Prepared {
+    match failure {
+        ReadFailure::NotRegular(what) => {
+            // No content to hash: the quarantine record is keyed by what and where it was.
+            let hash = content_hash(format!("{what}\n{}", path.display()).as_bytes());
+            Prepared::Bad {
+                path: path.into(),
+                hash,
+                reason: what.to_string(),
+            }
+        }
+        ReadFailure::Io(e) if e.kind() == std::io::ErrorKind::NotFound => {
+            Prepared::Gone(path.into())
+        }
+        // A symbolic link put in place after the check (O_NOFOLLOW): taken at the next scan.
+        ReadFailure::Io(e) => Prepared::Unreadable(path.into(), e.to_string()),
+    }
+}
+
+/// A reader that hashes and counts the bytes it passes on.
+struct Hashing<R> {
+    inner: R,
+    sha: Sha256,
+    len: u64,
+}
+
+impl<R: std::io::Read> std::io::Read for Hashing<R> {
+    fn read(&mut self, buf: &mut [u8]) -> std::io::Result<usize> {
+        let n = self.inner.read(buf)?;
+        self.sha.update(&buf[..n]);
+        self.len += n as u64;
+        Ok(n)
+    }
 }
 
 /// Reads, hashes and parses one inbox file, with the input profile that applies to it.
 fn prepare(path: &Path, inbox: &Path, input: &Input) -> Prepared {
-    let bytes = match read_regular(path) {
-        Ok(b) => b,
-        Err(ReadFailure::NotRegular(what)) => {
-            // No content to hash: the quarantine record is keyed by what and where it was.
-            let hash = content_hash(format!("{what}\n{}", path.display()).as_bytes());
-            return Prepared::Bad {
-                path: path.into(),
-                hash,
-                reason: what.to_string(),
-            };
-        }
-        Err(ReadFailure::Io(e)) if e.kind() == std::io::ErrorKind::NotFound => {
-            return Prepared::Gone(path.into());
-        }
-        // A symbolic link put in place after the check (O_NOFOLLOW): taken at the next scan.
-        Err(ReadFailure::Io(e)) => return Prepared::Unreadable(path.into(), e.to_string()),
-    };
-    let hash = hex(&Sha256::digest(&bytes));
     let name = path
         .file_name()
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
-    let parsed = parse(&name, &bytes, input.choose(inbox, path));
-    // The bytes go as soon as they are parsed: a large file's values are held once.
-    drop(bytes);
+    let file = match open_regular(path) {
+        Ok(f) => f,
+        Err(failure) => return read_failed(path, failure),
+    };
+    let profile = input.choose(inbox, path);
+    let (hash, parsed) = if profile.is_none() && !intake::is_workbook(&name) {
+        match parse_stream(&name, file) {
+            Ok(hashed) => hashed,
+            Err(e) => return Prepared::Unreadable(path.into(), e.to_string()),
+        }
+    } else {
+        let mut bytes = Vec::new();
+        if let Err(e) = std::io::Read::read_to_end(&mut { file }, &mut bytes) {
+            return read_failed(path, ReadFailure::Io(e));
+        }
+        let parsed = parse(&name, &bytes, profile);
+        (hex(&Sha256::digest(&bytes)), parsed)
+    };
     match parsed.and_then(|p| summarise(&name, &hash, p)) {
         Ok(f) => Prepared::Good(path.into(), f),
         Err(reason) => Prepared::Bad {
@@ -386,6 +416,34 @@ fn prepare(path: &Path, inbox: &Path, input: &Input) -> Prepared {
         },
     }
 }
+
+/// Hashes and parses a file in the built-in dialect as one stream, holding a small window of
+/// it (a year's export costs its values, not its bytes). The hash covers every byte, also
+/// when parsing stopped at an error.
+fn parse_stream(
+    name: &str,
+    file: std::fs::File,
+) -> std::io::Result<(String, Result<LotFile, String>)> {
+    let mut src = Hashing {
+        inner: file,
+        sha: Sha256::new(),
+        len: 0,
+    };
+    let parsed = match intake::read_stream(name, &mut src) {
+        Ok(f) => Ok(f),
+        Err(intake::StreamFailure::Io(e)) => return Err(e),
+        Err(intake::StreamFailure::Refused(r)) => Err(r.to_string()),
+    };
+    std::io::copy(&mut src, &mut std::io::sink())?;
+    let parsed = if src.len == 0 {
+        Err(EMPTY_FILE.to_string())
+    } else {
+        parsed
+    };
+    Ok((hex(&src.sha.finalize()), parsed))
+}
+
+const EMPTY_FILE: &str = "empty file: no header, no data";
 
 /// Parses and summarises one file's bytes (built-in dialect, or a workbook).
 pub fn build_file(name: &str, hash: &str, bytes: &[u8]) -> Result<NewFile, String> {
@@ -405,7 +463,7 @@ pub fn build_file_as(
 /// Parses one file's bytes with `profile` (see [`intake::read`]); an empty file is refused.
 fn parse(name: &str, bytes: &[u8], profile: Option<&Profile>) -> Result<LotFile, String> {
     if bytes.is_empty() {
-        return Err("empty file: no header, no data".to_string());
+        return Err(EMPTY_FILE.to_string());
     }
     intake::read(name, bytes, profile).map_err(|e| e.to_string())
 }
@@ -425,13 +483,14 @@ fn summarise(name: &str, hash: &str, parsed: LotFile) -> Result<NewFile, String>
             )
         })?;
         let earliest = g.sampled_at.iter().flatten().min().map(|t| t.to_rfc3339());
-        let digest = sample_digest(&g.values, &g.units);
+        let digest = sample_digest(&g.values, &g.units, &parsed.serials);
         samples.push(NewSample {
             source: g.source,
             lot: g.lot,
             characteristic: g.characteristic,
             values: g.values,
             units: g.units,
+            serials: parsed.serials.clone(),
             sampled_at: g.sampled_at,
             summary,
             digest,
@@ -449,13 +508,13 @@ fn summarise(name: &str, hash: &str, parsed: LotFile) -> Result<NewFile, String>
 
 /// Order-independent digest of a sample's (unit, value) pairs: a re-export that only reorders
 /// rows or changes comments is recognised as the same content.
-fn sample_digest(values: &[f64], units: &[Option<String>]) -> String {
+fn sample_digest(values: &[f64], units: &[u32], serials: &Serials) -> String {
     let mut pairs: Vec<(Option<&str>, u64)> = values
         .iter()
         .zip(units)
         .map(|(v, u)| {
             let v = if *v == 0.0 { 0.0 } else { *v };
-            (u.as_deref(), v.to_bits())
+            (serials.get(*u), v.to_bits())
         })
         .collect();
     pairs.sort_unstable();
@@ -678,19 +737,23 @@ mod tests {
 
     #[test]
     fn digest_ignores_row_order_but_not_values() {
-        let u = vec![Some("a".to_string()), Some("b".to_string())];
-        let ur = vec![Some("b".to_string()), Some("a".to_string())];
+        let mut serials = Serials::default();
+        let (a, b) = (serials.intern("a"), serials.intern("b"));
+        // The same serials interned in another order (another file) give the same digest.
+        let mut other = Serials::default();
+        let (b2, a2) = (other.intern("b"), other.intern("a"));
+        let (u, ur) = (vec![a, b], vec![b2, a2]);
         assert_eq!(
-            sample_digest(&[1.0, 2.0], &u),
-            sample_digest(&[2.0, 1.0], &ur)
+            sample_digest(&[1.0, 2.0], &u, &serials),
+            sample_digest(&[2.0, 1.0], &ur, &other)
         );
         assert_ne!(
-            sample_digest(&[1.0, 2.0], &u),
-            sample_digest(&[1.0, 2.5], &u)
+            sample_digest(&[1.0, 2.0], &u, &serials),
+            sample_digest(&[1.0, 2.5], &u, &serials)
         );
         assert_ne!(
-            sample_digest(&[1.0, 2.0], &u),
-            sample_digest(&[2.0, 1.0], &u)
+            sample_digest(&[1.0, 2.0], &u, &serials),
+            sample_digest(&[2.0, 1.0], &u, &serials)
         );
     }
 

@@ -6,10 +6,14 @@
 //! grouping of values by (source, lot, characteristic), physical line numbers
 //! and the wording of every error message.
 //!
-//! It never touches the file system, never does I/O beyond reading the byte
-//! slice it is given, never reads the clock, never logs and never stores
-//! anything. A file is accepted whole or rejected whole (no partial lots), and
-//! [`parse`] never panics, whatever the bytes.
+//! It never touches the file system, never does I/O beyond reading the bytes
+//! or the stream it is given, never reads the clock, never logs and never
+//! stores anything. A file is accepted whole or rejected whole (no partial
+//! lots), and [`parse`] never panics, whatever the bytes.
+//!
+//! Memory: a stream is read through a small window ([`parse_reader`]), never
+//! held whole; values are kept as numbers, unit serials once per file
+//! ([`Serials`]), so a large export costs less than its own size.
 //!
 //! # Format decisions beyond the written contract
 //!
@@ -40,6 +44,14 @@
 use std::collections::HashMap;
 use std::collections::hash_map::Entry;
 use std::fmt;
+use std::io::Read;
+use std::sync::Arc;
+
+mod serials;
+mod stream;
+
+pub use serials::{NO_UNIT, Serials};
+use stream::{Record, Window};
 
 use chrono::{DateTime, Datelike, NaiveDate, NaiveTime, Timelike, Utc};
 
@@ -70,6 +82,8 @@ pub struct LotFile {
     pub rows: usize,
     /// Number of measured values over all groups.
     pub values: usize,
+    /// The unit serials that [`Group::units`] refer to.
+    pub serials: Arc<Serials>,
 }
 
 /// All values of one (source, lot, characteristic) in this file, in file order.
@@ -79,8 +93,9 @@ pub struct Group {
     pub lot: String,
     pub characteristic: String,
     pub values: Vec<f64>,
-    /// Serial of the measured unit per value; `None` without a `unit` column or for an empty cell.
-    pub units: Vec<Option<String>>,
+    /// Serial of the measured unit per value, an id into [`LotFile::serials`]; [`NO_UNIT`]
+    /// without a `unit` column or for an empty cell.
+    pub units: Vec<u32>,
     /// Sampling time per value; `None` without a `sampled_at` column or for an empty cell.
     pub sampled_at: Vec<Option<Timestamp>>,
     /// Line of the row that created this group.
@@ -227,7 +242,33 @@ impl fmt::Display for ColumnSuffix<'_> {
 
 /// Parses one lot file. `file_name` is only used in error messages.
 pub fn parse(file_name: &str, bytes: &[u8]) -> Result<LotFile, LotFileError> {
-    Parser::new(file_name, bytes).run()
+    parse_reader(file_name, bytes).map_err(|e| match e {
+        ReadError::Lot(e) => e,
+        // Reading a byte slice cannot fail; kept total rather than panicking.
+        ReadError::Io(e) => LotFileError {
+            file: file_name.to_owned(),
+            line: 1,
+            column: None,
+            column_name: None,
+            kind: ErrorKind::Csv,
+            message: format!("expected readable bytes, found a read error: {e}"),
+        },
+    })
+}
+
+/// Why [`parse_reader`] gave no lot file.
+#[derive(Debug)]
+pub enum ReadError {
+    /// The bytes are not a valid lot file.
+    Lot(LotFileError),
+    /// The stream failed; nothing is known about the file's content.
+    Io(std::io::Error),
+}
+
+/// Parses one lot file from a stream, reading it once through a small window. Stops at the
+/// first error; the caller reads whatever is left if it needs all the bytes (for a hash).
+pub fn parse_reader<R: Read>(file_name: &str, reader: R) -> Result<LotFile, ReadError> {
+    Parser::new(file_name, Window::new(reader)).run()
 }
 
 // ---------------------------------------------------------------------------
@@ -256,10 +297,6 @@ fn trim(s: &str) -> &str {
 
 pub(crate) fn count_newlines(bytes: &[u8]) -> u64 {
     bytes.iter().filter(|&&b| b == b'\n').count() as u64
-}
-
-fn to_usize(n: u64) -> usize {
-    usize::try_from(n).unwrap_or(usize::MAX)
 }
 
 /// Where the csv reader really starts its next record when it starts reading
@@ -511,19 +548,19 @@ struct Header {
 
 const LONG_COLUMNS: &str = "source, characteristic, lot, value, sampled_at, unit";
 
-struct Parser<'a> {
+struct Parser<'a, R> {
     file: &'a str,
-    /// The input without its BOM.
-    data: &'a [u8],
-    /// Byte offset up to which `line` has counted line ends.
-    line_pos: usize,
+    window: Window<R>,
+    /// Stream offset up to which `line` has counted line ends.
+    line_pos: u64,
     line: u64,
     names: Interner,
-    units: Interner,
+    serials: Serials,
     group_ids: FastMap<(u32, u32, u32), u32>,
     groups: Vec<Group>,
-    /// (group, unit) → line of its first measurement.
-    seen: FastMap<(u32, u32), u64>,
+    /// Per group, the line of each value (for the repeated-unit check); kept only with a
+    /// `unit` column, and in the wide layout only for each row's first group.
+    lines: Vec<Vec<u32>>,
     rows: usize,
     values: usize,
     /// Wide layout: (source, lot) of the previous row and its groups per characteristic column.
@@ -540,19 +577,18 @@ struct At {
     col: Option<usize>,
 }
 
-impl<'a> Parser<'a> {
-    fn new(file: &'a str, bytes: &'a [u8]) -> Self {
-        let data = bytes.strip_prefix(UTF8_BOM).unwrap_or(bytes);
+impl<'a, R: Read> Parser<'a, R> {
+    fn new(file: &'a str, window: Window<R>) -> Self {
         Parser {
             file,
-            data,
+            window,
             line_pos: 0,
             line: 1,
             names: Interner::default(),
-            units: Interner::default(),
+            serials: Serials::default(),
             group_ids: FastMap::default(),
             groups: Vec::new(),
-            seen: FastMap::default(),
+            lines: Vec::new(),
             rows: 0,
             values: 0,
             wide_key: None,
@@ -580,97 +616,124 @@ impl<'a> Parser<'a> {
         }
     }
 
-    /// Physical line of byte offset `off`; offsets must not go backwards.
-    fn line_at(&mut self, off: usize) -> u64 {
-        let off = off.min(self.data.len());
+    /// Physical line of stream offset `off`, which must still be in the window; offsets must
+    /// not go backwards.
+    fn line_at(&mut self, off: u64) -> u64 {
         if off > self.line_pos {
-            self.line += count_newlines(&self.data[self.line_pos..off]);
+            self.line += count_newlines(self.window.bytes(self.line_pos, off));
             self.line_pos = off;
         }
         self.line
     }
 
-    fn run(mut self) -> Result<LotFile, LotFileError> {
-        if self.data.starts_with(b"\xFF\xFE") || self.data.starts_with(b"\xFE\xFF") {
-            return Err(self.error(
-                At { line: 1, col: None },
-                None,
-                ErrorKind::Encoding,
-                "expected UTF-8 text, found a UTF-16 byte-order mark (save the file as UTF-8)"
-                    .to_owned(),
+    /// Checks the start of the stream (a UTF-16 byte-order mark is refused, a UTF-8 one skipped).
+    fn start(&mut self) -> Result<(), ReadError> {
+        let head = self.window.peek(3).map_err(ReadError::Io)?;
+        if head.starts_with(b"\xFF\xFE") || head.starts_with(b"\xFE\xFF") {
+            return Err(ReadError::Lot(
+                self.error(
+                    At { line: 1, col: None },
+                    None,
+                    ErrorKind::Encoding,
+                    "expected UTF-8 text, found a UTF-16 byte-order mark (save the file as UTF-8)"
+                        .to_owned(),
+                ),
             ));
         }
-        let data = self.data;
-        let mut reader = csv::ReaderBuilder::new()
-            .has_headers(false)
-            .flexible(true)
-            .comment(Some(b'#'))
-            .from_reader(data);
-        let mut record = csv::ByteRecord::new();
+        if head.starts_with(UTF8_BOM) {
+            self.window.skip(UTF8_BOM.len());
+            self.line_pos = self.window.offset();
+        }
+        Ok(())
+    }
+
+    fn run(mut self) -> Result<LotFile, ReadError> {
+        self.start()?;
+        let mut record = Record::default();
         let mut header: Option<Header> = None;
         loop {
-            let before = to_usize(reader.position().byte());
-            match reader.read_byte_record(&mut record) {
-                Ok(true) => {}
-                Ok(false) => break,
-                Err(e) => {
-                    let line = self.line_at(record_start(data, before));
-                    return Err(self.error(
-                        At { line, col: None },
-                        header.as_ref(),
-                        ErrorKind::Csv,
-                        format!("expected a readable CSV record, found an error: {e}"),
-                    ));
-                }
+            let before = self.window.offset();
+            if !self
+                .window
+                .next_record(&mut record, before)
+                .map_err(ReadError::Io)?
+            {
+                break;
             }
-            let read_at = record.position().map_or(before, |p| to_usize(p.byte()));
-            let start = record_start(data, read_at);
-            let end = to_usize(reader.position().byte()).clamp(start, data.len());
+            let end = self.window.offset();
+            let raw = self.window.bytes(before, end);
+            let start = before + record_start(raw, 0) as u64;
             let line = self.line_at(start);
-            let raw = &data[start..end];
-            if let Err(p) = check_quotes(raw) {
-                let col = usize::try_from(p.col - 1).ok();
-                let field = raw.get(p.field_start..).unwrap_or_default();
-                let field = field[..field.len().min(4 * FOUND_CHARS + 4)].trim_ascii_end();
-                return Err(self.error(
-                    At { line, col },
-                    header.as_ref(),
-                    ErrorKind::Csv,
-                    format!(
-                        "{}, found {}",
-                        p.expected,
-                        found(&String::from_utf8_lossy(field))
-                    ),
-                ));
-            }
-            if record.iter().all(|f| f.trim_ascii().is_empty()) {
-                continue;
-            }
-            match &header {
-                None => header = Some(self.header(&record, line)?),
-                Some(h) => {
-                    if record.len() != h.names.len() {
-                        return Err(self.error(
-                            At { line, col: None },
-                            Some(h),
-                            ErrorKind::FieldCount,
-                            format!(
-                                "expected {} fields as in the header on line {}, found {} fields on line {}",
-                                h.names.len(),
-                                h.line,
-                                record.len(),
-                                line
-                            ),
-                        ));
-                    }
-                    self.rows += 1;
-                    match h.layout {
-                        Layout::Long => self.long_row(h, &record, line)?,
-                        Layout::Wide => self.wide_row(h, &record, line)?,
-                    }
+            self.check_record_quotes(start, end, line, header.as_ref())
+                .map_err(ReadError::Lot)?;
+            if !record.iter().all(|f| f.trim_ascii().is_empty()) {
+                let step = match &header {
+                    None => self.header(&record, line).map(|h| header = Some(h)),
+                    Some(h) => self.row(h, &record, line),
+                };
+                if let Err(e) = step {
+                    // A unit measured twice before this line is the first problem of the file.
+                    let repeat = header.as_ref().and_then(|h| self.first_repeat(h, e.line));
+                    return Err(ReadError::Lot(repeat.unwrap_or(e)));
                 }
             }
+            self.line_at(end);
         }
+        self.finish(header).map_err(ReadError::Lot)
+    }
+
+    /// The strict RFC 4180 check of the raw record from `start` to `end`.
+    fn check_record_quotes(
+        &self,
+        start: u64,
+        end: u64,
+        line: u64,
+        header: Option<&Header>,
+    ) -> Result<(), LotFileError> {
+        let raw = self.window.bytes(start, end);
+        let Err(p) = check_quotes(raw) else {
+            return Ok(());
+        };
+        let col = usize::try_from(p.col - 1).ok();
+        let field = raw.get(p.field_start..).unwrap_or_default();
+        let field = field[..field.len().min(4 * FOUND_CHARS + 4)].trim_ascii_end();
+        Err(self.error(
+            At { line, col },
+            header,
+            ErrorKind::Csv,
+            format!(
+                "{}, found {}",
+                p.expected,
+                found(&String::from_utf8_lossy(field))
+            ),
+        ))
+    }
+
+    /// One data row after the header.
+    fn row(&mut self, h: &Header, record: &Record, line: u64) -> Result<(), LotFileError> {
+        if record.len() != h.names.len() {
+            return Err(self.error(
+                At { line, col: None },
+                Some(h),
+                ErrorKind::FieldCount,
+                format!(
+                    "expected {} fields as in the header on line {}, found {} fields on line {}",
+                    h.names.len(),
+                    h.line,
+                    record.len(),
+                    line
+                ),
+            ));
+        }
+        self.rows += 1;
+        match h.layout {
+            Layout::Long => self.long_row(h, record, line),
+            Layout::Wide => self.wide_row(h, record, line),
+        }
+    }
+
+    /// The parsed file, once every record was read.
+    fn finish(mut self, header: Option<Header>) -> Result<LotFile, LotFileError> {
         let Some(h) = header else {
             return Err(self.error(
                 At { line: 1, col: None },
@@ -680,6 +743,9 @@ impl<'a> Parser<'a> {
                     .to_owned(),
             ));
         };
+        if let Some(e) = self.first_repeat(&h, u64::MAX) {
+            return Err(e);
+        }
         if self.rows == 0 {
             return Err(self.error(
                 At {
@@ -691,18 +757,24 @@ impl<'a> Parser<'a> {
                 "expected at least one data row after the header, found none".to_owned(),
             ));
         }
+        for g in &mut self.groups {
+            g.values.shrink_to_fit();
+            g.units.shrink_to_fit();
+            g.sampled_at.shrink_to_fit();
+        }
         Ok(LotFile {
             layout: h.layout,
             groups: self.groups,
             rows: self.rows,
             values: self.values,
+            serials: Arc::new(self.serials),
         })
     }
 
     /// The field as UTF-8 text, untrimmed.
     fn text<'r>(
         &self,
-        record: &'r csv::ByteRecord,
+        record: &'r Record,
         at: At,
         header: Option<&Header>,
     ) -> Result<&'r str, LotFileError> {
@@ -725,7 +797,7 @@ impl<'a> Parser<'a> {
     /// [`MAX_NAME_CHARS`]. `None` when empty and `what` is optional.
     fn name<'r>(
         &self,
-        record: &'r csv::ByteRecord,
+        record: &'r Record,
         at: At,
         header: Option<&Header>,
         what: &str,
@@ -776,12 +848,7 @@ impl<'a> Parser<'a> {
         Ok(Some(t))
     }
 
-    fn number(
-        &self,
-        record: &csv::ByteRecord,
-        at: At,
-        header: &Header,
-    ) -> Result<f64, LotFileError> {
+    fn number(&self, record: &Record, at: At, header: &Header) -> Result<f64, LotFileError> {
         let raw = self.text(record, at, Some(header))?;
         parse_number(raw).map_err(|e| {
             let (kind, message) = match e {
@@ -814,7 +881,7 @@ impl<'a> Parser<'a> {
 
     fn sampled_at(
         &self,
-        record: &csv::ByteRecord,
+        record: &Record,
         line: u64,
         header: &Header,
     ) -> Result<Option<Timestamp>, LotFileError> {
@@ -843,7 +910,7 @@ impl<'a> Parser<'a> {
         })
     }
 
-    fn header(&mut self, record: &csv::ByteRecord, line: u64) -> Result<Header, LotFileError> {
+    fn header(&mut self, record: &Record, line: u64) -> Result<Header, LotFileError> {
         let mut names = Vec::with_capacity(record.len());
         for col in 0..record.len() {
             let at = At {
@@ -1011,53 +1078,69 @@ impl<'a> Parser<'a> {
                     sampled_at: Vec::new(),
                     first_line: line,
                 });
+                self.lines.push(Vec::new());
                 next
             }
         }
     }
 
-    /// Records that `group` measured `unit` on `line`; errors on a repeat.
-    fn check_repeat(
-        &mut self,
-        header: &Header,
-        group: u32,
-        unit: (u32, &str),
-        line: u64,
-    ) -> Result<(), LotFileError> {
-        match self.seen.entry((group, unit.0)) {
-            Entry::Vacant(e) => {
-                e.insert(line);
-                Ok(())
-            }
-            Entry::Occupied(e) => {
-                let first = *e.get();
-                let g = &self.groups[group as usize];
-                let what = match header.layout {
-                    Layout::Long => format!("characteristic {}", found(&g.characteristic)),
-                    Layout::Wide => "its characteristics".to_owned(),
-                };
-                Err(self.error(
-                    At {
-                        line,
-                        col: header.unit,
-                    },
-                    Some(header),
-                    ErrorKind::DuplicateMeasurement,
-                    format!(
-                        "expected each unit once per source, lot and characteristic, found unit {} \
-                         of source {}, lot {} measured for {what} on line {first} and again on line {line}",
-                        found(unit.1),
-                        found(&g.source),
-                        found(&g.lot)
-                    ),
-                ))
+    /// The repeated unit (same source, lot and characteristic) whose second measurement
+    /// comes first in the file, when that is before line `limit`.
+    fn first_repeat(&self, h: &Header, limit: u64) -> Option<LotFileError> {
+        h.unit?;
+        // (second line, first line, group, unit)
+        let mut best: Option<(u64, u64, usize, u32)> = None;
+        let mut pairs: Vec<(u32, u32)> = Vec::new();
+        for (g, lines) in self.lines.iter().enumerate().filter(|(_, l)| !l.is_empty()) {
+            pairs.clear();
+            let units = &self.groups[g].units;
+            pairs.extend(
+                units
+                    .iter()
+                    .zip(lines)
+                    .filter(|(u, _)| **u != NO_UNIT)
+                    .map(|(u, l)| (*u, *l)),
+            );
+            pairs.sort_unstable();
+            for w in pairs.windows(2).filter(|w| w[0].0 == w[1].0) {
+                let second = u64::from(w[1].1);
+                if second < limit && best.is_none_or(|b| second < b.0) {
+                    best = Some((second, u64::from(w[0].1), g, w[0].0));
+                }
             }
         }
+        let (line, first, g, unit) = best?;
+        let g = &self.groups[g];
+        let what = match h.layout {
+            Layout::Long => format!("characteristic {}", found(&g.characteristic)),
+            Layout::Wide => "its characteristics".to_owned(),
+        };
+        Some(self.error(
+            At { line, col: h.unit },
+            Some(h),
+            ErrorKind::DuplicateMeasurement,
+            format!(
+                "expected each unit once per source, lot and characteristic, found unit {} \
+                 of source {}, lot {} measured for {what} on line {first} and again on line {line}",
+                found(self.serials.get(unit).unwrap_or_default()),
+                found(&g.source),
+                found(&g.lot)
+            ),
+        ))
+    }
+
+    /// Interns `unit`; with a `unit` column, remembers the line of the value for `group`.
+    fn unit_id(&mut self, h: &Header, group: Option<u32>, unit: Option<&str>, line: u64) -> u32 {
+        if let Some(g) = group.filter(|_| h.unit.is_some()) {
+            // Lines past u32::MAX (a file of several GB) would only blur a repeat's message.
+            self.lines[g as usize].push(u32::try_from(line).unwrap_or(u32::MAX));
+        }
+        unit.map_or(NO_UNIT, |u| self.serials.intern(u))
     }
 
     fn unit<'r>(
         &self,
-        record: &'r csv::ByteRecord,
+        record: &'r Record,
         line: u64,
         header: &Header,
     ) -> Result<Option<&'r str>, LotFileError> {
@@ -1078,7 +1161,7 @@ impl<'a> Parser<'a> {
 
     fn required<'r>(
         &self,
-        record: &'r csv::ByteRecord,
+        record: &'r Record,
         line: u64,
         header: &Header,
         col: usize,
@@ -1093,12 +1176,7 @@ impl<'a> Parser<'a> {
             .unwrap_or_default())
     }
 
-    fn long_row(
-        &mut self,
-        h: &Header,
-        record: &csv::ByteRecord,
-        line: u64,
-    ) -> Result<(), LotFileError> {
+    fn long_row(&mut self, h: &Header, record: &Record, line: u64) -> Result<(), LotFileError> {
         let source = self.required(record, line, h, h.source, "source")?;
         let lot = self.required(record, line, h, h.lot, "lot")?;
         let characteristic = self.required(record, line, h, h.characteristic, "characteristic")?;
@@ -1116,24 +1194,16 @@ impl<'a> Parser<'a> {
             self.names.intern(characteristic),
         );
         let g = self.group(ids, (source, lot, characteristic), line);
-        if let Some(u) = unit {
-            let uid = self.units.intern(u);
-            self.check_repeat(h, g, (uid, u), line)?;
-        }
+        let uid = self.unit_id(h, Some(g), unit, line);
         let group = &mut self.groups[g as usize];
         group.values.push(value);
-        group.units.push(unit.map(str::to_owned));
+        group.units.push(uid);
         group.sampled_at.push(sampled_at);
         self.values += 1;
         Ok(())
     }
 
-    fn wide_row(
-        &mut self,
-        h: &Header,
-        record: &csv::ByteRecord,
-        line: u64,
-    ) -> Result<(), LotFileError> {
+    fn wide_row(&mut self, h: &Header, record: &Record, line: u64) -> Result<(), LotFileError> {
         let source = self.required(record, line, h, h.source, "source")?;
         let lot = self.required(record, line, h, h.lot, "lot")?;
         let sampled_at = self.sampled_at(record, line, h)?;
@@ -1159,14 +1229,12 @@ impl<'a> Parser<'a> {
             }
             self.wide_key = Some(key);
         }
-        if let (Some(u), Some(&first)) = (unit, self.wide_groups.first()) {
-            let uid = self.units.intern(u);
-            self.check_repeat(h, first, (uid, u), line)?;
-        }
+        let first = self.wide_groups.first().copied();
+        let uid = self.unit_id(h, first, unit, line);
         for (&g, &value) in self.wide_groups.iter().zip(&self.wide_values) {
             let group = &mut self.groups[g as usize];
             group.values.push(value);
-            group.units.push(unit.map(str::to_owned));
+            group.units.push(uid);
             group.sampled_at.push(sampled_at);
         }
         self.values += h.wide.len();
@@ -1180,6 +1248,15 @@ mod tests {
     use proptest::prelude::*;
 
     const LONG: &str = "source,characteristic,lot,value\n";
+
+    /// The unit serials of group `g`, as text.
+    fn units(f: &LotFile, g: usize) -> Vec<Option<String>> {
+        f.groups[g]
+            .units
+            .iter()
+            .map(|&u| f.serials.get(u).map(str::to_owned))
+            .collect()
+    }
 
     fn ok(text: &str) -> LotFile {
         match parse("t.csv", text.as_bytes()) {
@@ -1428,7 +1505,7 @@ mod tests {
     fn repeated_rows_without_unit_are_kept() {
         let f = ok("source,characteristic,lot,value,unit\nS,C,L,1,\nS,C,L,2,\n");
         assert_eq!(f.groups[0].values, vec![1.0, 2.0]);
-        assert_eq!(f.groups[0].units, vec![None, None]);
+        assert_eq!(units(&f, 0), vec![None, None]);
         // Same unit in another lot or source is fine.
         ok("source,characteristic,lot,value,unit\nS,C,L,1,U\nS,C,M,2,U\nT,C,L,3,U\n");
     }
@@ -1462,7 +1539,7 @@ mod tests {
         assert_eq!((g.source.as_str(), g.lot.as_str()), ("ACME", "L1"));
         assert_eq!(g.characteristic, "bore");
         assert_eq!(g.values, vec![2.05, 2.06]);
-        assert_eq!(g.units, vec![None, None]);
+        assert_eq!(units(&f, 0), vec![None, None]);
         assert_eq!(g.sampled_at, vec![None, None]);
         assert_eq!(g.first_line, 2);
     }
@@ -1477,7 +1554,7 @@ mod tests {
             ("S", "L", "bore")
         );
         assert_eq!(g.values, vec![1.5]);
-        assert_eq!(g.units, vec![Some("U1".to_owned())]);
+        assert_eq!(units(&f, 0), vec![Some("U1".to_owned())]);
         assert_eq!(g.sampled_at, vec![Some(ts("2026-03-01"))]);
     }
 
@@ -1505,7 +1582,7 @@ mod tests {
         );
         assert_eq!(f.groups[1].values, vec![10.0, 11.0]);
         assert_eq!(
-            f.groups[0].units,
+            units(&f, 0),
             vec![Some("U1".to_owned()), Some("U2".to_owned())]
         );
         assert_eq!(f.groups[2].sampled_at, vec![None]);
@@ -1588,7 +1665,7 @@ mod tests {
         let e = fail(&format!("{LONG}S,\"C\",\"L\",1\nS,C,L,\"1\n\",2\n"));
         assert_err(&e, ErrorKind::FieldCount, 3, None);
         let f = ok("source,lot,unit,bore\nS,L,\"U\"\"1\",1\nS,L,U2,2\n");
-        assert_eq!(f.groups[0].units[0].as_deref(), Some("U\"1"));
+        assert_eq!(units(&f, 0)[0].as_deref(), Some("U\"1"));
     }
 
     #[test]
@@ -1876,6 +1953,82 @@ mod tests {
             let utc = DateTime::<Utc>::from_timestamp(secs, nanos).unwrap();
             let t = Timestamp { utc, date_only: false };
             prop_assert_eq!(t.to_rfc3339(), utc.format("%Y-%m-%dT%H:%M:%S%.3fZ").to_string());
+        }
+    }
+
+    /// Hands out at most `step` bytes per read, so records straddle the window's refills.
+    struct Trickle<'a> {
+        data: &'a [u8],
+        step: usize,
+    }
+
+    impl Read for Trickle<'_> {
+        fn read(&mut self, buf: &mut [u8]) -> std::io::Result<usize> {
+            let n = self.step.min(buf.len()).min(self.data.len());
+            buf[..n].copy_from_slice(&self.data[..n]);
+            self.data = &self.data[n..];
+            Ok(n)
+        }
+    }
+
+    /// Parsing in reads of `step` bytes gives what parsing the whole slice gives.
+    fn trickled_like_whole(bytes: &[u8], step: usize) -> Result<(), TestCaseError> {
+        let whole = format!("{:?}", parse("t.csv", bytes));
+        let trickled = match parse_reader("t.csv", Trickle { data: bytes, step }) {
+            Ok(f) => format!("{:?}", Ok::<_, LotFileError>(f)),
+            Err(ReadError::Lot(e)) => format!("{:?}", Err::<LotFile, _>(e)),
+            Err(ReadError::Io(e)) => return Err(TestCaseError::fail(e.to_string())),
+        };
+        prop_assert_eq!(whole, trickled);
+        Ok(())
+    }
+
+    #[test]
+    fn records_longer_than_the_window_keep_their_lines() {
+        let comment = format!("#{}\n", "x".repeat(200_000));
+        let serial = "U".repeat(150_000);
+        let text =
+            format!("{comment}source,lot,unit,bore\nS,L,U1,1\n{comment}S,L,\"{serial}\",2\n");
+        let e = fail(&text);
+        assert_err(&e, ErrorKind::TooLong, 5, Some(3));
+        let text =
+            format!("{comment}source,lot,unit,bore\nS,L,U1,1\n{comment}S,L,U2,2\nS,L,U1,3\n");
+        let e = fail(&text);
+        assert_err(&e, ErrorKind::DuplicateMeasurement, 6, Some(3));
+        assert!(e.message.contains("on line 3 and again on line 6"), "{e}");
+    }
+
+    #[test]
+    fn a_read_error_is_not_a_lot_file_error() {
+        struct Broken;
+        impl Read for Broken {
+            fn read(&mut self, _: &mut [u8]) -> std::io::Result<usize> {
+                Err(std::io::Error::other("disk gone"))
+            }
+        }
+        assert!(matches!(
+            parse_reader("t.csv", Broken),
+            Err(ReadError::Io(_))
+        ));
+    }
+
+    #[test]
+    fn a_repeat_before_a_later_error_is_reported_first() {
+        let e = fail("source,characteristic,lot,value,unit\nS,C,L,1,U\nS,C,L,2,U\nS,C,L,x,V\n");
+        assert_err(&e, ErrorKind::DuplicateMeasurement, 3, Some(5));
+        let e = fail("source,characteristic,lot,value,unit\nS,C,L,x,U\nS,C,L,1,V\nS,C,L,2,V\n");
+        assert_err(&e, ErrorKind::BadNumber, 2, Some(4));
+    }
+
+    proptest! {
+        #[test]
+        fn small_reads_change_nothing(text in headed_csvish(), step in 1usize..9) {
+            trickled_like_whole(text.as_bytes(), step)?;
+        }
+
+        #[test]
+        fn small_reads_change_nothing_on_bytes(bytes in prop::collection::vec(any::<u8>(), 0..400), step in 1usize..5) {
+            trickled_like_whole(&bytes, step)?;
         }
     }
 

@@ -114,7 +114,10 @@ pub struct NewSample {
     pub lot: String,
     pub characteristic: String,
     pub values: Vec<f64>,
-    pub units: Vec<Option<String>>,
+    /// Per value, the id of its unit serial in `serials` ([`crate::lotfile::NO_UNIT`]: none).
+    pub units: Vec<u32>,
+    /// The serials of the file the sample came from.
+    pub serials: std::sync::Arc<crate::lotfile::Serials>,
     /// Per value, its sampling time (stored as fixed-width RFC 3339 UTC text) or None.
     pub sampled_at: Vec<Option<Timestamp>>,
     pub summary: Summary,

@@ -5,7 +5,7 @@ use serde::Serialize;
 
 use super::{Place, Problem, Refusal};
 use crate::config::Profile;
-use crate::lotfile::{Group, Layout, LotFile};
+use crate::lotfile::{Group, Layout, LotFile, NO_UNIT};
 
 /// Values listed in `first_values`.
 const FIRST_VALUES: usize = 10;
@@ -130,7 +130,7 @@ fn summarise(out: &mut FileCheck, f: &LotFile) {
             .collect();
         let lot = lot_entry(&mut out.lots, g);
         lot.characteristics.push(g.characteristic.clone());
-        let mut units: Vec<&String> = g.units.iter().flatten().collect();
+        let mut units: Vec<u32> = g.units.iter().copied().filter(|&u| u != NO_UNIT).collect();
         units.sort();
         units.dedup();
         lot.units = lot.units.max(units.len());
@@ -147,7 +147,7 @@ fn summarise(out: &mut FileCheck, f: &LotFile) {
                 source: g.source.clone(),
                 lot: g.lot.clone(),
                 characteristic: g.characteristic.clone(),
-                unit: g.units[i].clone(),
+                unit: f.serials.get(g.units[i]).map(str::to_owned),
                 value: g.values[i],
                 sampled_at: g.sampled_at[i].map(|t| t.to_rfc3339()),
             });

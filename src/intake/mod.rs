@@ -206,15 +206,7 @@ pub fn read(file_name: &str, bytes: &[u8], profile: Option<&Profile>) -> Result<
             &builtin
         }
         None => {
-            return lotfile::parse(file_name, bytes).map_err(|e| {
-                let hint = hint_for(&e, bytes);
-                Refusal {
-                    profile: None,
-                    problems: vec![e.into()],
-                    more: 0,
-                    hint,
-                }
-            });
+            return lotfile::parse(file_name, bytes).map_err(|e| builtin_refusal(e, bytes));
         }
     };
     let refuse = |problems: Vec<Problem>| {
@@ -233,6 +225,56 @@ pub fn read(file_name: &str, bytes: &[u8], profile: Option<&Profile>) -> Result<
     }
     .map_err(|p| refuse(vec![p]))?;
     table::to_lot_file(file_name, &table, profile).map_err(refuse)
+}
+
+/// A refusal by the built-in dialect, with a hint from the file's first bytes.
+fn builtin_refusal(e: LotFileError, head: &[u8]) -> Refusal {
+    let hint = hint_for(&e, head);
+    Refusal {
+        profile: None,
+        problems: vec![e.into()],
+        more: 0,
+        hint,
+    }
+}
+
+/// Why [`read_stream`] gave no lot file.
+#[derive(Debug)]
+pub enum StreamFailure {
+    Refused(Refusal),
+    /// The stream failed; nothing is known about the file's content.
+    Io(std::io::Error),
+}
+
+/// How much of a stream's start is kept for a refusal's hint (which reads the first lines).
+const HINT_HEAD: usize = 64 * 1024;
+
+/// A reader that keeps the first [`HINT_HEAD`] bytes it passes on.
+struct Head<R> {
+    inner: R,
+    kept: Vec<u8>,
+}
+
+impl<R: std::io::Read> std::io::Read for Head<R> {
+    fn read(&mut self, buf: &mut [u8]) -> std::io::Result<usize> {
+        let n = self.inner.read(buf)?;
+        let room = HINT_HEAD.saturating_sub(self.kept.len()).min(n);
+        self.kept.extend_from_slice(&buf[..room]);
+        Ok(n)
+    }
+}
+
+/// Reads a file in the built-in dialect from a stream, holding only a window of it (see
+/// [`lotfile::parse_reader`]). Workbooks and files with a profile go through [`read`].
+pub fn read_stream<R: std::io::Read>(file_name: &str, reader: R) -> Result<LotFile, StreamFailure> {
+    let mut head = Head {
+        inner: reader,
+        kept: Vec::new(),
+    };
+    lotfile::parse_reader(file_name, &mut head).map_err(|e| match e {
+        lotfile::ReadError::Io(e) => StreamFailure::Io(e),
+        lotfile::ReadError::Lot(e) => StreamFailure::Refused(builtin_refusal(e, &head.kept)),
+    })
 }
 
 /// For a file refused by the built-in dialect: the profile keys that would likely read it.

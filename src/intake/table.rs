@@ -8,7 +8,9 @@ use chrono::NaiveDateTime;
 
 use super::{Kind, Place, Problem};
 use crate::config::Profile;
-use crate::lotfile::{self, ErrorKind, Group, Layout, LotFile, NumberError, Timestamp, found};
+use crate::lotfile::{
+    self, ErrorKind, Group, Layout, LotFile, NO_UNIT, NumberError, Serials, Timestamp, found,
+};
 
 /// One cell as the file gave it.
 #[derive(Debug, Clone, PartialEq)]
@@ -150,6 +152,7 @@ pub(crate) fn to_lot_file(
         groups: b.groups,
         rows: b.rows,
         values: b.values,
+        serials: std::sync::Arc::new(b.serials),
     })
 }
 
@@ -513,6 +516,7 @@ struct Builder {
     ids: HashMap<String, HashMap<String, HashMap<String, usize>>>,
     /// Per group: unit → row of its first measurement.
     seen: Vec<HashMap<String, u64>>,
+    serials: Serials,
     rows: usize,
     values: usize,
 }
@@ -532,6 +536,10 @@ impl Builder {
         let parsed = parse_row(ctx, cols, row)?;
         self.rows += 1;
         let mut first = None;
+        let unit = parsed
+            .unit
+            .as_deref()
+            .map_or(NO_UNIT, |u| self.serials.intern(u));
         for (characteristic, value) in parsed.values {
             let g = self.group(&parsed.source, &parsed.lot, characteristic, row.number);
             // Wide rows measure one unit for all characteristics: checked on the first.
@@ -542,7 +550,7 @@ impl Builder {
             }
             let group = &mut self.groups[g];
             group.values.push(value);
-            group.units.push(parsed.unit.clone());
+            group.units.push(unit);
             group.sampled_at.push(parsed.sampled_at);
             self.values += 1;
         }

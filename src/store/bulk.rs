@@ -63,7 +63,7 @@ pub(super) fn insert_measurements(
             }
             stmt.raw_bind_parameter(2, k as i64)
                 .doing("recording measurements")?;
-            stmt.raw_bind_parameter(3, s.units[k].as_deref())
+            stmt.raw_bind_parameter(3, s.serials.get(s.units[k]))
                 .doing("recording measurements")?;
             stmt.raw_bind_parameter(4, value)
                 .doing("recording measurements")?;
