@@ -366,6 +366,10 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             };
             init_tracing(format, &config.log.level);
             let store = open_store(&config).await?;
+            store
+                .set_units(&config.units)
+                .await
+                .context("recording the units of measure")?;
             if once {
                 let r = daemon::run_once(&store, &config)
                     .await

@@ -22,6 +22,9 @@ use sqlx::sqlite::{
 use sqlx::{ConnectOptions, QueryBuilder, Row, Sqlite, Transaction};
 
 mod bulk;
+mod views;
+
+pub use views::LotDecision;
 
 use crate::lotfile::Timestamp;
 use crate::stats::Summary;
@@ -599,6 +602,11 @@ pub struct AlertRow {
     pub cpk: Option<[f64; 3]>,
     /// Latest acknowledgement: who, when, and the note.
     pub acknowledged: Option<AckRow>,
+    /// The opening decision's CUSUM sums (upper, lower) after its lot and the decision
+    /// interval h, in standardised units (None where the series has no CUSUM).
+    pub cusum_upper: Option<f64>,
+    pub cusum_lower: Option<f64>,
+    pub cusum_h: Option<f64>,
     /// Every state change, oldest first (filled by [`Store::alerts`]; empty elsewhere).
     pub events: Vec<EventRow>,
     /// Every acknowledgement, oldest first (filled by [`Store::alerts`]; empty elsewhere).
@@ -823,10 +831,12 @@ impl Store {
             path: shown,
             source,
         })?;
-        Ok(Store {
+        let store = Store {
             pool,
             names: Mutex::new(NameCache::default()),
-        })
+        };
+        store.fill_missing_sd().await?;
+        Ok(store)
     }
 
     /// Writes a consistent copy of the database to `dest` (`VACUUM INTO`: one read
@@ -1228,7 +1238,7 @@ impl Store {
         for chunk in inserts.chunks(ROWS_PER_INSERT / 2) {
             let mut q = QueryBuilder::<Sqlite>::new(
                 "INSERT INTO sample (lot_id, series_id, file_id, n, mean, m2, min_value, \
-                 max_value, sampled_at, content_digest) ",
+                 max_value, sampled_at, content_digest, sd) ",
             );
             q.push_values(chunk, |mut b, p| {
                 let s = &p.sample.summary;
@@ -1241,7 +1251,8 @@ impl Store {
                     .push_bind(s.min())
                     .push_bind(s.max())
                     .push_bind(p.sample.earliest.as_deref())
-                    .push_bind(&p.sample.digest);
+                    .push_bind(&p.sample.digest)
+                    .push_bind(views::sd(s.n() as i64, s.m2()));
             });
             q.push(" RETURNING id, lot_id, series_id");
             let ids: HashMap<(i64, i64), i64> = q
@@ -1341,7 +1352,7 @@ impl Store {
         let s = &new.summary;
         sqlx::query(
             "UPDATE sample SET file_id = ?, n = ?, mean = ?, m2 = ?, min_value = ?, \
-             max_value = ?, sampled_at = ?, content_digest = ? WHERE id = ?",
+             max_value = ?, sampled_at = ?, content_digest = ?, sd = ? WHERE id = ?",
         )
         .bind(file_id)
         .bind(s.n() as i64)
@@ -1351,6 +1362,7 @@ impl Store {
         .bind(s.max())
         .bind(new.earliest.as_deref())
         .bind(&new.digest)
+        .bind(views::sd(s.n() as i64, s.m2()))
         .bind(old.id)
         .execute(&mut **tx)
         .await
@@ -2900,7 +2912,8 @@ const ALERT_COLUMNS: &str = "a.id, src.name, ch.name, a.state, a.opened_at, a.re
      e.cpk_high, \
      (SELECT k.acked_by FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1), \
      (SELECT k.acked_at FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1), \
-     (SELECT k.note FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1)";
+     (SELECT k.note FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1), \
+     e.cusum_upper, e.cusum_lower, e.cusum_h";
 
 /// The joins behind [`ALERT_COLUMNS`] for alert `a`, with the numbers of evaluation `eval`
 /// (an SQL expression: the opening evaluation, or an event's own).
@@ -2965,6 +2978,9 @@ fn alert_from_row(r: &SqliteRow, o: usize) -> AlertRow {
             (Some(by), Some(at), Some(note)) => Some(AckRow { by, at, note }),
             _ => None,
         },
+        cusum_upper: r.get(o + 36),
+        cusum_lower: r.get(o + 37),
+        cusum_h: r.get(o + 38),
         events: Vec::new(),
         acknowledgements: Vec::new(),
     }
