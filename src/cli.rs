@@ -149,6 +149,8 @@ enum BaselineAction {
         characteristic: String,
         #[command(flatten)]
         config: ConfigArg,
+        #[arg(long)]
+        json: bool,
     },
     /// Retire the baseline: the next `monitor.baseline_lots` undecided lots form a new one.
     Reset {
@@ -473,9 +475,9 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             let store = open_existing(&config).await?;
             let alerts = store.alerts(open).await.context("alerts")?;
             if json {
-                print_json(&report::alerts_json(&alerts));
+                print_json(&report::alerts_json(&alerts, &config.units));
             } else {
-                say_part!("{}", report::alerts_text(&alerts));
+                say_part!("{}", report::alerts_text(&alerts, &config.units));
             }
             Ok(())
         }
@@ -498,11 +500,15 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                 .await
                 .context("history")?;
             if json {
-                print_json(&report::history_json(&rows));
+                print_json(&report::history_json(&rows, &config.units));
             } else if csv {
                 say_part!("{}", report::history_csv(&rows));
             } else {
-                say_part!("{}", report::history_text(&rows));
+                let decisions = store
+                    .lot_decisions(&source, characteristic.as_deref())
+                    .await
+                    .context("history")?;
+                say_part!("{}", report::history_text(&rows, &decisions, &config.units));
             }
             Ok(())
         }
@@ -590,6 +596,7 @@ async fn series_status(
             baseline_cpk: crate::engine::baseline_cpk(&d, &config.monitor, &characteristic)
                 .map(|c| [c.cpk, c.low, c.high]),
             detectable_shift: crate::engine::detectable_shift(&d, &config.monitor, &characteristic),
+            unit: config.unit(&characteristic).map(String::from),
             source,
             characteristic,
             baseline_lots: d.re.m,
@@ -714,6 +721,7 @@ async fn baseline(action: BaselineAction) -> Result<(), Failure> {
             source,
             characteristic,
             config,
+            ..
         }
         | BaselineAction::Reset {
             source,
@@ -743,29 +751,8 @@ async fn baseline(action: BaselineAction) -> Result<(), Failure> {
         .unwrap_or_else(|_| "unknown".into());
     let at = crate::time::now_rfc3339();
     match action {
-        BaselineAction::Show { .. } => {
-            match store.baseline_of(series).await.context("baseline")? {
-                Some((definition, note, frozen_at, lots)) => {
-                    say!("{source} / {characteristic}: {definition}, frozen {frozen_at}");
-                    say!("lots: {}", lots.join(", "));
-                    say!("design: {note}");
-                }
-                None => say!(
-                    "{source} / {characteristic}: no baseline yet (the next {} undecided lots \
-                     will form it)",
-                    config.monitor.baseline_lots
-                ),
-            }
-            let changes = store.baseline_changes(series).await.context("baseline")?;
-            if !changes.is_empty() {
-                say!("\nchanges:");
-                for (when, who, why, old, new) in changes {
-                    say!(
-                        "  {when} by {who}: {} -> {new} ({why})",
-                        old.unwrap_or_else(|| "none".into())
-                    );
-                }
-            }
+        BaselineAction::Show { json, .. } => {
+            baseline_show(&store, &config, series, (&source, &characteristic), json).await?;
         }
         BaselineAction::Reset { reason, .. } => {
             if reason.trim().is_empty() {
@@ -880,6 +867,53 @@ async fn baseline(action: BaselineAction) -> Result<(), Failure> {
         }
     }
     store.close().await;
+    Ok(())
+}
+
+/// `baseline show`: the current baseline and every change, as text or JSON.
+async fn baseline_show(
+    store: &Store,
+    config: &Config,
+    series: i64,
+    (source, characteristic): (&str, &str),
+    json: bool,
+) -> Result<(), Failure> {
+    let baseline = store.baseline_of(series).await.context("baseline")?.map(
+        |(definition, design, frozen_at, lots)| report::BaselineNow {
+            definition,
+            frozen_at,
+            lots,
+            design,
+        },
+    );
+    let changes = store
+        .baseline_changes(series)
+        .await
+        .context("baseline")?
+        .into_iter()
+        .map(|(at, by, reason, from, to)| report::BaselineChange {
+            at,
+            by,
+            reason,
+            from,
+            to,
+        })
+        .collect();
+    let shown = report::BaselineShow {
+        source: source.to_string(),
+        characteristic: characteristic.to_string(),
+        unit: config.unit(characteristic).map(String::from),
+        baseline,
+        changes,
+    };
+    if json {
+        print_json(&serde_json::json!(shown));
+    } else {
+        say_part!(
+            "{}",
+            report::baseline_text(&shown, config.monitor.baseline_lots)
+        );
+    }
     Ok(())
 }
 
