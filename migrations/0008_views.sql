@@ -17,6 +17,10 @@ CREATE TABLE characteristic_unit (
 ALTER TABLE sample ADD COLUMN sd REAL;
 CREATE INDEX sample_sd_missing ON sample (id) WHERE sd IS NULL AND n > 1;
 
+-- Who replaced a sample's values (`lotdrift replace --by NAME`, else the login name); NULL
+-- for replacements recorded before this migration.
+ALTER TABLE sample_replacement ADD COLUMN replaced_by TEXT;
+
 -- One row per stored unit value. `unit` is the measured unit's serial as the lot file gave it
 -- (NULL when it gave none; `seq` is then the only name of the unit); `unit_of_measure` is the
 -- characteristic's configured unit (mAh, g). `sampled_at` is the value's own sampling time,

@@ -713,30 +713,137 @@ pub fn baseline_text(b: &BaselineShow, baseline_lots: usize) -> String {
     out
 }
 
+/// `check-config --json`: whether the file is valid, its problems (each naming its key), and
+/// what a script most often needs of a valid one.
+#[derive(Debug, serde::Serialize)]
+pub struct CheckConfigJson {
+    pub ok: bool,
+    pub file: String,
+    pub problems: Vec<String>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub database: Option<String>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub inbox: Option<String>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub channels: Option<Vec<&'static str>>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub baseline_lots: Option<usize>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub units: Option<Units>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub profiles: Option<Vec<String>>,
+}
+
+impl CheckConfigJson {
+    pub fn of(c: &crate::config::Config) -> CheckConfigJson {
+        CheckConfigJson {
+            ok: true,
+            file: c.file.display().to_string(),
+            problems: Vec::new(),
+            database: Some(c.paths.database.display().to_string()),
+            inbox: Some(c.paths.inbox.display().to_string()),
+            channels: Some(c.alerts.channels.iter().map(|ch| ch.as_str()).collect()),
+            baseline_lots: Some(c.monitor.baseline_lots),
+            units: Some(c.units.clone()),
+            profiles: Some(c.input.profiles.iter().map(|p| p.name.clone()).collect()),
+        }
+    }
+
+    pub fn failed(file: &std::path::Path, problems: Vec<String>) -> CheckConfigJson {
+        CheckConfigJson {
+            ok: false,
+            file: file.display().to_string(),
+            problems,
+            database: None,
+            inbox: None,
+            channels: None,
+            baseline_lots: None,
+            units: None,
+            profiles: None,
+        }
+    }
+}
+
+/// One recipient in `alerts test-email --json`.
+#[derive(Debug, serde::Serialize)]
+struct TestEmailJson<'a> {
+    recipient: &'a str,
+    accepted: bool,
+    /// The server's reply on acceptance, the error (with the reply) on refusal.
+    reply: &'a str,
+}
+
+pub fn test_email_json(sent: &[crate::alert::TestDelivery]) -> Value {
+    json!(
+        sent.iter()
+            .map(|d| TestEmailJson {
+                recipient: &d.recipient,
+                accepted: d.outcome.is_ok(),
+                reply: match &d.outcome {
+                    Ok(r) | Err(r) => r,
+                },
+            })
+            .collect::<Vec<_>>()
+    )
+}
+
+/// `adjust --json`.
+#[derive(Debug, serde::Serialize)]
+pub struct AdjustJson<'a> {
+    pub method: &'a str,
+    pub level: f64,
+    pub adjusted: &'a [f64],
+    pub reject: &'a [bool],
+}
+
 fn finite_or_null(v: f64) -> Value {
     if v.is_finite() { json!(v) } else { Value::Null }
 }
 
+/// `compare --json` (keys of the scripting contract: test, statistic, df, p_value, estimate,
+/// ci).
+#[derive(Debug, serde::Serialize)]
+struct CompareJson<'a> {
+    test: &'a str,
+    alternative: &'a str,
+    statistic: f64,
+    /// A number, [df1, df2] for F and Brown–Forsythe, null for Mann–Whitney.
+    df: Value,
+    p_value: f64,
+    estimate: f64,
+    estimate_of: &'a str,
+    /// [low, high] (an infinite bound is null), or null where not defined.
+    ci: Option<[Value; 2]>,
+    conf_level: f64,
+    delta: f64,
+    alpha: f64,
+    reject: bool,
+    n_a: usize,
+    n_b: usize,
+}
+
 pub fn compare_json(c: &Comparison, alpha: f64) -> Value {
-    json!({
-        "test": c.test.as_str(),
-        "alternative": c.alternative.as_str(),
-        "statistic": c.statistic,
-        "df": match c.df {
+    json!(CompareJson {
+        test: c.test.as_str(),
+        alternative: c.alternative.as_str(),
+        statistic: c.statistic,
+        df: match c.df {
             Some(Df::One(d)) => json!(d),
             Some(Df::Two(a, b)) => json!([a, b]),
             None => Value::Null,
         },
-        "p_value": c.p_value,
-        "estimate": c.estimate,
-        "estimate_of": c.estimate_label,
-        "ci": c.ci.map(|(lo, hi)| json!([finite_or_null(lo), finite_or_null(hi)])),
-        "conf_level": c.conf_level,
-        "delta": c.delta,
-        "alpha": alpha,
-        "reject": c.p_value <= alpha,
-        "n_a": c.n_a,
-        "n_b": c.n_b,
+        p_value: c.p_value,
+        estimate: c.estimate,
+        estimate_of: c.estimate_label,
+        ci: c
+            .ci
+            .map(|(lo, hi)| [finite_or_null(lo), finite_or_null(hi)]),
+        conf_level: c.conf_level,
+        delta: c.delta,
+        alpha,
+        reject: c.p_value <= alpha,
+        n_a: c.n_a,
+        n_b: c.n_b,
     })
 }
 

@@ -680,6 +680,13 @@ pub struct UndeliveredRow {
     pub message: String,
 }
 
+/// Values replaced on purpose (`lotdrift replace`): why, and who did it.
+#[derive(Debug, Clone, Copy)]
+pub struct Replacement<'a> {
+    pub reason: &'a str,
+    pub by: &'a str,
+}
+
 /// One lot of a series, for `lotdrift history`.
 #[derive(Debug, Clone, serde::Serialize)]
 pub struct HistoryRow {
@@ -916,7 +923,7 @@ impl Store {
         &self,
         files: &[NewFile],
         received_at: &str,
-        replace: Option<&str>,
+        replace: Option<&Replacement<'_>>,
     ) -> Result<Vec<FileOutcome>> {
         let mut tx = self.begin().await?;
         let mut created = NameCache::default();
@@ -936,7 +943,7 @@ impl Store {
         tx: &mut Transaction<'static, Sqlite>,
         files: &[NewFile],
         received_at: &str,
-        replace: Option<&str>,
+        replace: Option<&Replacement<'_>>,
         created: &mut NameCache,
     ) -> Result<Vec<FileOutcome>> {
         // 1. Duplicates by content hash (stored before, or twice in this batch).
@@ -1308,22 +1315,23 @@ impl Store {
         new: &NewSample,
         file_id: i64,
         at: &str,
-        reason: Option<&str>,
+        replace: Option<&Replacement<'_>>,
     ) -> Result<()> {
         let replacement_id: i64 = sqlx::query_scalar(
             "INSERT INTO sample_replacement (sample_id, replaced_at, reason, old_file_id, \
-             new_file_id, old_n, old_mean, old_m2, old_digest) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?) \
-             RETURNING id",
+             new_file_id, old_n, old_mean, old_m2, old_digest, replaced_by) \
+             VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING id",
         )
         .bind(old.id)
         .bind(at)
-        .bind(reason.unwrap_or(""))
+        .bind(replace.map_or("", |r| r.reason))
         .bind(old.file_id)
         .bind(file_id)
         .bind(old.n)
         .bind(old.mean)
         .bind(old.m2)
         .bind(&old.digest)
+        .bind(replace.map(|r| r.by))
         .fetch_one(&mut **tx)
         .await
         .doing("recording a replacement")?;
