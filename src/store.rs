@@ -3460,6 +3460,43 @@ mod tests {
         assert_eq!(count(&pool, "SELECT COUNT(*) FROM pending_sample").await, 2);
     }
 
+    /// Samples stored before migration 0008 get their sd when the database is next opened,
+    /// and the views read them.
+    #[tokio::test]
+    async fn the_views_migration_fills_in_older_samples_sd() {
+        let dir = tempfile::tempdir().unwrap();
+        let pool = database_before(dir.path(), "0008").await;
+        sqlx::raw_sql(
+            "INSERT INTO source VALUES (1, 'alder-cells'); \
+             INSERT INTO characteristic VALUES (1, 'mass_g'); \
+             INSERT INTO series VALUES (5, 1, 1); \
+             INSERT INTO ingested_file VALUES (1, 'h', 'f.csv', 't', 'long', 4); \
+             INSERT INTO lot VALUES (1, 1, 'L1', NULL, 't'), (2, 1, 'L2', NULL, 't'); \
+             INSERT INTO sample (id, lot_id, series_id, file_id, n, mean, m2, min_value, \
+                 max_value, content_digest) VALUES (1, 1, 5, 1, 3, 2, 8, 0, 4, 'a'), \
+                 (2, 2, 5, 1, 1, 1, 0, 1, 1, 'b');",
+        )
+        .execute(&pool)
+        .await
+        .unwrap();
+        pool.close().await;
+        let store = Store::open(&dir.path().join("old.db")).await.unwrap();
+        let sds: Vec<Option<f64>> = sqlx::query_scalar("SELECT sd FROM lot_view ORDER BY lot")
+            .fetch_all(&store.pool)
+            .await
+            .unwrap();
+        assert_eq!(sds, [Some(2.0), None]);
+        let mut units = std::collections::BTreeMap::new();
+        units.insert("mass_g".to_string(), "g".to_string());
+        store.set_units(&units).await.unwrap();
+        let unit: Option<String> =
+            sqlx::query_scalar("SELECT unit_of_measure FROM lot_view LIMIT 1")
+                .fetch_one(&store.pool)
+                .await
+                .unwrap();
+        assert_eq!(unit.as_deref(), Some("g"));
+    }
+
     /// A database made before the digest (migration 0001 only) keeps its outbox rows when
     /// migration 0002 rebuilds the table.
     #[tokio::test]
