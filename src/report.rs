@@ -87,17 +87,21 @@ pub fn table_in(width: u16, header: &[&str], rows: &[Vec<String>], wrap: &[usize
 /// first indented by `indent`.
 pub fn wrap(text: &str, width: usize, indent: &str) -> String {
     let mut out = String::new();
-    let mut line = String::new();
+    // The text's own leading spaces stay: they indent its first line.
+    let lead = &text[..text.len() - text.trim_start_matches(' ').len()];
+    let mut line = lead.to_string();
+    let mut fresh = true;
     for word in text.split(' ').filter(|w| !w.is_empty()) {
         let len = line.chars().count();
-        if len > 0 && len + 1 + word.chars().count() > width {
+        if !fresh && len + 1 + word.chars().count() > width {
             out.push_str(&line);
             out.push('\n');
             line = indent.to_string();
-        } else if len > 0 && line != indent {
+        } else if !fresh {
             line.push(' ');
         }
         line.push_str(word);
+        fresh = false;
     }
     out.push_str(&line);
     out.push('\n');
@@ -704,10 +708,11 @@ pub fn baseline_text(b: &BaselineShow, baseline_lots: usize) -> String {
         for c in &b.changes {
             let from = c.from.as_deref().unwrap_or("none");
             out.push_str(&wrap(
-                &format!("  {} by {}: {from} -> {} ({})", c.at, c.by, c.to, c.reason),
+                &format!("  {} by {}: {from} -> {}", c.at, c.by, c.to),
                 w,
                 "    ",
             ));
+            out.push_str(&wrap(&format!("    why: {}", c.reason), w, "      "));
         }
     }
     out
@@ -903,6 +908,12 @@ fn fmt_bound(v: f64) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn wrapped_text_keeps_its_indent_and_width() {
+        let w = wrap("  one two three four", 10, "    ");
+        assert_eq!(w, "  one two\n    three\n    four\n");
+    }
 
     #[test]
     fn tables_pad_columns_and_fit_their_width() {
