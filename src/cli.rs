@@ -21,6 +21,10 @@ use crate::stats;
 use crate::store::Store;
 
 mod check_file;
+mod conventions;
+mod progress;
+
+use conventions::{AlternativeArg, MethodArg, TestArg, name_of, who};
 
 #[derive(Parser, Debug)]
 #[command(
@@ -36,7 +40,12 @@ pub struct Cli {
 #[derive(Args, Debug, Clone)]
 struct ConfigArg {
     /// The config file (paths in it are relative to it).
-    #[arg(long, value_name = "FILE", default_value = "lotdrift.toml")]
+    #[arg(
+        long,
+        value_name = "FILE",
+        env = "LOTDRIFT_CONFIG",
+        default_value = "lotdrift.toml"
+    )]
     config: PathBuf,
 }
 
@@ -70,6 +79,9 @@ enum Command {
     CheckConfig {
         #[command(flatten)]
         config: ConfigArg,
+        /// One object: `ok`, `file`, and `problems` (each naming its key) or a summary.
+        #[arg(long)]
+        json: bool,
     },
     /// Read a lot file with the input profile it would get and print what would be stored
     /// (lots, characteristics, units, first values with times in UTC) or every problem.
@@ -120,6 +132,9 @@ enum Command {
         /// Why the stored values are replaced (kept with the old values).
         #[arg(long)]
         reason: String,
+        /// Who replaces them, for the audit trail (default: the login name).
+        #[arg(long, value_name = "NAME")]
+        by: Option<String>,
         #[command(flatten)]
         config: ConfigArg,
     },
@@ -139,6 +154,18 @@ enum Command {
     Compare(CompareArgs),
     /// Adjust p-values for multiplicity.
     Adjust(AdjustArgs),
+    /// Print the shell completion script for SHELL (e.g. `lotdrift completions bash >
+    /// /etc/bash_completion.d/lotdrift`).
+    Completions {
+        #[arg(value_enum)]
+        shell: clap_complete::Shell,
+    },
+    /// Print the man page (roff), or write one page per command into a folder.
+    Man {
+        /// Write lotdrift.1, lotdrift-run.1, ... into this folder instead.
+        #[arg(long, value_name = "DIR")]
+        out: Option<PathBuf>,
+    },
 }
 
 #[derive(Subcommand, Debug)]
@@ -149,6 +176,8 @@ enum BaselineAction {
         characteristic: String,
         #[command(flatten)]
         config: ConfigArg,
+        #[arg(long)]
+        json: bool,
     },
     /// Retire the baseline: the next `monitor.baseline_lots` undecided lots form a new one.
     Reset {
@@ -156,6 +185,9 @@ enum BaselineAction {
         characteristic: String,
         #[arg(long)]
         reason: String,
+        /// Who resets it, for the audit trail (default: the login name).
+        #[arg(long, value_name = "NAME")]
+        by: Option<String>,
         #[command(flatten)]
         config: ConfigArg,
     },
@@ -174,6 +206,9 @@ enum BaselineAction {
         to: Option<String>,
         #[arg(long)]
         reason: String,
+        /// Who sets it, for the audit trail (default: the login name).
+        #[arg(long, value_name = "NAME")]
+        by: Option<String>,
         #[command(flatten)]
         config: ConfigArg,
     },
@@ -187,6 +222,9 @@ enum AlertsAction {
         id: i64,
         #[arg(long)]
         note: String,
+        /// Who acknowledges, for the audit trail (default: the login name).
+        #[arg(long, value_name = "NAME")]
+        by: Option<String>,
         #[arg(long, value_name = "FILE")]
         config: Option<PathBuf>,
     },
@@ -195,6 +233,9 @@ enum AlertsAction {
         /// The config file (default: the one given to `alerts`, else ./lotdrift.toml).
         #[arg(long, value_name = "FILE")]
         config: Option<PathBuf>,
+        /// An array: `recipient`, `accepted`, `reply` (the server's reply or the error).
+        #[arg(long)]
+        json: bool,
     },
 }
 
@@ -211,7 +252,12 @@ struct CompareArgs {
     #[arg(long, value_name = "N", requires = "sources")]
     lots: Option<usize>,
     /// With two sources: the config file.
-    #[arg(long, value_name = "FILE", default_value = "lotdrift.toml")]
+    #[arg(
+        long,
+        value_name = "FILE",
+        env = "LOTDRIFT_CONFIG",
+        default_value = "lotdrift.toml"
+    )]
     config: PathBuf,
     /// Sample a: numbers separated by newlines, commas or spaces.
     #[arg(long, value_name = "FILE", required_unless_present = "sources")]
@@ -219,12 +265,12 @@ struct CompareArgs {
     /// Sample b.
     #[arg(long, value_name = "FILE", required_unless_present = "sources")]
     b: Option<PathBuf>,
-    /// welch, pooled, mann-whitney, f or brown-forsythe.
-    #[arg(long, default_value = "welch")]
-    test: String,
-    /// two-sided, less or greater (for a − b).
-    #[arg(long, default_value = "two-sided")]
-    alternative: String,
+    /// The test.
+    #[arg(long, value_enum, ignore_case = true, default_value_t = TestArg::Welch)]
+    test: TestArg,
+    /// The alternative hypothesis, for a − b.
+    #[arg(long, value_enum, ignore_case = true, default_value_t = AlternativeArg::TwoSided)]
+    alternative: AlternativeArg,
     /// Hypothesised difference of means a − b (t tests).
     #[arg(long, default_value_t = 0.0, allow_negative_numbers = true)]
     delta: f64,
@@ -237,9 +283,9 @@ struct CompareArgs {
 
 #[derive(Args, Debug)]
 struct AdjustArgs {
-    /// bonferroni, holm, hochberg, bh or by.
-    #[arg(long)]
-    method: String,
+    /// The adjustment.
+    #[arg(long, value_enum, ignore_case = true)]
+    method: MethodArg,
     /// Level for the reject decisions.
     #[arg(long, default_value_t = 0.05)]
     level: f64,
@@ -307,17 +353,33 @@ pub fn main() -> ExitCode {
 }
 
 fn init_tracing(format: LogFormat, level: &str) {
-    let filter = tracing_subscriber::EnvFilter::try_from_env("LOTDRIFT_LOG")
-        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(format!("lotdrift={level},warn")));
     let builder = tracing_subscriber::fmt()
-        .with_env_filter(filter)
-        // Colour codes only on a terminal: a log file or journal gets plain text.
-        .with_ansi(std::io::IsTerminal::is_terminal(&std::io::stderr()))
+        .with_env_filter(conventions::log_filter(level))
+        // Colour codes only on a terminal (and not with NO_COLOR): a log file or journal
+        // gets plain text.
+        .with_ansi(conventions::colour_on_stderr())
         .with_writer(std::io::stderr);
     let _ = match format {
         LogFormat::Json => builder.json().try_init(),
         LogFormat::Text => builder.try_init(),
     };
+}
+
+/// Text logs with the progress line of `run --once` below them: the per-batch lines become
+/// the progress line instead of scrolling by.
+fn init_tracing_with_progress(level: &str, progress: &progress::Progress) {
+    use tracing_subscriber::prelude::*;
+    let lines = tracing_subscriber::fmt::layer()
+        .with_ansi(conventions::colour_on_stderr())
+        .with_writer(progress.writer())
+        .with_filter(tracing_subscriber::filter::filter_fn(|meta| {
+            meta.fields().field("taken").is_none()
+        }));
+    let _ = tracing_subscriber::registry()
+        .with(conventions::log_filter(level))
+        .with(lines)
+        .with(progress.layer())
+        .try_init();
 }
 
 fn load(arg: &ConfigArg) -> Result<Config, Failure> {
@@ -364,17 +426,30 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             } else {
                 config.log.format
             };
-            init_tracing(format, &config.log.level);
+            let progress = (once
+                && format == LogFormat::Text
+                && std::io::IsTerminal::is_terminal(&std::io::stderr()))
+            .then(progress::Progress::new);
+            match &progress {
+                Some(p) => init_tracing_with_progress(&config.log.level, p),
+                None => init_tracing(format, &config.log.level),
+            }
             let store = open_store(&config).await?;
+            store
+                .set_units(&config.units)
+                .await
+                .context("recording the units of measure")?;
             if once {
-                let r = daemon::run_once(&store, &config)
-                    .await
-                    .context("run --once")?;
+                let r = daemon::run_once(&store, &config).await;
+                if let Some(p) = &progress {
+                    p.finish();
+                }
+                let r = r.context("run --once")?;
                 tracing::info!(
                     stored = r.ingest.stored(),
                     duplicates = r.ingest.duplicates(),
                     quarantined = r.ingest.quarantined(),
-                    lots_tested = r.engine.evaluations,
+                    tests = r.engine.evaluations,
                     alerts_opened = r.engine.opened,
                     silences_opened = r.silence.opened,
                     silences_resolved = r.silence.resolved,
@@ -399,11 +474,7 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             init_tracing(LogFormat::Text, "warn");
             demo::run(&dir).await
         }
-        Command::CheckConfig { config } => {
-            let c = load(&config)?;
-            say!("{c:#?}");
-            Ok(())
-        }
+        Command::CheckConfig { config, json } => check_config(&config, json),
         Command::CheckFile {
             file,
             profile,
@@ -415,7 +486,7 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
         }
         Command::Status { config, json } => status(&load(&config)?, json).await,
         Command::Alerts {
-            action: Some(AlertsAction::TestEmail { config: own }),
+            action: Some(AlertsAction::TestEmail { config: own, json }),
             config,
             ..
         } => {
@@ -423,7 +494,11 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             let sent = crate::alert::test_email(&config)
                 .await
                 .map_err(|e| Failure::Usage(e.into()))?;
-            say_part!("{}", crate::alert::test_email_text(&sent));
+            if json {
+                print_json(&report::test_email_json(&sent));
+            } else {
+                say_part!("{}", crate::alert::test_email_text(&sent));
+            }
             match sent.iter().filter(|d| d.outcome.is_err()).count() {
                 0 => Ok(()),
                 n => Err(Failure::Runtime(anyhow::anyhow!(
@@ -437,6 +512,7 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                 Some(AlertsAction::Ack {
                     id,
                     note,
+                    by,
                     config: own,
                 }),
             config,
@@ -446,10 +522,8 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             if note.trim().is_empty() {
                 return Err(usage("--note must say what was done or decided"));
             }
+            let by = who(by.as_deref())?;
             let store = open_existing(&config).await?;
-            let by = std::env::var("USER")
-                .or_else(|_| std::env::var("USERNAME"))
-                .unwrap_or_else(|_| "unknown".into());
             let at = crate::time::now_rfc3339();
             if !store
                 .acknowledge(id, &by, &at, &note)
@@ -469,9 +543,9 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             let store = open_existing(&config).await?;
             let alerts = store.alerts(open).await.context("alerts")?;
             if json {
-                print_json(&report::alerts_json(&alerts));
+                print_json(&report::alerts_json(&alerts, &config.units));
             } else {
-                say_part!("{}", report::alerts_text(&alerts));
+                say_part!("{}", report::alerts_text(&alerts, &config.units));
             }
             Ok(())
         }
@@ -494,26 +568,36 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                 .await
                 .context("history")?;
             if json {
-                print_json(&report::history_json(&rows));
+                print_json(&report::history_json(&rows, &config.units));
             } else if csv {
                 say_part!("{}", report::history_csv(&rows));
             } else {
-                say_part!("{}", report::history_text(&rows));
+                let decisions = store
+                    .lot_decisions(&source, characteristic.as_deref())
+                    .await
+                    .context("history")?;
+                say_part!("{}", report::history_text(&rows, &decisions, &config.units));
             }
             Ok(())
         }
         Command::Replace {
             file,
             reason,
+            by,
             config,
         } => {
             let config = load(&config)?;
             if reason.trim().is_empty() {
                 return Err(usage("--reason must say why the values are replaced"));
             }
+            let by = who(by.as_deref())?;
             init_tracing(config.log.format, &config.log.level);
             let store = open_store(&config).await?;
-            replace(&store, &config, &file, &reason).await?;
+            let why = crate::store::Replacement {
+                reason: &reason,
+                by: &by,
+            };
+            replace(&store, &config, &file, &why).await?;
             store.close().await;
             Ok(())
         }
@@ -540,6 +624,38 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
         }
         Command::Adjust(args) => adjust(args),
         Command::Backup { file, config } => backup(&load(&config)?, &file).await,
+        Command::Completions { shell } => {
+            conventions::completions(shell);
+            Ok(())
+        }
+        Command::Man { out } => conventions::man(out.as_deref()),
+    }
+}
+
+/// `lotdrift check-config`: the resolved configuration, or every problem (exit 2).
+fn check_config(arg: &ConfigArg, json: bool) -> Result<(), Failure> {
+    match Config::load(&arg.config) {
+        Ok(c) if json => {
+            print_json(&serde_json::json!(report::CheckConfigJson::of(&c)));
+            Ok(())
+        }
+        Ok(c) => {
+            say!("{c:#?}");
+            Ok(())
+        }
+        Err(e) => {
+            if json {
+                let problems = match &e {
+                    ConfigError::Invalid { problems, .. } => problems.clone(),
+                    other => vec![crate::errors::chain(other)],
+                };
+                print_json(&serde_json::json!(report::CheckConfigJson::failed(
+                    &arg.config,
+                    problems
+                )));
+            }
+            Err(e.into())
+        }
     }
 }
 
@@ -586,6 +702,7 @@ async fn series_status(
             baseline_cpk: crate::engine::baseline_cpk(&d, &config.monitor, &characteristic)
                 .map(|c| [c.cpk, c.low, c.high]),
             detectable_shift: crate::engine::detectable_shift(&d, &config.monitor, &characteristic),
+            unit: config.unit(&characteristic).map(String::from),
             source,
             characteristic,
             baseline_lots: d.re.m,
@@ -663,7 +780,12 @@ async fn backup(config: &Config, file: &Path) -> Result<(), Failure> {
     Ok(())
 }
 
-async fn replace(store: &Store, config: &Config, file: &Path, reason: &str) -> Result<(), Failure> {
+async fn replace(
+    store: &Store,
+    config: &Config,
+    file: &Path,
+    why: &crate::store::Replacement<'_>,
+) -> Result<(), Failure> {
     let bytes = std::fs::read(file).with_context(|| format!("reading {}", file.display()))?;
     let name = file
         .file_name()
@@ -673,7 +795,7 @@ async fn replace(store: &Store, config: &Config, file: &Path, reason: &str) -> R
     let parsed = ingest::build_file_as(&name, &ingest::content_hash(&bytes), &bytes, profile)
         .map_err(|e| Failure::Runtime(anyhow::anyhow!("{e}")))?;
     let outcome = store
-        .ingest_batch(&[parsed], &crate::time::now_rfc3339(), Some(reason))
+        .ingest_batch(&[parsed], &crate::time::now_rfc3339(), Some(why))
         .await
         .context("replace")?;
     match &outcome[0] {
@@ -710,6 +832,7 @@ async fn baseline(action: BaselineAction) -> Result<(), Failure> {
             source,
             characteristic,
             config,
+            ..
         }
         | BaselineAction::Reset {
             source,
@@ -734,34 +857,14 @@ async fn baseline(action: BaselineAction) -> Result<(), Failure> {
             "no series {source:?} / {characteristic:?} is stored"
         )));
     };
-    let by = std::env::var("USER")
-        .or_else(|_| std::env::var("USERNAME"))
-        .unwrap_or_else(|_| "unknown".into());
+    let by = match &action {
+        BaselineAction::Reset { by, .. } | BaselineAction::Set { by, .. } => who(by.as_deref())?,
+        BaselineAction::Show { .. } => String::new(),
+    };
     let at = crate::time::now_rfc3339();
     match action {
-        BaselineAction::Show { .. } => {
-            match store.baseline_of(series).await.context("baseline")? {
-                Some((definition, note, frozen_at, lots)) => {
-                    say!("{source} / {characteristic}: {definition}, frozen {frozen_at}");
-                    say!("lots: {}", lots.join(", "));
-                    say!("design: {note}");
-                }
-                None => say!(
-                    "{source} / {characteristic}: no baseline yet (the next {} undecided lots \
-                     will form it)",
-                    config.monitor.baseline_lots
-                ),
-            }
-            let changes = store.baseline_changes(series).await.context("baseline")?;
-            if !changes.is_empty() {
-                say!("\nchanges:");
-                for (when, who, why, old, new) in changes {
-                    say!(
-                        "  {when} by {who}: {} -> {new} ({why})",
-                        old.unwrap_or_else(|| "none".into())
-                    );
-                }
-            }
+        BaselineAction::Show { json, .. } => {
+            baseline_show(&store, &config, series, (&source, &characteristic), json).await?;
         }
         BaselineAction::Reset { reason, .. } => {
             if reason.trim().is_empty() {
@@ -879,6 +982,53 @@ async fn baseline(action: BaselineAction) -> Result<(), Failure> {
     Ok(())
 }
 
+/// `baseline show`: the current baseline and every change, as text or JSON.
+async fn baseline_show(
+    store: &Store,
+    config: &Config,
+    series: i64,
+    (source, characteristic): (&str, &str),
+    json: bool,
+) -> Result<(), Failure> {
+    let baseline = store.baseline_of(series).await.context("baseline")?.map(
+        |(definition, design, frozen_at, lots)| report::BaselineNow {
+            definition,
+            frozen_at,
+            lots,
+            design,
+        },
+    );
+    let changes = store
+        .baseline_changes(series)
+        .await
+        .context("baseline")?
+        .into_iter()
+        .map(|(at, by, reason, from, to)| report::BaselineChange {
+            at,
+            by,
+            reason,
+            from,
+            to,
+        })
+        .collect();
+    let shown = report::BaselineShow {
+        source: source.to_string(),
+        characteristic: characteristic.to_string(),
+        unit: config.unit(characteristic).map(String::from),
+        baseline,
+        changes,
+    };
+    if json {
+        print_json(&serde_json::json!(shown));
+    } else {
+        say_part!(
+            "{}",
+            report::baseline_text(&shown, config.monitor.baseline_lots)
+        );
+    }
+    Ok(())
+}
+
 /// Reads numbers separated by newlines, commas, semicolons, tabs or spaces.
 fn read_numbers(path: Option<&Path>, what: &str) -> Result<Vec<f64>, Failure> {
     let text = match path {
@@ -953,12 +1103,10 @@ async fn source_lot_means(args: &CompareArgs) -> Result<(Vec<f64>, Vec<f64>), Fa
 }
 
 fn compare(args: CompareArgs, a: Vec<f64>, b: Vec<f64>) -> Result<(), Failure> {
-    let test: stats::compare::TestKind = args
-        .test
+    let test: stats::compare::TestKind = name_of(args.test)
         .parse()
         .map_err(|e| usage(format!("--test: {e}")))?;
-    let alternative: stats::Alternative = args
-        .alternative
+    let alternative: stats::Alternative = name_of(args.alternative)
         .parse()
         .map_err(|e| usage(format!("--alternative: {e}")))?;
     if !(args.alpha > 0.0 && args.alpha < 1.0) {
@@ -981,8 +1129,8 @@ fn compare(args: CompareArgs, a: Vec<f64>, b: Vec<f64>) -> Result<(), Failure> {
 }
 
 fn adjust(args: AdjustArgs) -> Result<(), Failure> {
-    let method: stats::multiplicity::Method = args
-        .method
+    let method_name = name_of(args.method);
+    let method: stats::multiplicity::Method = method_name
         .parse()
         .map_err(|e| usage(format!("--method: {e}")))?;
     if !(args.level > 0.0 && args.level < 1.0) {
@@ -996,11 +1144,11 @@ fn adjust(args: AdjustArgs) -> Result<(), Failure> {
         stats::multiplicity::adjust(&p, method).map_err(|e| usage(format!("p-values: {e}")))?;
     let reject = stats::multiplicity::reject(&adjusted, args.level);
     if args.json {
-        print_json(&serde_json::json!({
-            "method": args.method,
-            "level": args.level,
-            "adjusted": adjusted,
-            "reject": reject,
+        print_json(&serde_json::json!(report::AdjustJson {
+            method: &method_name,
+            level: args.level,
+            adjusted: &adjusted,
+            reject: &reject,
         }));
     } else {
         let rows: Vec<Vec<String>> = p

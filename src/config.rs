@@ -113,6 +113,7 @@ pub struct RawCharacteristic {
     pub outliers: Option<bool>,
     pub lsl: Option<f64>,
     pub usl: Option<f64>,
+    pub unit: Option<String>,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -170,6 +171,15 @@ pub struct Config {
     pub health: Health,
     pub log: Log,
     pub input: Input,
+    /// Unit of measure per characteristic (`characteristic.NAME.unit`), for display only.
+    pub units: BTreeMap<String, String>,
+}
+
+impl Config {
+    /// The unit of measure configured for a characteristic, if any.
+    pub fn unit(&self, characteristic: &str) -> Option<&str> {
+        self.units.get(characteristic).map(String::as_str)
+    }
 }
 
 /// When the daemon says it is stuck (`crate::health`).
@@ -696,8 +706,12 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
     let spread_default = raw.monitor.spread.unwrap_or(true);
     let outliers_default = raw.monitor.outliers.unwrap_or(true);
     let mut per_characteristic = std::collections::BTreeMap::new();
+    let mut units = BTreeMap::new();
     for (name, c) in raw.characteristic {
         let key = |k: &str| format!("characteristic.{name}.{k}");
+        if let Some(unit) = validate_unit(&mut p, &key("unit"), c.unit.as_deref()) {
+            units.insert(name.clone(), unit);
+        }
         let direction = match c.direction.as_deref() {
             None | Some("two-sided") => Direction::TwoSided,
             Some("higher-is-better") => Direction::HigherIsBetter,
@@ -891,7 +905,32 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
         health,
         log,
         input,
+        units,
     })
+}
+
+/// Longest unit of measure accepted (`mAh`, `mOhm`, `N/mm²`; a column, not a sentence).
+const MAX_UNIT_CHARS: usize = 16;
+
+/// `characteristic.NAME.unit`: a short label without control characters, trimmed.
+fn validate_unit(p: &mut Problems, key: &str, unit: Option<&str>) -> Option<String> {
+    let unit = unit?.trim();
+    if unit.is_empty() {
+        p.push(key, "must not be empty (leave the key out for no unit)");
+    } else if unit.chars().count() > MAX_UNIT_CHARS {
+        p.push(
+            key,
+            format!("at most {MAX_UNIT_CHARS} characters (got {unit:?})"),
+        );
+    } else if unit.chars().any(char::is_control) {
+        p.push(
+            key,
+            format!("must not contain control characters (got {unit:?})"),
+        );
+    } else {
+        return Some(unit.to_string());
+    }
+    None
 }
 
 /// Longest `health.notice_after_minutes` accepted: a week.
@@ -1144,6 +1183,7 @@ silence = true           # notice (once) a source that sent no lot for longer th
 # outliers = true                  # false: single extreme units are themselves the concern
 # lsl = 2900.0                     # specification limits: Cpk of baseline and lot is reported
 # usl = 3100.0
+# unit = "mAh"                     # unit of measure, shown in every table and JSON (`unit`)
 
 [alerts]
 channels = ["log"]       # "log", "email", or both

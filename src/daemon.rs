@@ -86,6 +86,7 @@ pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, Daem
         config.watch.settle + ONCE_SETTLE_MARGIN,
     )
     .await;
+    tracing::info!(files = files.len(), "inbox scanned");
     let cancel = CancellationToken::new();
     let mut unrecorded = Unrecorded::default();
     let ingest = match ingest_noting_health(store, config, files, &cancel, &mut unrecorded).await {

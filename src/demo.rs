@@ -35,6 +35,10 @@ pub async fn run(dir: &Path) -> Result<(), Failure> {
     let store = Store::open(&config.paths.database)
         .await
         .context("opening the demo database")?;
+    store
+        .set_units(&config.units)
+        .await
+        .context("demo units of measure")?;
     let r = daemon::run_once(&store, &config)
         .await
         .context("demo run")?;
@@ -79,7 +83,7 @@ pub async fn run(dir: &Path) -> Result<(), Failure> {
     );
     let alerts = store.alerts(false).await.context("demo alerts")?;
     say!("Alerts ({} opened):", alerts.len());
-    say_part!("{}", indent(&report::alerts_text(&alerts)));
+    say_part!("{}", indent(&report::alerts_text(&alerts, &config.units)));
     say!();
     let db = abs(&config.paths.database);
     let cfg = abs(&config_path);
@@ -92,7 +96,8 @@ pub async fn run(dir: &Path) -> Result<(), Failure> {
     );
     say!("  lotdrift status --json --config {}", cfg.display());
     say!(
-        "  sqlite3 {} \"SELECT * FROM evaluation WHERE significant = 1\"",
+        "  sqlite3 {} \"SELECT source, characteristic, lot, kind, test, p_adjusted \
+         FROM decision_view WHERE significant = 1\"",
         db.display()
     );
     store.close().await;

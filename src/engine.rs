@@ -1192,20 +1192,21 @@ pub fn detectable_shift(design: &Design, monitor: &Monitor, characteristic: &str
 
 /// Human-readable summary of a design, stored with the baseline.
 pub fn design_note(d: &Design, monitor: &Monitor) -> String {
+    use crate::numbers::{p_value, two_digits};
     let model = if d.re.var_between > 0.0 {
         "lot means (between-lot variance material)"
     } else {
         "units (no between-lot variance component)"
     };
     let mut s = format!(
-        "{model}; between-lot sd {:.4e}, within-lot sd {:.4e} (F = {:.3}, p = {:.3e}); \
-         per-lot level {:.2e} (mean) / {:.2e} (spread) for one false alert per {} lots",
-        d.re.var_between.sqrt(),
-        d.re.var_within.sqrt(),
+        "{model}; between-lot sd {}, within-lot sd {} (F = {:.3}, p = {}); \
+         per-lot level {} (mean) / {} (spread) for one false alert per {} lots",
+        two_digits(Some(d.re.var_between.sqrt())),
+        two_digits(Some(d.re.var_within.sqrt())),
         d.re.f_statistic,
-        d.re.p_value,
-        d.level_mean,
-        d.level_spread,
+        p_value(Some(d.re.p_value)),
+        p_value(Some(d.level_mean)),
+        p_value(Some(d.level_spread)),
         monitor.false_alert_lots
     );
     match d.cusum {
@@ -1220,16 +1221,19 @@ pub fn design_note(d: &Design, monitor: &Monitor) -> String {
         None => {}
     }
     if let Some(p) = d.normality_p {
-        s.push_str(&format!("; Shapiro–Wilk p of residuals {p:.3e}"));
+        s.push_str(&format!(
+            "; Shapiro–Wilk p of residuals {}",
+            p_value(Some(p))
+        ));
     }
     if d.log_scale {
         s.push_str("; tested on the log scale (positive, right-skewed units)");
     }
     if let Some(f) = d.outliers {
         s.push_str(&format!(
-            "; outlier fence {:.2} robust sd (robust sd {:.4e}{})",
+            "; outlier fence {:.2} robust sd (robust sd {}{})",
             f.fence,
-            f.scale,
+            two_digits(Some(f.scale)),
             if f.heavy_tailed { ", heavy tails" } else { "" }
         ));
     }

@@ -25,7 +25,7 @@ use crate::config::{Input, Paths, Profile};
 use crate::intake;
 use crate::lotfile::{Layout, LotFile, Serials};
 use crate::stats::Summary;
-use crate::store::{FileOutcome, NewFile, NewSample, Store, StoreError};
+use crate::store::{FileOutcome, NewFile, NewSample, Replacement, Store, StoreError};
 use crate::time::now_rfc3339;
 
 /// Files per store transaction, and values per transaction, whichever is reached first.
@@ -125,7 +125,7 @@ pub async fn ingest_files(
     paths: &Paths,
     input: &Input,
     files: Vec<PathBuf>,
-    replace: Option<&str>,
+    replace: Option<&Replacement<'_>>,
     cancel: &CancellationToken,
 ) -> Result<IngestReport, IngestError> {
     let mut seen = HashSet::new();
@@ -186,11 +186,12 @@ async fn write_batch(
     store: &Store,
     paths: &Paths,
     batch: Vec<Prepared>,
-    replace: Option<&str>,
+    replace: Option<&Replacement<'_>>,
     report: &mut IngestReport,
 ) -> Result<(), IngestError> {
     let mut good_paths = Vec::new();
     let mut good = Vec::new();
+    let taken = batch.len();
     for p in batch {
         match p {
             Prepared::Good(path, f) => {
@@ -208,8 +209,14 @@ async fn write_batch(
         }
     }
     if good.is_empty() {
+        tracing::info!(files = 0, taken, values = 0, "batch stored");
         return Ok(());
     }
+    let values: usize = good
+        .iter()
+        .flat_map(|f| &f.samples)
+        .map(|s| s.values.len())
+        .sum();
     let received_at = now_rfc3339();
     let outcomes = store.ingest_batch(&good, &received_at, replace).await?;
     // Fault injection for the crash tests: die between commit and move, the window that
@@ -264,7 +271,9 @@ async fn write_batch(
         };
         report.files.push((path, result));
     }
-    tracing::info!(files = good.len(), "batch stored");
+    // `taken` (files of the batch, refused ones included) and `values` feed the progress line
+    // of `run --once` on a terminal (cli::progress).
+    tracing::info!(files = good.len(), taken, values, "batch stored");
     Ok(())
 }
 

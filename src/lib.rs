@@ -13,7 +13,8 @@
 //! - [`stats`]: pure mathematics (summaries, two-sample tests, multiplicity); no I/O.
 //! - [`engine`]: the monitoring policy: baselines, tests, families, alert decisions.
 //! - [`alert`]: outbox delivery through the channels (log, SMTP email).
-//! - [`report`]: stored state formatted for people and scripts.
+//! - [`report`]: stored state formatted for people and scripts; [`numbers`]: numbers as
+//!   people write them (rounded to their scale, p-values as `0.0012` or `< 1e-9`).
 //! - [`silence`]: the watch for sources that sent no lot for longer than they usually do.
 //! - [`health`]: the daemon says when ingest or delivery is stuck, and when it recovers.
 //! - [`config`]: TOML into a typed, validated configuration.
@@ -58,6 +59,7 @@ pub mod health;
 pub mod ingest;
 pub mod intake;
 pub mod lotfile;
+pub mod numbers;
 pub mod report;
 pub mod silence;
 pub mod stats;

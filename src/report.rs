@@ -7,53 +7,113 @@ use serde_json::{Value, json};
 
 use crate::health::{ComponentStatus, HealthStatus};
 use crate::stats::compare::{Comparison, Df};
-use crate::store::{AlertRow, HistoryRow, SilentSource, StatusCounts, UndeliveredRow};
+use crate::store::{AlertRow, HistoryRow, LotDecision, SilentSource, StatusCounts, UndeliveredRow};
 
-/// A plain text table with a header row, columns padded to their widest cell.
+pub use crate::numbers::{decimals_for, fixed, p_value, signed, two_digits};
+
+/// Columns a table may use when the terminal's width is unknown (output to a file or a pipe,
+/// `COLUMNS` unset).
+pub const DEFAULT_WIDTH: u16 = 100;
+
+/// The width tables must fit: `COLUMNS` when set, else the terminal's width when standard
+/// output is a terminal, else [`DEFAULT_WIDTH`].
+pub fn width() -> u16 {
+    static WIDTH: std::sync::OnceLock<u16> = std::sync::OnceLock::new();
+    *WIDTH.get_or_init(|| {
+        std::env::var("COLUMNS")
+            .ok()
+            .and_then(|c| c.trim().parse::<u16>().ok())
+            .filter(|w| *w >= 40)
+            .or_else(terminal_width)
+            .unwrap_or(DEFAULT_WIDTH)
+    })
+}
+
+/// The width of the terminal on standard output, if it is one.
+fn terminal_width() -> Option<u16> {
+    if !std::io::IsTerminal::is_terminal(&std::io::stdout()) {
+        return None;
+    }
+    let mut size = libc::winsize {
+        ws_row: 0,
+        ws_col: 0,
+        ws_xpixel: 0,
+        ws_ypixel: 0,
+    };
+    // SAFETY: TIOCGWINSZ writes one `winsize` into the struct we own; fd 1 is open.
+    let ok = unsafe { libc::ioctl(1, libc::TIOCGWINSZ, &mut size) } == 0;
+    (ok && size.ws_col >= 40).then_some(size.ws_col)
+}
+
+/// A text table with a header row that fits [`width`]: the last column wraps, the others
+/// keep their content's width.
 pub fn table(header: &[&str], rows: &[Vec<String>]) -> String {
-    let mut widths: Vec<usize> = header.iter().map(|h| h.chars().count()).collect();
+    let last = header.len().saturating_sub(1);
+    table_in(width(), header, rows, &[last])
+}
+
+/// A text table that fits `width` columns where it can: the columns `wrap` break their cells
+/// into lines (at spaces where possible); every other column keeps its content's width. A
+/// cell may hold several lines.
+pub fn table_in(width: u16, header: &[&str], rows: &[Vec<String>], wrap: &[usize]) -> String {
+    use comfy_table::{ColumnConstraint, ContentArrangement, LineStyle, Table, TableStyle};
+    let style = TableStyle::new().header_separator(LineStyle::none().fill('-').junction(' '));
+    let mut t = Table::new();
+    t.load_style(style)
+        .set_content_arrangement(ContentArrangement::Dynamic)
+        .set_width(width);
+    if header.iter().any(|h| !h.is_empty()) {
+        t.set_header(header.to_vec());
+    }
     for r in rows {
-        for (i, c) in r.iter().enumerate() {
-            if i < widths.len() {
-                widths[i] = widths[i].max(c.chars().count());
-            }
+        t.add_row(r.clone());
+    }
+    let columns = t.column_count();
+    for (i, c) in t.column_iter_mut().enumerate() {
+        c.set_padding((0, if i + 1 < columns { 1 } else { 0 }));
+        if !wrap.contains(&i) {
+            c.set_constraint(ColumnConstraint::ContentWidth);
         }
     }
-    let line = |cells: Vec<&str>| -> String {
-        let mut s = String::new();
-        for (i, c) in cells.iter().enumerate() {
-            if i > 0 {
-                s.push_str("  ");
-            }
-            s.push_str(c);
-            if i + 1 < cells.len() {
-                s.push_str(&" ".repeat(widths[i].saturating_sub(c.chars().count())));
-            }
-        }
-        s.trim_end().to_string() + "\n"
-    };
-    let mut out = line(header.to_vec());
-    out.push_str(&line(
-        widths
-            .iter()
-            .map(|w| "-".repeat(*w))
-            .collect::<Vec<_>>()
-            .iter()
-            .map(String::as_str)
-            .collect(),
-    ));
-    for r in rows {
-        out.push_str(&line(r.iter().map(String::as_str).collect()));
+    let mut out = String::new();
+    for line in t.lines() {
+        out.push_str(line.trim_end());
+        out.push('\n');
     }
     out
 }
 
-fn num(v: Option<f64>, digits: usize) -> String {
-    v.map_or_else(|| "-".into(), |v| format!("{v:.digits$}"))
+/// `text` broken into lines of at most `width` characters at spaces, each line after the
+/// first indented by `indent`.
+pub fn wrap(text: &str, width: usize, indent: &str) -> String {
+    let mut out = String::new();
+    // The text's own leading spaces stay: they indent its first line.
+    let lead = &text[..text.len() - text.trim_start_matches(' ').len()];
+    let mut line = lead.to_string();
+    let mut fresh = true;
+    for word in text.split(' ').filter(|w| !w.is_empty()) {
+        let len = line.chars().count();
+        if !fresh && len + 1 + word.chars().count() > width {
+            out.push_str(&line);
+            out.push('\n');
+            line = indent.to_string();
+        } else if !fresh {
+            line.push(' ');
+        }
+        line.push_str(word);
+        fresh = false;
+    }
+    out.push_str(&line);
+    out.push('\n');
+    out
 }
 
-fn p(v: Option<f64>) -> String {
-    v.map_or_else(|| "-".into(), |v| format!("{v:.2e}"))
+/// A name with its unit of measure, `capacity_mah (mAh)`.
+pub fn with_unit(name: &str, unit: Option<&str>) -> String {
+    match unit {
+        Some(u) => format!("{name} ({u})"),
+        None => name.to_string(),
+    }
 }
 
 /// One monitored series in `status`: its design in numbers.
@@ -77,6 +137,9 @@ pub struct SeriesStatus {
     pub test: &'static str,
     /// Cpk of the baseline [value, low, high] when specification limits are configured.
     pub baseline_cpk: Option<[f64; 3]>,
+    /// The characteristic's unit of measure (`characteristic.NAME.unit`), when configured.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub unit: Option<String>,
 }
 
 pub fn series_text(series: &[SeriesStatus]) -> String {
@@ -86,24 +149,28 @@ pub fn series_text(series: &[SeriesStatus]) -> String {
     let rows: Vec<Vec<String>> = series
         .iter()
         .map(|s| {
+            let d = decimals_for(s.within_lot_sd.max(s.between_lot_sd));
             vec![
-                s.source.clone(),
-                s.characteristic.clone(),
+                format!(
+                    "{}\n{}",
+                    s.source,
+                    with_unit(&s.characteristic, s.unit.as_deref())
+                ),
                 s.baseline_lots.to_string(),
-                format!("{:.4}", s.baseline_mean),
-                format!("{:.3e}", s.between_lot_sd),
-                format!("{:.3e}", s.within_lot_sd),
+                fixed(Some(s.baseline_mean), d),
+                two_digits(Some(s.between_lot_sd)),
+                two_digits(Some(s.within_lot_sd)),
                 s.model.to_string(),
-                num(s.detectable_shift, 4),
+                fixed(s.detectable_shift, d),
             ]
         })
         .collect();
     format!(
         "\nSeries with a baseline (detectable: shift of one lot's mean found with 90 % power):\n{}",
-        table(
+        table_in(
+            width(),
             &[
-                "source",
-                "characteristic",
+                "series",
                 "lots",
                 "baseline mean",
                 "between-lot sd",
@@ -111,7 +178,8 @@ pub fn series_text(series: &[SeriesStatus]) -> String {
                 "model",
                 "detectable",
             ],
-            &rows
+            &rows,
+            &[0]
         )
     )
 }
@@ -197,7 +265,8 @@ pub fn health_text(h: &HealthStatus) -> String {
     format!(
         "\nHealth (a notice after {} min of failing):\n{}",
         h.notice_after_minutes,
-        table(
+        table_in(
+            width(),
             &[
                 "",
                 "state",
@@ -206,7 +275,8 @@ pub fn health_text(h: &HealthStatus) -> String {
                 "latest success",
                 "latest error"
             ],
-            &rows
+            &rows,
+            &[4, 5]
         )
     )
 }
@@ -245,7 +315,7 @@ pub fn status_text(s: &StatusCounts, undelivered: &[UndeliveredRow], db: &str) -
         vec!["lots".into(), s.lots.to_string()],
         vec!["measurements".into(), s.measurements.to_string()],
         vec!["files quarantined".into(), s.quarantined.to_string()],
-        vec!["lots tested".into(), s.evaluations.to_string()],
+        vec!["tests (mean and spread)".into(), s.evaluations.to_string()],
         vec!["open alerts".into(), s.open_alerts.to_string()],
         vec!["alerts in all".into(), s.alerts.to_string()],
         vec!["outlier units".into(), s.outliers.to_string()],
@@ -257,11 +327,7 @@ pub fn status_text(s: &StatusCounts, undelivered: &[UndeliveredRow], db: &str) -
             s.last_digest.clone().unwrap_or_else(|| "-".into()),
         ],
     ];
-    let mut out = table(&["", ""], &rows)
-        .lines()
-        .skip(2)
-        .map(|l| format!("{l}\n"))
-        .collect::<String>();
+    let mut out = table_in(width(), &["", ""], &rows, &[1]);
     if !undelivered.is_empty() {
         out.push_str("\nUndelivered messages:\n");
         let rows: Vec<Vec<String>> = undelivered
@@ -294,54 +360,130 @@ pub fn status_text(s: &StatusCounts, undelivered: &[UndeliveredRow], db: &str) -
     out
 }
 
-pub fn alerts_json(alerts: &[AlertRow]) -> Value {
-    Value::Array(alerts.iter().map(|a| json!(a)).collect())
+/// One alert in `alerts --json`: the stored row and the characteristic's unit of measure.
+#[derive(serde::Serialize)]
+struct AlertJson<'a> {
+    #[serde(flatten)]
+    row: &'a AlertRow,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    unit: Option<&'a str>,
 }
 
-pub fn alerts_text(alerts: &[AlertRow]) -> String {
+/// `alerts --json`: an array of alerts; `unit` where the characteristic has one configured.
+pub fn alerts_json(alerts: &[AlertRow], units: &Units) -> Value {
+    json!(
+        alerts
+            .iter()
+            .map(|a| AlertJson {
+                row: a,
+                unit: units.get(&a.characteristic).map(String::as_str),
+            })
+            .collect::<Vec<_>>()
+    )
+}
+
+/// Units of measure by characteristic (`Config::units`).
+pub type Units = std::collections::BTreeMap<String, String>;
+
+/// "CUSUM" for an alert or decision the CUSUM made, "lot test" for the single-lot tests.
+fn test_label(test: &str) -> &'static str {
+    if test == "cusum" { "CUSUM" } else { "lot test" }
+}
+
+/// The CUSUM sum that signalled (the larger side) against its interval: `CUSUM 6.1 > h 5.2`.
+fn cusum_text(upper: Option<f64>, lower: Option<f64>, h: Option<f64>) -> String {
+    let value = upper.unwrap_or(0.0).max(lower.unwrap_or(0.0));
+    let rel = if h.is_some_and(|h| value > h) {
+        ">"
+    } else {
+        "≤"
+    };
+    format!("CUSUM {value:.1}\n{rel} h {}", fixed(h, 1))
+}
+
+/// What made an alert: the lot test's p-value against its level, or the CUSUM.
+fn alert_evidence(a: &AlertRow) -> String {
+    if a.test == "cusum" {
+        cusum_text(a.cusum_upper, a.cusum_lower, a.cusum_h)
+    } else {
+        let p = a.p_adjusted.or(a.p_value);
+        format!("p {}\n≤ {}", p_value(p), p_value(Some(a.level)))
+    }
+}
+
+/// The shift an alert reports, in the characteristic's unit (mean) or as a ratio (spread).
+fn alert_shift(a: &AlertRow, unit: Option<&str>) -> String {
+    if a.kind == "spread" {
+        return a
+            .estimate
+            .map_or("-".into(), |e| format!("×{}", two_digits(Some(e))));
+    }
+    let d = decimals_for(a.baseline_sd.or(a.lot_sd).unwrap_or(f64::NAN));
+    let shift = signed(a.estimate, d);
+    match unit {
+        Some(u) if a.estimate.is_some() => format!("{shift} {u}"),
+        _ => shift,
+    }
+}
+
+pub fn alerts_text(alerts: &[AlertRow], units: &Units) -> String {
     if alerts.is_empty() {
         return "no alerts\n".into();
     }
     let rows: Vec<Vec<String>> = alerts
         .iter()
         .map(|a| {
+            let unit = units.get(&a.characteristic).map(String::as_str);
             vec![
                 a.id.to_string(),
-                a.state.clone(),
-                a.source.clone(),
-                a.characteristic.clone(),
-                a.lot.clone(),
-                a.opened_at[..16].replace('T', " "),
-                num(Some(a.baseline_mean), 4),
-                num(Some(a.lot_mean), 4),
-                num(a.estimate, 4),
-                p(a.p_value),
-                p(a.p_adjusted),
+                format!("{}\n{}", a.state, date(Some(&a.opened_at))),
+                format!("{}\n{}", a.source, a.characteristic),
+                format!("{}\n{}", a.kind, test_label(&a.test)),
+                format!("{}\n{}", a.lot, date(a.lot_sampled_at.as_deref())),
+                alert_shift(a, unit),
+                alert_evidence(a),
                 a.lots.to_string(),
+                a.acknowledged
+                    .as_ref()
+                    .map_or_else(|| "-".into(), |k| k.by.clone()),
             ]
         })
         .collect();
-    table(
+    table_in(
+        width(),
         &[
-            "id",
-            "state",
-            "source",
-            "characteristic",
-            "lot",
-            "opened (UTC)",
-            "baseline mean",
-            "lot mean",
-            "difference",
-            "p",
-            "p adjusted",
-            "lots",
+            "id", "state", "series", "alert", "lot", "shift", "evidence", "lots", "ack by",
         ],
         &rows,
+        &[2, 8],
     )
 }
 
-pub fn history_json(rows: &[HistoryRow]) -> Value {
-    Value::Array(rows.iter().map(|r| json!(r)).collect())
+/// The date of an RFC 3339 time (`-` when absent).
+fn date(t: Option<&str>) -> String {
+    t.map_or_else(|| "-".into(), |t| t.chars().take(10).collect())
+}
+
+/// One lot in `history --json`: the stored row and the characteristic's unit of measure.
+#[derive(serde::Serialize)]
+struct HistoryJson<'a> {
+    #[serde(flatten)]
+    row: &'a HistoryRow,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    unit: Option<&'a str>,
+}
+
+/// `history --json`: one object per lot; `unit` where the characteristic has one configured
+/// (without units the output is byte for byte what it was).
+pub fn history_json(rows: &[HistoryRow], units: &Units) -> Value {
+    json!(
+        rows.iter()
+            .map(|r| HistoryJson {
+                row: r,
+                unit: units.get(&r.characteristic).map(String::as_str),
+            })
+            .collect::<Vec<_>>()
+    )
 }
 
 const HISTORY_HEADER: [&str; 15] = [
@@ -387,65 +529,326 @@ pub fn history_csv(rows: &[HistoryRow]) -> String {
     String::from_utf8(w.into_inner().unwrap_or_default()).unwrap_or_default()
 }
 
-pub fn history_text(rows: &[HistoryRow]) -> String {
+/// `history` as tables, one per characteristic, with every decision of each lot (the mean
+/// test and CUSUM, the spread test) beside its summary.
+pub fn history_text(rows: &[HistoryRow], decisions: &[LotDecision], units: &Units) -> String {
+    let mut by_lot: std::collections::HashMap<(&str, &str), Vec<&LotDecision>> =
+        std::collections::HashMap::new();
+    for d in decisions {
+        by_lot
+            .entry((d.characteristic.as_str(), d.lot.as_str()))
+            .or_default()
+            .push(d);
+    }
+    let mut out = String::new();
+    let mut start = 0;
+    while start < rows.len() {
+        let ch = &rows[start].characteristic;
+        let end = start
+            + rows[start..]
+                .iter()
+                .take_while(|r| &r.characteristic == ch)
+                .count();
+        let series = &rows[start..end];
+        let unit = units.get(ch).map(String::as_str);
+        if !out.is_empty() {
+            out.push('\n');
+        }
+        out.push_str(&format!("{} / {}\n", series[0].source, with_unit(ch, unit)));
+        out.push_str(&history_table(series, &by_lot));
+        start = end;
+    }
+    out
+}
+
+/// One series' lots as a table.
+fn history_table(
+    rows: &[HistoryRow],
+    by_lot: &std::collections::HashMap<(&str, &str), Vec<&LotDecision>>,
+) -> String {
+    let scale = median_sd(rows);
+    let d = decimals_for(scale);
     let body: Vec<Vec<String>> = rows
         .iter()
         .map(|r| {
+            let found = by_lot
+                .get(&(r.characteristic.as_str(), r.lot.as_str()))
+                .map(Vec::as_slice)
+                .unwrap_or_default();
+            let notes = [r.events.as_str(), r.outliers.as_str()]
+                .iter()
+                .filter(|t| !t.is_empty())
+                .copied()
+                .collect::<Vec<_>>()
+                .join("; ");
             vec![
-                r.source.clone(),
-                r.characteristic.clone(),
-                r.lot.clone(),
-                r.sampled_at
-                    .as_deref()
-                    .map(|s| s[..10].to_string())
-                    .unwrap_or_else(|| "-".into()),
+                format!("{}\n{}", r.lot, date(r.sampled_at.as_deref())),
                 r.n.to_string(),
-                num(Some(r.mean), 4),
-                num(r.sd, 4),
-                num(Some(r.min), 4),
-                num(Some(r.max), 4),
+                fixed(Some(r.mean), d),
+                fixed(r.sd, d),
+                format!("{} – {}", fixed(Some(r.min), d), fixed(Some(r.max), d)),
                 r.role.clone(),
-                p(r.p_value),
-                p(r.p_adjusted),
-                r.alert_id.map(|v| v.to_string()).unwrap_or_else(|| {
-                    if r.significant == Some(true) {
-                        "yes".into()
-                    } else {
-                        String::new()
-                    }
-                }),
-                r.events.clone(),
-                r.outliers.clone(),
+                decision_text(found, "mean"),
+                decision_text(found, "spread"),
+                notes,
             ]
         })
         .collect();
-    table(&HISTORY_HEADER, &body)
+    table_in(
+        width(),
+        &[
+            "lot",
+            "n",
+            "mean",
+            "sd",
+            "min – max",
+            "role",
+            "mean test",
+            "spread test",
+            "alerts, outliers",
+        ],
+        &body,
+        &[6, 7, 8],
+    )
+}
+
+/// The median sd of a series' lots, the scale its numbers are rounded to.
+fn median_sd(rows: &[HistoryRow]) -> f64 {
+    let mut sds: Vec<f64> = rows
+        .iter()
+        .filter_map(|r| r.sd)
+        .filter(|v| *v > 0.0)
+        .collect();
+    if sds.is_empty() {
+        return f64::NAN;
+    }
+    sds.sort_by(f64::total_cmp);
+    sds[sds.len() / 2]
+}
+
+/// A lot's decision of one kind: the adjusted p-value (and the CUSUM when it signalled),
+/// marked `signal` when significant.
+fn decision_text(found: &[&LotDecision], kind: &str) -> String {
+    let Some(d) = found.iter().find(|d| d.kind == kind) else {
+        return String::new();
+    };
+    let mut s = format!("p {}", p_value(d.p_adjusted.or(d.p_value)));
+    if d.cusum_signal {
+        s.push_str(&format!(
+            ", {}",
+            cusum_text(d.cusum_upper, d.cusum_lower, d.cusum_h)
+        ));
+    }
+    if d.significant {
+        s.push_str(" signal");
+    }
+    s
+}
+
+/// A series' baseline and its changes, for `baseline show`.
+#[derive(Debug, serde::Serialize)]
+pub struct BaselineShow {
+    pub source: String,
+    pub characteristic: String,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub unit: Option<String>,
+    /// The current baseline, or null while the next undecided lots are still to form it.
+    pub baseline: Option<BaselineNow>,
+    /// Every change made by people, oldest first.
+    pub changes: Vec<BaselineChange>,
+}
+
+#[derive(Debug, serde::Serialize)]
+pub struct BaselineNow {
+    pub definition: String,
+    pub frozen_at: String,
+    pub lots: Vec<String>,
+    pub design: String,
+}
+
+#[derive(Debug, serde::Serialize)]
+pub struct BaselineChange {
+    pub at: String,
+    pub by: String,
+    pub reason: String,
+    /// The definition replaced (null for the first baseline).
+    pub from: Option<String>,
+    pub to: String,
+}
+
+/// `baseline show` for people: wrapped to the terminal's width.
+pub fn baseline_text(b: &BaselineShow, baseline_lots: usize) -> String {
+    let w = usize::from(width());
+    let series = format!(
+        "{} / {}",
+        b.source,
+        with_unit(&b.characteristic, b.unit.as_deref())
+    );
+    let mut out = match &b.baseline {
+        Some(now) => {
+            let mut s = wrap(
+                &format!("{series}: {}, frozen {}", now.definition, now.frozen_at),
+                w,
+                "  ",
+            );
+            s.push_str(&wrap(&format!("lots: {}", now.lots.join(", ")), w, "  "));
+            s.push_str(&wrap(&format!("design: {}", now.design), w, "  "));
+            s
+        }
+        None => wrap(
+            &format!(
+                "{series}: no baseline yet (the next {baseline_lots} undecided lots will form it)"
+            ),
+            w,
+            "  ",
+        ),
+    };
+    if !b.changes.is_empty() {
+        out.push_str("\nchanges:\n");
+        for c in &b.changes {
+            let from = c.from.as_deref().unwrap_or("none");
+            out.push_str(&wrap(
+                &format!("  {} by {}: {from} -> {}", c.at, c.by, c.to),
+                w,
+                "    ",
+            ));
+            out.push_str(&wrap(&format!("    why: {}", c.reason), w, "      "));
+        }
+    }
+    out
+}
+
+/// `check-config --json`: whether the file is valid, its problems (each naming its key), and
+/// what a script most often needs of a valid one.
+#[derive(Debug, serde::Serialize)]
+pub struct CheckConfigJson {
+    pub ok: bool,
+    pub file: String,
+    pub problems: Vec<String>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub database: Option<String>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub inbox: Option<String>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub channels: Option<Vec<&'static str>>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub baseline_lots: Option<usize>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub units: Option<Units>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub profiles: Option<Vec<String>>,
+}
+
+impl CheckConfigJson {
+    pub fn of(c: &crate::config::Config) -> CheckConfigJson {
+        CheckConfigJson {
+            ok: true,
+            file: c.file.display().to_string(),
+            problems: Vec::new(),
+            database: Some(c.paths.database.display().to_string()),
+            inbox: Some(c.paths.inbox.display().to_string()),
+            channels: Some(c.alerts.channels.iter().map(|ch| ch.as_str()).collect()),
+            baseline_lots: Some(c.monitor.baseline_lots),
+            units: Some(c.units.clone()),
+            profiles: Some(c.input.profiles.iter().map(|p| p.name.clone()).collect()),
+        }
+    }
+
+    pub fn failed(file: &std::path::Path, problems: Vec<String>) -> CheckConfigJson {
+        CheckConfigJson {
+            ok: false,
+            file: file.display().to_string(),
+            problems,
+            database: None,
+            inbox: None,
+            channels: None,
+            baseline_lots: None,
+            units: None,
+            profiles: None,
+        }
+    }
+}
+
+/// One recipient in `alerts test-email --json`.
+#[derive(Debug, serde::Serialize)]
+struct TestEmailJson<'a> {
+    recipient: &'a str,
+    accepted: bool,
+    /// The server's reply on acceptance, the error (with the reply) on refusal.
+    reply: &'a str,
+}
+
+pub fn test_email_json(sent: &[crate::alert::TestDelivery]) -> Value {
+    json!(
+        sent.iter()
+            .map(|d| TestEmailJson {
+                recipient: &d.recipient,
+                accepted: d.outcome.is_ok(),
+                reply: match &d.outcome {
+                    Ok(r) | Err(r) => r,
+                },
+            })
+            .collect::<Vec<_>>()
+    )
+}
+
+/// `adjust --json`.
+#[derive(Debug, serde::Serialize)]
+pub struct AdjustJson<'a> {
+    pub method: &'a str,
+    pub level: f64,
+    pub adjusted: &'a [f64],
+    pub reject: &'a [bool],
 }
 
 fn finite_or_null(v: f64) -> Value {
     if v.is_finite() { json!(v) } else { Value::Null }
 }
 
+/// `compare --json` (keys of the scripting contract: test, statistic, df, p_value, estimate,
+/// ci).
+#[derive(Debug, serde::Serialize)]
+struct CompareJson<'a> {
+    test: &'a str,
+    alternative: &'a str,
+    statistic: f64,
+    /// A number, [df1, df2] for F and Brown–Forsythe, null for Mann–Whitney.
+    df: Value,
+    p_value: f64,
+    estimate: f64,
+    estimate_of: &'a str,
+    /// [low, high] (an infinite bound is null), or null where not defined.
+    ci: Option<[Value; 2]>,
+    conf_level: f64,
+    delta: f64,
+    alpha: f64,
+    reject: bool,
+    n_a: usize,
+    n_b: usize,
+}
+
 pub fn compare_json(c: &Comparison, alpha: f64) -> Value {
-    json!({
-        "test": c.test.as_str(),
-        "alternative": c.alternative.as_str(),
-        "statistic": c.statistic,
-        "df": match c.df {
+    json!(CompareJson {
+        test: c.test.as_str(),
+        alternative: c.alternative.as_str(),
+        statistic: c.statistic,
+        df: match c.df {
             Some(Df::One(d)) => json!(d),
             Some(Df::Two(a, b)) => json!([a, b]),
             None => Value::Null,
         },
-        "p_value": c.p_value,
-        "estimate": c.estimate,
-        "estimate_of": c.estimate_label,
-        "ci": c.ci.map(|(lo, hi)| json!([finite_or_null(lo), finite_or_null(hi)])),
-        "conf_level": c.conf_level,
-        "delta": c.delta,
-        "alpha": alpha,
-        "reject": c.p_value <= alpha,
-        "n_a": c.n_a,
-        "n_b": c.n_b,
+        p_value: c.p_value,
+        estimate: c.estimate,
+        estimate_of: c.estimate_label,
+        ci: c
+            .ci
+            .map(|(lo, hi)| [finite_or_null(lo), finite_or_null(hi)]),
+        conf_level: c.conf_level,
+        delta: c.delta,
+        alpha,
+        reject: c.p_value <= alpha,
+        n_a: c.n_a,
+        n_b: c.n_b,
     })
 }
 
@@ -507,8 +910,17 @@ mod tests {
     use super::*;
 
     #[test]
-    fn tables_pad_columns() {
-        let t = table(&["a", "bb"], &[vec!["xxx".into(), "y".into()]]);
-        assert_eq!(t, "a    bb\n---  --\nxxx  y\n");
+    fn wrapped_text_keeps_its_indent_and_width() {
+        let w = wrap("  one two three four", 10, "    ");
+        assert_eq!(w, "  one two\n    three\n    four\n");
+    }
+
+    #[test]
+    fn tables_pad_columns_and_fit_their_width() {
+        let t = table_in(100, &["a", "bb"], &[vec!["xxx".into(), "y".into()]], &[1]);
+        assert_eq!(t, "a    bb\n---- --\nxxx  y\n");
+        let long = vec!["x".into(), "word ".repeat(40)];
+        let t = table_in(40, &["x", "text"], &[long], &[1]);
+        assert!(t.lines().all(|l| l.chars().count() <= 40), "{t}");
     }
 }

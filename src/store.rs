@@ -22,6 +22,9 @@ use sqlx::sqlite::{
 use sqlx::{ConnectOptions, QueryBuilder, Row, Sqlite, Transaction};
 
 mod bulk;
+mod views;
+
+pub use views::LotDecision;
 
 use crate::lotfile::Timestamp;
 use crate::stats::Summary;
@@ -602,6 +605,11 @@ pub struct AlertRow {
     pub cpk: Option<[f64; 3]>,
     /// Latest acknowledgement: who, when, and the note.
     pub acknowledged: Option<AckRow>,
+    /// The opening decision's CUSUM sums (upper, lower) after its lot and the decision
+    /// interval h, in standardised units (None where the series has no CUSUM).
+    pub cusum_upper: Option<f64>,
+    pub cusum_lower: Option<f64>,
+    pub cusum_h: Option<f64>,
     /// Every state change, oldest first (filled by [`Store::alerts`]; empty elsewhere).
     pub events: Vec<EventRow>,
     /// Every acknowledgement, oldest first (filled by [`Store::alerts`]; empty elsewhere).
@@ -673,6 +681,13 @@ pub struct UndeliveredRow {
     /// What the message announces: "alert" (an alert event), "digest", "silence" or
     /// "health" (an operational notice).
     pub message: String,
+}
+
+/// Values replaced on purpose (`lotdrift replace`): why, and who did it.
+#[derive(Debug, Clone, Copy)]
+pub struct Replacement<'a> {
+    pub reason: &'a str,
+    pub by: &'a str,
 }
 
 /// One lot of a series, for `lotdrift history`.
@@ -826,10 +841,12 @@ impl Store {
             path: shown,
             source,
         })?;
-        Ok(Store {
+        let store = Store {
             pool,
             names: Mutex::new(NameCache::default()),
-        })
+        };
+        store.fill_missing_sd().await?;
+        Ok(store)
     }
 
     /// Writes a consistent copy of the database to `dest` (`VACUUM INTO`: one read
@@ -909,7 +926,7 @@ impl Store {
         &self,
         files: &[NewFile],
         received_at: &str,
-        replace: Option<&str>,
+        replace: Option<&Replacement<'_>>,
     ) -> Result<Vec<FileOutcome>> {
         let mut tx = self.begin().await?;
         let mut created = NameCache::default();
@@ -929,7 +946,7 @@ impl Store {
         tx: &mut Transaction<'static, Sqlite>,
         files: &[NewFile],
         received_at: &str,
-        replace: Option<&str>,
+        replace: Option<&Replacement<'_>>,
         created: &mut NameCache,
     ) -> Result<Vec<FileOutcome>> {
         // 1. Duplicates by content hash (stored before, or twice in this batch).
@@ -1231,7 +1248,7 @@ impl Store {
         for chunk in inserts.chunks(ROWS_PER_INSERT / 2) {
             let mut q = QueryBuilder::<Sqlite>::new(
                 "INSERT INTO sample (lot_id, series_id, file_id, n, mean, m2, min_value, \
-                 max_value, sampled_at, content_digest) ",
+                 max_value, sampled_at, content_digest, sd) ",
             );
             q.push_values(chunk, |mut b, p| {
                 let s = &p.sample.summary;
@@ -1244,7 +1261,8 @@ impl Store {
                     .push_bind(s.min())
                     .push_bind(s.max())
                     .push_bind(p.sample.earliest.as_deref())
-                    .push_bind(&p.sample.digest);
+                    .push_bind(&p.sample.digest)
+                    .push_bind(views::sd(s.n() as i64, s.m2()));
             });
             q.push(" RETURNING id, lot_id, series_id");
             let ids: HashMap<(i64, i64), i64> = q
@@ -1300,22 +1318,23 @@ impl Store {
         new: &NewSample,
         file_id: i64,
         at: &str,
-        reason: Option<&str>,
+        replace: Option<&Replacement<'_>>,
     ) -> Result<()> {
         let replacement_id: i64 = sqlx::query_scalar(
             "INSERT INTO sample_replacement (sample_id, replaced_at, reason, old_file_id, \
-             new_file_id, old_n, old_mean, old_m2, old_digest) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?) \
-             RETURNING id",
+             new_file_id, old_n, old_mean, old_m2, old_digest, replaced_by) \
+             VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?) RETURNING id",
         )
         .bind(old.id)
         .bind(at)
-        .bind(reason.unwrap_or(""))
+        .bind(replace.map_or("", |r| r.reason))
         .bind(old.file_id)
         .bind(file_id)
         .bind(old.n)
         .bind(old.mean)
         .bind(old.m2)
         .bind(&old.digest)
+        .bind(replace.map(|r| r.by))
         .fetch_one(&mut **tx)
         .await
         .doing("recording a replacement")?;
@@ -1344,7 +1363,7 @@ impl Store {
         let s = &new.summary;
         sqlx::query(
             "UPDATE sample SET file_id = ?, n = ?, mean = ?, m2 = ?, min_value = ?, \
-             max_value = ?, sampled_at = ?, content_digest = ? WHERE id = ?",
+             max_value = ?, sampled_at = ?, content_digest = ?, sd = ? WHERE id = ?",
         )
         .bind(file_id)
         .bind(s.n() as i64)
@@ -1354,6 +1373,7 @@ impl Store {
         .bind(s.max())
         .bind(new.earliest.as_deref())
         .bind(&new.digest)
+        .bind(views::sd(s.n() as i64, s.m2()))
         .bind(old.id)
         .execute(&mut **tx)
         .await
@@ -2903,7 +2923,8 @@ const ALERT_COLUMNS: &str = "a.id, src.name, ch.name, a.state, a.opened_at, a.re
      e.cpk_high, \
      (SELECT k.acked_by FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1), \
      (SELECT k.acked_at FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1), \
-     (SELECT k.note FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1)";
+     (SELECT k.note FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1), \
+     e.cusum_upper, e.cusum_lower, e.cusum_h";
 
 /// The joins behind [`ALERT_COLUMNS`] for alert `a`, with the numbers of evaluation `eval`
 /// (an SQL expression: the opening evaluation, or an event's own).
@@ -2968,6 +2989,9 @@ fn alert_from_row(r: &SqliteRow, o: usize) -> AlertRow {
             (Some(by), Some(at), Some(note)) => Some(AckRow { by, at, note }),
             _ => None,
         },
+        cusum_upper: r.get(o + 36),
+        cusum_lower: r.get(o + 37),
+        cusum_h: r.get(o + 38),
         events: Vec::new(),
         acknowledgements: Vec::new(),
     }
@@ -3437,6 +3461,43 @@ mod tests {
             .await
             .unwrap();
         assert_eq!(count(&pool, "SELECT COUNT(*) FROM pending_sample").await, 2);
+    }
+
+    /// Samples stored before migration 0008 get their sd when the database is next opened,
+    /// and the views read them.
+    #[tokio::test]
+    async fn the_views_migration_fills_in_older_samples_sd() {
+        let dir = tempfile::tempdir().unwrap();
+        let pool = database_before(dir.path(), "0008").await;
+        sqlx::raw_sql(
+            "INSERT INTO source VALUES (1, 'alder-cells'); \
+             INSERT INTO characteristic VALUES (1, 'mass_g'); \
+             INSERT INTO series VALUES (5, 1, 1); \
+             INSERT INTO ingested_file VALUES (1, 'h', 'f.csv', 't', 'long', 4); \
+             INSERT INTO lot VALUES (1, 1, 'L1', NULL, 't'), (2, 1, 'L2', NULL, 't'); \
+             INSERT INTO sample (id, lot_id, series_id, file_id, n, mean, m2, min_value, \
+                 max_value, content_digest) VALUES (1, 1, 5, 1, 3, 2, 8, 0, 4, 'a'), \
+                 (2, 2, 5, 1, 1, 1, 0, 1, 1, 'b');",
+        )
+        .execute(&pool)
+        .await
+        .unwrap();
+        pool.close().await;
+        let store = Store::open(&dir.path().join("old.db")).await.unwrap();
+        let sds: Vec<Option<f64>> = sqlx::query_scalar("SELECT sd FROM lot_view ORDER BY lot")
+            .fetch_all(&store.pool)
+            .await
+            .unwrap();
+        assert_eq!(sds, [Some(2.0), None]);
+        let mut units = std::collections::BTreeMap::new();
+        units.insert("mass_g".to_string(), "g".to_string());
+        store.set_units(&units).await.unwrap();
+        let unit: Option<String> =
+            sqlx::query_scalar("SELECT unit_of_measure FROM lot_view LIMIT 1")
+                .fetch_one(&store.pool)
+                .await
+                .unwrap();
+        assert_eq!(unit.as_deref(), Some("g"));
     }
 
     /// A database made before the digest (migration 0001 only) keeps its outbox rows when

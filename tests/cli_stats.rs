@@ -253,7 +253,11 @@ fn bad_input_is_a_usage_error_naming_the_problem() {
         .output()
         .unwrap();
     assert_eq!(out.status.code(), Some(2));
-    assert!(text(&out.stderr).contains("welch|pooled|mann-whitney|f|brown-forsythe"));
+    let err = text(&out.stderr);
+    assert!(
+        err.contains("--test") && err.contains("welch, pooled, mann-whitney, f, brown-forsythe"),
+        "{err}"
+    );
 
     let out = cmd(dir.path())
         .args(["adjust", "--method", "fdr"])

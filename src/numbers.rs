@@ -1,0 +1,86 @@
+//! Numbers as people write them in a table: values rounded to what the data support,
+//! p-values as `0.0012` or `< 1e-9`, never e-notation for an sd.
+
+/// The decimals that show a quantity whose natural scale (its sd, say) is `scale` with two
+/// significant digits of that scale: scale 1.5 → 1 decimal, 0.012 → 3, 250 → 0.
+pub fn decimals_for(scale: f64) -> usize {
+    if !(scale.is_finite() && scale > 0.0) {
+        return 3;
+    }
+    (1 - scale.log10().floor() as i64).clamp(0, 9) as usize
+}
+
+/// A value with `decimals` decimals, or `-` when absent or not finite.
+pub fn fixed(v: Option<f64>, decimals: usize) -> String {
+    match v {
+        Some(v) if v.is_finite() => format!("{v:.decimals$}"),
+        _ => "-".into(),
+    }
+}
+
+/// A signed difference with `decimals` decimals (`+3.1`, `-0.40`).
+pub fn signed(v: Option<f64>, decimals: usize) -> String {
+    match v {
+        Some(v) if v.is_finite() => format!("{v:+.decimals$}"),
+        _ => "-".into(),
+    }
+}
+
+/// A value with two significant digits in plain decimals (a standard deviation, a ratio):
+/// `1.5`, `0.012`, `250`.
+pub fn two_digits(v: Option<f64>) -> String {
+    match v {
+        Some(0.0) => "0".into(),
+        Some(v) if v.is_finite() => fixed(Some(v), decimals_for(v.abs())),
+        _ => "-".into(),
+    }
+}
+
+/// Smallest p-value written out; below it a p-value is `< 1e-9` (the tail of a test's
+/// reference distribution is not that precise, and nobody reads more digits).
+const P_FLOOR: f64 = 1e-9;
+
+/// A p-value (or a level) as people write it: two significant digits, plain decimals down to
+/// 0.001 (`0.31`, `0.047`, `0.0012`), then `2.3e-5`, and `< 1e-9` below that.
+pub fn p_value(p: Option<f64>) -> String {
+    match p {
+        None => "-".into(),
+        Some(p) if !p.is_finite() => "-".into(),
+        Some(p) if p < P_FLOOR => "< 1e-9".into(),
+        Some(p) if p >= 0.001 => {
+            let s = fixed(Some(p), decimals_for(p).max(2));
+            s.trim_end_matches('0').trim_end_matches('.').to_string()
+        }
+        Some(p) => format!("{p:.1e}"),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn p_values_read_as_written_by_hand() {
+        assert_eq!(p_value(Some(0.594)), "0.59");
+        assert_eq!(p_value(Some(0.0474)), "0.047");
+        assert_eq!(p_value(Some(0.00123)), "0.0012");
+        assert_eq!(p_value(Some(0.5)), "0.5");
+        assert_eq!(p_value(Some(1.0)), "1");
+        assert_eq!(p_value(Some(2.34e-5)), "2.3e-5");
+        assert_eq!(p_value(Some(3e-12)), "< 1e-9");
+        assert_eq!(p_value(Some(0.0)), "< 1e-9");
+        assert_eq!(p_value(None), "-");
+    }
+
+    #[test]
+    fn values_keep_the_digits_their_scale_supports() {
+        assert_eq!(decimals_for(1.495), 1);
+        assert_eq!(decimals_for(0.0123), 3);
+        assert_eq!(decimals_for(250.0), 0);
+        assert_eq!(two_digits(Some(1.495)), "1.5");
+        assert_eq!(two_digits(Some(0.01234)), "0.012");
+        assert_eq!(two_digits(Some(12.6)), "13");
+        assert_eq!(fixed(Some(3001.234), decimals_for(1.495)), "3001.2");
+        assert_eq!(signed(Some(-0.4), 2), "-0.40");
+    }
+}
