@@ -21,6 +21,7 @@ use crate::stats;
 use crate::store::Store;
 
 mod check_file;
+mod html_report;
 
 #[derive(Parser, Debug)]
 #[command(
@@ -120,6 +121,24 @@ enum Command {
         /// Why the stored values are replaced (kept with the old values).
         #[arg(long)]
         reason: String,
+        #[command(flatten)]
+        config: ConfigArg,
+    },
+    /// Write one self-contained HTML report (charts with the decision limits, alerts, what
+    /// the engine cannot know) for every source or one source; no network or script needed.
+    Report {
+        /// The HTML file to write.
+        #[arg(long, value_name = "FILE.html")]
+        out: PathBuf,
+        /// Only this source.
+        #[arg(long, value_name = "S")]
+        source: Option<String>,
+        /// Only lots sampled on or after this date (YYYY-MM-DD).
+        #[arg(long, value_name = "DATE")]
+        from: Option<String>,
+        /// Only lots sampled on or before this date (YYYY-MM-DD).
+        #[arg(long, value_name = "DATE")]
+        to: Option<String>,
         #[command(flatten)]
         config: ConfigArg,
     },
@@ -540,6 +559,17 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
         }
         Command::Adjust(args) => adjust(args),
         Command::Backup { file, config } => backup(&load(&config)?, &file).await,
+        Command::Report {
+            out,
+            source,
+            from,
+            to,
+            config,
+        } => {
+            let config = load(&config)?;
+            let store = open_existing(&config).await?;
+            html_report::run(&store, &config, &out, source, from, to).await
+        }
     }
 }
 

@@ -58,6 +58,7 @@ pub mod health;
 pub mod ingest;
 pub mod intake;
 pub mod lotfile;
+pub mod page;
 pub mod report;
 pub mod silence;
 pub mod stats;

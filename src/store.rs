@@ -22,6 +22,9 @@ use sqlx::sqlite::{
 use sqlx::{ConnectOptions, QueryBuilder, Row, Sqlite, Transaction};
 
 mod bulk;
+mod charts;
+
+pub use charts::{ChartEval, ChartLot, SeriesRow};
 
 use crate::lotfile::Timestamp;
 use crate::stats::Summary;
