@@ -156,7 +156,7 @@ pub fn render(c: &Chart) -> String {
     let mut s = String::new();
     let _ = write!(
         s,
-        r#"<svg class="chart" id="{id}" data-chart="{id}" viewBox="0 0 {W} {H}" role="img" aria-labelledby="{id}-t" xmlns="http://www.w3.org/2000/svg"><title id="{id}-t">{title}</title>"#,
+        r#"<svg class="chart" id="{id}" data-chart="{id}" viewBox="0 0 {W} {H}" role="img" aria-labelledby="{id}-t"><title id="{id}-t">{title}</title>"#,
         id = escape(&c.id),
         title = escape(&c.title)
     );
