@@ -7,7 +7,12 @@ mod browser;
 mod common;
 
 use browser::Browser;
-use common::{Site, drop_file, long_file, lot_date, lot_values, text};
+use std::io::{Read as _, Write as _};
+use std::time::Duration;
+
+use common::{
+    Site, drop_file, long_file, lot_date, lot_values, sigterm, text, wait_exit, wait_until,
+};
 
 /// A source name that would run a script if a page inserted it unescaped.
 const HOSTILE: &str = "<script>alert(1)</script>";
@@ -139,5 +144,175 @@ fn report_flags_are_checked() {
         text(&none.stderr).contains("--source"),
         "{}",
         text(&none.stderr)
+    );
+}
+
+/// A port free on 127.0.0.1 a moment ago.
+fn free_port() -> u16 {
+    std::net::TcpListener::bind("127.0.0.1:0")
+        .unwrap()
+        .local_addr()
+        .unwrap()
+        .port()
+}
+
+const TOKEN: &str = "token-for-the-page-tests-0123456789";
+
+/// The daemon with the dashboard on `port`, the site's lots already stored; killed when
+/// dropped.
+struct Dashboard {
+    site: Site,
+    daemon: std::process::Child,
+    port: u16,
+}
+
+impl Drop for Dashboard {
+    fn drop(&mut self) {
+        let _ = self.daemon.kill();
+        let _ = self.daemon.wait();
+    }
+}
+
+impl Dashboard {
+    fn start() -> Dashboard {
+        let site = site("");
+        let port = free_port();
+        std::fs::write(site.path().join("web-token.txt"), format!("{TOKEN}\n")).unwrap();
+        let mut cfg = std::fs::read_to_string(site.config()).unwrap();
+        cfg.push_str(&format!(
+            "\n[web]\nlisten = \"127.0.0.1:{port}\"\ntoken_file = \"web-token.txt\"\n"
+        ));
+        std::fs::write(site.config(), cfg).unwrap();
+        let daemon = site.spawn_daemon();
+        let up = wait_until(Duration::from_secs(30), || {
+            std::net::TcpStream::connect(("127.0.0.1", port)).is_ok()
+        });
+        let log = std::fs::read_to_string(site.path().join("daemon.log")).unwrap_or_default();
+        assert!(up, "the dashboard did not listen within 30 s: {log}");
+        Dashboard { site, daemon, port }
+    }
+
+    fn url(&self, path: &str) -> String {
+        format!("http://127.0.0.1:{}{path}", self.port)
+    }
+
+    /// The acknowledgements of the site's alerts, as `alerts --json` lists them.
+    fn acks(&self) -> usize {
+        self.site
+            .alerts()
+            .iter()
+            .map(|a| a["acknowledgements"].as_array().map_or(0, Vec::len))
+            .sum()
+    }
+
+    /// A raw POST (no browser, so no cookie), returning the status line.
+    fn post(&self, path: &str, body: &str) -> String {
+        let mut s = std::net::TcpStream::connect(("127.0.0.1", self.port)).unwrap();
+        write!(
+            s,
+            "POST {path} HTTP/1.1\r\nHost: 127.0.0.1:{}\r\nContent-Type: \
+             application/x-www-form-urlencoded\r\nContent-Length: {}\r\nConnection: close\r\n\r\n{body}",
+            self.port,
+            body.len()
+        )
+        .unwrap();
+        let mut out = String::new();
+        s.read_to_string(&mut out).unwrap();
+        out.lines().next().unwrap_or_default().to_string()
+    }
+}
+
+#[test]
+fn the_dashboard_shows_every_series_and_acknowledges_with_the_token_only() {
+    let mut d = Dashboard::start();
+    let mut b = Browser::launch();
+    b.goto(&d.url("/"));
+    b.screenshot("dashboard-overview");
+    assert_eq!(
+        b.eval("document.querySelectorAll('table.overview tbody tr').length"),
+        4
+    );
+    assert_shown_as_text(&mut b);
+    let links = b.eval("[...document.querySelectorAll('table.overview a')].map(a => a.href)");
+    for (i, link) in links.as_array().unwrap().iter().enumerate() {
+        b.goto(link.as_str().unwrap());
+        let charts = b.eval("document.querySelectorAll('section.series svg.chart').length");
+        assert_eq!(charts, 3, "charts on {link}");
+        assert!(
+            b.eval("document.querySelectorAll('table.lots tbody tr').length")
+                .as_u64()
+                >= Some(26)
+        );
+        b.screenshot(&format!("dashboard-series-{i}"));
+    }
+    // The series are listed by source name: the first is the hostile source's.
+    b.goto(links[0].as_str().unwrap());
+    assert_shown_as_text(&mut b);
+    assert!(b.problems().is_empty(), "problems: {:?}", b.problems());
+
+    // Without the token: refused, nothing recorded.
+    b.goto(&d.url("/alerts"));
+    let fill = |token: &str| {
+        format!(
+            "(() => {{ const f = document.querySelector('.alert-card.open form'); \
+             f.by.value = 'Test Engineer'; f.note.value = 'supplier informed'; \
+             f.token.value = {}; f.submit(); }})()",
+            serde_json::to_string(token).unwrap()
+        )
+    };
+    b.navigating(&fill(""));
+    let msg = b.eval("document.querySelector('.message').innerText");
+    assert!(msg.as_str().unwrap().contains("not acknowledged"), "{msg}");
+    assert_eq!(d.acks(), 0);
+    b.screenshot("dashboard-ack-refused");
+
+    // With the token but without the page's cookie (a cross-site form): refused as well.
+    let status = d.post(
+        "/alerts/1/ack",
+        &format!("csrf=0123456789abcdef0123456789abcdef&token={TOKEN}&by=x&note=y"),
+    );
+    assert!(status.contains("403"), "{status}");
+    assert_eq!(d.acks(), 0);
+
+    // With the token: acknowledged, shown, and in `alerts --json`.
+    b.navigating(&fill(TOKEN));
+    let msg = b.eval("document.querySelector('.message').innerText");
+    assert!(
+        msg.as_str()
+            .unwrap()
+            .contains("acknowledged by Test Engineer"),
+        "{msg}"
+    );
+    assert_eq!(d.acks(), 1);
+    b.screenshot("dashboard-ack-done");
+    // The browser logs the refusal's 403 as a failed load; nothing else may be logged.
+    let (refused, other): (Vec<String>, Vec<String>) = b
+        .problems()
+        .into_iter()
+        .partition(|p| p.contains("403") && p.contains("/ack"));
+    assert_eq!(refused.len(), 1, "{refused:?}");
+    assert!(other.is_empty(), "problems: {other:?}");
+
+    sigterm(&d.daemon);
+    assert!(wait_exit(&mut d.daemon, Duration::from_secs(30)).success());
+}
+
+#[test]
+fn a_dashboard_beyond_loopback_needs_a_token_file() {
+    let site = Site::new("[web]\nlisten = \"0.0.0.0:8421\"\n");
+    let out = site.run(&["check-config"]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(
+        text(&out.stderr).contains("web.token_file"),
+        "{}",
+        text(&out.stderr)
+    );
+    let bad = Site::new("[web]\nlisten = \"localhost\"\n");
+    let out = bad.run(&["check-config"]);
+    assert_eq!(out.status.code(), Some(2));
+    assert!(
+        text(&out.stderr).contains("web.listen"),
+        "{}",
+        text(&out.stderr)
     );
 }

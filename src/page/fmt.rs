@@ -40,6 +40,16 @@ pub fn p(v: Option<f64>) -> String {
     }
 }
 
+/// A p-value after its name: `= 0.0012` or `< 1e-9`.
+pub fn p_is(v: Option<f64>) -> String {
+    let s = p(v);
+    if s.starts_with('<') {
+        s
+    } else {
+        format!("= {s}")
+    }
+}
+
 /// A tick label on an axis: as short as it can be while telling ticks apart.
 pub fn axis(v: f64) -> String {
     if v == 0.0 {

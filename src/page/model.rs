@@ -72,6 +72,43 @@ pub struct AlertLine {
     pub note: String,
 }
 
+/// One series in an overview: its names, state and counts, no charts.
+#[derive(Debug, Clone, Serialize)]
+pub struct SeriesBrief {
+    pub id: i64,
+    pub source: String,
+    pub characteristic: String,
+    pub state: &'static str,
+    pub newest: String,
+    pub row: SeriesRow,
+}
+
+fn state_of(row: &SeriesRow) -> &'static str {
+    if row.open_mean.is_some() || row.open_spread.is_some() {
+        "alert"
+    } else if row.baseline_lots == 0 {
+        "collecting baseline"
+    } else {
+        "in control"
+    }
+}
+
+/// A series for an overview.
+pub fn brief(row: SeriesRow) -> SeriesBrief {
+    SeriesBrief {
+        id: row.id,
+        source: row.source.clone(),
+        characteristic: row.characteristic.clone(),
+        state: state_of(&row),
+        newest: row
+            .last_lot_at
+            .as_deref()
+            .map(fmt::when)
+            .unwrap_or_default(),
+        row,
+    }
+}
+
 /// Reads the series of `scope` and builds their pages.
 pub async fn series_pages(
     store: &Store,
@@ -117,13 +154,7 @@ pub async fn series_page(
     {
         charts.push(cusum_chart(&id, &lots));
     }
-    let state = if row.open_mean.is_some() || row.open_spread.is_some() {
-        "alert"
-    } else if row.baseline_lots == 0 {
-        "collecting baseline"
-    } else {
-        "in control"
-    };
+    let state = state_of(&row);
     Ok(SeriesPage {
         id: row.id,
         source: row.source.clone(),
@@ -357,11 +388,15 @@ fn cusum_chart(id: &str, lots: &[ChartLot]) -> Chart {
     let mut up = Vec::new();
     let mut down = Vec::new();
     let mut h = Vec::new();
+    let mut previous = false;
     for (i, l) in lots.iter().enumerate() {
         let c = l
             .mean
             .as_ref()
             .and_then(|e| e.cusum.map(|c| (c, e.cusum_signal)));
+        // A run of signals is labelled once, at its first lot.
+        let first_signal = c.is_some_and(|(_, s)| s) && !previous;
+        previous = c.is_some_and(|(_, s)| s);
         up.push(c.map(|((u, _, _), _)| u));
         down.push(c.map(|((_, d, _), _)| d));
         h.push(c.map(|((_, _, h), _)| h));
@@ -375,7 +410,7 @@ fn cusum_chart(id: &str, lots: &[ChartLot]) -> Chart {
                     } else {
                         mark
                     },
-                    label: (signal && v == u.max(d)).then(|| "signal".to_string()),
+                    label: (first_signal && v == u.max(d)).then(|| "signal".to_string()),
                     tip: tip(
                         l,
                         if mark == Mark::Up {
@@ -573,7 +608,7 @@ fn alert_line(a: &AlertRow) -> AlertLine {
     };
     let numbers = format!(
         "lot mean {} (n = {}) against baseline {} (n = {}); difference {}, 95 % interval {}; \
-         statistic {}{df}; p = {}, adjusted {} (level {}, {} tested together); {} lot(s) so far",
+         statistic {}{df}; p {}, adjusted {} (level {}, {} tested together); {} lot(s) so far",
         fmt::sig(a.lot_mean, 5),
         a.lot_n,
         fmt::sig(a.baseline_mean, 5),
@@ -585,8 +620,8 @@ fn alert_line(a: &AlertRow) -> AlertLine {
             fmt::sig(c[1], 3)
         )),
         fmt::opt(a.statistic, 3),
-        fmt::p(a.p_value),
-        fmt::p(a.p_adjusted),
+        fmt::p_is(a.p_value),
+        fmt::p_is(a.p_adjusted),
         fmt::sig(a.level, 2),
         a.family_size,
         a.lots
