@@ -1181,6 +1181,11 @@ repeat_hours = 24        # announce a still-shifting open alert again after this
 # at = "07:30"
 # when_empty = false       # true: also send it when no alert is open
 
+[health]
+# Ingest or delivery failing for longer than this sends one notice (log always; email too
+# unless email delivery is what fails), and one when it works again. Fractions are allowed.
+notice_after_minutes = 30
+
 # The dashboard in the daemon: overview, charts per series, alerts with acknowledgement.
 # Off unless listen is set. An address other than loopback needs token_file (first line:
 # the access token, at least 16 characters); on loopback without it the daemon writes a
@@ -1188,11 +1193,6 @@ repeat_hours = 24        # announce a still-shifting open alert again after this
 # [web]
 # listen = "127.0.0.1:8421"
 # token_file = "web-token.txt"
-
-[health]
-# Ingest or delivery failing for longer than this sends one notice (log always; email too
-# unless email delivery is what fails), and one when it works again. Fractions are allowed.
-notice_after_minutes = 30
 
 [log]
 format = "text"          # "text" or "json"

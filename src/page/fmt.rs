@@ -24,12 +24,13 @@ pub fn opt(v: Option<f64>, digits: usize) -> String {
     v.map_or_else(|| "–".into(), |v| sig(v, digits))
 }
 
-/// A p-value: two significant digits, `< 1e-9` below that.
+/// A p-value: two significant digits, written out down to 0.0001 (`0.00012`), as `3.2e-6`
+/// below that and `< 1e-9` below 1e-9.
 pub fn p(v: Option<f64>) -> String {
     match v {
         None => "–".into(),
         Some(p) if p < 1e-9 => "< 1e-9".into(),
-        Some(p) if p >= 0.001 => {
+        Some(p) if p >= 1e-4 => {
             let s = sig(p, 2);
             if p >= 0.1 { format!("{p:.2}") } else { s }
         }

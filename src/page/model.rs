@@ -109,6 +109,45 @@ pub fn brief(row: SeriesRow) -> SeriesBrief {
     }
 }
 
+/// The chart of the quantity an alert is about (within-lot spread for a spread alert, the
+/// CUSUM path for one the CUSUM opened, else the lot means), over the series' latest
+/// `max_lots` lots, with the engine's limits; None when the series is not stored.
+pub async fn alert_chart(
+    store: &Store,
+    config: &Config,
+    a: &AlertRow,
+    max_lots: i64,
+) -> Result<Option<Chart>, StoreError> {
+    let Some(id) = store.series_named(&a.source, &a.characteristic).await? else {
+        return Ok(None);
+    };
+    let design = store.series_design(id).await?;
+    let lots = store.chart_lots(id, None, None, max_lots).await?;
+    let policy = config.monitor.policy(&a.characteristic);
+    let key = format!("s{id}");
+    let mut chart = match (a.kind.as_str(), a.test.as_str()) {
+        ("spread", _) => spread_chart(&key, &lots, design.as_ref()),
+        (_, "cusum") => cusum_chart(&key, &lots),
+        _ => {
+            let geo = match &design {
+                Some(d) if d.log_scale => geometric_means(store, &lots).await?,
+                _ => Vec::new(),
+            };
+            mean_chart(&key, &lots, design.as_ref(), &policy, &geo)
+        }
+    };
+    let what = match (a.kind.as_str(), a.test.as_str()) {
+        ("spread", _) => "within-lot spread",
+        (_, "cusum") => "CUSUM path",
+        _ => "lot means",
+    };
+    chart.title = format!(
+        "{} / {}: {what}, alert A{}",
+        a.source, a.characteristic, a.id
+    );
+    Ok(Some(chart))
+}
+
 /// Reads the series of `scope` and builds their pages.
 pub async fn series_pages(
     store: &Store,

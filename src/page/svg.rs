@@ -83,7 +83,8 @@ pub struct Chart {
     pub limit_name: String,
 }
 
-fn range(c: &Chart) -> (f64, f64) {
+/// The y range of a chart: every point and line value, with a margin.
+pub(crate) fn range(c: &Chart) -> (f64, f64) {
     let values = c
         .points
         .iter()
