@@ -72,29 +72,7 @@ pub fn render_png(c: &Chart) -> Result<Vec<u8>, ChartError> {
             .y_label_area_size(72)
             .build_cartesian_2d(-0.5f64..(n as f64 - 0.5), lo..hi)
             .map_err(draw_err)?;
-        let labels = |x: &f64| -> String {
-            let i = x.round();
-            if (x - i).abs() > 1e-9 || i < 0.0 {
-                return String::new();
-            }
-            c.lots
-                .get(i as usize)
-                .map(|l| l.chars().take(14).collect())
-                .unwrap_or_default()
-        };
-        chart
-            .configure_mesh()
-            .disable_x_mesh()
-            .light_line_style(WHITE)
-            .x_labels(n.min(8))
-            .x_label_formatter(&labels)
-            .y_label_formatter(&|v: &f64| crate::page::fmt::axis(*v))
-            .x_desc("lot, in sampling order")
-            .y_desc(c.y_label.as_str())
-            .label_style((FAMILY, 12))
-            .axis_desc_style((FAMILY, 13))
-            .draw()
-            .map_err(draw_err)?;
+        draw_mesh(&mut chart, c)?;
         let mut named: Vec<LineStyle> = Vec::new();
         for l in &c.lines {
             // Upper and lower limits share one legend entry.
@@ -111,18 +89,7 @@ pub fn render_png(c: &Chart) -> Result<Vec<u8>, ChartError> {
         ] {
             draw_marks(&mut chart, c, mark)?;
         }
-        chart
-            .draw_series(c.points.iter().filter_map(|p| {
-                let label = p.label.as_ref()?;
-                let style = (FAMILY, 12)
-                    .into_font()
-                    .color(&INK)
-                    .pos(Pos::new(HPos::Center, VPos::Bottom));
-                Some(
-                    EmptyElement::at((p.x as f64, p.y)) + Text::new(label.clone(), (0, -10), style),
-                )
-            }))
-            .map_err(draw_err)?;
+        draw_labels(&mut chart, c)?;
         chart
             .configure_series_labels()
             .position(SeriesLabelPosition::UpperLeft)
@@ -143,6 +110,50 @@ const INK: RGBColor = RGBColor(31, 42, 48);
 const TEAL: RGBColor = RGBColor(14, 110, 106);
 const FLAG: RGBColor = RGBColor(185, 60, 11);
 const LIMIT: RGBColor = RGBColor(79, 90, 97);
+
+/// Axes, tick labels (lot codes, values as people write them) and the horizontal grid.
+fn draw_mesh(chart: &mut Cart, c: &Chart) -> Result<(), ChartError> {
+    let n = c.lots.len();
+    let labels = |x: &f64| -> String {
+        let i = x.round();
+        if (x - i).abs() > 1e-9 || i < 0.0 {
+            return String::new();
+        }
+        c.lots
+            .get(i as usize)
+            .map(|l| l.chars().take(14).collect())
+            .unwrap_or_default()
+    };
+    chart
+        .configure_mesh()
+        .disable_x_mesh()
+        .light_line_style(WHITE)
+        .x_labels(n.min(8))
+        .x_label_formatter(&labels)
+        .y_label_formatter(&|v: &f64| crate::page::fmt::axis(*v))
+        .x_desc("lot, in sampling order")
+        .y_desc(c.y_label.as_str())
+        .label_style((FAMILY, 12))
+        .axis_desc_style((FAMILY, 13))
+        .draw()
+        .map_err(draw_err)?;
+    Ok(())
+}
+
+/// The short labels above points (alert openings, outliers, CUSUM signals).
+fn draw_labels(chart: &mut Cart, c: &Chart) -> Result<(), ChartError> {
+    chart
+        .draw_series(c.points.iter().filter_map(|p| {
+            let label = p.label.as_ref()?;
+            let style = (FAMILY, 12)
+                .into_font()
+                .color(&INK)
+                .pos(Pos::new(HPos::Center, VPos::Bottom));
+            Some(EmptyElement::at((p.x as f64, p.y)) + Text::new(label.clone(), (0, -10), style))
+        }))
+        .map_err(draw_err)?;
+    Ok(())
+}
 
 /// A line of the chart: limits and the centre step from lot to lot (dashed or dotted limits,
 /// as on the page), paths join their points.
@@ -374,6 +385,36 @@ mod tests {
         );
         let dark = px.iter().filter(|p| p.iter().all(|&c| c < 60)).count();
         assert!(dark > 2000, "too little dark ink for axes and text: {dark}");
+    }
+
+    #[test]
+    fn a_cusum_chart_draws_both_paths_their_marks_and_h() {
+        let mut c = chart("cedar-energy / capacity_mah: CUSUM path, alert A2");
+        c.points = (0..30)
+            .flat_map(|i| {
+                let up = if i > 20 { (i - 20) as f64 * 1.5 } else { 0.0 };
+                [(up, Mark::Up), (0.2, Mark::Down)].map(|(y, mark)| Point {
+                    x: i,
+                    y,
+                    mark,
+                    label: None,
+                    tip: String::new(),
+                })
+            })
+            .collect();
+        c.lines = vec![Line {
+            name: "h".into(),
+            values: vec![Some(9.4); 30],
+            style: LineStyle::Limit,
+        }];
+        c.legend = vec![(Mark::Up, "upward sum"), (Mark::Down, "downward sum")];
+        let png = render_png(&c).unwrap();
+        let (_, pixels) = decode(&png);
+        let ink = [INK.0, INK.1, INK.2];
+        assert!(
+            pixels.chunks(3).filter(|p| *p == ink).count() > 300,
+            "no CUSUM marks"
+        );
     }
 
     #[test]
