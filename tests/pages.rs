@@ -100,6 +100,23 @@ fn the_report_shows_every_series_with_its_charts_and_names_as_text() {
     );
     assert_shown_as_text(&mut b);
     eprintln!("screenshot: {}", shot.display());
+    // It prints: a PDF with a page of its own for each series after the summary pages.
+    let pdf = b.call(
+        "Page.printToPDF",
+        serde_json::json!({"preferCSSPageSize": true}),
+    );
+    let pdf = base64::Engine::decode(
+        &base64::engine::general_purpose::STANDARD,
+        pdf["data"].as_str().unwrap(),
+    )
+    .unwrap();
+    assert!(pdf.starts_with(b"%PDF"));
+    let pages = pdf
+        .windows(12)
+        .filter(|w| w.starts_with(b"/Type /Page") && w[11] != b's')
+        .count();
+    assert!(pages >= 5, "{pages} PDF pages for 4 series");
+    std::fs::write(browser::screenshot_dir().join("report.pdf"), &pdf).unwrap();
 
     // One source, a date range: only that source's series and the lots in range.
     let one = site.path().join("one.html");
