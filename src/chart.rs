@@ -8,6 +8,7 @@
 
 use std::sync::OnceLock;
 
+use plotters::chart::SeriesAnno;
 use plotters::coord::types::RangedCoordf64;
 use plotters::prelude::*;
 use plotters::style::FontStyle;
@@ -259,7 +260,12 @@ fn draw_marks(chart: &mut Cart, c: &Chart, mark: Mark) -> Result<(), ChartError>
             }))
             .map_err(draw_err)?,
     };
-    let anno = anno.label(name);
+    mark_legend(anno.label(name), mark);
+    Ok(())
+}
+
+/// The legend entry of a mark: its shape.
+fn mark_legend(anno: &mut SeriesAnno<BitMapBackend>, mark: Mark) {
     match mark {
         Mark::Baseline => anno.legend(|(x, y)| Circle::new((x + 8, y), 4, TEAL.stroke_width(2))),
         Mark::Tested => anno.legend(|(x, y)| Circle::new((x + 8, y), 4, TEAL.filled())),
@@ -287,7 +293,6 @@ fn draw_marks(chart: &mut Cart, c: &Chart, mark: Mark) -> Result<(), ChartError>
             )
         }),
     };
-    Ok(())
 }
 
 fn encode_png(rgb: &[u8], w: u32, h: u32) -> Result<Vec<u8>, ChartError> {

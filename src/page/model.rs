@@ -422,47 +422,49 @@ fn spread_chart(id: &str, lots: &[ChartLot], design: Option<&Design>) -> Chart {
     }
 }
 
+/// The two CUSUM sums of a lot as points; the larger one is a diamond when the lot signalled,
+/// labelled at the first lot of a run of signals.
+fn cusum_points(
+    i: usize,
+    l: &ChartLot,
+    (u, d): (f64, f64),
+    signal: bool,
+    first: bool,
+) -> [Point; 2] {
+    [(u, Mark::Up, "upper sum"), (d, Mark::Down, "lower sum")].map(|(v, mark, what)| {
+        let top = signal && v == u.max(d);
+        Point {
+            x: i,
+            y: v,
+            mark: if top { Mark::Flagged } else { mark },
+            label: (top && first).then(|| "signal".to_string()),
+            tip: tip(l, what, v),
+        }
+    })
+}
+
 fn cusum_chart(id: &str, lots: &[ChartLot]) -> Chart {
     let mut points = Vec::new();
-    let mut up = Vec::new();
-    let mut down = Vec::new();
-    let mut h = Vec::new();
+    let (mut up, mut down, mut h) = (Vec::new(), Vec::new(), Vec::new());
     let mut previous = false;
     for (i, l) in lots.iter().enumerate() {
         let c = l
             .mean
             .as_ref()
             .and_then(|e| e.cusum.map(|c| (c, e.cusum_signal)));
-        // A run of signals is labelled once, at its first lot.
-        let first_signal = c.is_some_and(|(_, s)| s) && !previous;
-        previous = c.is_some_and(|(_, s)| s);
         up.push(c.map(|((u, _, _), _)| u));
         down.push(c.map(|((_, d, _), _)| d));
         h.push(c.map(|((_, _, h), _)| h));
         if let Some(((u, d, _), signal)) = c {
-            for (v, mark) in [(u, Mark::Up), (d, Mark::Down)] {
-                points.push(Point {
-                    x: i,
-                    y: v,
-                    mark: if signal && v == u.max(d) {
-                        Mark::Flagged
-                    } else {
-                        mark
-                    },
-                    label: (first_signal && v == u.max(d)).then(|| "signal".to_string()),
-                    tip: tip(
-                        l,
-                        if mark == Mark::Up {
-                            "upper sum"
-                        } else {
-                            "lower sum"
-                        },
-                        v,
-                    ),
-                });
-            }
+            points.extend(cusum_points(i, l, (u, d), signal, !previous));
         }
+        previous = c.is_some_and(|(_, s)| s);
     }
+    let line = |name: &str, values, style| Line {
+        name: name.into(),
+        values,
+        style,
+    };
     Chart {
         id: format!("{id}-cusum"),
         title: "CUSUM of standardised lot means against its decision interval h".into(),
@@ -470,21 +472,9 @@ fn cusum_chart(id: &str, lots: &[ChartLot]) -> Chart {
         lots: lots.iter().map(|l| l.lot.clone()).collect(),
         points,
         lines: vec![
-            Line {
-                name: "upward drift".into(),
-                values: up,
-                style: LineStyle::Path,
-            },
-            Line {
-                name: "downward drift".into(),
-                values: down,
-                style: LineStyle::PathDashed,
-            },
-            Line {
-                name: "h".into(),
-                values: h,
-                style: LineStyle::Limit,
-            },
+            line("upward drift", up, LineStyle::Path),
+            line("downward drift", down, LineStyle::PathDashed),
+            line("h", h, LineStyle::Limit),
         ],
         legend: vec![
             (Mark::Up, "upward sum"),
