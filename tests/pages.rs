@@ -333,3 +333,31 @@ fn a_dashboard_beyond_loopback_needs_a_token_file() {
         text(&out.stderr)
     );
 }
+
+#[test]
+fn on_loopback_without_a_token_file_the_daemon_writes_a_private_token() {
+    let site = Site::new("");
+    let port = free_port();
+    let mut cfg = std::fs::read_to_string(site.config()).unwrap();
+    cfg.push_str(&format!("\n[web]\nlisten = \"127.0.0.1:{port}\"\n"));
+    std::fs::write(site.config(), cfg).unwrap();
+    let mut daemon = site.spawn_daemon();
+    let up = wait_until(Duration::from_secs(30), || {
+        std::net::TcpStream::connect(("127.0.0.1", port)).is_ok()
+    });
+    let token = site.path().join("lotdrift-web.token");
+    let written = wait_until(Duration::from_secs(10), || token.exists());
+    sigterm(&daemon);
+    let stopped = wait_exit(&mut daemon, Duration::from_secs(30));
+    assert!(up && written, "dashboard up {up}, token written {written}");
+    assert!(stopped.success());
+    let text = std::fs::read_to_string(&token).unwrap();
+    let t = text.trim();
+    assert!(
+        t.len() == 32 && t.bytes().all(|b| b.is_ascii_hexdigit()),
+        "{t:?}"
+    );
+    use std::os::unix::fs::PermissionsExt as _;
+    let mode = std::fs::metadata(&token).unwrap().permissions().mode() & 0o777;
+    assert_eq!(mode, 0o600);
+}
