@@ -6,7 +6,8 @@
 //! can make is an acknowledgement, and that needs both the access token (from
 //! `web.token_file`, or a token the daemon writes beside the database on loopback) and the
 //! CSRF check: the form's hidden value must equal the `SameSite=Strict` cookie the page set,
-//! and a request that names its origin must come from the dashboard's own. Every name from a
+//! and a request that names its origin must come from the dashboard's own. On loopback, a
+//! request must name the dashboard by a loopback Host (no DNS rebinding). Every name from a
 //! lot file is escaped by the templates. Runs under the daemon's cancellation token.
 
 use std::net::SocketAddr;
@@ -125,19 +126,58 @@ pub async fn serve(
         templates: crate::page::templates(),
     });
     tracing::info!(address = %web.listen, "dashboard listening");
-    axum::serve(listener, router(shared))
+    axum::serve(listener, router(shared, web.listen))
         .with_graceful_shutdown(cancel.cancelled_owned())
         .await
         .map_err(WebError::Serve)
 }
 
-fn router(shared: AppState) -> Router {
+/// On a loopback address, the Host names a request may carry: a page of another site that
+/// made its name resolve to 127.0.0.1 (DNS rebinding) must not read the dashboard.
+fn allowed_hosts(listen: SocketAddr) -> Option<Vec<String>> {
+    if !listen.ip().is_loopback() {
+        return None;
+    }
+    let port = listen.port();
+    Some(vec![
+        format!("127.0.0.1:{port}"),
+        format!("localhost:{port}"),
+        format!("[::1]:{port}"),
+    ])
+}
+
+/// Refuses (421) a request whose Host is not one of `allowed` (when there is such a list).
+async fn check_host(
+    State(allowed): State<Arc<Option<Vec<String>>>>,
+    request: axum::extract::Request,
+    next: axum::middleware::Next,
+) -> Response {
+    let host = request
+        .headers()
+        .get(header::HOST)
+        .and_then(|v| v.to_str().ok());
+    match (allowed.as_ref(), host) {
+        (None, _) => next.run(request).await,
+        (Some(list), Some(h)) if list.iter().any(|a| a.eq_ignore_ascii_case(h)) => {
+            next.run(request).await
+        }
+        _ => (
+            StatusCode::MISDIRECTED_REQUEST,
+            "unknown host name for this dashboard",
+        )
+            .into_response(),
+    }
+}
+
+fn router(shared: AppState, listen: SocketAddr) -> Router {
+    let hosts = Arc::new(allowed_hosts(listen));
     Router::new()
         .route("/", get(overview))
         .route("/series/{id}", get(series))
         .route("/alerts", get(alerts))
         .route("/alerts/{id}/ack", post(acknowledge))
         .route("/favicon.ico", get(|| async { StatusCode::NO_CONTENT }))
+        .layer(axum::middleware::from_fn_with_state(hosts, check_host))
         .with_state(shared)
 }
 

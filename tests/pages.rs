@@ -224,12 +224,16 @@ impl Dashboard {
 
     /// A raw POST (no browser, so no cookie), returning the status line.
     fn post(&self, path: &str, body: &str) -> String {
+        self.raw("POST", path, &format!("127.0.0.1:{}", self.port), body)
+    }
+
+    /// A raw request naming `host`, returning the status line.
+    fn raw(&self, method: &str, path: &str, host: &str, body: &str) -> String {
         let mut s = std::net::TcpStream::connect(("127.0.0.1", self.port)).unwrap();
         write!(
             s,
-            "POST {path} HTTP/1.1\r\nHost: 127.0.0.1:{}\r\nContent-Type: \
+            "{method} {path} HTTP/1.1\r\nHost: {host}\r\nContent-Type: \
              application/x-www-form-urlencoded\r\nContent-Length: {}\r\nConnection: close\r\n\r\n{body}",
-            self.port,
             body.len()
         )
         .unwrap();
@@ -290,6 +294,9 @@ fn the_dashboard_shows_every_series_and_acknowledges_with_the_token_only() {
     );
     assert!(status.contains("403"), "{status}");
     assert_eq!(d.acks(), 0);
+    // A page of another site whose name resolves to 127.0.0.1 cannot read the dashboard.
+    let status = d.raw("GET", "/", "evil.example:80", "");
+    assert!(status.contains("421"), "{status}");
 
     // With the token: acknowledged, shown, and in `alerts --json`.
     b.navigating(&fill(TOKEN));
