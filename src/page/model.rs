@@ -630,6 +630,35 @@ pub fn alert_lines(alerts: &[AlertRow], scope: &Scope) -> Vec<AlertLine> {
     rows.into_iter().map(alert_line).collect()
 }
 
+/// Resolved alerts a report lists at most (the newest), besides every open one.
+const RECENT_RESOLVED: usize = 20;
+
+/// The alerts of a report: every open one of the scope's source, and the newest resolved ones
+/// (at most 20) that were open at some time within the scope's dates.
+pub fn report_alerts(alerts: &[AlertRow], scope: &Scope) -> Vec<AlertLine> {
+    let day = |t: &str| t.chars().take(10).collect::<String>();
+    let within = |a: &AlertRow| {
+        let ended = a.resolved_at.as_deref().map(day);
+        scope
+            .from
+            .as_ref()
+            .is_none_or(|f| ended.as_ref().is_none_or(|e| e >= f))
+            && scope.to.as_ref().is_none_or(|t| day(&a.opened_at) <= *t)
+    };
+    let kept: Vec<AlertRow> = alerts
+        .iter()
+        .filter(|a| a.state == "open" || within(a))
+        .cloned()
+        .collect();
+    let mut lines = alert_lines(&kept, scope);
+    let mut resolved = 0;
+    lines.retain(|a| {
+        resolved += usize::from(a.state != "open");
+        a.state == "open" || resolved <= RECENT_RESOLVED
+    });
+    lines
+}
+
 fn alert_line(a: &AlertRow) -> AlertLine {
     let df = match (a.df, a.kind.as_str()) {
         (Some(df), _) => format!(", df = {}", fmt::sig(df, 3)),
