@@ -30,7 +30,7 @@ work="$(mktemp -d)"
 say "generating ${SOURCES}x${CHARACTERISTICS}x${LOTS}x${UNITS} values ($LAYOUT) in $work"
 "$WORKLOAD" --out "$work/parts" --sources "$SOURCES" --characteristics "$CHARACTERISTICS" \
     --lots "$LOTS" --units "$UNITS" --seed "$SEED" --layout "$LAYOUT" >/dev/null
-first="$(find "$work/parts" -name '*.csv' | sort | head -1)"
+first="$(find "$work/parts" -name '*.csv' -print -quit)"
 {
     head -1 "$first"
     find "$work/parts" -name '*.csv' | sort | while read -r f; do tail -n +2 "$f"; done

@@ -36,7 +36,7 @@ use lettre::{AsyncSmtpTransport, AsyncTransport, Message, Tokio1Executor};
 use tokio::sync::Notify;
 use tokio_util::sync::CancellationToken;
 
-use crate::chart::{self, ChartPoint};
+use crate::chart;
 use crate::config::{Config, Email, Tls};
 use crate::digest;
 use crate::health::{self, Component};
@@ -51,9 +51,6 @@ pub const PASSWORD_ENV: &str = "LOTDRIFT_SMTP_PASSWORD";
 
 /// Lots shown in the chart of an alert message (the most recent ones of the series).
 pub const CHART_LOTS: i64 = 40;
-
-/// Half-width of the chart's band around the baseline mean, in standard errors of a lot mean.
-pub const CHART_BAND_SE: f64 = 3.0;
 
 /// Outbox rows read per query while draining.
 const DRAIN_BATCH: i64 = 100;
@@ -113,7 +110,7 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
                         Some(c) => c.clone(),
                         None if mailer.is_err() => None,
                         None => {
-                            let c = chart_for(store, &item).await.map(Arc::new);
+                            let c = chart_for(store, config, &item).await.map(Arc::new);
                             charts.insert(item.event_id, c.clone());
                             c
                         }
@@ -507,36 +504,22 @@ async fn send_email(
     }
 }
 
-/// The chart of the alert's series, or `None` (logged) when it cannot be made: a message
-/// without its chart is better than no message.
-async fn chart_for(store: &Store, item: &OutboxItem) -> Option<Vec<u8>> {
+/// The chart of the quantity that alerted (lot means, within-lot spread or the CUSUM path)
+/// with the engine's own limits (`page::model::alert_chart`), or `None` (logged) when it
+/// cannot be made: a message without its chart is better than no message.
+async fn chart_for(store: &Store, config: &Config, item: &OutboxItem) -> Option<Vec<u8>> {
     let a = &item.alert;
-    let lots = match store
-        .recent_lot_means(&a.source, &a.characteristic, CHART_LOTS)
-        .await
-    {
-        Ok(l) => l,
+    let mut c = match crate::page::model::alert_chart(store, config, a, CHART_LOTS).await {
+        Ok(Some(c)) => c,
+        Ok(None) => return None,
         Err(e) => {
             tracing::warn!(error = %crate::errors::chain(&e), alert = a.id, "cannot read the series for the chart");
             return None;
         }
     };
-    let points: Vec<ChartPoint> = lots
-        .into_iter()
-        .map(|l| ChartPoint {
-            label: clean(&l.lot),
-            mean: l.mean,
-            baseline: l.baseline,
-            alerting: l.significant,
-        })
-        .collect();
-    let band = chart_band(a);
-    let title = chart_title(a, points.len());
-    let baseline_mean = a.baseline_mean;
-    let rendered = tokio::task::spawn_blocking(move || {
-        chart::render_series_png(&points, baseline_mean, band, &title)
-    })
-    .await;
+    c.title = clean(&c.title).chars().take(100).collect();
+    c.lots = c.lots.iter().map(|l| clean(l)).collect();
+    let rendered = tokio::task::spawn_blocking(move || chart::render_png(&c)).await;
     match rendered {
         Ok(Ok(png)) => Some(png),
         Ok(Err(e)) => {
@@ -548,22 +531,6 @@ async fn chart_for(store: &Store, item: &OutboxItem) -> Option<Vec<u8>> {
             None
         }
     }
-}
-
-/// ± this many standard errors of a mean of `lot_n` values around the baseline mean.
-fn chart_band(a: &AlertRow) -> f64 {
-    match a.baseline_sd {
-        Some(sd) if sd.is_finite() && a.lot_n > 0 => CHART_BAND_SE * sd / (a.lot_n as f64).sqrt(),
-        _ => 0.0,
-    }
-}
-
-fn chart_title(a: &AlertRow, lots: usize) -> String {
-    let title = format!(
-        "{} / {}: last {lots} lot means, band ±{CHART_BAND_SE} SE (n = {})",
-        a.source, a.characteristic, a.lot_n
-    );
-    clean(&title).chars().take(100).collect()
 }
 
 fn retry_or_expire(item: &Attempt<'_>, config: &Config, error: String) -> DeliveryOutcome {
@@ -693,12 +660,30 @@ pub fn subject(item: &OutboxItem) -> String {
     clean(&text)
 }
 
+/// A measured value or statistic as people write it (5 significant digits), or "-".
 fn fmt_opt(v: Option<f64>) -> String {
-    v.map_or_else(|| "-".to_string(), |v| format!("{v:.6}"))
+    v.map_or_else(|| "-".to_string(), |v| crate::page::fmt::sig(v, 5))
 }
 
+/// A p-value after its name: `= 0.0012`, `< 1e-9`.
 fn fmt_p(v: Option<f64>) -> String {
-    v.map_or("-".into(), |p| format!("{p:.3e}"))
+    crate::page::fmt::p_is(v)
+}
+
+/// Degrees of freedom: whole numbers as such, else one decimal; an F test's two (`9 and 620`).
+fn fmt_df(df: Option<f64>, df2: Option<f64>) -> String {
+    let one = |d: f64| {
+        if (d - d.round()).abs() < 1e-9 {
+            format!("{}", d.round())
+        } else {
+            format!("{d:.1}")
+        }
+    };
+    match (df, df2) {
+        (Some(a), Some(b)) => format!("{} and {}", one(a), one(b)),
+        (Some(a), None) => one(a),
+        (None, _) => "-".into(),
+    }
 }
 
 /// The numbers of an alert message as (label, value) rows, shared by the plain-text and the
@@ -727,18 +712,18 @@ pub fn facts(item: &OutboxItem) -> Vec<(&'static str, String)> {
         (
             "Baseline",
             format!(
-                "n = {}, mean = {:.6}, sd = {}",
+                "n = {}, mean = {}, sd = {}",
                 a.baseline_n,
-                a.baseline_mean,
+                fmt_opt(Some(a.baseline_mean)),
                 fmt_opt(a.baseline_sd)
             ),
         ),
         (
             "This lot",
             format!(
-                "n = {}, mean = {:.6}, sd = {}",
+                "n = {}, mean = {}, sd = {}",
                 a.lot_n,
-                a.lot_mean,
+                fmt_opt(Some(a.lot_mean)),
                 fmt_opt(a.lot_sd)
             ),
         ),
@@ -746,28 +731,33 @@ pub fn facts(item: &OutboxItem) -> Vec<(&'static str, String)> {
     if let (Some(e), Some([lo, hi])) = (a.estimate, a.ci) {
         rows.push((
             "Difference",
-            format!("{e:.6} (lot − baseline), 95 % interval [{lo:.6}, {hi:.6}]"),
+            format!(
+                "{} (lot − baseline), 95 % interval [{}, {}]",
+                fmt_opt(Some(e)),
+                fmt_opt(Some(lo)),
+                fmt_opt(Some(hi))
+            ),
         ));
     }
     rows.push((
         "Test",
         format!(
-            "{} ({}), statistic = {}, df = {}, p = {}",
+            "{} ({}), statistic = {}, df = {}, p {}",
             a.test,
             a.alternative,
             fmt_opt(a.statistic),
-            fmt_opt(a.df),
+            fmt_df(a.df, a.df2),
             fmt_p(a.p_value)
         ),
     ));
     rows.push((
         "Adjusted",
         format!(
-            "p = {} ({} over {} test(s) of this lot, level {})",
+            "p {} ({} over {} test(s) of this lot, level {})",
             fmt_p(a.p_adjusted),
             a.method,
             a.family_size,
-            a.level
+            crate::page::fmt::sig(a.level, 2)
         ),
     ));
     if let Some(model) = &a.model {
@@ -776,7 +766,12 @@ pub fn facts(item: &OutboxItem) -> Vec<(&'static str, String)> {
     if let Some([c, lo, hi]) = a.cpk {
         rows.push((
             "Cpk (this lot)",
-            format!("{c:.3}, 95 % interval [{lo:.3}, {hi:.3}]"),
+            format!(
+                "{}, 95 % interval [{}, {}]",
+                crate::page::fmt::sig(c, 3),
+                crate::page::fmt::sig(lo, 3),
+                crate::page::fmt::sig(hi, 3)
+            ),
         ));
     }
     if let Some(note) = &a.note {
@@ -797,6 +792,12 @@ pub fn facts(item: &OutboxItem) -> Vec<(&'static str, String)> {
     rows
 }
 
+/// What the attached chart shows (plain text and HTML part alike).
+const CHART_NOTE: &str = "The attached chart shows the quantity that alerted (lot means, \
+     within-lot spread, or the CUSUM path) for the latest lots of the series (at most 40), with \
+     the limits the engine decides by: dashed lines, or h for the CUSUM. Baseline lots are \
+     hollow circles, lots in control filled circles, flagged lots diamonds.";
+
 const DISCLAIMER: &str = "This is a statistical signal to support incoming inspection and the \
                           engineer's judgment, not a verdict on conformance.";
 
@@ -808,11 +809,7 @@ pub fn body(item: &OutboxItem) -> String {
     for (label, value) in facts(item) {
         s.push_str(&format!("{:<17}{value}\n", format!("{label}:")));
     }
-    s.push_str(&format!(
-        "\nThe attached chart shows the last lot means of the series (at most {CHART_LOTS}) \
-         against the baseline mean and a band of ±{CHART_BAND_SE} standard errors of a lot mean; \
-         alerting lots are marked red.\n"
-    ));
+    s.push_str(&format!("\n{CHART_NOTE}\n"));
     s.push_str(&format!("\n{DISCLAIMER}\n"));
     s
 }
@@ -851,11 +848,7 @@ pub fn html_body(item: &OutboxItem) -> String {
         ));
     }
     s.push_str("</table>\n");
-    s.push_str(&format!(
-        "<p>The attached chart shows the last lot means of the series (at most {CHART_LOTS}) \
-         against the baseline mean and a band of &plusmn;{CHART_BAND_SE} standard errors of a \
-         lot mean; alerting lots are marked red.</p>\n"
-    ));
+    s.push_str(&format!("<p>{}</p>\n", escape_html(CHART_NOTE)));
     s.push_str(&format!(
         "<p><small>{}</small></p>\n",
         escape_html(DISCLAIMER)
@@ -1472,6 +1465,7 @@ mod tests {
             event_at: "2026-03-01T08:30:00.000Z".into(),
             opening_lot: lot.into(),
             alert: AlertRow {
+                df2: None,
                 id: 4,
                 source: source.into(),
                 characteristic: "mass_g".into(),
@@ -1577,8 +1571,8 @@ mod tests {
                 "{value} missing in html"
             );
         }
-        assert!(text.contains("mean = 197.000000"), "{text}");
-        assert!(text.contains("p = 1.500e-6"), "{text}");
+        assert!(text.contains("mean = 197.00"), "{text}");
+        assert!(text.contains("p = 1.5e-6"), "{text}");
     }
 
     #[test]
@@ -1602,13 +1596,18 @@ mod tests {
     }
 
     #[test]
-    fn chart_band_is_three_standard_errors_of_a_lot_mean() {
-        let i = item("cedar-energy", "CE-9");
-        let band = chart_band(&i.alert);
-        assert!((band - 3.0 / 12f64.sqrt()).abs() < 1e-12, "{band}");
-        let mut a = i.alert.clone();
-        a.baseline_sd = None;
-        assert_eq!(chart_band(&a), 0.0);
+    fn an_f_tests_message_gives_both_dfs_and_numbers_as_people_write_them() {
+        let mut i = item("cedar-energy", "CE-9");
+        i.alert.test = "f-variance".into();
+        i.alert.df = Some(9.0);
+        i.alert.df2 = Some(620.0);
+        i.alert.p_value = Some(0.000123);
+        let text = body(&i);
+        assert!(text.contains("df = 9 and 620"), "{text}");
+        assert!(text.contains("p = 0.00012"), "{text}");
+        assert!(!text.contains("e-4") && !text.contains("000000"), "{text}");
+        i.alert.p_value = Some(1e-14);
+        assert!(body(&i).contains("p < 1e-9"));
     }
 
     fn silence_item(kind: &str, basis: &str) -> SilenceItem {

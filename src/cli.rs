@@ -25,6 +25,7 @@ mod conventions;
 mod progress;
 
 use conventions::{AlternativeArg, MethodArg, TestArg, name_of, who};
+mod html_report;
 
 #[derive(Parser, Debug)]
 #[command(
@@ -135,6 +136,24 @@ enum Command {
         /// Who replaces them, for the audit trail (default: the login name).
         #[arg(long, value_name = "NAME")]
         by: Option<String>,
+        #[command(flatten)]
+        config: ConfigArg,
+    },
+    /// Write one self-contained HTML report (charts with the decision limits, alerts, what
+    /// the engine cannot know) for every source or one source; no network or script needed.
+    Report {
+        /// The HTML file to write.
+        #[arg(long, value_name = "FILE.html")]
+        out: PathBuf,
+        /// Only this source.
+        #[arg(long, value_name = "S")]
+        source: Option<String>,
+        /// Only lots sampled on or after this date (YYYY-MM-DD).
+        #[arg(long, value_name = "DATE")]
+        from: Option<String>,
+        /// Only lots sampled on or before this date (YYYY-MM-DD).
+        #[arg(long, value_name = "DATE")]
+        to: Option<String>,
         #[command(flatten)]
         config: ConfigArg,
     },
@@ -624,6 +643,17 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
         }
         Command::Adjust(args) => adjust(args),
         Command::Backup { file, config } => backup(&load(&config)?, &file).await,
+        Command::Report {
+            out,
+            source,
+            from,
+            to,
+            config,
+        } => {
+            let config = load(&config)?;
+            let store = open_existing(&config).await?;
+            html_report::run(&store, &config, &out, source, from, to).await
+        }
         Command::Completions { shell } => {
             conventions::completions(shell);
             Ok(())

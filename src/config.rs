@@ -13,9 +13,11 @@ use std::time::Duration;
 use serde::Deserialize;
 
 mod input;
+mod web;
 /// The decoder type of [`Encoding::Fixed`] (re-exported so callers need no encoding_rs).
 pub use encoding_rs::Encoding as EncodingRs;
 pub use input::{Delimiter, Encoding, Input, OUR_COLUMNS, Profile, RawInput, RawProfile, Zone};
+pub use web::{RawWeb, Web};
 
 /// A configuration problem, always naming the file and the key (or the TOML position).
 #[derive(Debug, thiserror::Error)]
@@ -56,6 +58,8 @@ pub struct RawConfig {
     /// Input profiles, `[[input.profile]]`.
     #[serde(default)]
     pub input: RawInput,
+    #[serde(default)]
+    pub web: RawWeb,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -171,6 +175,8 @@ pub struct Config {
     pub health: Health,
     pub log: Log,
     pub input: Input,
+    /// The dashboard, when `web.listen` is set.
+    pub web: Option<Web>,
     /// Unit of measure per characteristic (`characteristic.NAME.unit`), for display only.
     pub units: BTreeMap<String, String>,
 }
@@ -889,6 +895,7 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
         level: level_name,
     };
     let input = input::validate_input(&mut p, raw.input);
+    let web = web::validate_web(&mut p, base, raw.web);
 
     if !p.0.is_empty() {
         return Err(ConfigError::Invalid {
@@ -906,6 +913,7 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
         log,
         input,
         units,
+        web,
     })
 }
 
@@ -1217,6 +1225,14 @@ repeat_hours = 24        # announce a still-shifting open alert again after this
 # Ingest or delivery failing for longer than this sends one notice (log always; email too
 # unless email delivery is what fails), and one when it works again. Fractions are allowed.
 notice_after_minutes = 30
+
+# The dashboard in the daemon: overview, charts per series, alerts with acknowledgement.
+# Off unless listen is set. An address other than loopback needs token_file (first line:
+# the access token, at least 16 characters); on loopback without it the daemon writes a
+# token to lotdrift-web.token beside the database.
+# [web]
+# listen = "127.0.0.1:8421"
+# token_file = "web-token.txt"
 
 [log]
 format = "text"          # "text" or "json"

@@ -4,7 +4,8 @@
 //! (`ingest`), records the outcome for the health watch (`health`) and then runs an engine
 //! pass (`engine`); the notifier (`alert`) queues the daily digest, silence notices
 //! (`silence`) and notices of a stuck ingest or delivery (`health`) and drains the outbox,
-//! whenever it is woken and on a timer. All share one cancellation token; SIGTERM or SIGINT cancels it, the file batch in
+//! whenever it is woken and on a timer; the dashboard (`web`, when `[web] listen` is set)
+//! serves pages read through the store. All share one cancellation token; SIGTERM or SIGINT cancels it, the file batch in
 //! flight completes, and the process exits 0. `run_once` is the
 //! same pipeline run a single time over what is in the inbox.
 
@@ -44,6 +45,8 @@ pub enum DaemonError {
     Watch(#[from] watch::WatchError),
     #[error(transparent)]
     Silence(#[from] silence::SilenceError),
+    #[error(transparent)]
+    Web(#[from] crate::web::WebError),
     #[error("cannot create folder {path}")]
     Folder {
         path: std::path::PathBuf,
@@ -186,6 +189,19 @@ pub async fn run(
         let cfg = config.watch.clone();
         tracker.spawn(async move { watch::run(inbox, cfg, ready_tx, cancel).await })
     };
+
+    // Dashboard, when configured: its address is bound before anything else starts, so a
+    // taken port stops the start with an error naming web.listen.
+    if let Some(web) = config.web.clone() {
+        let listener = crate::web::bind(&web).await?;
+        let (store, config, cancel) = (store.clone(), config.clone(), cancel.clone());
+        tracker.spawn(async move {
+            if let Err(e) = crate::web::serve(listener, store, config, web, cancel.clone()).await {
+                tracing::error!(error = %crate::errors::chain(&e), "dashboard failed; stopping");
+                cancel.cancel();
+            }
+        });
+    }
 
     // Notifier.
     {

@@ -96,6 +96,11 @@ pub async fn run(dir: &Path) -> Result<(), Failure> {
     );
     say!("  lotdrift status --json --config {}", cfg.display());
     say!(
+        "  lotdrift report --out {} --config {}   # charts and alerts, one HTML file",
+        abs(dir).join("report.html").display(),
+        cfg.display()
+    );
+    say!(
         "  sqlite3 {} \"SELECT source, characteristic, lot, kind, test, p_adjusted \
          FROM decision_view WHERE significant = 1\"",
         db.display()

@@ -36,6 +36,7 @@
 //! decisions are never rewritten.
 
 pub mod lifecycle;
+pub mod limits;
 pub mod operating;
 pub mod screen;
 

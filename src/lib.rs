@@ -19,6 +19,8 @@
 //! - [`health`]: the daemon says when ingest or delivery is stuck, and when it recovers.
 //! - [`config`]: TOML into a typed, validated configuration.
 //! - [`daemon`]: the tasks of `lotdrift run` and their shutdown; [`demo`]: the bundled tour.
+//! - [`page`]: the HTML report and the dashboard's pages (templates, inline SVG charts with
+//!   the engine's own limits); [`web`]: the dashboard served by the daemon.
 //! - [`cli`]: the commands; `main.rs` only calls [`cli::main`].
 
 /// `println!` that never panics: a reader that closed its end (`lotdrift history … | head`)
@@ -60,9 +62,11 @@ pub mod ingest;
 pub mod intake;
 pub mod lotfile;
 pub mod numbers;
+pub mod page;
 pub mod report;
 pub mod silence;
 pub mod stats;
 pub mod store;
 pub mod time;
 pub mod watch;
+pub mod web;

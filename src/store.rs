@@ -25,6 +25,9 @@ mod bulk;
 mod views;
 
 pub use views::LotDecision;
+mod charts;
+
+pub use charts::{ChartEval, ChartLot, SeriesRow};
 
 use crate::lotfile::Timestamp;
 use crate::stats::Summary;
@@ -582,6 +585,8 @@ pub struct AlertRow {
     pub alternative: String,
     pub statistic: Option<f64>,
     pub df: Option<f64>,
+    /// The second df of an F test (the baseline's), else None.
+    pub df2: Option<f64>,
     pub p_value: Option<f64>,
     pub p_adjusted: Option<f64>,
     pub method: String,
@@ -2924,7 +2929,7 @@ const ALERT_COLUMNS: &str = "a.id, src.name, ch.name, a.state, a.opened_at, a.re
      (SELECT k.acked_by FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1), \
      (SELECT k.acked_at FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1), \
      (SELECT k.note FROM alert_ack k WHERE k.alert_id = a.id ORDER BY k.id DESC LIMIT 1), \
-     e.cusum_upper, e.cusum_lower, e.cusum_h";
+     e.cusum_upper, e.cusum_lower, e.cusum_h, e.df2";
 
 /// The joins behind [`ALERT_COLUMNS`] for alert `a`, with the numbers of evaluation `eval`
 /// (an SQL expression: the opening evaluation, or an event's own).
@@ -2953,6 +2958,7 @@ fn alert_from_row(r: &SqliteRow, o: usize) -> AlertRow {
         alternative: r.get(o + 9),
         statistic: r.get(o + 10),
         df: r.get(o + 11),
+        df2: r.get(o + 36),
         p_value: r.get(o + 12),
         p_adjusted: r.get(o + 13),
         method: r.get(o + 14),

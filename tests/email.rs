@@ -150,8 +150,12 @@ fn an_alert_reaches_every_recipient_once_with_headers_both_parts_and_the_chart()
         );
         let plain = m.body_text(0).unwrap();
         let html = m.body_html(0).unwrap();
-        let lot_mean = format!("mean = {:.6}", alert["lot_mean"].as_f64().unwrap());
-        let p = format!("p = {:.3e}", alert["p_value"].as_f64().unwrap());
+        // Numbers as people write them: 5 significant digits, p as 0.0012 or < 1e-9.
+        let lot_mean = format!(
+            "mean = {}",
+            lotdrift::page::fmt::sig(alert["lot_mean"].as_f64().unwrap(), 5)
+        );
+        let p = format!("p {}", lotdrift::page::fmt::p_is(alert["p_value"].as_f64()));
         for needle in [
             lot_mean.as_str(),
             p.as_str(),
@@ -164,7 +168,7 @@ fn an_alert_reaches_every_recipient_once_with_headers_both_parts_and_the_chart()
                 "{needle:?} missing in text part:\n{plain}"
             );
             assert!(
-                html.contains(needle),
+                html.contains(&needle.replace('<', "&lt;")),
                 "{needle:?} missing in HTML part:\n{html}"
             );
         }
@@ -180,6 +184,12 @@ fn an_alert_reaches_every_recipient_once_with_headers_both_parts_and_the_chart()
             chart.attachment_name()
         );
         assert_eq!(png_size(chart.contents()), (800, 400));
+        let shots = std::path::Path::new(env!("CARGO_TARGET_TMPDIR"))
+            .parent()
+            .unwrap()
+            .join("screenshots");
+        std::fs::create_dir_all(&shots).unwrap();
+        std::fs::write(shots.join("email-chart-mean.png"), chart.contents()).unwrap();
     }
     assert_eq!(
         ids[0], ids[1],
@@ -587,7 +597,10 @@ fn opening_a_grown_shift_and_resolution_each_send_exactly_their_email_and_ack_st
                 .iter()
                 .find(|r| r["lot"] == "AL-025")
                 .expect("AL-025 in the history");
-            let mean = format!("mean = {:.6}", lot25["mean"].as_f64().unwrap());
+            let mean = format!(
+                "mean = {}",
+                lotdrift::page::fmt::sig(lot25["mean"].as_f64().unwrap(), 5)
+            );
             assert!(plain.contains(&mean), "{mean} missing in:\n{plain}");
             assert!(plain.contains("by lot AL-023"), "{plain}");
         }

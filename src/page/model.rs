@@ -1,0 +1,705 @@
+//! What a page shows, gathered through `store` and turned into charts with the engine's own
+//! limits (`engine::limits`). Both the report and the dashboard render these values.
+
+use serde::Serialize;
+
+use super::fmt;
+use super::svg::{Chart, Line, LineStyle, Mark, Point};
+use crate::config::{CharacteristicPolicy, Config, Direction};
+use crate::engine::{self, limits};
+use crate::store::{AlertRow, ChartLot, Design, SeriesRow, Store, StoreError};
+
+/// Which lots a page covers.
+#[derive(Debug, Clone, Default)]
+pub struct Scope {
+    pub source: Option<String>,
+    /// Sampling dates, `YYYY-MM-DD`, inclusive.
+    pub from: Option<String>,
+    pub to: Option<String>,
+    /// At most this many of the latest lots per series.
+    pub max_lots: i64,
+}
+
+/// One series as a page shows it.
+#[derive(Debug, Clone, Serialize)]
+pub struct SeriesPage {
+    pub id: i64,
+    pub source: String,
+    pub characteristic: String,
+    /// "alert", "watch" (baseline not frozen), or "in control".
+    pub state: &'static str,
+    pub row: SeriesRow,
+    /// The newest lot's sampling time, as people write it.
+    pub newest: String,
+    /// Facts about the design, as (label, value).
+    pub facts: Vec<(String, String)>,
+    pub notes: Vec<String>,
+    pub charts: Vec<String>,
+    pub lots: Vec<LotLine>,
+}
+
+/// One lot in a series' table.
+#[derive(Debug, Clone, Serialize)]
+pub struct LotLine {
+    pub lot: String,
+    pub when: String,
+    pub role: &'static str,
+    pub n: u64,
+    pub mean: String,
+    pub sd: String,
+    pub mean_p: String,
+    pub mean_decision: String,
+    pub spread: String,
+    pub spread_decision: String,
+    pub outliers: String,
+    pub cpk: String,
+}
+
+/// An alert with the numbers behind it, formatted.
+#[derive(Debug, Clone, Serialize)]
+pub struct AlertLine {
+    pub id: i64,
+    pub source: String,
+    pub characteristic: String,
+    pub kind: String,
+    pub state: String,
+    pub opened_at: String,
+    pub resolved_at: String,
+    pub lot: String,
+    pub test: String,
+    pub numbers: String,
+    pub acknowledged: String,
+    pub note: String,
+}
+
+/// One series in an overview: its names, state and counts, no charts.
+#[derive(Debug, Clone, Serialize)]
+pub struct SeriesBrief {
+    pub id: i64,
+    pub source: String,
+    pub characteristic: String,
+    pub state: &'static str,
+    pub newest: String,
+    pub row: SeriesRow,
+}
+
+fn state_of(row: &SeriesRow) -> &'static str {
+    if row.open_mean.is_some() || row.open_spread.is_some() {
+        "alert"
+    } else if row.baseline_lots == 0 {
+        "collecting baseline"
+    } else {
+        "in control"
+    }
+}
+
+/// A series for an overview.
+pub fn brief(row: SeriesRow) -> SeriesBrief {
+    SeriesBrief {
+        id: row.id,
+        source: row.source.clone(),
+        characteristic: row.characteristic.clone(),
+        state: state_of(&row),
+        newest: row
+            .last_lot_at
+            .as_deref()
+            .map(fmt::when)
+            .unwrap_or_default(),
+        row,
+    }
+}
+
+/// The chart of the quantity an alert is about (within-lot spread for a spread alert, the
+/// CUSUM path for one the CUSUM opened, else the lot means), over the series' latest
+/// `max_lots` lots, with the engine's limits; None when the series is not stored.
+pub async fn alert_chart(
+    store: &Store,
+    config: &Config,
+    a: &AlertRow,
+    max_lots: i64,
+) -> Result<Option<Chart>, StoreError> {
+    let Some(id) = store.series_named(&a.source, &a.characteristic).await? else {
+        return Ok(None);
+    };
+    let design = store.series_design(id).await?;
+    let lots = store.chart_lots(id, None, None, max_lots).await?;
+    let policy = config.monitor.policy(&a.characteristic);
+    let key = format!("s{id}");
+    let mut chart = match (a.kind.as_str(), a.test.as_str()) {
+        ("spread", _) => spread_chart(&key, &lots, design.as_ref()),
+        (_, "cusum") => cusum_chart(&key, &lots),
+        _ => {
+            let geo = match &design {
+                Some(d) if d.log_scale => geometric_means(store, &lots).await?,
+                _ => Vec::new(),
+            };
+            mean_chart(&key, &lots, design.as_ref(), &policy, &geo)
+        }
+    };
+    let what = match (a.kind.as_str(), a.test.as_str()) {
+        ("spread", _) => "within-lot spread",
+        (_, "cusum") => "CUSUM path",
+        _ => "lot means",
+    };
+    chart.title = format!(
+        "{} / {}: {what}, alert A{}",
+        a.source, a.characteristic, a.id
+    );
+    Ok(Some(chart))
+}
+
+/// Reads the series of `scope` and builds their pages.
+pub async fn series_pages(
+    store: &Store,
+    config: &Config,
+    scope: &Scope,
+) -> Result<Vec<SeriesPage>, StoreError> {
+    let mut out = Vec::new();
+    for row in store.series_list(scope.source.as_deref()).await? {
+        out.push(series_page(store, config, scope, row).await?);
+    }
+    Ok(out)
+}
+
+/// One series' page.
+pub async fn series_page(
+    store: &Store,
+    config: &Config,
+    scope: &Scope,
+    row: SeriesRow,
+) -> Result<SeriesPage, StoreError> {
+    let design = store.series_design(row.id).await?;
+    let lots = store
+        .chart_lots(
+            row.id,
+            scope.from.as_deref(),
+            scope.to.as_deref(),
+            scope.max_lots,
+        )
+        .await?;
+    let policy = config.monitor.policy(&row.characteristic);
+    let geo = match &design {
+        Some(d) if d.log_scale => geometric_means(store, &lots).await?,
+        _ => Vec::new(),
+    };
+    let id = format!("s{}", row.id);
+    let mut charts = vec![mean_chart(&id, &lots, design.as_ref(), &policy, &geo)];
+    if lots.iter().any(|l| l.spread.is_some()) {
+        charts.push(spread_chart(&id, &lots, design.as_ref()));
+    }
+    if lots
+        .iter()
+        .any(|l| l.mean.as_ref().is_some_and(|m| m.cusum.is_some()))
+    {
+        charts.push(cusum_chart(&id, &lots));
+    }
+    let state = state_of(&row);
+    Ok(SeriesPage {
+        id: row.id,
+        source: row.source.clone(),
+        characteristic: row.characteristic.clone(),
+        state,
+        facts: facts(&row, design.as_ref(), config),
+        notes: notes(design.as_ref(), &policy, &lots),
+        charts: charts.iter().map(super::svg::render).collect(),
+        lots: lots.iter().map(lot_line).collect(),
+        newest: row
+            .last_lot_at
+            .as_deref()
+            .map(fmt::when)
+            .unwrap_or_default(),
+        row,
+    })
+}
+
+/// Geometric mean of each lot's units (log-scale series; NaN where a unit is not above 0).
+async fn geometric_means(store: &Store, lots: &[ChartLot]) -> Result<Vec<f64>, StoreError> {
+    let ids: Vec<i64> = lots.iter().map(|l| l.sample_id).collect();
+    let values = store.values(&ids).await?;
+    Ok(lots
+        .iter()
+        .map(|l| match values.get(&l.sample_id) {
+            Some(v) if !v.is_empty() && v.iter().all(|x| *x > 0.0) => {
+                (v.iter().map(|x| x.ln()).sum::<f64>() / v.len() as f64).exp()
+            }
+            _ => f64::NAN,
+        })
+        .collect())
+}
+
+fn tip(l: &ChartLot, what: &str, v: f64) -> String {
+    format!(
+        "lot {} ({}), n = {}: {what} {}",
+        l.lot,
+        fmt::when(&l.order_time),
+        l.summary.n(),
+        fmt::sig(v, 4)
+    )
+}
+
+/// What is written above a lot's point: the alerts of `kind` it opened, its outliers.
+fn label(l: &ChartLot, kind: &str) -> Option<String> {
+    let mut parts: Vec<String> = l
+        .opened
+        .iter()
+        .filter(|(k, _)| k == kind)
+        .map(|(_, a)| format!("A{a}"))
+        .collect();
+    if l.outliers > 0 {
+        parts.push(format!("{}×out", l.outliers));
+    }
+    (!parts.is_empty()).then(|| parts.join(" "))
+}
+
+/// The value plotted for a lot on the mean chart: the mean the decision tested (outliers set
+/// aside), the geometric mean on a log-scale series, the stored mean for baseline lots.
+fn plotted_mean(l: &ChartLot, design: Option<&Design>, geo: Option<f64>) -> f64 {
+    let log = design.is_some_and(|d| d.log_scale);
+    match (&l.mean, log) {
+        (Some(e), true) => e.lot_mean.exp(),
+        (Some(e), false) => e.lot_mean,
+        (None, true) => geo.unwrap_or(f64::NAN),
+        (None, false) => l.summary.mean(),
+    }
+}
+
+fn mean_chart(
+    id: &str,
+    lots: &[ChartLot],
+    design: Option<&Design>,
+    policy: &CharacteristicPolicy,
+    geo: &[f64],
+) -> Chart {
+    let mut points = Vec::new();
+    for (i, l) in lots.iter().enumerate() {
+        let y = plotted_mean(l, design, geo.get(i).copied());
+        let mark = match &l.mean {
+            Some(e) if e.significant => Mark::Flagged,
+            Some(_) => Mark::Tested,
+            None => Mark::Baseline,
+        };
+        points.push(Point {
+            x: i,
+            y,
+            mark,
+            label: label(l, "mean"),
+            tip: tip(l, "mean", y),
+        });
+    }
+    let lines = design
+        .map(|d| mean_lines(lots, d, policy))
+        .unwrap_or_default();
+    let log = design.is_some_and(|d| d.log_scale);
+    Chart {
+        id: format!("{id}-mean"),
+        title: "Lot means against the baseline and the lot test's decision limits".into(),
+        y_label: if log {
+            "geometric lot mean"
+        } else {
+            "lot mean"
+        }
+        .into(),
+        lots: lots.iter().map(|l| l.lot.clone()).collect(),
+        points,
+        lines,
+        legend: vec![
+            (Mark::Baseline, "baseline lot"),
+            (Mark::Tested, "tested, in control"),
+            (Mark::Flagged, "flagged"),
+        ],
+        limit_name: "decision limit".into(),
+    }
+}
+
+/// The centre and the limits of each lot (its own size and level).
+fn mean_lines(lots: &[ChartLot], d: &Design, policy: &CharacteristicPolicy) -> Vec<Line> {
+    let centre = if d.log_scale {
+        d.re.mean_of_means.exp()
+    } else {
+        d.re.mean_of_means
+    };
+    let mut inner = Vec::new();
+    let mut outer = Vec::new();
+    for l in lots {
+        let (n, level, k) = match &l.mean {
+            Some(e) => (e.lot_n as u64, e.level, e.family_size.max(1)),
+            None => (d.re.n_harmonic.round() as u64, d.level_mean, 1),
+        };
+        let within = limits::to_values(d, limits::mean_limits(d, policy, n, level));
+        inner.push(within);
+        outer
+            .push((k > 1).then(|| {
+                limits::to_values(d, limits::mean_limits(d, policy, n, level / k as f64))
+            }));
+    }
+    let side = |f: fn(&limits::Limits) -> Option<f64>, v: &[limits::Limits]| {
+        v.iter().map(f).collect::<Vec<_>>()
+    };
+    let mut lines = vec![Line {
+        name: "baseline".into(),
+        values: vec![Some(centre); lots.len()],
+        style: LineStyle::Centre,
+    }];
+    for (name, f) in [
+        ("upper limit", (|l: &limits::Limits| l.upper) as fn(&_) -> _),
+        ("lower limit", |l: &limits::Limits| l.lower),
+    ] {
+        let values = side(f, &inner);
+        if values.iter().any(Option::is_some) {
+            lines.push(Line {
+                name: name.into(),
+                values,
+                style: LineStyle::Limit,
+            });
+        }
+        let values: Vec<Option<f64>> = outer.iter().map(|o| o.as_ref().and_then(f)).collect();
+        if values.iter().any(Option::is_some) {
+            lines.push(Line {
+                name: format!("{name}, whole family"),
+                values,
+                style: LineStyle::Outer,
+            });
+        }
+    }
+    lines
+}
+
+fn spread_chart(id: &str, lots: &[ChartLot], design: Option<&Design>) -> Chart {
+    let mut points = Vec::new();
+    let mut limit = Vec::new();
+    for (i, l) in lots.iter().enumerate() {
+        let Some(e) = &l.spread else {
+            limit.push(None);
+            continue;
+        };
+        limit.push(design.and_then(|d| limits::spread_limit(d, e.lot_n as u64, e.level)));
+        if let Some(r) = e.estimate {
+            points.push(Point {
+                x: i,
+                y: r,
+                mark: if e.significant {
+                    Mark::Flagged
+                } else {
+                    Mark::Tested
+                },
+                label: label(l, "spread"),
+                tip: format!("{}, p = {}", tip(l, "spread ratio", r), fmt::p(e.p_value)),
+            });
+        }
+    }
+    let f_test = lots
+        .iter()
+        .filter_map(|l| l.spread.as_ref())
+        .any(|e| e.test == "f-variance");
+    Chart {
+        id: format!("{id}-spread"),
+        title: "Within-lot spread of each tested lot relative to the baseline's".into(),
+        y_label: if f_test {
+            "variance ratio"
+        } else {
+            "spread ratio"
+        }
+        .into(),
+        lots: lots.iter().map(|l| l.lot.clone()).collect(),
+        points,
+        lines: vec![
+            Line {
+                name: "as in baseline".into(),
+                values: lots
+                    .iter()
+                    .map(|l| l.spread.as_ref().map(|_| 1.0))
+                    .collect(),
+                style: LineStyle::Centre,
+            },
+            Line {
+                name: "limit".into(),
+                values: limit,
+                style: LineStyle::Limit,
+            },
+        ],
+        legend: vec![(Mark::Tested, "in control"), (Mark::Flagged, "flagged")],
+        limit_name: "decision limit".into(),
+    }
+}
+
+/// The two CUSUM sums of a lot as points; the larger one is a diamond when the lot signalled,
+/// labelled at the first lot of a run of signals.
+fn cusum_points(
+    i: usize,
+    l: &ChartLot,
+    (u, d): (f64, f64),
+    signal: bool,
+    first: bool,
+) -> [Point; 2] {
+    [(u, Mark::Up, "upper sum"), (d, Mark::Down, "lower sum")].map(|(v, mark, what)| {
+        let top = signal && v == u.max(d);
+        Point {
+            x: i,
+            y: v,
+            mark: if top { Mark::Flagged } else { mark },
+            label: (top && first).then(|| "signal".to_string()),
+            tip: tip(l, what, v),
+        }
+    })
+}
+
+fn cusum_chart(id: &str, lots: &[ChartLot]) -> Chart {
+    let mut points = Vec::new();
+    let (mut up, mut down, mut h) = (Vec::new(), Vec::new(), Vec::new());
+    let mut previous = false;
+    for (i, l) in lots.iter().enumerate() {
+        let c = l
+            .mean
+            .as_ref()
+            .and_then(|e| e.cusum.map(|c| (c, e.cusum_signal)));
+        up.push(c.map(|((u, _, _), _)| u));
+        down.push(c.map(|((_, d, _), _)| d));
+        h.push(c.map(|((_, _, h), _)| h));
+        if let Some(((u, d, _), signal)) = c {
+            points.extend(cusum_points(i, l, (u, d), signal, !previous));
+        }
+        previous = c.is_some_and(|(_, s)| s);
+    }
+    let line = |name: &str, values, style| Line {
+        name: name.into(),
+        values,
+        style,
+    };
+    Chart {
+        id: format!("{id}-cusum"),
+        title: "CUSUM of standardised lot means against its decision interval h".into(),
+        y_label: "CUSUM (sd of a lot mean)".into(),
+        lots: lots.iter().map(|l| l.lot.clone()).collect(),
+        points,
+        lines: vec![
+            line("upward drift", up, LineStyle::Path),
+            line("downward drift", down, LineStyle::PathDashed),
+            line("h", h, LineStyle::Limit),
+        ],
+        legend: vec![
+            (Mark::Up, "upward sum"),
+            (Mark::Down, "downward sum"),
+            (Mark::Flagged, "signal"),
+        ],
+        limit_name: "decision interval h".into(),
+    }
+}
+
+fn facts(row: &SeriesRow, design: Option<&Design>, config: &Config) -> Vec<(String, String)> {
+    let mut f = vec![("lots stored".to_string(), row.lots.to_string())];
+    let Some(d) = design else {
+        f.push((
+            "baseline".into(),
+            format!(
+                "not frozen yet: {} of {} lots",
+                row.lots, config.monitor.baseline_lots
+            ),
+        ));
+        return f;
+    };
+    let re = &d.re;
+    f.push((
+        "baseline".into(),
+        format!("first {} lots, {} units", re.m, re.n_total),
+    ));
+    f.push((
+        "baseline mean (of lot means)".into(),
+        fmt::sig(re.mean_of_means, 5),
+    ));
+    f.push(("within-lot sd".into(), fmt::sig(re.var_within.sqrt(), 3)));
+    f.push(("between-lot sd".into(), fmt::sig(re.var_between.sqrt(), 3)));
+    f.push(("lot test level (per lot)".into(), fmt::sig(d.level_mean, 2)));
+    if let Some((k, h)) = d.cusum {
+        f.push((
+            "CUSUM k, h".into(),
+            format!("{}, {}", fmt::sig(k, 3), fmt::sig(h, 3)),
+        ));
+    }
+    if let Some(c) = engine::baseline_cpk(d, &config.monitor, &row.characteristic) {
+        f.push((
+            "Cpk of the baseline (95 % interval)".into(),
+            format!(
+                "{} ({} – {})",
+                fmt::sig(c.cpk, 3),
+                fmt::sig(c.low, 3),
+                fmt::sig(c.high, 3)
+            ),
+        ));
+    }
+    if let Some(s) = engine::detectable_shift(d, &config.monitor, &row.characteristic) {
+        f.push(("shift one lot shows (90 % power)".into(), fmt::sig(s, 3)));
+    }
+    f
+}
+
+fn notes(design: Option<&Design>, policy: &CharacteristicPolicy, lots: &[ChartLot]) -> Vec<String> {
+    let mut n = Vec::new();
+    let Some(d) = design else {
+        return n;
+    };
+    if d.re.var_between > 0.0 {
+        n.push("Lots differ from each other more than their units explain: the limits include that lot-to-lot variation.".into());
+    } else {
+        n.push("The baseline shows no lot-to-lot variation beyond its units': the limits rest on the within-lot spread.".into());
+    }
+    match policy.direction {
+        Direction::TwoSided => {}
+        Direction::HigherIsBetter => n.push("Higher is better here: only a fall is tested.".into()),
+        Direction::LowerIsBetter => n.push("Lower is better here: only a rise is tested.".into()),
+    }
+    if policy.min_shift > 0.0 {
+        n.push(format!(
+            "Only shifts significantly larger than {} count.",
+            fmt::sig(policy.min_shift, 3)
+        ));
+    }
+    if d.log_scale {
+        n.push("Tested on the log scale (positive, right-skewed values): the chart shows geometric lot means.".into());
+    }
+    if lots
+        .iter()
+        .any(|l| l.mean.as_ref().is_some_and(|e| e.test == "mann-whitney"))
+    {
+        n.push("Some lots were tested by ranks of their units (the baseline's units are not normal); for those the limits are a guide, the marks show the decision.".into());
+    }
+    if lots
+        .iter()
+        .any(|l| l.mean.as_ref().is_some_and(|e| e.family_size > 1))
+    {
+        n.push("Several characteristics of a lot are tested together: a lot inside the dashed limits is never flagged by the lot test, a lot beyond the dotted ones always is; between them it depends on the lot's other characteristics.".into());
+    }
+    n
+}
+
+fn decision(e: &crate::store::ChartEval) -> String {
+    if e.significant {
+        if e.test == "cusum" {
+            "flagged (CUSUM)".into()
+        } else {
+            "flagged".into()
+        }
+    } else {
+        "in control".into()
+    }
+}
+
+fn lot_line(l: &ChartLot) -> LotLine {
+    LotLine {
+        lot: l.lot.clone(),
+        when: fmt::when(&l.order_time),
+        role: if l.baseline {
+            "baseline"
+        } else if l.mean.is_some() {
+            "tested"
+        } else {
+            "pending"
+        },
+        n: l.summary.n(),
+        mean: fmt::sig(l.summary.mean(), 5),
+        sd: fmt::opt(l.summary.sd(), 3),
+        mean_p: l.mean.as_ref().map_or("–".into(), |e| fmt::p(e.p_value)),
+        mean_decision: l.mean.as_ref().map_or(String::new(), decision),
+        spread: l
+            .spread
+            .as_ref()
+            .map_or("–".into(), |e| fmt::opt(e.estimate, 3)),
+        spread_decision: l.spread.as_ref().map_or(String::new(), decision),
+        outliers: match (l.outliers, l.set_aside) {
+            (0, _) => String::new(),
+            (n, s) => format!("{n} ({s} set aside)"),
+        },
+        cpk: l
+            .mean
+            .as_ref()
+            .and_then(|e| e.cpk)
+            .map_or(String::new(), |c| fmt::sig(c[0], 3)),
+    }
+}
+
+/// The alerts of `scope`'s source (all sources without one), open first, then newest.
+pub fn alert_lines(alerts: &[AlertRow], scope: &Scope) -> Vec<AlertLine> {
+    let mut rows: Vec<&AlertRow> = alerts
+        .iter()
+        .filter(|a| scope.source.as_ref().is_none_or(|s| *s == a.source))
+        .collect();
+    rows.sort_by(|a, b| {
+        (a.state != "open")
+            .cmp(&(b.state != "open"))
+            .then(b.id.cmp(&a.id))
+    });
+    rows.into_iter().map(alert_line).collect()
+}
+
+/// Resolved alerts a report lists at most (the newest), besides every open one.
+const RECENT_RESOLVED: usize = 20;
+
+/// The alerts of a report: every open one of the scope's source, and the newest resolved ones
+/// (at most 20) that were open at some time within the scope's dates.
+pub fn report_alerts(alerts: &[AlertRow], scope: &Scope) -> Vec<AlertLine> {
+    let day = |t: &str| t.chars().take(10).collect::<String>();
+    let within = |a: &AlertRow| {
+        let ended = a.resolved_at.as_deref().map(day);
+        scope
+            .from
+            .as_ref()
+            .is_none_or(|f| ended.as_ref().is_none_or(|e| e >= f))
+            && scope.to.as_ref().is_none_or(|t| day(&a.opened_at) <= *t)
+    };
+    let kept: Vec<AlertRow> = alerts
+        .iter()
+        .filter(|a| a.state == "open" || within(a))
+        .cloned()
+        .collect();
+    let mut lines = alert_lines(&kept, scope);
+    let mut resolved = 0;
+    lines.retain(|a| {
+        resolved += usize::from(a.state != "open");
+        a.state == "open" || resolved <= RECENT_RESOLVED
+    });
+    lines
+}
+
+fn alert_line(a: &AlertRow) -> AlertLine {
+    let df = match (a.df, a.kind.as_str()) {
+        (Some(df), _) => format!(", df = {}", fmt::sig(df, 3)),
+        _ => String::new(),
+    };
+    let numbers = format!(
+        "lot mean {} (n = {}) against baseline {} (n = {}); difference {}, 95 % interval {}; \
+         statistic {}{df}; p {}, adjusted {} (level {}, {} tested together); {} lot(s) so far",
+        fmt::sig(a.lot_mean, 5),
+        a.lot_n,
+        fmt::sig(a.baseline_mean, 5),
+        a.baseline_n,
+        fmt::opt(a.estimate, 3),
+        a.ci.map_or("–".into(), |c| format!(
+            "{} to {}",
+            fmt::sig(c[0], 3),
+            fmt::sig(c[1], 3)
+        )),
+        fmt::opt(a.statistic, 3),
+        fmt::p_is(a.p_value),
+        fmt::p_is(a.p_adjusted),
+        fmt::sig(a.level, 2),
+        a.family_size,
+        a.lots
+    );
+    AlertLine {
+        id: a.id,
+        source: a.source.clone(),
+        characteristic: a.characteristic.clone(),
+        kind: a.kind.clone(),
+        state: a.state.clone(),
+        opened_at: fmt::when(&a.opened_at),
+        resolved_at: a.resolved_at.as_deref().map(fmt::when).unwrap_or_default(),
+        lot: a.lot.clone(),
+        test: a.test.clone(),
+        numbers,
+        acknowledged: a
+            .acknowledged
+            .as_ref()
+            .map(|k| format!("{} at {}: {}", k.by, fmt::when(&k.at), k.note))
+            .unwrap_or_default(),
+        note: a.note.clone().unwrap_or_default(),
+    }
+}
