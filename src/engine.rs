@@ -65,15 +65,30 @@ pub enum EngineError {
 /// source is never split, since one lot's characteristics form a family.
 const SERIES_PER_PASS: usize = 64;
 
+/// Undecided lots per transaction, roughly: the unit values of every lot of a chunk are read
+/// at once, so a year's export (a thousand lots per series) is decided a few series at a time.
+/// A chunk still holds at least one whole source.
+const LOTS_PER_PASS: usize = 4096;
+
+/// Where the next chunk of `work` (sorted by source) ends.
+fn chunk_end(work: &[SeriesWork]) -> usize {
+    let (mut end, mut lots) = (0, 0);
+    while end < work.len() && end < SERIES_PER_PASS && (end == 0 || lots < LOTS_PER_PASS) {
+        lots += work[end].pending.len();
+        end += 1;
+    }
+    while end < work.len() && work[end].source == work[end - 1].source {
+        end += 1;
+    }
+    end
+}
+
 /// Loads the undecided lots, decides them, and writes the decisions.
 pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, EngineError> {
     let mut work = store.pending_work().await?;
     let mut total = PassCounts::default();
     while !work.is_empty() {
-        let mut end = SERIES_PER_PASS.min(work.len());
-        while end < work.len() && work[end].source == work[end - 1].source {
-            end += 1;
-        }
+        let end = chunk_end(&work);
         let mut chunk: Vec<SeriesWork> = work.drain(..end).collect();
         // Unit values of every lot to be screened: the pending lots (a baseline about to be
         // frozen is among them). Read once; the checks below use them too.
@@ -1239,4 +1254,44 @@ pub fn design_note(d: &Design, monitor: &Monitor) -> String {
         ));
     }
     s
+}
+
+#[cfg(test)]
+mod chunk_tests {
+    use super::*;
+    use crate::store::SeriesSample;
+
+    fn work(source: &str, lots: usize) -> SeriesWork {
+        let mut w = operating::empty_work(0);
+        w.source = source.to_owned();
+        let summary = Summary::from_slice(&[1.0, 2.0]).unwrap();
+        w.pending = (0..lots)
+            .map(|i| SeriesSample {
+                sample_id: i as i64,
+                lot_id: i as i64,
+                lot: format!("L{i}"),
+                order_time: String::new(),
+                summary,
+                evaluated: false,
+            })
+            .collect();
+        w
+    }
+
+    #[test]
+    fn chunks_end_at_the_lot_budget_but_never_inside_a_source() {
+        // Three characteristics of a year's export per source: one source fills the budget.
+        let many: Vec<SeriesWork> = ["a", "a", "a", "b", "b", "b"]
+            .iter()
+            .map(|s| work(s, 1500))
+            .collect();
+        assert_eq!(chunk_end(&many), 3);
+        assert_eq!(chunk_end(&many[3..]), 3);
+        // Small backlogs: the series bound applies, extended to the end of the source.
+        let few: Vec<SeriesWork> = (0..100).map(|i| work(&format!("s{}", i / 3), 2)).collect();
+        assert_eq!(chunk_end(&few), 66);
+        // One huge series still forms a chunk.
+        assert_eq!(chunk_end(&[work("a", 50_000)]), 1);
+        assert_eq!(chunk_end(&[]), 0);
+    }
 }

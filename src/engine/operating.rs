@@ -274,7 +274,7 @@ pub fn run(scenario: &Scenario, monitor: &Monitor) -> Outcome {
     out
 }
 
-fn empty_work(s: usize) -> SeriesWork {
+pub(super) fn empty_work(s: usize) -> SeriesWork {
     SeriesWork {
         series_id: s as i64,
         source: format!("sim-{s:04}"),
