@@ -489,16 +489,21 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                     "no source named {source:?} is stored"
                 )));
             }
-            let rows = store
-                .history(&source, characteristic.as_deref())
+            let format = match (json, csv) {
+                (true, _) => report::HistoryFormat::Json,
+                (_, true) => report::HistoryFormat::Csv,
+                _ => report::HistoryFormat::Text,
+            };
+            // Rows go out as they are read. A closed standard output (`| head`) ends the
+            // read early and is not an error, as with every other command's output.
+            let out = std::io::BufWriter::new(std::io::stdout().lock());
+            let mut writer = report::HistoryWriter::new(format, out);
+            let written = store
+                .history_each(&source, characteristic.as_deref(), |lot| writer.row(lot))
                 .await
                 .context("history")?;
-            if json {
-                print_json(&report::history_json(&rows));
-            } else if csv {
-                say_part!("{}", report::history_csv(&rows));
-            } else {
-                say_part!("{}", report::history_text(&rows));
+            if written.is_ok() {
+                let _ = writer.finish();
             }
             Ok(())
         }

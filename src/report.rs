@@ -7,45 +7,114 @@ use serde_json::{Value, json};
 
 use crate::health::{ComponentStatus, HealthStatus};
 use crate::stats::compare::{Comparison, Df};
-use crate::store::{AlertRow, HistoryRow, SilentSource, StatusCounts, UndeliveredRow};
+use crate::store::{AlertRow, HistoryLot, HistoryRow, SilentSource, StatusCounts, UndeliveredRow};
 
 /// A plain text table with a header row, columns padded to their widest cell.
 pub fn table(header: &[&str], rows: &[Vec<String>]) -> String {
-    let mut widths: Vec<usize> = header.iter().map(|h| h.chars().count()).collect();
+    let mut t = TextTable::new(header);
     for r in rows {
-        for (i, c) in r.iter().enumerate() {
-            if i < widths.len() {
-                widths[i] = widths[i].max(c.chars().count());
-            }
+        for c in r {
+            t.cell(c);
+        }
+        t.end_row();
+    }
+    let mut out = Vec::new();
+    let _ = t.write_to(&mut out);
+    String::from_utf8(out).unwrap_or_default()
+}
+
+/// A text table built one cell at a time: every cell is appended to one string (no string per
+/// cell), each column's width follows its widest cell, and [`TextTable::write_to`] pads the
+/// columns (two spaces between them, none after the last) under a header and a rule of dashes.
+#[derive(Debug, Default)]
+pub struct TextTable {
+    header: Vec<String>,
+    widths: Vec<usize>,
+    cells: String,
+    /// Where each cell ends in `cells`.
+    ends: Vec<usize>,
+    /// How many cells each row has.
+    row_len: Vec<u16>,
+    /// Cells of the row being built.
+    open: u16,
+}
+
+impl TextTable {
+    pub fn new(header: &[&str]) -> TextTable {
+        TextTable {
+            header: header.iter().map(|h| h.to_string()).collect(),
+            widths: header.iter().map(|h| h.chars().count()).collect(),
+            ..TextTable::default()
         }
     }
-    let line = |cells: Vec<&str>| -> String {
-        let mut s = String::new();
-        for (i, c) in cells.iter().enumerate() {
-            if i > 0 {
-                s.push_str("  ");
-            }
-            s.push_str(c);
-            if i + 1 < cells.len() {
-                s.push_str(&" ".repeat(widths[i].saturating_sub(c.chars().count())));
-            }
+
+    /// Appends a cell to the current row.
+    pub fn cell(&mut self, v: impl std::fmt::Display) {
+        use std::fmt::Write as _;
+        let start = self.cells.len();
+        let _ = write!(self.cells, "{v}");
+        let width = self.cells[start..].chars().count();
+        let col = usize::from(self.open);
+        if col < self.widths.len() {
+            self.widths[col] = self.widths[col].max(width);
+        } else {
+            self.widths.push(width);
         }
-        s.trim_end().to_string() + "\n"
-    };
-    let mut out = line(header.to_vec());
-    out.push_str(&line(
-        widths
+        self.ends.push(self.cells.len());
+        self.open += 1;
+    }
+
+    /// Ends the current row.
+    pub fn end_row(&mut self) {
+        self.row_len.push(self.open);
+        self.open = 0;
+    }
+
+    /// The header, the rule and every row, padded.
+    pub fn write_to(&self, out: &mut impl std::io::Write) -> std::io::Result<()> {
+        let mut line = String::new();
+        let header: Vec<&str> = self.header.iter().map(String::as_str).collect();
+        self.write_line(out, &mut line, &header)?;
+        let rule: Vec<String> = self.widths[..self.header.len()]
             .iter()
             .map(|w| "-".repeat(*w))
-            .collect::<Vec<_>>()
-            .iter()
-            .map(String::as_str)
-            .collect(),
-    ));
-    for r in rows {
-        out.push_str(&line(r.iter().map(String::as_str).collect()));
+            .collect();
+        let rule: Vec<&str> = rule.iter().map(String::as_str).collect();
+        self.write_line(out, &mut line, &rule)?;
+        let (mut cell, mut start) = (0, 0);
+        let mut row: Vec<&str> = Vec::new();
+        for len in &self.row_len {
+            row.clear();
+            for end in &self.ends[cell..cell + usize::from(*len)] {
+                row.push(&self.cells[start..*end]);
+                start = *end;
+            }
+            cell += usize::from(*len);
+            self.write_line(out, &mut line, &row)?;
+        }
+        Ok(())
     }
-    out
+
+    fn write_line(
+        &self,
+        out: &mut impl std::io::Write,
+        line: &mut String,
+        cells: &[&str],
+    ) -> std::io::Result<()> {
+        line.clear();
+        for (i, c) in cells.iter().enumerate() {
+            if i > 0 {
+                line.push_str("  ");
+            }
+            line.push_str(c);
+            if i + 1 < cells.len() {
+                let pad = self.widths[i].saturating_sub(c.chars().count());
+                line.extend(std::iter::repeat_n(' ', pad));
+            }
+        }
+        out.write_all(line.trim_end().as_bytes())?;
+        out.write_all(b"\n")
+    }
 }
 
 fn num(v: Option<f64>, digits: usize) -> String {
@@ -340,8 +409,29 @@ pub fn alerts_text(alerts: &[AlertRow]) -> String {
     )
 }
 
-pub fn history_json(rows: &[HistoryRow]) -> Value {
-    Value::Array(rows.iter().map(|r| json!(r)).collect())
+/// `history --json` as one string (see [`HistoryWriter`]).
+pub fn history_json(rows: &[HistoryRow]) -> String {
+    history_into(HistoryFormat::Json, rows)
+}
+
+/// `history --csv` as one string (see [`HistoryWriter`]).
+pub fn history_csv(rows: &[HistoryRow]) -> String {
+    history_into(HistoryFormat::Csv, rows)
+}
+
+/// The `history` table as one string (see [`HistoryWriter`]).
+pub fn history_text(rows: &[HistoryRow]) -> String {
+    history_into(HistoryFormat::Text, rows)
+}
+
+fn history_into(format: HistoryFormat, rows: &[HistoryRow]) -> String {
+    let mut out = Vec::new();
+    let mut w = HistoryWriter::new(format, &mut out);
+    for r in rows {
+        let _ = w.row(&r.as_lot());
+    }
+    let _ = w.finish();
+    String::from_utf8(out).unwrap_or_default()
 }
 
 const HISTORY_HEADER: [&str; 15] = [
@@ -362,64 +452,229 @@ const HISTORY_HEADER: [&str; 15] = [
     "outliers",
 ];
 
-pub fn history_csv(rows: &[HistoryRow]) -> String {
-    let mut w = csv::Writer::from_writer(Vec::new());
-    let _ = w.write_record(HISTORY_HEADER);
-    for r in rows {
-        let _ = w.write_record([
-            r.source.clone(),
-            r.characteristic.clone(),
-            r.lot.clone(),
-            r.sampled_at.clone().unwrap_or_default(),
-            r.n.to_string(),
-            r.mean.to_string(),
-            r.sd.map(|v| v.to_string()).unwrap_or_default(),
-            r.min.to_string(),
-            r.max.to_string(),
-            r.role.clone(),
-            r.p_value.map(|v| v.to_string()).unwrap_or_default(),
-            r.p_adjusted.map(|v| v.to_string()).unwrap_or_default(),
-            r.alert_id.map(|v| v.to_string()).unwrap_or_default(),
-            r.events.clone(),
-            r.outliers.clone(),
-        ]);
-    }
-    String::from_utf8(w.into_inner().unwrap_or_default()).unwrap_or_default()
+/// How `history` is written.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum HistoryFormat {
+    /// A table for people (padded columns, rounded numbers).
+    Text,
+    /// One CSV record per lot under [`HISTORY_HEADER`], numbers in full.
+    Csv,
+    /// A pretty-printed array of one object per lot ([`HistoryJson`]), ending in a newline.
+    Json,
 }
 
-pub fn history_text(rows: &[HistoryRow]) -> String {
-    let body: Vec<Vec<String>> = rows
-        .iter()
-        .map(|r| {
-            vec![
-                r.source.clone(),
-                r.characteristic.clone(),
-                r.lot.clone(),
-                r.sampled_at
-                    .as_deref()
-                    .map(|s| s[..10].to_string())
-                    .unwrap_or_else(|| "-".into()),
-                r.n.to_string(),
-                num(Some(r.mean), 4),
-                num(r.sd, 4),
-                num(Some(r.min), 4),
-                num(Some(r.max), 4),
-                r.role.clone(),
-                p(r.p_value),
-                p(r.p_adjusted),
-                r.alert_id.map(|v| v.to_string()).unwrap_or_else(|| {
-                    if r.significant == Some(true) {
-                        "yes".into()
-                    } else {
-                        String::new()
-                    }
-                }),
-                r.events.clone(),
-                r.outliers.clone(),
-            ]
-        })
-        .collect();
-    table(&HISTORY_HEADER, &body)
+/// Writes `history` lot by lot as the store reads it ([`crate::store::Store::history_each`]).
+/// CSV and JSON go to the output at once, so a 100,000-lot series is never held in memory;
+/// the text table keeps its cells (one string for all of them) to pad the columns at the end.
+pub struct HistoryWriter<W: std::io::Write> {
+    to: HistoryTo<W>,
+}
+
+enum HistoryTo<W: std::io::Write> {
+    Text {
+        out: W,
+        table: TextTable,
+    },
+    Csv {
+        csv: Box<csv::Writer<W>>,
+        field: String,
+        header: bool,
+    },
+    Json {
+        out: W,
+        lots: usize,
+        object: Vec<u8>,
+    },
+}
+
+impl<W: std::io::Write> HistoryWriter<W> {
+    pub fn new(format: HistoryFormat, out: W) -> HistoryWriter<W> {
+        let to = match format {
+            HistoryFormat::Text => HistoryTo::Text {
+                out,
+                table: TextTable::new(&HISTORY_HEADER),
+            },
+            HistoryFormat::Csv => HistoryTo::Csv {
+                csv: Box::new(csv::Writer::from_writer(out)),
+                field: String::new(),
+                header: false,
+            },
+            HistoryFormat::Json => HistoryTo::Json {
+                out,
+                lots: 0,
+                object: Vec::new(),
+            },
+        };
+        HistoryWriter { to }
+    }
+
+    /// Writes (or, for the table, keeps) one lot.
+    pub fn row(&mut self, lot: &HistoryLot<'_>) -> std::io::Result<()> {
+        match &mut self.to {
+            HistoryTo::Text { table, .. } => {
+                history_cells(table, lot);
+                Ok(())
+            }
+            HistoryTo::Csv { csv, field, header } => {
+                if !*header {
+                    csv.write_record(HISTORY_HEADER)?;
+                    *header = true;
+                }
+                history_record(csv, field, lot)
+            }
+            HistoryTo::Json { out, lots, object } => {
+                out.write_all(if *lots == 0 { b"[\n  " } else { b",\n  " })?;
+                *lots += 1;
+                write_json_element(out, object, lot)
+            }
+        }
+    }
+
+    /// Writes what is still owed (the header of an empty CSV, the table, the array's end) and
+    /// flushes.
+    pub fn finish(self) -> std::io::Result<()> {
+        match self.to {
+            HistoryTo::Text { mut out, table } => {
+                table.write_to(&mut out)?;
+                out.flush()
+            }
+            HistoryTo::Csv {
+                mut csv, header, ..
+            } => {
+                if !header {
+                    csv.write_record(HISTORY_HEADER)?;
+                }
+                csv.flush()
+            }
+            HistoryTo::Json { mut out, lots, .. } => {
+                out.write_all(if lots == 0 { b"[]\n" } else { b"\n]\n" })?;
+                out.flush()
+            }
+        }
+    }
+}
+/// The cells of one lot in the `history` table.
+fn history_cells(t: &mut TextTable, r: &HistoryLot<'_>) {
+    t.cell(r.source);
+    t.cell(r.characteristic);
+    t.cell(r.lot);
+    t.cell(r.sampled_at.map_or("-", |s| s.get(..10).unwrap_or(s)));
+    t.cell(r.n);
+    t.cell(format_args!("{:.4}", r.mean));
+    match r.sd {
+        Some(sd) => t.cell(format_args!("{sd:.4}")),
+        None => t.cell("-"),
+    }
+    t.cell(format_args!("{:.4}", r.min));
+    t.cell(format_args!("{:.4}", r.max));
+    t.cell(r.role);
+    for v in [r.p_value, r.p_adjusted] {
+        match v {
+            Some(v) => t.cell(format_args!("{v:.2e}")),
+            None => t.cell("-"),
+        }
+    }
+    match (r.alert_id, r.significant) {
+        (Some(id), _) => t.cell(id),
+        (None, Some(true)) => t.cell("yes"),
+        (None, _) => t.cell(""),
+    }
+    t.cell(r.events);
+    t.cell(r.outliers);
+    t.end_row();
+}
+
+/// One lot as a CSV record: numbers in full (Rust's shortest round-trip form), empty fields
+/// for what is missing. `field` is a reused buffer for the numbers.
+fn history_record<W: std::io::Write>(
+    csv: &mut csv::Writer<W>,
+    field: &mut String,
+    r: &HistoryLot<'_>,
+) -> std::io::Result<()> {
+    let mut number = |csv: &mut csv::Writer<W>, v: Option<&dyn std::fmt::Display>| {
+        use std::fmt::Write as _;
+        field.clear();
+        if let Some(v) = v {
+            let _ = write!(field, "{v}");
+        }
+        csv.write_field(field.as_bytes())
+    };
+    csv.write_field(r.source)?;
+    csv.write_field(r.characteristic)?;
+    csv.write_field(r.lot)?;
+    csv.write_field(r.sampled_at.unwrap_or_default())?;
+    number(csv, Some(&r.n))?;
+    number(csv, Some(&r.mean))?;
+    number(csv, r.sd.as_ref().map(|v| v as _))?;
+    number(csv, Some(&r.min))?;
+    number(csv, Some(&r.max))?;
+    csv.write_field(r.role)?;
+    number(csv, r.p_value.as_ref().map(|v| v as _))?;
+    number(csv, r.p_adjusted.as_ref().map(|v| v as _))?;
+    number(csv, r.alert_id.as_ref().map(|v| v as _))?;
+    csv.write_field(r.events)?;
+    csv.write_field(r.outliers)?;
+    Ok(csv.write_record(None::<&[u8]>)?)
+}
+
+/// One `history --json` element. The keys are in alphabetical order: the first version
+/// printed a `serde_json` map, which sorts its keys, and scripts have read that order since.
+#[derive(serde::Serialize)]
+struct HistoryJson<'a> {
+    alert_id: Option<i64>,
+    characteristic: &'a str,
+    events: &'a str,
+    lot: &'a str,
+    max: f64,
+    mean: f64,
+    min: f64,
+    n: i64,
+    outliers: &'a str,
+    p_adjusted: Option<f64>,
+    p_value: Option<f64>,
+    role: &'a str,
+    sampled_at: Option<&'a str>,
+    sd: Option<f64>,
+    significant: Option<bool>,
+    source: &'a str,
+}
+
+/// Writes one lot as a pretty-printed object indented as an element of the top-level array
+/// (JSON strings hold no raw newline, so every newline of the object is a line break).
+fn write_json_element(
+    out: &mut impl std::io::Write,
+    object: &mut Vec<u8>,
+    r: &HistoryLot<'_>,
+) -> std::io::Result<()> {
+    object.clear();
+    serde_json::to_writer_pretty(
+        &mut *object,
+        &HistoryJson {
+            alert_id: r.alert_id,
+            characteristic: r.characteristic,
+            events: r.events,
+            lot: r.lot,
+            max: r.max,
+            mean: r.mean,
+            min: r.min,
+            n: r.n,
+            outliers: r.outliers,
+            p_adjusted: r.p_adjusted,
+            p_value: r.p_value,
+            role: r.role,
+            sampled_at: r.sampled_at,
+            sd: r.sd,
+            significant: r.significant,
+            source: r.source,
+        },
+    )?;
+    for (i, line) in object.split(|b| *b == b'\n').enumerate() {
+        if i > 0 {
+            out.write_all(b"\n  ")?;
+        }
+        out.write_all(line)?;
+    }
+    Ok(())
 }
 
 fn finite_or_null(v: f64) -> Value {
@@ -505,6 +760,52 @@ fn fmt_bound(v: f64) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    fn lot(lot: &str, events: &str, outliers: &str, p: Option<f64>) -> HistoryRow {
+        HistoryRow {
+            source: "alder".into(),
+            characteristic: "capacity".into(),
+            lot: lot.into(),
+            sampled_at: Some("2026-03-01T08:00:00Z".into()),
+            n: 5,
+            mean: 2.5,
+            sd: Some(0.125),
+            min: 2.0,
+            max: 3.0,
+            role: "tested".into(),
+            p_value: p,
+            p_adjusted: p.map(|p| p * 2.0),
+            significant: Some(false),
+            alert_id: None,
+            events: events.into(),
+            outliers: outliers.into(),
+        }
+    }
+
+    /// The streamed JSON is byte for byte what printing a `serde_json` value of the rows gave
+    /// (keys sorted, two-space indent), which scripts have read since the first version.
+    #[test]
+    fn history_json_streams_the_pretty_printed_array() {
+        let rows = vec![
+            lot("L1", "", "U3 = 1.5 (9.1 sd, set aside)", Some(1e-7)),
+            lot("L \"2\"\n", "opened mean alert 1", "", None),
+        ];
+        let value = Value::Array(rows.iter().map(|r| json!(r)).collect());
+        let expected = serde_json::to_string_pretty(&value).unwrap() + "\n";
+        assert_eq!(history_json(&rows), expected);
+        assert_eq!(history_json(&[]), "[]\n");
+    }
+
+    #[test]
+    fn history_csv_quotes_what_needs_it() {
+        let rows = vec![lot("L1", "", "U3 = 1.5 (9.1 sd, set aside)", Some(1e-7))];
+        assert_eq!(
+            history_csv(&rows),
+            "source,characteristic,lot,sampled_at,n,mean,sd,min,max,role,p_value,p_adjusted,\
+             alert,events,outliers\nalder,capacity,L1,2026-03-01T08:00:00Z,5,2.5,0.125,2,3,tested,\
+             0.0000001,0.0000002,,,\"U3 = 1.5 (9.1 sd, set aside)\"\n"
+        );
+    }
 
     #[test]
     fn tables_pad_columns() {
