@@ -18,7 +18,7 @@ use crate::demo;
 use crate::ingest;
 use crate::report;
 use crate::stats;
-use crate::store::Store;
+use crate::store::{Checkpoints, Store};
 
 mod check_file;
 
@@ -365,7 +365,15 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                 config.log.format
             };
             init_tracing(format, &config.log.level);
-            let store = open_store(&config).await?;
+            // The daemon checkpoints the log from a task of its own (see `daemon::run`).
+            let checkpoints = if once {
+                Checkpoints::OnCommit
+            } else {
+                Checkpoints::Background
+            };
+            let store = Store::open_with(&config.paths.database, checkpoints)
+                .await
+                .map_err(|e| Failure::Runtime(e.into()))?;
             if once {
                 let r = daemon::run_once(&store, &config)
                     .await
