@@ -18,7 +18,7 @@ use crate::demo;
 use crate::ingest;
 use crate::report;
 use crate::stats;
-use crate::store::{Checkpoints, Store};
+use crate::store::Store;
 
 mod check_file;
 
@@ -365,15 +365,7 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                 config.log.format
             };
             init_tracing(format, &config.log.level);
-            // The daemon checkpoints the log from a task of its own (see `daemon::run`).
-            let checkpoints = if once {
-                Checkpoints::OnCommit
-            } else {
-                Checkpoints::Background
-            };
-            let store = Store::open_with(&config.paths.database, checkpoints)
-                .await
-                .map_err(|e| Failure::Runtime(e.into()))?;
+            let store = open_store(&config).await?;
             if once {
                 let r = daemon::run_once(&store, &config)
                     .await

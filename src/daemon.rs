@@ -27,9 +27,6 @@ use crate::watch;
 /// How much longer than the settle interval `run --once` waits for files still being written.
 const ONCE_SETTLE_MARGIN: Duration = Duration::from_secs(1);
 
-/// How often the daemon copies the write-ahead log back into the database file.
-const CHECKPOINT_EVERY: Duration = Duration::from_secs(1);
-
 /// Drain time allowed after a stop signal before the process gives up waiting.
 const DRAIN_LIMIT: Duration = Duration::from_secs(20);
 
@@ -189,13 +186,6 @@ pub async fn run(
         tracker.spawn(async move { watch::run(inbox, cfg, ready_tx, cancel).await })
     };
 
-    // Checkpointer: the store was opened with `Checkpoints::Background`, so no commit copies
-    // the log back into the database file; this task does, off the path of any commit.
-    {
-        let (store, cancel) = (store.clone(), cancel.clone());
-        tracker.spawn(async move { checkpoint_loop(&store, &cancel).await });
-    }
-
     // Notifier.
     {
         let (store, config, wake, cancel) =
@@ -252,28 +242,6 @@ pub async fn run(
         return Err(e.into());
     }
     result
-}
-
-/// Checkpoints the write-ahead log every [`CHECKPOINT_EVERY`] until cancelled (the last one
-/// is SQLite's own, when the store closes).
-async fn checkpoint_loop(store: &Store, cancel: &CancellationToken) {
-    let mut failing = false;
-    loop {
-        tokio::select! {
-            _ = cancel.cancelled() => return,
-            _ = tokio::time::sleep(CHECKPOINT_EVERY) => {}
-        }
-        match store.checkpoint().await {
-            Ok(()) => failing = false,
-            // Once per failing streak: a checkpoint that cannot run leaves the log growing,
-            // which costs disk space but loses nothing.
-            Err(e) if !failing => {
-                failing = true;
-                tracing::warn!(error = %crate::errors::chain(&e), "cannot checkpoint the write-ahead log");
-            }
-            Err(_) => {}
-        }
-    }
 }
 
 async fn shutdown_signal(cancel: &CancellationToken) {

@@ -777,26 +777,9 @@ fn summary_from_row(row: &SqliteRow, first: usize) -> Result<Summary> {
         .map_err(|e| StoreError::Corrupt(format!("stored summary n={n} mean={mean}: {e}")))
 }
 
-/// When the write-ahead log is copied back into the database file.
-#[derive(Debug, Clone, Copy, PartialEq, Eq)]
-pub enum Checkpoints {
-    /// SQLite's default: the commit that takes the log past 1,000 pages copies it back and
-    /// syncs the database file before it returns (tens of milliseconds on a busy disk).
-    OnCommit,
-    /// Never inside a commit: the owner calls [`Store::checkpoint`] from a task of its own.
-    /// The daemon does, so that no commit on the way from a dropped file to its alert waits
-    /// for a checkpoint. Durability is the same: a commit is on disk once its log is synced.
-    Background,
-}
-
 impl Store {
     /// Opens (creating if needed) the SQLite database at `path` and applies migrations.
     pub async fn open(path: &Path) -> Result<Store> {
-        Store::open_with(path, Checkpoints::OnCommit).await
-    }
-
-    /// [`Store::open`] with a choice of when the log is checkpointed.
-    pub async fn open_with(path: &Path, checkpoints: Checkpoints) -> Result<Store> {
         let shown = path.display().to_string();
         if let Some(dir) = path.parent().filter(|d| !d.as_os_str().is_empty()) {
             std::fs::create_dir_all(dir).map_err(|e| StoreError::Open {
@@ -822,13 +805,6 @@ impl Store {
             // touches the indexes of lots, files and samples at random, and the default 2 MiB
             // makes it read pages back; 32 MiB each put a backfill's peak memory near 250 MiB.
             .pragma("cache_size", "-16384")
-            .pragma(
-                "wal_autocheckpoint",
-                match checkpoints {
-                    Checkpoints::OnCommit => "1000",
-                    Checkpoints::Background => "0",
-                },
-            )
             // A backfill's large statements are expected; only report them at debug level.
             .log_slow_statements(tracing::log::LevelFilter::Debug, Duration::from_secs(5));
         let pool = SqlitePoolOptions::new()
@@ -854,16 +830,6 @@ impl Store {
             pool,
             names: Mutex::new(NameCache::default()),
         })
-    }
-
-    /// Copies what the write-ahead log holds back into the database file as far as readers
-    /// allow, without waiting for the writer or for readers (SQLite's passive checkpoint).
-    pub async fn checkpoint(&self) -> Result<()> {
-        sqlx::query("PRAGMA wal_checkpoint(PASSIVE)")
-            .fetch_all(&self.pool)
-            .await
-            .doing("checkpointing the write-ahead log")?;
-        Ok(())
     }
 
     /// Writes a consistent copy of the database to `dest` (`VACUUM INTO`: one read
