@@ -28,6 +28,9 @@
 //! - `LOTDRIFT_BENCH_BATCH`: rows per execution of the INSERT (default 1, one execution per
 //!   value with re-binding only of what changed; larger values bind every parameter of a
 //!   multi-row statement and show what that saves, or costs).
+//! - `LOTDRIFT_BENCH_LAYOUT=packed`: one row per (file, sample) holding the sample's values
+//!   (and units) as JSON arrays, instead of one row per value (the layout question of issue
+//!   10; the sampling time is one text when every unit shares it, else a JSON array).
 //! - `LOTDRIFT_BENCH_THREADS`: parser threads (default: available cores).
 //! - `LOTDRIFT_BENCH_DB_DIR`: where the scratch SQLite files go (default: temp dir).
 //! - `LOTDRIFT_BENCH_KEEP_DB=1`: keep them (to inspect) instead of deleting them.
@@ -68,6 +71,12 @@ CREATE TABLE measurement (
     sampled_at TEXT,
     value REAL NOT NULL
 );
+CREATE TABLE measurement_packed (
+    sample INTEGER NOT NULL,
+    units TEXT,
+    sampled_at TEXT,
+    vals TEXT NOT NULL
+);
 CREATE TABLE evaluation (
     sample INTEGER PRIMARY KEY,
     t REAL NOT NULL,
@@ -82,6 +91,8 @@ const INSERT_SAMPLE: &str = "INSERT INTO sample \
      VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10)";
 const INSERT_EVALUATION: &str = "INSERT INTO evaluation \
      (sample, t, df, p, p_adjusted, reject) VALUES (?1, ?2, ?3, ?4, ?5, ?6)";
+const INSERT_PACKED: &str = "INSERT INTO measurement_packed (sample, units, sampled_at, vals) \
+     VALUES (?1, ?2, ?3, ?4)";
 const MEASUREMENT_COLUMNS: &str =
     "INSERT INTO measurement (sample, unit, sampled_at, value) VALUES ";
 
@@ -485,6 +496,8 @@ impl<'c> Inserter<'c> {
 /// The main thread's side: samples by key, and the inserter.
 struct Writer<'c> {
     inserter: Inserter<'c>,
+    /// `Some` with `LOTDRIFT_BENCH_LAYOUT=packed`.
+    packer: Option<Packer<'c>>,
     ids: HashMap<(String, String, String), usize>,
     samples: Vec<Sample>,
     /// This file's group index -> sample id, reused between files.
@@ -515,6 +528,10 @@ impl Writer<'_> {
             }
             self.group_ids.push(index as i64 + 1);
         }
+        if let Some(packer) = &mut self.packer {
+            self.inserter.values += file.rows.len() as u64;
+            return packer.write(file, &self.group_ids);
+        }
         for row in &file.rows {
             self.inserter.insert(
                 self.group_ids[row.group as usize],
@@ -522,6 +539,67 @@ impl Writer<'_> {
                 file.span(row.sampled_at),
                 row.value,
             )?;
+        }
+        Ok(())
+    }
+}
+
+/// The packed layout: one row per (file, sample) with JSON arrays of values and units.
+struct Packer<'c> {
+    stmt: Statement<'c>,
+    vals: String,
+    units: Vec<u8>,
+    times: Vec<u8>,
+}
+
+impl<'c> Packer<'c> {
+    fn new(conn: &'c Connection) -> Result<Self> {
+        Ok(Packer {
+            stmt: conn.prepare(INSERT_PACKED)?,
+            vals: String::new(),
+            units: Vec::new(),
+            times: Vec::new(),
+        })
+    }
+
+    fn write(&mut self, file: &ParsedFile, group_ids: &[i64]) -> Result<()> {
+        use std::fmt::Write as _;
+        for (g, id) in group_ids.iter().enumerate() {
+            self.vals.clear();
+            self.units.clear();
+            self.times.clear();
+            let (mut any_unit, mut first_time, mut one_time) = (false, None, true);
+            for row in file.rows.iter().filter(|r| r.group as usize == g) {
+                let sep = if self.vals.is_empty() { '[' } else { ',' };
+                let _ = write!(self.vals, "{sep}{}", row.value);
+                self.units.push(sep as u8);
+                self.times.push(sep as u8);
+                let unit = file.span(row.unit);
+                any_unit |= unit.is_some();
+                serde_json::to_writer(&mut self.units, &unit)?;
+                let time = file.span(row.sampled_at);
+                serde_json::to_writer(&mut self.times, &time)?;
+                match first_time {
+                    None => first_time = Some(time),
+                    Some(t) => one_time &= t == time,
+                }
+            }
+            if self.vals.is_empty() {
+                continue;
+            }
+            self.vals.push(']');
+            self.units.push(b']');
+            self.times.push(b']');
+            let units = any_unit
+                .then(|| std::str::from_utf8(&self.units))
+                .transpose()?;
+            let times = match first_time.flatten() {
+                Some(t) if one_time => Some(t),
+                None if one_time => None,
+                _ => Some(std::str::from_utf8(&self.times)?),
+            };
+            self.stmt
+                .execute(rusqlite::params![id, units, times, self.vals])?;
         }
         Ok(())
     }
@@ -536,6 +614,10 @@ fn write_all(
 ) -> Result<(Vec<Sample>, u64)> {
     let mut writer = Writer {
         inserter: Inserter::new(conn, batch)?,
+        packer: match std::env::var("LOTDRIFT_BENCH_LAYOUT").as_deref() {
+            Ok("packed") => Some(Packer::new(conn)?),
+            _ => None,
+        },
         ids: HashMap::new(),
         samples: Vec::new(),
         group_ids: Vec::new(),
@@ -813,6 +895,7 @@ fn main() -> Result<()> {
         bail!("no *.csv files in {}", dir.display());
     }
 
+    let layout = std::env::var("LOTDRIFT_BENCH_LAYOUT").unwrap_or_else(|_| "rows".into());
     let mut walls = Vec::with_capacity(repeat);
     let mut values = 0;
     for run in 1..=repeat {
@@ -831,7 +914,7 @@ fn main() -> Result<()> {
         println!(
             "ingest_floor: run {run}/{repeat}: files={} values={} samples={} tests={} \
              rejected={} wall_s={:.3} values_per_s={:.0} store_s={:.3} stats_s={:.3} \
-             commit_s={:.3} db_mib={:.1} batch={batch} threads={threads}",
+             commit_s={:.3} db_mib={:.1} batch={batch} threads={threads} layout={layout}",
             r.files,
             r.values,
             r.samples,
@@ -849,7 +932,7 @@ fn main() -> Result<()> {
     }
     let median = median(&mut walls);
     println!(
-        "ingest_floor: median wall_s={median:.3} values_per_s={:.0} runs={} values={values} batch={batch}",
+        "ingest_floor: median wall_s={median:.3} values_per_s={:.0} runs={} values={values} batch={batch} layout={layout}",
         values as f64 / median,
         walls.len()
     );

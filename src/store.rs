@@ -28,6 +28,9 @@ pub use views::LotDecision;
 mod charts;
 
 pub use charts::{ChartEval, ChartLot, SeriesRow};
+mod history;
+
+pub use history::HistoryLot;
 
 use crate::lotfile::Timestamp;
 use crate::stats::Summary;
@@ -2812,80 +2815,29 @@ impl Store {
         source: &str,
         characteristic: Option<&str>,
     ) -> Result<Vec<HistoryRow>> {
-        // Alert events and outliers are few: each is gathered once for the source's series
-        // and joined, instead of a correlated subquery per lot (which cost more than the rest
-        // of the query on a 100,000-lot series).
-        let mut rows = sqlx::query(
-            "WITH these AS ( \
-                 SELECT se.id FROM series se JOIN source s ON s.id = se.source_id \
-                 JOIN characteristic c ON c.id = se.characteristic_id \
-                 WHERE s.name = ?1 AND (?2 IS NULL OR c.name = ?2)), \
-             events AS ( \
-                 SELECT sample_id, group_concat(text, '; ') AS text FROM ( \
-                     SELECT xe.sample_id, ev.kind || ' ' || xa.kind || ' alert ' || xa.id AS text \
-                     FROM alert xa JOIN alert_event ev ON ev.alert_id = xa.id \
-                     JOIN evaluation xe ON xe.id = ev.evaluation_id \
-                     WHERE xa.series_id IN (SELECT id FROM these) \
-                     ORDER BY xe.sample_id, ev.id) \
-                 GROUP BY sample_id), \
-             found AS ( \
-                 SELECT sample_id, group_concat(text, '; ') AS text FROM ( \
-                     SELECT o.sample_id, COALESCE(om.unit, '#' || o.seq) || ' = ' || o.value \
-                            || ' (' || printf('%.1f', o.distance) || ' sd' \
-                            || CASE WHEN o.set_aside = 1 THEN ', set aside' ELSE '' END \
-                            || ')' AS text \
-                     FROM outlier o CROSS JOIN sample os ON os.id = o.sample_id \
-                     LEFT JOIN measurement om ON om.sample_id = o.sample_id AND om.seq = o.seq \
-                     WHERE os.series_id IN (SELECT id FROM these) \
-                     ORDER BY o.sample_id, o.seq) \
-                 GROUP BY sample_id) \
-             SELECT src.name, ch.name, l.code, l.sampled_at, sm.n, sm.mean, sm.m2, sm.min_value, \
-                    sm.max_value, \
-                    CASE WHEN bl.sample_id IS NOT NULL THEN 'baseline' \
-                         WHEN e.id IS NOT NULL THEN 'tested' ELSE 'pending' END, \
-                    e.p_value, e.p_adjusted, e.significant, \
-                    (SELECT ev.alert_id FROM alert_event ev WHERE ev.evaluation_id = e.id \
-                     AND ev.kind IN ('opened', 'attached', 'repeated') LIMIT 1), \
-                    events.text, found.text \
-             FROM these JOIN sample sm ON sm.series_id = these.id \
-             JOIN lot l ON l.id = sm.lot_id \
-             JOIN series se ON se.id = sm.series_id \
-             JOIN source src ON src.id = se.source_id \
-             JOIN characteristic ch ON ch.id = se.characteristic_id \
-             LEFT JOIN evaluation e ON e.sample_id = sm.id AND e.kind = 'mean' \
-             LEFT JOIN baseline_lot bl ON bl.sample_id = sm.id \
-             LEFT JOIN events ON events.sample_id = sm.id \
-             LEFT JOIN found ON found.sample_id = sm.id \
-             ORDER BY ch.name, COALESCE(l.sampled_at, l.first_seen_at), l.code",
-        )
-        .bind(source)
-        .bind(characteristic)
-        .fetch(&self.pool);
-        // Streamed: a long series' rows are turned into history rows one at a time.
         let mut out = Vec::new();
-        while let Some(r) = rows.try_next().await.doing("reading history")? {
-            let n: i64 = r.get(4);
-            let m2: f64 = r.get(6);
-            out.push(HistoryRow {
-                source: r.get(0),
-                characteristic: r.get(1),
-                lot: r.get(2),
-                sampled_at: r.get(3),
-                n,
-                mean: r.get(5),
-                sd: (n > 1).then(|| (m2 / (n - 1) as f64).sqrt()),
-                min: r.get(7),
-                max: r.get(8),
-                role: r.get(9),
-                p_value: r.get(10),
-                p_adjusted: r.get(11),
-                significant: r.get::<Option<i64>, _>(12).map(|v| v != 0),
-                alert_id: r.get(13),
-                events: r.get::<Option<String>, _>(14).unwrap_or_default(),
-                outliers: r.get::<Option<String>, _>(15).unwrap_or_default(),
-            });
-        }
+        let done: std::result::Result<(), std::convert::Infallible> = self
+            .history_each(source, characteristic, |lot| {
+                out.push(lot.to_owned_row());
+                Ok(())
+            })
+            .await?;
+        let Ok(()) = done;
         Ok(out)
+    }
+
+    /// Hands every lot of a source (optionally one characteristic) to `each` in series order,
+    /// one at a time and without copying (see [`history`]): a 100,000-lot series is written
+    /// out as it is read. The first error of `each` stops the read and is returned in `Ok`.
+    pub async fn history_each<E>(
+        &self,
+        source: &str,
+        characteristic: Option<&str>,
+        mut each: impl FnMut(&HistoryLot<'_>) -> std::result::Result<(), E>,
+    ) -> Result<std::result::Result<(), E>> {
+        let mut conn = self.pool.acquire().await.doing("reading history")?;
+        let mut handle = conn.lock_handle().await.doing("reading history")?;
+        history::each_lot(handle.as_raw_handle(), source, characteristic, &mut each)
     }
 
     /// True when a source of that name is stored.

@@ -19,7 +19,7 @@ use crate::lotfile::Timestamp;
 const INSERT_MEASUREMENT: &str =
     "INSERT INTO measurement (sample_id, seq, unit, value, sampled_at) VALUES (?1, ?2, ?3, ?4, ?5)";
 
-trait Doing<T> {
+pub(super) trait Doing<T> {
     fn doing(self, what: &'static str) -> Result<T>;
 }
 
@@ -33,7 +33,7 @@ impl<T> Doing<T> for rusqlite::Result<T> {
 }
 
 /// Borrows an open handle as a rusqlite connection that does not close it when dropped.
-fn borrow(handle: NonNull<sqlite3>) -> Result<Connection> {
+pub(super) fn borrow(handle: NonNull<sqlite3>) -> Result<Connection> {
     // SAFETY: `handle` comes from a `LockedSqliteHandle` that the caller holds for as long as
     // the returned connection lives (both end within the caller's synchronous section), so it
     // is open and no other thread uses it; `from_handle` never closes a handle it did not open.
