@@ -491,7 +491,12 @@ fn summarise(name: &str, hash: &str, parsed: LotFile) -> Result<NewFile, String>
                 g.first_line, g.source, g.lot, g.characteristic
             )
         })?;
-        let earliest = g.sampled_at.iter().flatten().min().map(|t| t.to_rfc3339());
+        let earliest = g
+            .sampled_at
+            .iter()
+            .filter_map(|t| t.get())
+            .min()
+            .map(|t| t.to_rfc3339());
         let digest = sample_digest(&g.values, &g.units, &parsed.serials);
         samples.push(NewSample {
             source: g.source,

@@ -96,10 +96,41 @@ pub struct Group {
     /// Serial of the measured unit per value, an id into [`LotFile::serials`]; [`NO_UNIT`]
     /// without a `unit` column or for an empty cell.
     pub units: Vec<u32>,
-    /// Sampling time per value; `None` without a `sampled_at` column or for an empty cell.
-    pub sampled_at: Vec<Option<Timestamp>>,
+    /// Sampling time per value; [`Stamp::NONE`] without a `sampled_at` column or for an
+    /// empty cell.
+    pub sampled_at: Vec<Stamp>,
     /// Line of the row that created this group.
     pub first_line: u64,
+}
+
+/// A sampling time or none, in 8 bytes (a year's export holds one per value): whole
+/// microseconds since 1970 and whether only a date was given. Stored times are written to the
+/// millisecond, so nothing shown or stored is lost.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Stamp(i64);
+
+impl Stamp {
+    pub const NONE: Stamp = Stamp(i64::MIN);
+
+    pub fn get(self) -> Option<Timestamp> {
+        if self == Stamp::NONE {
+            return None;
+        }
+        let utc = DateTime::from_timestamp_micros(self.0 >> 1)?;
+        Some(Timestamp {
+            utc,
+            date_only: self.0 & 1 == 1,
+        })
+    }
+}
+
+impl From<Option<Timestamp>> for Stamp {
+    fn from(t: Option<Timestamp>) -> Self {
+        // Years 0000..=9999 (the parser's range) are about ±2.5e17 µs: doubled, far inside i64.
+        t.map_or(Stamp::NONE, |t| {
+            Stamp(t.utc.timestamp_micros() * 2 + i64::from(t.date_only))
+        })
+    }
 }
 
 /// A sampling time normalised to UTC, with a flag whether only a date was given.
@@ -1198,7 +1229,7 @@ impl<'a, R: Read> Parser<'a, R> {
         let group = &mut self.groups[g as usize];
         group.values.push(value);
         group.units.push(uid);
-        group.sampled_at.push(sampled_at);
+        group.sampled_at.push(Stamp::from(sampled_at));
         self.values += 1;
         Ok(())
     }
@@ -1235,7 +1266,7 @@ impl<'a, R: Read> Parser<'a, R> {
             let group = &mut self.groups[g as usize];
             group.values.push(value);
             group.units.push(uid);
-            group.sampled_at.push(sampled_at);
+            group.sampled_at.push(Stamp::from(sampled_at));
         }
         self.values += h.wide.len();
         Ok(())
@@ -1248,6 +1279,11 @@ mod tests {
     use proptest::prelude::*;
 
     const LONG: &str = "source,characteristic,lot,value\n";
+
+    /// The sampling times of group `g`.
+    fn times(f: &LotFile, g: usize) -> Vec<Option<Timestamp>> {
+        f.groups[g].sampled_at.iter().map(|t| t.get()).collect()
+    }
 
     /// The unit serials of group `g`, as text.
     fn units(f: &LotFile, g: usize) -> Vec<Option<String>> {
@@ -1540,7 +1576,7 @@ mod tests {
         assert_eq!(g.characteristic, "bore");
         assert_eq!(g.values, vec![2.05, 2.06]);
         assert_eq!(units(&f, 0), vec![None, None]);
-        assert_eq!(g.sampled_at, vec![None, None]);
+        assert_eq!(times(&f, 0), vec![None, None]);
         assert_eq!(g.first_line, 2);
     }
 
@@ -1555,7 +1591,7 @@ mod tests {
         );
         assert_eq!(g.values, vec![1.5]);
         assert_eq!(units(&f, 0), vec![Some("U1".to_owned())]);
-        assert_eq!(g.sampled_at, vec![Some(ts("2026-03-01"))]);
+        assert_eq!(times(&f, 0), vec![Some(ts("2026-03-01"))]);
     }
 
     #[test]
@@ -1585,9 +1621,9 @@ mod tests {
             units(&f, 0),
             vec![Some("U1".to_owned()), Some("U2".to_owned())]
         );
-        assert_eq!(f.groups[2].sampled_at, vec![None]);
+        assert_eq!(times(&f, 2), vec![None]);
         assert_eq!(
-            f.groups[0].sampled_at[1].map(|t| t.to_rfc3339()),
+            f.groups[0].sampled_at[1].get().map(|t| t.to_rfc3339()),
             Some("2026-03-01T08:31:00.000Z".to_owned())
         );
     }
@@ -1710,7 +1746,7 @@ mod tests {
         let f = ok(
             "source,characteristic,lot,value,sampled_at\nS,C,L,1, 2026-03-01 08:30:00Z \nS,C,L,2,\n",
         );
-        assert_eq!(f.groups[0].sampled_at, vec![Some(z), None]);
+        assert_eq!(times(&f, 0), vec![Some(z), None]);
     }
 
     #[test]
@@ -1945,6 +1981,18 @@ mod tests {
 
     fn quoted(s: &str) -> String {
         format!("\"{}\"", s.replace('"', "\"\""))
+    }
+
+    proptest! {
+        #[test]
+        fn stamps_keep_what_is_shown_and_stored(secs in -62_000_000_000i64..253_000_000_000i64, nanos in 0u32..1_000_000_000u32, date_only in any::<bool>()) {
+            let utc = DateTime::<Utc>::from_timestamp(secs, nanos).unwrap();
+            let t = Timestamp { utc, date_only };
+            let back = Stamp::from(Some(t)).get().unwrap();
+            prop_assert_eq!(back.to_rfc3339(), t.to_rfc3339());
+            prop_assert_eq!(back.date_only, date_only);
+            prop_assert_eq!(Stamp::from(None).get(), None);
+        }
     }
 
     proptest! {

@@ -32,7 +32,6 @@ mod history;
 
 pub use history::HistoryLot;
 
-use crate::lotfile::Timestamp;
 use crate::stats::Summary;
 use crate::stats::monitoring::RandomEffects;
 use crate::stats::robust::{OutlierFence, SpreadBaseline};
@@ -128,7 +127,7 @@ pub struct NewSample {
     /// The serials of the file the sample came from.
     pub serials: std::sync::Arc<crate::lotfile::Serials>,
     /// Per value, its sampling time (stored as fixed-width RFC 3339 UTC text) or None.
-    pub sampled_at: Vec<Option<Timestamp>>,
+    pub sampled_at: Vec<crate::lotfile::Stamp>,
     pub summary: Summary,
     /// Order-independent digest of (unit, value) pairs: equal digests mean equal content.
     pub digest: String,

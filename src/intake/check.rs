@@ -125,7 +125,7 @@ fn summarise(out: &mut FileCheck, f: &LotFile) {
         let times: Vec<String> = g
             .sampled_at
             .iter()
-            .flatten()
+            .filter_map(|t| t.get())
             .map(|t| t.to_rfc3339())
             .collect();
         let lot = lot_entry(&mut out.lots, g);
@@ -149,7 +149,7 @@ fn summarise(out: &mut FileCheck, f: &LotFile) {
                 characteristic: g.characteristic.clone(),
                 unit: f.serials.get(g.units[i]).map(str::to_owned),
                 value: g.values[i],
-                sampled_at: g.sampled_at[i].map(|t| t.to_rfc3339()),
+                sampled_at: g.sampled_at[i].get().map(|t| t.to_rfc3339()),
             });
         }
     }

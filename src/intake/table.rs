@@ -551,7 +551,9 @@ impl Builder {
             let group = &mut self.groups[g];
             group.values.push(value);
             group.units.push(unit);
-            group.sampled_at.push(parsed.sampled_at);
+            group
+                .sampled_at
+                .push(lotfile::Stamp::from(parsed.sampled_at));
             self.values += 1;
         }
         Ok(())

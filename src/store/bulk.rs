@@ -55,7 +55,7 @@ pub(super) fn insert_measurements(
         stmt.raw_bind_parameter(1, id)
             .doing("recording measurements")?;
         for (k, value) in s.values.iter().enumerate() {
-            let time = s.sampled_at[k];
+            let time = s.sampled_at[k].get();
             if bound_time != Some(time) {
                 stmt.raw_bind_parameter(5, time.map(|t| t.to_rfc3339()))
                     .doing("recording measurements")?;
