@@ -40,6 +40,7 @@ use crate::chart;
 use crate::config::{Config, Email, Tls};
 use crate::digest;
 use crate::health::{self, Component};
+use crate::page::escape;
 use crate::silence;
 use crate::store::{
     AlertRow, DeliveryOutcome, DigestItem, HealthItem, OutboxItem, SilenceItem, Store, StoreError,
@@ -814,22 +815,6 @@ pub fn body(item: &OutboxItem) -> String {
     s
 }
 
-/// Escapes text for HTML element content and attribute values.
-pub fn escape_html(s: &str) -> String {
-    let mut out = String::with_capacity(s.len());
-    for c in s.chars() {
-        match c {
-            '&' => out.push_str("&amp;"),
-            '<' => out.push_str("&lt;"),
-            '>' => out.push_str("&gt;"),
-            '"' => out.push_str("&quot;"),
-            '\'' => out.push_str("&#39;"),
-            c => out.push(c),
-        }
-    }
-    out
-}
-
 /// The HTML body of an alert message: the same rows as the plain text, in a table. Every
 /// interpolated value is escaped.
 pub fn html_body(item: &OutboxItem) -> String {
@@ -837,22 +822,19 @@ pub fn html_body(item: &OutboxItem) -> String {
         "<!DOCTYPE html>\n<html><head><meta charset=\"utf-8\"></head>\n\
          <body style=\"font-family: sans-serif\">\n",
     );
-    s.push_str(&format!("<h3>{}</h3>\n", escape_html(&subject(item))));
+    s.push_str(&format!("<h3>{}</h3>\n", escape(&subject(item))));
     s.push_str("<table cellpadding=\"4\" style=\"border-collapse: collapse\">\n");
     for (label, value) in facts(item) {
         s.push_str(&format!(
             "<tr><th align=\"left\" style=\"border-bottom: 1px solid #ddd\">{}</th>\
              <td style=\"border-bottom: 1px solid #ddd\">{}</td></tr>\n",
-            escape_html(label),
-            escape_html(&value)
+            escape(label),
+            escape(&value)
         ));
     }
     s.push_str("</table>\n");
-    s.push_str(&format!("<p>{}</p>\n", escape_html(CHART_NOTE)));
-    s.push_str(&format!(
-        "<p><small>{}</small></p>\n",
-        escape_html(DISCLAIMER)
-    ));
+    s.push_str(&format!("<p>{}</p>\n", escape(CHART_NOTE)));
+    s.push_str(&format!("<p><small>{}</small></p>\n", escape(DISCLAIMER)));
     s.push_str("</body></html>\n");
     s
 }
@@ -1556,7 +1538,7 @@ mod tests {
             "{html}"
         );
         assert!(html.contains("A&amp;B&quot;&#39;"), "{html}");
-        assert_eq!(escape_html("a<b>&\"'"), "a&lt;b&gt;&amp;&quot;&#39;");
+        assert_eq!(escape("a<b>&\"'"), "a&lt;b&gt;&amp;&quot;&#39;");
     }
 
     #[test]
@@ -1566,10 +1548,7 @@ mod tests {
         let html = html_body(&i);
         for (_, value) in facts(&i) {
             assert!(text.contains(&value), "{value} missing in text");
-            assert!(
-                html.contains(&escape_html(&value)),
-                "{value} missing in html"
-            );
+            assert!(html.contains(&escape(&value)), "{value} missing in html");
         }
         assert!(text.contains("mean = 197.00"), "{text}");
         assert!(text.contains("p = 1.5e-6"), "{text}");

@@ -15,8 +15,9 @@
 
 use chrono::{DateTime, Local, NaiveDate, NaiveTime, TimeZone, Utc};
 
-use crate::alert::{clean, escape_html};
+use crate::alert::clean;
 use crate::config::{Channel, Config};
+use crate::page::escape;
 use crate::store::{AlertRow, DigestItem, NewDigestMessage, Store, StoreError};
 use crate::time::format_utc;
 
@@ -251,7 +252,7 @@ pub fn html_body(item: &DigestItem) -> String {
         "<!DOCTYPE html>\n<html><head><meta charset=\"utf-8\"></head>\n\
          <body style=\"font-family: sans-serif\">\n",
     );
-    s.push_str(&format!("<h3>{}</h3>\n", escape_html(&subject(item))));
+    s.push_str(&format!("<h3>{}</h3>\n", escape(&subject(item))));
     let rows = rows(item);
     if rows.is_empty() {
         s.push_str("<p>No alert you receive is open.</p>\n");
@@ -260,7 +261,7 @@ pub fn html_body(item: &DigestItem) -> String {
         for h in HEADERS {
             s.push_str(&format!(
                 "<th align=\"left\" style=\"border-bottom: 1px solid #999\">{}</th>",
-                escape_html(h)
+                escape(h)
             ));
         }
         s.push_str("</tr>\n");
@@ -269,14 +270,14 @@ pub fn html_body(item: &DigestItem) -> String {
             for v in r {
                 s.push_str(&format!(
                     "<td style=\"border-bottom: 1px solid #ddd\">{}</td>",
-                    escape_html(v)
+                    escape(v)
                 ));
             }
             s.push_str("</tr>\n");
         }
         s.push_str("</table>\n");
     }
-    s.push_str(&format!("<p><small>{}</small></p>\n", escape_html(FOOTER)));
+    s.push_str(&format!("<p><small>{}</small></p>\n", escape(FOOTER)));
     s.push_str("</body></html>\n");
     s
 }

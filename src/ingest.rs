@@ -414,7 +414,7 @@ fn prepare(path: &Path, inbox: &Path, input: &Input) -> Prepared {
             return read_failed(path, ReadFailure::Io(e));
         }
         let parsed = parse(&name, &bytes, profile);
-        (hex(&Sha256::digest(&bytes)), parsed)
+        (content_hash(&bytes), parsed)
     };
     match parsed.and_then(|p| summarise(&name, &hash, p)) {
         Ok(f) => Prepared::Good(path.into(), f),

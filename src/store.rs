@@ -3462,29 +3462,7 @@ mod tests {
     #[tokio::test]
     async fn the_digest_migration_keeps_queued_messages() {
         let dir = tempfile::tempdir().unwrap();
-        let only_first = dir.path().join("m1");
-        std::fs::create_dir(&only_first).unwrap();
-        std::fs::copy(
-            concat!(env!("CARGO_MANIFEST_DIR"), "/migrations/0001_initial.sql"),
-            only_first.join("0001_initial.sql"),
-        )
-        .unwrap();
-        let db = dir.path().join("old.db");
-        let options = SqliteConnectOptions::new()
-            .filename(&db)
-            .create_if_missing(true)
-            .foreign_keys(false);
-        let pool = SqlitePoolOptions::new()
-            .max_connections(1)
-            .connect_with(options)
-            .await
-            .unwrap();
-        sqlx::migrate::Migrator::new(only_first.as_path())
-            .await
-            .unwrap()
-            .run(&pool)
-            .await
-            .unwrap();
+        let pool = database_before(dir.path(), "0002").await;
         sqlx::query(
             "INSERT INTO outbox (id, alert_event_id, channel, recipient, state, attempts, \
              created_at, next_attempt_at, last_error) VALUES \
