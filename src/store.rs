@@ -30,7 +30,7 @@ mod charts;
 pub use charts::{ChartEval, ChartLot, SeriesRow};
 mod history;
 
-pub use history::HistoryLot;
+pub use history::{HistoryLot, LotTest};
 
 use crate::stats::Summary;
 use crate::stats::monitoring::RandomEffects;

@@ -4,7 +4,9 @@
 //! handle (as in [`super::bulk`]) and handed to the sink as borrowed text and numbers, so no
 //! row is copied into owned strings and none is kept after the sink has seen it. Lots come in
 //! series order straight from the index `lot_source_time` (no sort); the few alert events,
-//! alert ids and outliers of a series are gathered once before its lots are walked.
+//! alert ids and outliers of a series are gathered once before its lots are walked. A lot's
+//! decisions (its mean and spread evaluations, as `decision_view` shows them) come in the same
+//! row.
 
 use std::collections::HashMap;
 use std::ptr::NonNull;
@@ -37,33 +39,39 @@ pub struct HistoryLot<'a> {
     pub events: &'a str,
     /// The lot's units found as outliers (empty when none).
     pub outliers: &'a str,
+    /// The lot's mean decision and its spread decision, each where one was made.
+    pub decisions: [Option<LotTest<'a>>; 2],
 }
 
-impl HistoryRow {
-    /// The row as the history writers take it.
-    pub fn as_lot(&self) -> HistoryLot<'_> {
-        HistoryLot {
-            source: &self.source,
-            characteristic: &self.characteristic,
-            lot: &self.lot,
-            sampled_at: self.sampled_at.as_deref(),
-            n: self.n,
-            mean: self.mean,
-            sd: self.sd,
-            min: self.min,
-            max: self.max,
-            role: &self.role,
-            p_value: self.p_value,
-            p_adjusted: self.p_adjusted,
-            significant: self.significant,
-            alert_id: self.alert_id,
-            events: &self.events,
-            outliers: &self.outliers,
-        }
+/// One decision on a lot, with the names and meanings of `decision_view`'s columns.
+#[derive(Debug, Clone, Copy)]
+pub struct LotTest<'a> {
+    /// "mean" or "spread".
+    pub kind: &'static str,
+    /// The test that decided ("cusum" when the CUSUM alone signalled).
+    pub test: &'a str,
+    pub statistic: Option<f64>,
+    pub p_value: Option<f64>,
+    pub p_adjusted: Option<f64>,
+    /// The level the adjusted (else raw) p-value was compared with.
+    pub threshold: f64,
+    pub significant: bool,
+    /// CUSUM sums after this lot and the decision interval (mean decisions with a CUSUM).
+    pub cusum_upper: Option<f64>,
+    pub cusum_lower: Option<f64>,
+    pub cusum_h: Option<f64>,
+    pub cusum_signal: bool,
+    /// The alert this decision opened, joined or repeated.
+    pub alert_id: Option<i64>,
+}
+
+impl<'a> HistoryLot<'a> {
+    /// The decisions made, the mean decision first.
+    pub fn decisions(&self) -> impl Iterator<Item = &LotTest<'a>> {
+        self.decisions.iter().flatten()
     }
-}
 
-impl HistoryLot<'_> {
+    /// The lot without its decisions, as owned text ([`super::Store::history`]).
     pub fn to_owned_row(&self) -> HistoryRow {
         HistoryRow {
             source: self.source.to_string(),
@@ -94,13 +102,13 @@ struct Series {
     characteristic: String,
 }
 
-/// What is gathered once per series: texts by sample id, and the alert each lot's mean
-/// decision opened, joined or repeated.
+/// What is gathered once per series: texts by sample id, and the alert each decision opened,
+/// joined or repeated, by sample id and kind (`true` for spread).
 #[derive(Default)]
 struct SeriesNotes {
     events: HashMap<i64, String>,
     outliers: HashMap<i64, String>,
-    alerts: HashMap<i64, i64>,
+    alerts: HashMap<(i64, bool), i64>,
 }
 
 const SERIES: &str = "SELECT se.id, s.id, s.name, c.name FROM series se \
@@ -121,23 +129,32 @@ const OUTLIERS: &str = "SELECT sample_id, group_concat(text, '; ') FROM ( \
      LEFT JOIN measurement om ON om.sample_id = o.sample_id AND om.seq = o.seq \
      WHERE os.series_id = ?1 ORDER BY o.sample_id, o.seq) GROUP BY sample_id";
 
-/// The alert of each lot's mean decision: the first event (by id) that opened, joined or
-/// repeated an alert.
-const ALERTS: &str = "SELECT xe.sample_id, ev.alert_id FROM alert xa \
+/// The alert of each decision (as `decision_view` has it): the first event (by id) that opened,
+/// joined or repeated an alert.
+const ALERTS: &str = "SELECT xe.sample_id, xe.kind = 'spread', ev.alert_id FROM alert xa \
      JOIN alert_event ev ON ev.alert_id = xa.id JOIN evaluation xe ON xe.id = ev.evaluation_id \
-     WHERE xa.series_id = ?1 AND xe.kind = 'mean' \
-     AND ev.kind IN ('opened', 'attached', 'repeated') ORDER BY ev.id DESC";
+     WHERE xa.series_id = ?1 AND ev.kind IN ('opened', 'attached', 'repeated') \
+     ORDER BY ev.id DESC";
 
 /// The lots of one series in series order (earliest sampling time, else arrival, then code),
-/// walked along `lot_source_time`.
+/// walked along `lot_source_time`, each with its mean decision `e` and spread decision `es`
+/// (the columns [`DECIDED`] reads, from column 9 and 19).
 const LOTS: &str = "SELECT sm.id, l.code, l.sampled_at, sm.n, sm.mean, sm.m2, sm.min_value, \
      sm.max_value, \
      CASE WHEN EXISTS (SELECT 1 FROM baseline_lot bl WHERE bl.sample_id = sm.id) THEN 0 \
           WHEN e.id IS NOT NULL THEN 1 ELSE 2 END, \
-     e.p_value, e.p_adjusted, e.significant \
+     e.test, e.statistic, e.p_value, e.p_adjusted, e.level, e.significant, \
+     e.cusum_upper, e.cusum_lower, e.cusum_h, e.cusum_signal, \
+     es.test, es.statistic, es.p_value, es.p_adjusted, es.level, es.significant, \
+     es.cusum_upper, es.cusum_lower, es.cusum_h, es.cusum_signal \
      FROM lot l CROSS JOIN sample sm ON sm.lot_id = l.id AND sm.series_id = ?2 \
      LEFT JOIN evaluation e ON e.sample_id = sm.id AND e.kind = 'mean' \
+     LEFT JOIN evaluation es ON es.sample_id = sm.id AND es.kind = 'spread' \
      WHERE l.source_id = ?1 ORDER BY COALESCE(l.sampled_at, l.first_seen_at), l.code";
+
+/// Where [`LOTS`] has each kind's decision columns: test, statistic, p_value, p_adjusted,
+/// level, significant, cusum_upper, cusum_lower, cusum_h, cusum_signal.
+const DECIDED: [(&str, usize); 2] = [("mean", 9), ("spread", 19)];
 
 const ROLES: [&str; 3] = ["baseline", "tested", "pending"];
 
@@ -196,12 +213,13 @@ fn notes_of(conn: &Connection, series_id: i64) -> Result<SeriesNotes> {
     };
     let mut stmt = conn.prepare(ALERTS).doing("reading alerts")?;
     let mut rows = stmt.query([series_id]).doing("reading alerts")?;
-    // Latest first, so the earliest event of a lot is the one left in the map.
+    // Latest first, so the earliest event of a decision is the one left in the map.
     while let Some(r) = rows.next().doing("reading alerts")? {
         let sample: i64 = r.get(0).doing("reading alerts")?;
+        let spread: bool = r.get(1).doing("reading alerts")?;
         notes
             .alerts
-            .insert(sample, r.get(1).doing("reading alerts")?);
+            .insert((sample, spread), r.get(2).doing("reading alerts")?);
     }
     Ok(notes)
 }
@@ -216,6 +234,11 @@ fn lot_of<'a>(
     let n: i64 = row.get(3)?;
     let m2: f64 = row.get(5)?;
     let role: usize = row.get(8)?;
+    let decisions = [
+        decision_of(row, DECIDED[0], notes.alerts.get(&(sample, false)))?,
+        decision_of(row, DECIDED[1], notes.alerts.get(&(sample, true)))?,
+    ];
+    let mean = decisions[0].as_ref();
     Ok(HistoryLot {
         source: &s.source,
         characteristic: &s.characteristic,
@@ -227,11 +250,37 @@ fn lot_of<'a>(
         min: row.get(6)?,
         max: row.get(7)?,
         role: ROLES[role.min(2)],
-        p_value: row.get(9)?,
-        p_adjusted: row.get(10)?,
-        significant: row.get::<_, Option<i64>>(11)?.map(|v| v != 0),
-        alert_id: notes.alerts.get(&sample).copied(),
+        p_value: mean.and_then(|d| d.p_value),
+        p_adjusted: mean.and_then(|d| d.p_adjusted),
+        significant: mean.map(|d| d.significant),
+        alert_id: mean.and_then(|d| d.alert_id),
         events: notes.events.get(&sample).map_or("", String::as_str),
         outliers: notes.outliers.get(&sample).map_or("", String::as_str),
+        decisions,
     })
+}
+
+/// The decision of one kind in a row of [`LOTS`] (its columns from `at`), if one was made.
+fn decision_of<'a>(
+    row: &'a Row<'_>,
+    (kind, at): (&'static str, usize),
+    alert_id: Option<&i64>,
+) -> rusqlite::Result<Option<LotTest<'a>>> {
+    let Some(test) = row.get_ref(at)?.as_str_or_null()? else {
+        return Ok(None);
+    };
+    Ok(Some(LotTest {
+        kind,
+        test,
+        statistic: row.get(at + 1)?,
+        p_value: row.get(at + 2)?,
+        p_adjusted: row.get(at + 3)?,
+        threshold: row.get(at + 4)?,
+        significant: row.get::<_, i64>(at + 5)? != 0,
+        cusum_upper: row.get(at + 6)?,
+        cusum_lower: row.get(at + 7)?,
+        cusum_h: row.get(at + 8)?,
+        cusum_signal: row.get::<_, i64>(at + 9)? != 0,
+        alert_id: alert_id.copied(),
+    }))
 }
