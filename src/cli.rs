@@ -582,20 +582,23 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
                     "no source named {source:?} is stored"
                 )));
             }
-            let rows = store
-                .history(&source, characteristic.as_deref())
+            let format = match (json, csv) {
+                (true, _) => report::HistoryFormat::Json,
+                (_, true) => report::HistoryFormat::Csv,
+                _ => report::HistoryFormat::Text {
+                    width: report::width(),
+                },
+            };
+            // Lots go out as they are read. A closed standard output (`| head`) ends the read
+            // early and is not a failure, as with every other command's output.
+            let out = std::io::BufWriter::new(std::io::stdout().lock());
+            let mut writer = report::HistoryWriter::new(format, &config.units, out);
+            let written = store
+                .history_each(&source, characteristic.as_deref(), |lot| writer.lot(lot))
                 .await
                 .context("history")?;
-            if json {
-                print_json(&report::history_json(&rows, &config.units));
-            } else if csv {
-                say_part!("{}", report::history_csv(&rows));
-            } else {
-                let decisions = store
-                    .lot_decisions(&source, characteristic.as_deref())
-                    .await
-                    .context("history")?;
-                say_part!("{}", report::history_text(&rows, &decisions, &config.units));
+            if written.is_ok() {
+                let _ = writer.finish();
             }
             Ok(())
         }

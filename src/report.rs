@@ -7,9 +7,14 @@ use serde_json::{Value, json};
 
 use crate::health::{ComponentStatus, HealthStatus};
 use crate::stats::compare::{Comparison, Df};
-use crate::store::{AlertRow, HistoryRow, LotDecision, SilentSource, StatusCounts, UndeliveredRow};
+use crate::store::{AlertRow, SilentSource, StatusCounts, UndeliveredRow};
 
 pub use crate::numbers::{decimals_for, fixed, p_value, signed, two_digits};
+
+mod fitted;
+mod history;
+
+pub use history::{HistoryFormat, HistoryWriter};
 
 /// Columns a table may use when the terminal's width is unknown (output to a file or a pipe,
 /// `COLUMNS` unset).
@@ -56,31 +61,44 @@ pub fn table(header: &[&str], rows: &[Vec<String>]) -> String {
 /// into lines (at spaces where possible); every other column keeps its content's width. A
 /// cell may hold several lines.
 pub fn table_in(width: u16, header: &[&str], rows: &[Vec<String>], wrap: &[usize]) -> String {
-    use comfy_table::{ColumnConstraint, ContentArrangement, LineStyle, Table, TableStyle};
-    let style = TableStyle::new().header_separator(LineStyle::none().fill('-').junction(' '));
-    let mut t = Table::new();
-    t.load_style(style)
-        .set_content_arrangement(ContentArrangement::Dynamic)
-        .set_width(width);
+    let mut t = styled_table(width);
     if header.iter().any(|h| !h.is_empty()) {
         t.set_header(header.to_vec());
     }
     for r in rows {
         t.add_row(r.clone());
     }
-    let columns = t.column_count();
-    for (i, c) in t.column_iter_mut().enumerate() {
-        c.set_padding((0, if i + 1 < columns { 1 } else { 0 }));
-        if !wrap.contains(&i) {
-            c.set_constraint(ColumnConstraint::ContentWidth);
-        }
-    }
+    constrain_columns(&mut t, wrap);
     let mut out = String::new();
     for line in t.lines() {
         out.push_str(line.trim_end());
         out.push('\n');
     }
     out
+}
+
+/// An empty table in our style: no borders, a rule of dashes under the header, fitted to
+/// `width` (see [`table_in`]).
+fn styled_table(width: u16) -> comfy_table::Table {
+    use comfy_table::{ContentArrangement, LineStyle, Table, TableStyle};
+    let style = TableStyle::new().header_separator(LineStyle::none().fill('-').junction(' '));
+    let mut t = Table::new();
+    t.load_style(style)
+        .set_content_arrangement(ContentArrangement::Dynamic)
+        .set_width(width);
+    t
+}
+
+/// One space after every column but the last; the columns not in `wrap` keep their content's
+/// width (call once the rows are in: the columns exist from then on).
+fn constrain_columns(t: &mut comfy_table::Table, wrap: &[usize]) {
+    let columns = t.column_count();
+    for (i, c) in t.column_iter_mut().enumerate() {
+        c.set_padding((0, if i + 1 < columns { 1 } else { 0 }));
+        if !wrap.contains(&i) {
+            c.set_constraint(comfy_table::ColumnConstraint::ContentWidth);
+        }
+    }
 }
 
 /// `text` broken into lines of at most `width` characters at spaces, each line after the
@@ -462,187 +480,6 @@ pub fn alerts_text(alerts: &[AlertRow], units: &Units) -> String {
 /// The date of an RFC 3339 time (`-` when absent).
 fn date(t: Option<&str>) -> String {
     t.map_or_else(|| "-".into(), |t| t.chars().take(10).collect())
-}
-
-/// One lot in `history --json`: the stored row and the characteristic's unit of measure.
-#[derive(serde::Serialize)]
-struct HistoryJson<'a> {
-    #[serde(flatten)]
-    row: &'a HistoryRow,
-    #[serde(skip_serializing_if = "Option::is_none")]
-    unit: Option<&'a str>,
-}
-
-/// `history --json`: one object per lot; `unit` where the characteristic has one configured
-/// (without units the output is byte for byte what it was).
-pub fn history_json(rows: &[HistoryRow], units: &Units) -> Value {
-    json!(
-        rows.iter()
-            .map(|r| HistoryJson {
-                row: r,
-                unit: units.get(&r.characteristic).map(String::as_str),
-            })
-            .collect::<Vec<_>>()
-    )
-}
-
-const HISTORY_HEADER: [&str; 15] = [
-    "source",
-    "characteristic",
-    "lot",
-    "sampled_at",
-    "n",
-    "mean",
-    "sd",
-    "min",
-    "max",
-    "role",
-    "p_value",
-    "p_adjusted",
-    "alert",
-    "events",
-    "outliers",
-];
-
-pub fn history_csv(rows: &[HistoryRow]) -> String {
-    let mut w = csv::Writer::from_writer(Vec::new());
-    let _ = w.write_record(HISTORY_HEADER);
-    for r in rows {
-        let _ = w.write_record([
-            r.source.clone(),
-            r.characteristic.clone(),
-            r.lot.clone(),
-            r.sampled_at.clone().unwrap_or_default(),
-            r.n.to_string(),
-            r.mean.to_string(),
-            r.sd.map(|v| v.to_string()).unwrap_or_default(),
-            r.min.to_string(),
-            r.max.to_string(),
-            r.role.clone(),
-            r.p_value.map(|v| v.to_string()).unwrap_or_default(),
-            r.p_adjusted.map(|v| v.to_string()).unwrap_or_default(),
-            r.alert_id.map(|v| v.to_string()).unwrap_or_default(),
-            r.events.clone(),
-            r.outliers.clone(),
-        ]);
-    }
-    String::from_utf8(w.into_inner().unwrap_or_default()).unwrap_or_default()
-}
-
-/// `history` as tables, one per characteristic, with every decision of each lot (the mean
-/// test and CUSUM, the spread test) beside its summary.
-pub fn history_text(rows: &[HistoryRow], decisions: &[LotDecision], units: &Units) -> String {
-    let mut by_lot: std::collections::HashMap<(&str, &str), Vec<&LotDecision>> =
-        std::collections::HashMap::new();
-    for d in decisions {
-        by_lot
-            .entry((d.characteristic.as_str(), d.lot.as_str()))
-            .or_default()
-            .push(d);
-    }
-    let mut out = String::new();
-    let mut start = 0;
-    while start < rows.len() {
-        let ch = &rows[start].characteristic;
-        let end = start
-            + rows[start..]
-                .iter()
-                .take_while(|r| &r.characteristic == ch)
-                .count();
-        let series = &rows[start..end];
-        let unit = units.get(ch).map(String::as_str);
-        if !out.is_empty() {
-            out.push('\n');
-        }
-        out.push_str(&format!("{} / {}\n", series[0].source, with_unit(ch, unit)));
-        out.push_str(&history_table(series, &by_lot));
-        start = end;
-    }
-    out
-}
-
-/// One series' lots as a table.
-fn history_table(
-    rows: &[HistoryRow],
-    by_lot: &std::collections::HashMap<(&str, &str), Vec<&LotDecision>>,
-) -> String {
-    let scale = median_sd(rows);
-    let d = decimals_for(scale);
-    let body: Vec<Vec<String>> = rows
-        .iter()
-        .map(|r| {
-            let found = by_lot
-                .get(&(r.characteristic.as_str(), r.lot.as_str()))
-                .map(Vec::as_slice)
-                .unwrap_or_default();
-            let notes = [r.events.as_str(), r.outliers.as_str()]
-                .iter()
-                .filter(|t| !t.is_empty())
-                .copied()
-                .collect::<Vec<_>>()
-                .join("; ");
-            vec![
-                format!("{}\n{}", r.lot, date(r.sampled_at.as_deref())),
-                r.n.to_string(),
-                fixed(Some(r.mean), d),
-                fixed(r.sd, d),
-                format!("{} – {}", fixed(Some(r.min), d), fixed(Some(r.max), d)),
-                r.role.clone(),
-                decision_text(found, "mean"),
-                decision_text(found, "spread"),
-                notes,
-            ]
-        })
-        .collect();
-    table_in(
-        width(),
-        &[
-            "lot",
-            "n",
-            "mean",
-            "sd",
-            "min – max",
-            "role",
-            "mean test",
-            "spread test",
-            "alerts, outliers",
-        ],
-        &body,
-        &[6, 7, 8],
-    )
-}
-
-/// The median sd of a series' lots, the scale its numbers are rounded to.
-fn median_sd(rows: &[HistoryRow]) -> f64 {
-    let mut sds: Vec<f64> = rows
-        .iter()
-        .filter_map(|r| r.sd)
-        .filter(|v| *v > 0.0)
-        .collect();
-    if sds.is_empty() {
-        return f64::NAN;
-    }
-    sds.sort_by(f64::total_cmp);
-    sds[sds.len() / 2]
-}
-
-/// A lot's decision of one kind: the adjusted p-value (and the CUSUM when it signalled),
-/// marked `signal` when significant.
-fn decision_text(found: &[&LotDecision], kind: &str) -> String {
-    let Some(d) = found.iter().find(|d| d.kind == kind) else {
-        return String::new();
-    };
-    let mut s = format!("p {}", p_value(d.p_adjusted.or(d.p_value)));
-    if d.cusum_signal {
-        s.push_str(&format!(
-            ", {}",
-            cusum_text(d.cusum_upper, d.cusum_lower, d.cusum_h)
-        ));
-    }
-    if d.significant {
-        s.push_str(" signal");
-    }
-    s
 }
 
 /// A series' baseline and its changes, for `baseline show`.
