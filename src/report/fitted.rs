@@ -9,7 +9,7 @@
 //! prints: a row whose every line fits its column is padded here; rows with a line to break
 //! go through comfy-table, a few at a time, with the widths fixed.
 
-use std::collections::BTreeSet;
+use std::collections::HashSet;
 use std::io::{self, Write};
 
 use comfy_table::{ColumnConstraint, Table, Width};
@@ -44,24 +44,28 @@ pub fn write_table(
 /// that wraps.
 struct Measured {
     widest: Vec<String>,
-    lines: Vec<BTreeSet<String>>,
+    lines: Vec<HashSet<String>>,
 }
 
 fn measure(columns: usize, wrap: &[usize], rows: &dyn Rows) -> io::Result<Measured> {
     let mut m = Measured {
         widest: vec![String::new(); columns],
-        lines: vec![BTreeSet::new(); columns],
+        lines: vec![HashSet::new(); columns],
     };
     let mut widths = vec![0; columns];
+    let wraps: Vec<bool> = (0..columns).map(|i| wrap.contains(&i)).collect();
     rows.each(&mut |cells| {
         for (i, cell) in cells.iter().enumerate().take(columns) {
             for line in cell.split('\n') {
-                if wrap.contains(&i) {
+                if wraps[i] {
                     if !m.lines[i].contains(line) {
                         m.lines[i].insert(line.to_string());
                     }
-                } else if line.width() > widths[i] {
-                    widths[i] = line.width();
+                    continue;
+                }
+                let w = line.width();
+                if w > widths[i] {
+                    widths[i] = w;
                     m.widest[i] = line.to_string();
                 }
             }
@@ -83,12 +87,12 @@ fn write_header(
 ) -> io::Result<Vec<usize>> {
     let mut t = styled_table(width);
     t.set_header(header.to_vec());
-    let height = m.lines.iter().map(BTreeSet::len).max().unwrap_or(0).max(1);
-    let mut lines: Vec<_> = m.lines.iter().map(|l| l.iter()).collect();
+    let height = m.lines.iter().map(HashSet::len).max().unwrap_or(0).max(1);
+    let mut lines: Vec<_> = m.lines.iter().map(sorted).collect();
     for k in 0..height {
         let row: Vec<&str> = (0..header.len())
             .map(|i| match (wrap.contains(&i), k) {
-                (true, _) => lines[i].next().map_or("", String::as_str),
+                (true, _) => lines[i].next().unwrap_or(""),
                 (false, 0) => m.widest[i].as_str(),
                 (false, _) => "",
             })
@@ -109,18 +113,25 @@ fn write_header(
     Err(io::Error::other("a table without a header rule"))
 }
 
+/// The lines in order, so the stand-in table is the same from run to run.
+fn sorted(lines: &HashSet<String>) -> std::vec::IntoIter<&str> {
+    let mut v: Vec<&str> = lines.iter().map(String::as_str).collect();
+    v.sort_unstable();
+    v.into_iter()
+}
+
 fn write_rows(
     out: &mut dyn Write,
     width: u16,
     widths: &[usize],
     rows: &dyn Rows,
 ) -> io::Result<()> {
-    let mut line = String::new();
+    let mut block = String::new();
     let mut batch: Vec<Vec<String>> = Vec::new();
     rows.each(&mut |cells| {
-        if fits(cells, widths) {
+        if padded(&mut block, widths, cells) {
             write_batch(out, width, widths, &mut batch)?;
-            write_padded(out, &mut line, widths, cells)
+            out.write_all(block.as_bytes())
         } else {
             batch.push(cells.iter().map(|c| c.to_string()).collect());
             if batch.len() == BATCH {
@@ -132,43 +143,33 @@ fn write_rows(
     write_batch(out, width, widths, &mut batch)
 }
 
-/// True when every line of every cell fits its column unbroken.
-fn fits(cells: &[&str], widths: &[usize]) -> bool {
-    cells
-        .iter()
-        .zip(widths)
-        .all(|(c, w)| c.split('\n').all(|l| l.width() <= *w))
-}
-
-/// A row of cells that fit: each line of the row with every column padded to its width, one
-/// space of padding and one between columns, trailing spaces removed.
-fn write_padded(
-    out: &mut dyn Write,
-    line: &mut String,
-    widths: &[usize],
-    cells: &[&str],
-) -> io::Result<()> {
-    let height = cells
-        .iter()
-        .map(|c| c.split('\n').count())
-        .max()
-        .unwrap_or(0);
-    for k in 0..height {
-        line.clear();
+/// The lines of a row into `block`, every column padded to its width, one space of padding
+/// and one between columns, trailing spaces removed; false (and `block` of no use) when a
+/// line is wider than its column and must be broken.
+fn padded(block: &mut String, widths: &[usize], cells: &[&str]) -> bool {
+    block.clear();
+    let height = cells.iter().map(|c| c.split('\n').count()).max();
+    for k in 0..height.unwrap_or(0) {
+        let start = block.len();
         for (i, (cell, w)) in cells.iter().zip(widths).enumerate() {
             let text = cell.split('\n').nth(k).unwrap_or("");
-            if i > 0 {
-                line.push_str("  ");
+            let text_width = text.width();
+            if text_width > *w {
+                return false;
             }
-            line.push_str(text);
+            if i > 0 {
+                block.push_str("  ");
+            }
+            block.push_str(text);
             if i + 1 < widths.len() {
-                line.extend(std::iter::repeat_n(' ', w.saturating_sub(text.width())));
+                block.extend(std::iter::repeat_n(' ', w - text_width));
             }
         }
-        out.write_all(line.trim_end().as_bytes())?;
-        out.write_all(b"\n")?;
+        let end = start + block[start..].trim_end().len();
+        block.truncate(end);
+        block.push('\n');
     }
-    Ok(())
+    true
 }
 
 /// Rows with a line to break, through comfy-table with every column's width fixed.

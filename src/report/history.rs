@@ -7,7 +7,7 @@
 
 use std::io::{self, Write};
 
-use super::{Units, cusum_text, date, decimals_for, fitted, fixed, p_value, with_unit};
+use super::{Units, cusum_text, date, decimals_for, fitted, p_value, with_unit};
 use crate::store::{HistoryLot, LotTest};
 
 /// How `history` is written.
@@ -395,10 +395,7 @@ impl SeriesTable {
             self.source,
             with_unit(&self.characteristic, unit)
         )?;
-        let rows = Rounded {
-            decimals: decimals_for(self.median_sd()),
-            table: &self,
-        };
+        let rows = Rounded::of(&self, decimals_for(self.median_sd()));
         fitted::write_table(out, width, &TABLE_HEADER, &TABLE_WRAP, &rows)
     }
 
@@ -418,33 +415,73 @@ impl SeriesTable {
     }
 }
 
-/// A series' rows with their numbers rounded to `decimals`.
+/// A series' rows with their numbers rounded to `decimals`, written once into one string:
+/// the cells mean, sd and min – max of every lot.
 struct Rounded<'a> {
-    decimals: usize,
     table: &'a SeriesTable,
+    text: String,
+    ends: Vec<usize>,
+}
+
+/// Cells of [`Rounded::text`] per lot.
+const NUMBER_CELLS: usize = 3;
+
+impl<'a> Rounded<'a> {
+    fn of(table: &'a SeriesTable, d: usize) -> Rounded<'a> {
+        let mut r = Rounded {
+            table,
+            text: String::new(),
+            ends: Vec::with_capacity(table.numbers.len() * NUMBER_CELLS),
+        };
+        for n in &table.numbers {
+            push_fixed(&mut r.text, Some(n.mean), d);
+            r.ends.push(r.text.len());
+            push_fixed(&mut r.text, n.sd, d);
+            r.ends.push(r.text.len());
+            push_fixed(&mut r.text, Some(n.min), d);
+            r.text.push_str(" – ");
+            push_fixed(&mut r.text, Some(n.max), d);
+            r.ends.push(r.text.len());
+        }
+        r
+    }
+}
+
+/// [`super::fixed`] written into `out`.
+fn push_fixed(out: &mut String, v: Option<f64>, decimals: usize) {
+    use std::fmt::Write as _;
+    match v {
+        Some(v) if v.is_finite() => {
+            let _ = write!(out, "{v:.decimals$}");
+        }
+        _ => out.push('-'),
+    }
+}
+
+/// The cells of row `i` of a table kept as one string and the end of each cell.
+fn cells_of<'t, const N: usize>(text: &'t str, ends: &[usize], i: usize) -> [&'t str; N] {
+    let mut start = if i == 0 { 0 } else { ends[i * N - 1] };
+    let mut cells = [""; N];
+    for (cell, end) in cells.iter_mut().zip(&ends[i * N..(i + 1) * N]) {
+        *cell = &text[start..*end];
+        start = *end;
+    }
+    cells
 }
 
 impl fitted::Rows for Rounded<'_> {
     fn each(&self, row: &mut dyn FnMut(&[&str]) -> io::Result<()>) -> io::Result<()> {
-        let (t, d) = (self.table, self.decimals);
-        let mut start = 0;
-        for (i, n) in t.numbers.iter().enumerate() {
-            let ends = &t.ends[i * TEXT_CELLS..(i + 1) * TEXT_CELLS];
-            let mut cells = [""; TEXT_CELLS];
-            for (cell, end) in cells.iter_mut().zip(ends) {
-                *cell = &t.text[start..*end];
-                start = *end;
-            }
-            let mean = fixed(Some(n.mean), d);
-            let sd = fixed(n.sd, d);
-            let range = format!("{} – {}", fixed(Some(n.min), d), fixed(Some(n.max), d));
-            let [lot, count, role, mean_test, spread_test, notes] = cells;
+        let t = self.table;
+        for i in 0..t.numbers.len() {
+            let [lot, count, role, mean_test, spread_test, notes] =
+                cells_of::<TEXT_CELLS>(&t.text, &t.ends, i);
+            let [mean, sd, range] = cells_of::<NUMBER_CELLS>(&self.text, &self.ends, i);
             row(&[
                 lot,
                 count,
-                &mean,
-                &sd,
-                &range,
+                mean,
+                sd,
+                range,
                 role,
                 mean_test,
                 spread_test,
