@@ -89,6 +89,10 @@ impl<T> Doing<T> for std::result::Result<T, sqlx::Error> {
 /// to stay far below SQLite's bound-parameter limit (5 parameters a row here).
 const ROWS_PER_INSERT: usize = 500;
 
+/// Bytes of heap SQLite may hold in this process before its page caches stop growing: one
+/// connection's full cache (16 MiB) and as much again for the others.
+const SQLITE_HEAP_LIMIT: &str = "33554432";
+
 /// Ids of names already stored, so a batch does not look up the same source again for every
 /// file. Only committed ids enter the cache.
 #[derive(Default)]
@@ -827,6 +831,11 @@ impl Store {
             // touches the indexes of lots, files and samples at random, and the default 2 MiB
             // makes it read pages back; 32 MiB each put a backfill's peak memory near 250 MiB.
             .pragma("cache_size", "-16384")
+            // SQLite's heap for the whole process (the pragma is process-wide): past it, a
+            // connection reuses its own least recently used pages instead of growing. Without
+            // it four full caches (64 MiB) came on top of a large file's parsed values at the
+            // start of the engine pass; one file now stays within its own size.
+            .pragma("soft_heap_limit", SQLITE_HEAP_LIMIT)
             // A backfill's large statements are expected; only report them at debug level.
             .log_slow_statements(tracing::log::LevelFilter::Debug, Duration::from_secs(5));
         let pool = SqlitePoolOptions::new()
