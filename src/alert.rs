@@ -663,28 +663,7 @@ pub fn subject(item: &OutboxItem) -> String {
 
 /// A measured value or statistic as people write it (5 significant digits), or "-".
 fn fmt_opt(v: Option<f64>) -> String {
-    v.map_or_else(|| "-".to_string(), |v| crate::page::fmt::sig(v, 5))
-}
-
-/// A p-value after its name: `= 0.0012`, `< 1e-9`.
-fn fmt_p(v: Option<f64>) -> String {
-    crate::page::fmt::p_is(v)
-}
-
-/// Degrees of freedom: whole numbers as such, else one decimal; an F test's two (`9 and 620`).
-fn fmt_df(df: Option<f64>, df2: Option<f64>) -> String {
-    let one = |d: f64| {
-        if (d - d.round()).abs() < 1e-9 {
-            format!("{}", d.round())
-        } else {
-            format!("{d:.1}")
-        }
-    };
-    match (df, df2) {
-        (Some(a), Some(b)) => format!("{} and {}", one(a), one(b)),
-        (Some(a), None) => one(a),
-        (None, _) => "-".into(),
-    }
+    crate::page::fmt::opt(v, 5)
 }
 
 /// The numbers of an alert message as (label, value) rows, shared by the plain-text and the
@@ -747,18 +726,18 @@ pub fn facts(item: &OutboxItem) -> Vec<(&'static str, String)> {
             a.test,
             a.alternative,
             fmt_opt(a.statistic),
-            fmt_df(a.df, a.df2),
-            fmt_p(a.p_value)
+            crate::numbers::df(a.df, a.df2),
+            crate::numbers::p_is(a.p_value)
         ),
     ));
     rows.push((
         "Adjusted",
         format!(
             "p {} ({} over {} test(s) of this lot, level {})",
-            fmt_p(a.p_adjusted),
+            crate::numbers::p_is(a.p_adjusted),
             a.method,
             a.family_size,
-            crate::page::fmt::sig(a.level, 2)
+            crate::numbers::p_value(Some(a.level))
         ),
     ));
     if let Some(model) = &a.model {
@@ -1446,45 +1425,7 @@ mod tests {
             event_kind: "opened".into(),
             event_at: "2026-03-01T08:30:00.000Z".into(),
             opening_lot: lot.into(),
-            alert: AlertRow {
-                df2: None,
-                id: 4,
-                source: source.into(),
-                characteristic: "mass_g".into(),
-                state: "open".into(),
-                opened_at: "2026-03-01T08:30:00.000Z".into(),
-                resolved_at: None,
-                lot: lot.into(),
-                lot_sampled_at: Some("2026-02-27".into()),
-                test: "welch".into(),
-                alternative: "two-sided".into(),
-                statistic: Some(-7.25),
-                df: Some(13.5),
-                p_value: Some(1.5e-6),
-                p_adjusted: Some(3.0e-6),
-                method: "holm".into(),
-                level: 0.01,
-                family_size: 2,
-                baseline_n: 240,
-                baseline_mean: 200.0,
-                baseline_sd: Some(1.0),
-                lot_n: 12,
-                lot_mean: 197.0,
-                lot_sd: Some(1.1),
-                estimate: Some(-3.0),
-                ci: Some([-3.7, -2.3]),
-                lots: 1,
-                kind: "mean".into(),
-                model: Some("units".into()),
-                note: None,
-                cpk: None,
-                acknowledged: None,
-                cusum_upper: None,
-                cusum_lower: None,
-                cusum_h: None,
-                events: Vec::new(),
-                acknowledgements: Vec::new(),
-            },
+            alert: AlertRow::example(source, lot),
         }
     }
 

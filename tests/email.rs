@@ -155,7 +155,7 @@ fn an_alert_reaches_every_recipient_once_with_headers_both_parts_and_the_chart()
             "mean = {}",
             lotdrift::page::fmt::sig(alert["lot_mean"].as_f64().unwrap(), 5)
         );
-        let p = format!("p {}", lotdrift::page::fmt::p_is(alert["p_value"].as_f64()));
+        let p = format!("p {}", lotdrift::numbers::p_is(alert["p_value"].as_f64()));
         for needle in [
             lot_mean.as_str(),
             p.as_str(),

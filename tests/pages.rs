@@ -17,6 +17,9 @@ use common::{
 /// A source name that would run a script if a page inserted it unescaped.
 const HOSTILE: &str = "<script>alert(1)</script>";
 
+/// The unit of measure of one of the two characteristics (the other has none).
+const UNITS: &str = "[characteristic.capacity_mah]\nunit = \"mAh\"";
+
 /// Two sources of two characteristics, 26 lots each; alder-cells' capacity shifts by 4 unit
 /// sd from lot 22 on (an open alert).
 fn site(extra: &str) -> Site {
@@ -57,9 +60,38 @@ fn assert_shown_as_text(b: &mut Browser) {
     );
 }
 
+/// Every series of capacity_mah shows its unit of measure on its heading, its lot-mean axis,
+/// its lot table and its facts; mass_g's (no unit configured) nowhere; the open alert (of
+/// capacity) gives its means in mAh.
+fn assert_units_shown(b: &mut Browser) {
+    let per_series = b.eval(
+        "[...document.querySelectorAll('section.series')].map(s => [\
+         s.querySelector('h2').innerText.includes('capacity_mah'), \
+         s.querySelector('h2').innerText.includes('(mAh)'), \
+         s.querySelector('svg.chart').textContent.includes('lot mean (mAh)'), \
+         s.querySelector('table.lots thead').innerText.includes('mean (mAh)'), \
+         s.querySelector('dl.facts').innerText.includes(' mAh')])",
+    );
+    let rows = per_series.as_array().unwrap();
+    assert_eq!(rows.len(), 4, "{per_series}");
+    for row in rows {
+        let capacity = &row[0];
+        assert!(
+            row.as_array().unwrap().iter().all(|v| v == capacity),
+            "unit shown where it should not be, or missing: {per_series}"
+        );
+    }
+    let card = b.eval("document.querySelector('.alert-card.open').innerText");
+    let card = card.as_str().unwrap();
+    assert!(
+        card.contains(" mAh (n = 12) against baseline ") && card.contains("mAh;"),
+        "{card}"
+    );
+}
+
 #[test]
 fn the_report_shows_every_series_with_its_charts_and_names_as_text() {
-    let site = site("");
+    let site = site(UNITS);
     let out_file = site.path().join("report.html");
     let out = site.run(&["report", "--out", out_file.to_str().unwrap()]);
     assert!(out.status.success(), "report: {}", text(&out.stderr));
@@ -99,6 +131,7 @@ fn the_report_shows_every_series_with_its_charts_and_names_as_text() {
         1
     );
     assert_shown_as_text(&mut b);
+    assert_units_shown(&mut b);
     eprintln!("screenshot: {}", shot.display());
     // It prints: a PDF with a page of its own for each series after the summary pages.
     let pdf = b.call(
@@ -192,7 +225,7 @@ impl Drop for Dashboard {
 
 impl Dashboard {
     fn start() -> Dashboard {
-        let site = site("");
+        let site = site(UNITS);
         let port = free_port();
         std::fs::write(site.path().join("web-token.txt"), format!("{TOKEN}\n")).unwrap();
         let mut cfg = std::fs::read_to_string(site.config()).unwrap();
@@ -254,6 +287,11 @@ fn the_dashboard_shows_every_series_and_acknowledges_with_the_token_only() {
         4
     );
     assert_shown_as_text(&mut b);
+    let overview = b.eval("document.querySelector('table.overview').innerText");
+    assert!(
+        overview.as_str().unwrap().contains("capacity_mah (mAh)"),
+        "{overview}"
+    );
     let links = b.eval("[...document.querySelectorAll('table.overview a')].map(a => a.href)");
     for (i, link) in links.as_array().unwrap().iter().enumerate() {
         b.goto(link.as_str().unwrap());
