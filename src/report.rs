@@ -366,17 +366,18 @@ struct AlertJson<'a> {
     #[serde(flatten)]
     row: &'a AlertRow,
     #[serde(skip_serializing_if = "Option::is_none")]
-    unit: Option<&'a str>,
+    unit_of_measure: Option<&'a str>,
 }
 
-/// `alerts --json`: an array of alerts; `unit` where the characteristic has one configured.
+/// `alerts --json`: an array of alerts; `unit_of_measure` where the characteristic has one
+/// configured (`unit` is a unit's serial in lot files and views, so the key says which unit).
 pub fn alerts_json(alerts: &[AlertRow], units: &Units) -> Value {
     json!(
         alerts
             .iter()
             .map(|a| AlertJson {
                 row: a,
-                unit: units.get(&a.characteristic).map(String::as_str),
+                unit_of_measure: units.get(&a.characteristic).map(String::as_str),
             })
             .collect::<Vec<_>>()
     )
@@ -470,17 +471,17 @@ struct HistoryJson<'a> {
     #[serde(flatten)]
     row: &'a HistoryRow,
     #[serde(skip_serializing_if = "Option::is_none")]
-    unit: Option<&'a str>,
+    unit_of_measure: Option<&'a str>,
 }
 
-/// `history --json`: one object per lot; `unit` where the characteristic has one configured
-/// (without units the output is byte for byte what it was).
+/// `history --json`: one object per lot; `unit_of_measure` where the characteristic has one
+/// configured (without units the output is byte for byte what it was).
 pub fn history_json(rows: &[HistoryRow], units: &Units) -> Value {
     json!(
         rows.iter()
             .map(|r| HistoryJson {
                 row: r,
-                unit: units.get(&r.characteristic).map(String::as_str),
+                unit_of_measure: units.get(&r.characteristic).map(String::as_str),
             })
             .collect::<Vec<_>>()
     )
