@@ -420,11 +420,9 @@ fn alert_shift(a: &AlertRow, unit: Option<&str>) -> String {
             .map_or("-".into(), |e| format!("×{}", two_digits(Some(e))));
     }
     let d = decimals_for(a.baseline_sd.or(a.lot_sd).unwrap_or(f64::NAN));
-    let shift = signed(a.estimate, d);
-    match unit {
-        Some(u) if a.estimate.is_some() => format!("{shift} {u}"),
-        _ => shift,
-    }
+    // On the log scale the estimate is of ln(value): it has no unit.
+    let unit = unit.filter(|_| !crate::engine::on_log_scale(a.note.as_deref()));
+    crate::numbers::with_unit(signed(a.estimate, d), unit)
 }
 
 pub fn alerts_text(alerts: &[AlertRow], units: &Units) -> String {
