@@ -406,3 +406,66 @@ fn on_loopback_without_a_token_file_the_daemon_writes_a_private_token() {
     let mode = std::fs::metadata(&token).unwrap().permissions().mode() & 0o777;
     assert_eq!(mode, 0o600);
 }
+
+/// A series of positive, right-skewed values (log-normal units, sd 0.8 of ln(value)) is tested
+/// on the log scale: its report shows geometric lot means for every lot, every lot's
+/// within-lot sd, says that the series is tested on the log scale, and gives the design's
+/// numbers (of ln(value)) without the unit of measure.
+#[test]
+fn a_log_scale_series_shows_every_lot_on_its_charts() {
+    let site = Site::new("[characteristic.leakage_ua]\nunit = \"uA\"");
+    for lot in 0..26 {
+        let code = format!("LK-{:03}", lot + 1);
+        let values: Vec<f64> = lot_values(12, 0.0, 0.8, lot)
+            .iter()
+            .map(|v| v.exp())
+            .collect();
+        let file = long_file(
+            "alder-cells",
+            &code,
+            &lot_date(lot),
+            &[("leakage_ua", values)],
+        );
+        drop_file(&site.inbox(), &format!("{code}.csv"), &file);
+    }
+    let out = site.once();
+    assert!(out.status.success(), "run --once: {}", text(&out.stderr));
+    let out_file = site.path().join("log.html");
+    let out = site.run(&["report", "--out", out_file.to_str().unwrap()]);
+    assert!(out.status.success(), "report: {}", text(&out.stderr));
+
+    let mut b = Browser::launch();
+    b.goto(&format!("file://{}", out_file.display()));
+    b.screenshot("report-log-scale");
+    assert!(b.problems().is_empty(), "problems: {:?}", b.problems());
+    let notes = b.eval("document.querySelector('ul.notes').innerText");
+    assert!(
+        notes.as_str().unwrap().contains("Tested on the log scale"),
+        "{notes}"
+    );
+    let mut chart = |kind: &str| {
+        b.eval(&format!(
+            "(() => {{ const c = document.querySelector('svg[id$=\"-{kind}\"]'); \
+             return [[...c.querySelectorAll('text.axis')].pop().textContent, \
+             c.querySelectorAll('g > title').length]; }})()"
+        ))
+    };
+    assert_eq!(
+        chart("mean"),
+        serde_json::json!(["geometric lot mean (uA)", 26])
+    );
+    assert_eq!(
+        chart("spread"),
+        serde_json::json!(["within-lot sd (uA)", 26])
+    );
+    let ln_facts = b.eval(
+        "[...document.querySelectorAll('dl.facts dt')].filter(dt => \
+         dt.innerText.includes('of ln(value)')).map(dt => dt.nextElementSibling.innerText)",
+    );
+    let ln_facts = ln_facts.as_array().unwrap();
+    assert_eq!(ln_facts.len(), 3, "{ln_facts:?}");
+    assert!(
+        ln_facts.iter().all(|v| !v.as_str().unwrap().contains("uA")),
+        "{ln_facts:?}"
+    );
+}

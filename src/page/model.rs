@@ -133,7 +133,7 @@ pub async fn alert_chart(
     let unit = config.unit(&a.characteristic);
     let key = format!("s{id}");
     let mut chart = match (a.kind.as_str(), a.test.as_str()) {
-        ("spread", _) => spread_chart(&key, &lots, design.as_ref()),
+        ("spread", _) => spread_chart(&key, &lots, design.as_ref(), unit),
         (_, "cusum") => cusum_chart(&key, &lots),
         _ => {
             let geo = match &design {
@@ -193,7 +193,7 @@ pub async fn series_page(
     let id = format!("s{}", row.id);
     let mut charts = vec![mean_chart(&id, &lots, design.as_ref(), &policy, &geo, unit)];
     if lots.iter().any(|l| l.spread.is_some()) {
-        charts.push(spread_chart(&id, &lots, design.as_ref()));
+        charts.push(spread_chart(&id, &lots, design.as_ref(), unit));
     }
     if lots
         .iter()
@@ -385,64 +385,101 @@ fn mean_lines(lots: &[ChartLot], d: &Design, policy: &CharacteristicPolicy) -> V
     lines
 }
 
-fn spread_chart(id: &str, lots: &[ChartLot], design: Option<&Design>) -> Chart {
-    let mut points = Vec::new();
-    let mut limit = Vec::new();
-    for (i, l) in lots.iter().enumerate() {
-        let Some(e) = &l.spread else {
-            limit.push(None);
-            continue;
-        };
-        limit.push(design.and_then(|d| limits::spread_limit(d, e.lot_n as u64, e.level)));
-        if let Some(r) = e.estimate {
-            points.push(Point {
-                x: i,
-                y: r,
-                mark: if e.significant {
-                    Mark::Flagged
-                } else {
-                    Mark::Tested
-                },
-                label: label(l, "spread"),
-                tip: format!(
-                    "{}, p {}",
-                    tip(l, "spread ratio", r, None),
-                    numbers::p_is(e.p_value)
-                ),
-            });
+/// Whether a lot's spread decision is an F test of its variance against the baseline's
+/// within-lot variance on the scale of the values (then its ratio and limit convert exactly
+/// to a within-lot sd in the unit of measure).
+fn f_on_values(e: &crate::store::ChartEval, design: Option<&Design>) -> bool {
+    e.test == "f-variance" && design.is_some_and(|d| !d.log_scale)
+}
+
+/// A lot on the spread chart: the sd its spread test used where that converts exactly (an F
+/// test: ratio × baseline variance, outliers set aside), else the sd of its stored values.
+fn spread_point(
+    i: usize,
+    l: &ChartLot,
+    design: Option<&Design>,
+    unit: Option<&str>,
+) -> Option<Point> {
+    let var_within = design.map(|d| d.re.var_within);
+    let (y, mark, tested) = match (&l.spread, var_within) {
+        (Some(e), Some(v)) if f_on_values(e, design) && e.estimate.is_some() => {
+            ((e.estimate? * v).sqrt(), spread_mark(e), Some(e))
         }
+        (Some(e), _) => (l.summary.sd()?, spread_mark(e), Some(e)),
+        (None, _) => (l.summary.sd()?, Mark::Baseline, None),
+    };
+    let mut tip = tip(l, "within-lot sd", y, unit);
+    if let Some(e) = tested {
+        tip.push_str(&format!(
+            ", spread ratio {}, p {}",
+            fmt::opt(e.estimate, 3),
+            numbers::p_is(e.p_value)
+        ));
     }
-    let f_test = lots
+    Some(Point {
+        x: i,
+        y,
+        mark,
+        label: label(l, "spread"),
+        tip,
+    })
+}
+
+fn spread_mark(e: &crate::store::ChartEval) -> Mark {
+    if e.significant {
+        Mark::Flagged
+    } else {
+        Mark::Tested
+    }
+}
+
+/// Every lot's within-lot sd, the tested ones marked by their spread decision, against the
+/// baseline's within-lot sd; the limit is drawn where the test converts to an sd exactly (an
+/// F test on the values), else the marks alone show the decision.
+fn spread_chart(id: &str, lots: &[ChartLot], design: Option<&Design>, unit: Option<&str>) -> Chart {
+    let points = lots
         .iter()
-        .filter_map(|l| l.spread.as_ref())
-        .any(|e| e.test == "f-variance");
-    Chart {
-        id: format!("{id}-spread"),
-        title: "Within-lot spread of each tested lot relative to the baseline's".into(),
-        y_label: if f_test {
-            "variance ratio"
-        } else {
-            "spread ratio"
-        }
-        .into(),
-        lots: lots.iter().map(|l| l.lot.clone()).collect(),
-        points,
-        lines: vec![
-            Line {
-                name: "as in baseline".into(),
-                values: lots
-                    .iter()
-                    .map(|l| l.spread.as_ref().map(|_| 1.0))
-                    .collect(),
-                style: LineStyle::Centre,
-            },
-            Line {
+        .enumerate()
+        .filter_map(|(i, l)| spread_point(i, l, design, unit))
+        .collect();
+    let mut lines = Vec::new();
+    if let Some(d) = design.filter(|d| !d.log_scale) {
+        let sd = d.re.var_within.sqrt();
+        lines.push(Line {
+            name: "baseline within-lot sd".into(),
+            values: vec![Some(sd); lots.len()],
+            style: LineStyle::Centre,
+        });
+        let limit: Vec<Option<f64>> = lots
+            .iter()
+            .map(|l| match &l.spread {
+                Some(e) if f_on_values(e, design) => {
+                    limits::spread_limit(d, e.lot_n as u64, e.level)
+                        .map(|r| (r * d.re.var_within).sqrt())
+                }
+                _ => None,
+            })
+            .collect();
+        if limit.iter().any(Option::is_some) {
+            lines.push(Line {
                 name: "limit".into(),
                 values: limit,
                 style: LineStyle::Limit,
-            },
+            });
+        }
+    }
+    Chart {
+        id: format!("{id}-spread"),
+        title: "Within-lot sd of every lot, tested lots marked by the spread test".into(),
+        y_label: axis_label("within-lot sd", unit),
+        lots: lots.iter().map(|l| l.lot.clone()).collect(),
+        points,
+        lines,
+        legend: vec![
+            (Mark::Baseline, "baseline or not tested"),
+            (Mark::Tested, "tested, in control"),
+            (Mark::Flagged, "flagged"),
         ],
-        legend: vec![(Mark::Tested, "in control"), (Mark::Flagged, "flagged")],
         limit_name: "decision limit".into(),
     }
 }
@@ -529,12 +566,22 @@ fn facts(row: &SeriesRow, design: Option<&Design>, config: &Config) -> Vec<(Stri
         "baseline".into(),
         format!("first {} lots, {} units", re.m, re.n_total),
     ));
-    f.push((
-        "baseline mean (of lot means)".into(),
-        value(re.mean_of_means, 5),
-    ));
-    f.push(("within-lot sd".into(), value(re.var_within.sqrt(), 3)));
-    f.push(("between-lot sd".into(), value(re.var_between.sqrt(), 3)));
+    // On the log scale the design's numbers are of ln(value) and carry no unit.
+    let (of, scale_unit) = if d.log_scale {
+        (" of ln(value)", None)
+    } else {
+        ("", unit)
+    };
+    for (name, v, digits) in [
+        ("baseline mean (of lot means)", re.mean_of_means, 5),
+        ("within-lot sd", re.var_within.sqrt(), 3),
+        ("between-lot sd", re.var_between.sqrt(), 3),
+    ] {
+        f.push((
+            format!("{name}{of}"),
+            with_unit(fmt::sig(v, digits), scale_unit),
+        ));
+    }
     f.push((
         "lot test level (per lot)".into(),
         numbers::p_value(Some(d.level_mean)),
@@ -598,6 +645,12 @@ fn notes(
             "Only shifts significantly larger than {} count.",
             with_unit(fmt::sig(policy.min_shift, 3), unit)
         ));
+    }
+    if lots
+        .iter()
+        .any(|l| l.spread.as_ref().is_some_and(|e| !f_on_values(e, design)))
+    {
+        n.push("The spread test here compares a robust measure of spread (or the spread of ln(value)), which does not convert to an sd: the spread chart draws no limit, its marks show the decisions.".into());
     }
     if d.log_scale {
         n.push("Tested on the log scale (positive, right-skewed values): the chart shows geometric lot means.".into());
@@ -850,6 +903,55 @@ mod tests {
             set_aside: 0,
             opened: Vec::new(),
         }
+    }
+
+    fn spread_eval(significant: bool) -> crate::store::ChartEval {
+        crate::store::ChartEval {
+            test: "f-variance".into(),
+            level: 0.001,
+            family_size: 1,
+            significant,
+            statistic: Some(1.2),
+            df: Some(11.0),
+            df2: Some(239.0),
+            p_value: Some(0.3),
+            p_adjusted: Some(0.3),
+            lot_mean: 3001.0,
+            lot_n: 2,
+            estimate: Some(1.2),
+            cusum: None,
+            cusum_signal: false,
+            cpk: None,
+        }
+    }
+
+    #[test]
+    fn the_spread_chart_shows_every_lots_sd_and_marks_the_tested_ones() {
+        let mut lots = vec![
+            lot("L1", &[3000.0, 3002.0]),
+            lot("L2", &[3000.0, 3004.0]),
+            lot("L3", &[3000.0, 3008.0]),
+        ];
+        lots[1].baseline = false;
+        lots[1].spread = Some(spread_eval(false));
+        lots[2].baseline = false;
+        lots[2].spread = Some(spread_eval(true));
+        let chart = spread_chart("s1", &lots, None, Some("mAh"));
+        assert_eq!(chart.y_label, "within-lot sd (mAh)");
+        let marks: Vec<(usize, Mark)> = chart.points.iter().map(|p| (p.x, p.mark)).collect();
+        assert_eq!(
+            marks,
+            [(0, Mark::Baseline), (1, Mark::Tested), (2, Mark::Flagged)]
+        );
+        // Without a design the sds are the stored values' (sd of 3000 and 3008: 5.657).
+        assert!((chart.points[2].y - 32f64.sqrt()).abs() < 1e-12);
+        assert!(
+            chart.points[1]
+                .tip
+                .ends_with("sd 2.828 mAh, spread ratio 1.20, p = 0.3"),
+            "{}",
+            chart.points[1].tip
+        );
     }
 
     #[test]
