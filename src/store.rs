@@ -2956,7 +2956,7 @@ fn alert_from_row(r: &SqliteRow, o: usize) -> AlertRow {
         alternative: r.get(o + 9),
         statistic: r.get(o + 10),
         df: r.get(o + 11),
-        df2: r.get(o + 36),
+        df2: r.get(o + 39),
         p_value: r.get(o + 12),
         p_adjusted: r.get(o + 13),
         method: r.get(o + 14),

@@ -104,6 +104,9 @@ fn json_carries_the_unit_and_the_cusum() {
     assert_eq!(a["kind"], "mean");
     assert!(a["cusum_h"].as_f64().unwrap() > 0.0, "{a}");
     assert!(a["cusum_upper"].is_f64(), "{a}");
+    // A mean test has one df: `df2` is not the CUSUM sum read from the column beside it
+    // (regression: it was, and pages and emails showed `df = 220 and 13.6`).
+    assert!(a["df2"].is_null(), "{a}");
     // Characteristics without a unit have no `unit_of_measure` key (history stays
     // byte-stable); `unit` is a unit's serial in lot files and views, never this.
     let hist = site.json(&["history", "alder-cells"]);
