@@ -115,6 +115,16 @@ fn the_report_shows_every_series_with_its_charts_and_names_as_text() {
         serde_json::json!([3, 3, 3, 3]),
         "charts per series"
     );
+    // The spread chart has every lot (26 points) and the spread test's limit.
+    let spread = b.eval(
+        "[...document.querySelectorAll('svg[id$=\"-spread\"]')].map(c => \
+         [c.querySelectorAll('g > title').length, c.querySelectorAll('path.limit').length > 0])",
+    );
+    assert_eq!(
+        spread,
+        serde_json::json!([[26, true], [26, true], [26, true], [26, true]]),
+        "spread charts"
+    );
     // The alert is listed with its numbers, and its lots are flagged on the chart.
     assert!(
         b.eval("document.querySelectorAll('.alert-card.open').length")

@@ -385,30 +385,37 @@ fn mean_lines(lots: &[ChartLot], d: &Design, policy: &CharacteristicPolicy) -> V
     lines
 }
 
-/// Whether a lot's spread decision is an F test of its variance against the baseline's
-/// within-lot variance on the scale of the values (then its ratio and limit convert exactly
-/// to a within-lot sd in the unit of measure).
-fn f_on_values(e: &crate::store::ChartEval, design: Option<&Design>) -> bool {
-    e.test == "f-variance" && design.is_some_and(|d| !d.log_scale)
+/// A spread ratio of test `test` as a within-lot sd in the unit of measure: the ratio times
+/// the baseline's within-lot sd, or its square root times it for an F test (a ratio of
+/// variances). None on the log scale, where the test's spread is of ln(value).
+fn ratio_as_sd(test: &str, ratio: f64, design: Option<&Design>) -> Option<f64> {
+    let d = design.filter(|d| !d.log_scale)?;
+    let sd = d.re.var_within.sqrt();
+    Some(if test == "f-variance" {
+        ratio.sqrt() * sd
+    } else {
+        ratio * sd
+    })
 }
 
-/// A lot on the spread chart: the sd its spread test used where that converts exactly (an F
-/// test: ratio × baseline variance, outliers set aside), else the sd of its stored values.
+/// A lot on the spread chart: a tested lot at the spread its test measured (outliers set
+/// aside) as an sd, so that it lies beyond the limit exactly when it was flagged; any other
+/// lot (or any lot on the log scale) at the sd of its stored values.
 fn spread_point(
     i: usize,
     l: &ChartLot,
     design: Option<&Design>,
     unit: Option<&str>,
 ) -> Option<Point> {
-    let var_within = design.map(|d| d.re.var_within);
-    let (y, mark, tested) = match (&l.spread, var_within) {
-        (Some(e), Some(v)) if f_on_values(e, design) && e.estimate.is_some() => {
-            ((e.estimate? * v).sqrt(), spread_mark(e), Some(e))
-        }
-        (Some(e), _) => (l.summary.sd()?, spread_mark(e), Some(e)),
-        (None, _) => (l.summary.sd()?, Mark::Baseline, None),
+    let tested = l.spread.as_ref();
+    let as_tested = tested.and_then(|e| ratio_as_sd(&e.test, e.estimate?, design));
+    let y = as_tested.or(l.summary.sd())?;
+    let what = if as_tested.is_some() {
+        "within-lot sd as tested"
+    } else {
+        "within-lot sd"
     };
-    let mut tip = tip(l, "within-lot sd", y, unit);
+    let mut tip = tip(l, what, y, unit);
     if let Some(e) = tested {
         tip.push_str(&format!(
             ", spread ratio {}, p {}",
@@ -419,7 +426,7 @@ fn spread_point(
     Some(Point {
         x: i,
         y,
-        mark,
+        mark: tested.map_or(Mark::Baseline, spread_mark),
         label: label(l, "spread"),
         tip,
     })
@@ -434,8 +441,8 @@ fn spread_mark(e: &crate::store::ChartEval) -> Mark {
 }
 
 /// Every lot's within-lot sd, the tested ones marked by their spread decision, against the
-/// baseline's within-lot sd; the limit is drawn where the test converts to an sd exactly (an
-/// F test on the values), else the marks alone show the decision.
+/// baseline's within-lot sd and the spread test's limit (as an sd); on the log scale the
+/// marks alone show the decisions.
 fn spread_chart(id: &str, lots: &[ChartLot], design: Option<&Design>, unit: Option<&str>) -> Chart {
     let points = lots
         .iter()
@@ -453,11 +460,9 @@ fn spread_chart(id: &str, lots: &[ChartLot], design: Option<&Design>, unit: Opti
         let limit: Vec<Option<f64>> = lots
             .iter()
             .map(|l| match &l.spread {
-                Some(e) if f_on_values(e, design) => {
-                    limits::spread_limit(d, e.lot_n as u64, e.level)
-                        .map(|r| (r * d.re.var_within).sqrt())
-                }
-                _ => None,
+                Some(e) => limits::spread_limit(d, e.lot_n as u64, e.level)
+                    .and_then(|r| ratio_as_sd(&e.test, r, design)),
+                None => None,
             })
             .collect();
         if limit.iter().any(Option::is_some) {
@@ -646,11 +651,8 @@ fn notes(
             with_unit(fmt::sig(policy.min_shift, 3), unit)
         ));
     }
-    if lots
-        .iter()
-        .any(|l| l.spread.as_ref().is_some_and(|e| !f_on_values(e, design)))
-    {
-        n.push("The spread test here compares a robust measure of spread (or the spread of ln(value)), which does not convert to an sd: the spread chart draws no limit, its marks show the decisions.".into());
+    if d.log_scale && lots.iter().any(|l| l.spread.is_some()) {
+        n.push("The spread test compares the spread of ln(value), which does not convert to an sd of the values: the spread chart shows each lot's sd without a limit; its marks show the decisions.".into());
     }
     if d.log_scale {
         n.push("Tested on the log scale (positive, right-skewed values): the chart shows geometric lot means.".into());
