@@ -366,17 +366,18 @@ struct AlertJson<'a> {
     #[serde(flatten)]
     row: &'a AlertRow,
     #[serde(skip_serializing_if = "Option::is_none")]
-    unit: Option<&'a str>,
+    unit_of_measure: Option<&'a str>,
 }
 
-/// `alerts --json`: an array of alerts; `unit` where the characteristic has one configured.
+/// `alerts --json`: an array of alerts; `unit_of_measure` where the characteristic has one
+/// configured (`unit` is a unit's serial in lot files and views, so the key says which unit).
 pub fn alerts_json(alerts: &[AlertRow], units: &Units) -> Value {
     json!(
         alerts
             .iter()
             .map(|a| AlertJson {
                 row: a,
-                unit: units.get(&a.characteristic).map(String::as_str),
+                unit_of_measure: units.get(&a.characteristic).map(String::as_str),
             })
             .collect::<Vec<_>>()
     )
@@ -419,11 +420,9 @@ fn alert_shift(a: &AlertRow, unit: Option<&str>) -> String {
             .map_or("-".into(), |e| format!("×{}", two_digits(Some(e))));
     }
     let d = decimals_for(a.baseline_sd.or(a.lot_sd).unwrap_or(f64::NAN));
-    let shift = signed(a.estimate, d);
-    match unit {
-        Some(u) if a.estimate.is_some() => format!("{shift} {u}"),
-        _ => shift,
-    }
+    // On the log scale the estimate is of ln(value): it has no unit.
+    let unit = unit.filter(|_| !crate::engine::on_log_scale(a.note.as_deref()));
+    crate::numbers::with_unit(signed(a.estimate, d), unit)
 }
 
 pub fn alerts_text(alerts: &[AlertRow], units: &Units) -> String {
@@ -470,17 +469,17 @@ struct HistoryJson<'a> {
     #[serde(flatten)]
     row: &'a HistoryRow,
     #[serde(skip_serializing_if = "Option::is_none")]
-    unit: Option<&'a str>,
+    unit_of_measure: Option<&'a str>,
 }
 
-/// `history --json`: one object per lot; `unit` where the characteristic has one configured
-/// (without units the output is byte for byte what it was).
+/// `history --json`: one object per lot; `unit_of_measure` where the characteristic has one
+/// configured (without units the output is byte for byte what it was).
 pub fn history_json(rows: &[HistoryRow], units: &Units) -> Value {
     json!(
         rows.iter()
             .map(|r| HistoryJson {
                 row: r,
-                unit: units.get(&r.characteristic).map(String::as_str),
+                unit_of_measure: units.get(&r.characteristic).map(String::as_str),
             })
             .collect::<Vec<_>>()
     )

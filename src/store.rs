@@ -627,6 +627,53 @@ pub struct AlertRow {
     pub acknowledgements: Vec<AckRow>,
 }
 
+#[cfg(test)]
+impl AlertRow {
+    /// An open mean alert of `source`'s mass_g opened by `lot` (a Welch test, p 1.5e-6),
+    /// for the tests of what formats alerts.
+    pub fn example(source: &str, lot: &str) -> AlertRow {
+        AlertRow {
+            df2: None,
+            id: 4,
+            source: source.into(),
+            characteristic: "mass_g".into(),
+            state: "open".into(),
+            opened_at: "2026-03-01T08:30:00.000Z".into(),
+            resolved_at: None,
+            lot: lot.into(),
+            lot_sampled_at: Some("2026-02-27".into()),
+            test: "welch".into(),
+            alternative: "two-sided".into(),
+            statistic: Some(-7.25),
+            df: Some(13.5),
+            p_value: Some(1.5e-6),
+            p_adjusted: Some(3.0e-6),
+            method: "holm".into(),
+            level: 0.01,
+            family_size: 2,
+            baseline_n: 240,
+            baseline_mean: 200.0,
+            baseline_sd: Some(1.0),
+            lot_n: 12,
+            lot_mean: 197.0,
+            lot_sd: Some(1.1),
+            estimate: Some(-3.0),
+            ci: Some([-3.7, -2.3]),
+            lots: 1,
+            kind: "mean".into(),
+            model: Some("units".into()),
+            note: None,
+            cpk: None,
+            acknowledged: None,
+            cusum_upper: None,
+            cusum_lower: None,
+            cusum_h: None,
+            events: Vec::new(),
+            acknowledgements: Vec::new(),
+        }
+    }
+}
+
 /// One state change of an alert.
 #[derive(Debug, Clone, serde::Serialize)]
 pub struct EventRow {
@@ -2918,7 +2965,7 @@ fn alert_from_row(r: &SqliteRow, o: usize) -> AlertRow {
         alternative: r.get(o + 9),
         statistic: r.get(o + 10),
         df: r.get(o + 11),
-        df2: r.get(o + 36),
+        df2: r.get(o + 39),
         p_value: r.get(o + 12),
         p_adjusted: r.get(o + 13),
         method: r.get(o + 14),
