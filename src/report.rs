@@ -137,8 +137,9 @@ pub struct SeriesStatus {
     pub test: &'static str,
     /// Cpk of the baseline [value, low, high] when specification limits are configured.
     pub baseline_cpk: Option<[f64; 3]>,
-    /// The characteristic's unit of measure (`characteristic.NAME.unit`), when configured.
-    #[serde(skip_serializing_if = "Option::is_none")]
+    /// The characteristic's unit of measure (`characteristic.NAME.unit`), when configured;
+    /// `unit_of_measure` in JSON, as everywhere (`unit` is a measured unit's serial).
+    #[serde(rename = "unit_of_measure", skip_serializing_if = "Option::is_none")]
     pub unit: Option<String>,
 }
 
@@ -649,7 +650,7 @@ fn decision_text(found: &[&LotDecision], kind: &str) -> String {
 pub struct BaselineShow {
     pub source: String,
     pub characteristic: String,
-    #[serde(skip_serializing_if = "Option::is_none")]
+    #[serde(rename = "unit_of_measure", skip_serializing_if = "Option::is_none")]
     pub unit: Option<String>,
     /// The current baseline, or null while the next undecided lots are still to form it.
     pub baseline: Option<BaselineNow>,

@@ -118,9 +118,9 @@ fn json_carries_the_unit_and_the_cusum() {
     }
     let status = site.status();
     let series = status["series"].as_array().unwrap();
-    assert!(series.iter().any(|s| s["unit"] == "mAh"));
+    assert!(series.iter().any(|s| s["unit_of_measure"] == "mAh"));
     let show = site.json(&["baseline", "show", "alder-cells", "capacity_mah"]);
-    assert_eq!(show["unit"], "mAh");
+    assert_eq!(show["unit_of_measure"], "mAh");
     assert_eq!(show["baseline"]["lots"].as_array().unwrap().len(), 20);
     assert!(show["changes"].as_array().unwrap().is_empty());
 }
