@@ -117,7 +117,8 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
                         }
                     };
                     let message = mailer.as_ref().map_err(Clone::clone).and_then(|m| {
-                        alert_message(&m.from, &item, chart.as_deref().map(Vec::as_slice))
+                        let unit = config.unit(&item.alert.characteristic);
+                        alert_message(&m.from, &item, chart.as_deref().map(Vec::as_slice), unit)
                     });
                     let attempt = Attempt::of_event(&item);
                     send_email(&attempt, config, mailer, message).await
@@ -663,34 +664,17 @@ pub fn subject(item: &OutboxItem) -> String {
 
 /// A measured value or statistic as people write it (5 significant digits), or "-".
 fn fmt_opt(v: Option<f64>) -> String {
-    v.map_or_else(|| "-".to_string(), |v| crate::page::fmt::sig(v, 5))
-}
-
-/// A p-value after its name: `= 0.0012`, `< 1e-9`.
-fn fmt_p(v: Option<f64>) -> String {
-    crate::page::fmt::p_is(v)
-}
-
-/// Degrees of freedom: whole numbers as such, else one decimal; an F test's two (`9 and 620`).
-fn fmt_df(df: Option<f64>, df2: Option<f64>) -> String {
-    let one = |d: f64| {
-        if (d - d.round()).abs() < 1e-9 {
-            format!("{}", d.round())
-        } else {
-            format!("{d:.1}")
-        }
-    };
-    match (df, df2) {
-        (Some(a), Some(b)) => format!("{} and {}", one(a), one(b)),
-        (Some(a), None) => one(a),
-        (None, _) => "-".into(),
-    }
+    crate::page::fmt::opt(v, 5)
 }
 
 /// The numbers of an alert message as (label, value) rows, shared by the plain-text and the
-/// HTML part so both always say the same. Names are cleaned of control characters.
-pub fn facts(item: &OutboxItem) -> Vec<(&'static str, String)> {
+/// HTML part so both always say the same. Names are cleaned of control characters. Means,
+/// sds and a mean's difference carry the characteristic's `unit` of measure, except on the
+/// log scale (then they are of ln(value)).
+pub fn facts(item: &OutboxItem, unit: Option<&str>) -> Vec<(&'static str, String)> {
     let a = &item.alert;
+    let unit = unit.filter(|_| !crate::engine::on_log_scale(a.note.as_deref()));
+    let v = |x: Option<f64>| crate::numbers::with_unit(fmt_opt(x), unit);
     let mut rows = vec![
         ("Source", clean(&a.source)),
         ("Characteristic", clean(&a.characteristic)),
@@ -715,8 +699,8 @@ pub fn facts(item: &OutboxItem) -> Vec<(&'static str, String)> {
             format!(
                 "n = {}, mean = {}, sd = {}",
                 a.baseline_n,
-                fmt_opt(Some(a.baseline_mean)),
-                fmt_opt(a.baseline_sd)
+                v(Some(a.baseline_mean)),
+                v(a.baseline_sd)
             ),
         ),
         (
@@ -724,19 +708,23 @@ pub fn facts(item: &OutboxItem) -> Vec<(&'static str, String)> {
             format!(
                 "n = {}, mean = {}, sd = {}",
                 a.lot_n,
-                fmt_opt(Some(a.lot_mean)),
-                fmt_opt(a.lot_sd)
+                v(Some(a.lot_mean)),
+                v(a.lot_sd)
             ),
         ),
     ];
     if let (Some(e), Some([lo, hi])) = (a.estimate, a.ci) {
+        let d = |x: f64| match a.kind.as_str() {
+            "mean" => v(Some(x)),
+            _ => fmt_opt(Some(x)),
+        };
         rows.push((
             "Difference",
             format!(
                 "{} (lot − baseline), 95 % interval [{}, {}]",
-                fmt_opt(Some(e)),
-                fmt_opt(Some(lo)),
-                fmt_opt(Some(hi))
+                d(e),
+                d(lo),
+                d(hi)
             ),
         ));
     }
@@ -747,18 +735,18 @@ pub fn facts(item: &OutboxItem) -> Vec<(&'static str, String)> {
             a.test,
             a.alternative,
             fmt_opt(a.statistic),
-            fmt_df(a.df, a.df2),
-            fmt_p(a.p_value)
+            crate::numbers::df(a.df, a.df2),
+            crate::numbers::p_is(a.p_value)
         ),
     ));
     rows.push((
         "Adjusted",
         format!(
             "p {} ({} over {} test(s) of this lot, level {})",
-            fmt_p(a.p_adjusted),
+            crate::numbers::p_is(a.p_adjusted),
             a.method,
             a.family_size,
-            crate::page::fmt::sig(a.level, 2)
+            crate::numbers::p_value(Some(a.level))
         ),
     ));
     if let Some(model) = &a.model {
@@ -803,11 +791,11 @@ const DISCLAIMER: &str = "This is a statistical signal to support incoming inspe
                           engineer's judgment, not a verdict on conformance.";
 
 /// The plain-text body of an alert message.
-pub fn body(item: &OutboxItem) -> String {
+pub fn body(item: &OutboxItem, unit: Option<&str>) -> String {
     let mut s = String::new();
     s.push_str(&subject(item));
     s.push_str("\n\n");
-    for (label, value) in facts(item) {
+    for (label, value) in facts(item, unit) {
         s.push_str(&format!("{:<17}{value}\n", format!("{label}:")));
     }
     s.push_str(&format!("\n{CHART_NOTE}\n"));
@@ -817,14 +805,14 @@ pub fn body(item: &OutboxItem) -> String {
 
 /// The HTML body of an alert message: the same rows as the plain text, in a table. Every
 /// interpolated value is escaped.
-pub fn html_body(item: &OutboxItem) -> String {
+pub fn html_body(item: &OutboxItem, unit: Option<&str>) -> String {
     let mut s = String::from(
         "<!DOCTYPE html>\n<html><head><meta charset=\"utf-8\"></head>\n\
          <body style=\"font-family: sans-serif\">\n",
     );
     s.push_str(&format!("<h3>{}</h3>\n", escape(&subject(item))));
     s.push_str("<table cellpadding=\"4\" style=\"border-collapse: collapse\">\n");
-    for (label, value) in facts(item) {
+    for (label, value) in facts(item, unit) {
         s.push_str(&format!(
             "<tr><th align=\"left\" style=\"border-bottom: 1px solid #ddd\">{}</th>\
              <td style=\"border-bottom: 1px solid #ddd\">{}</td></tr>\n",
@@ -852,14 +840,15 @@ fn alert_message(
     from: &Mailbox,
     item: &OutboxItem,
     chart: Option<&[u8]>,
+    unit: Option<&str>,
 ) -> Result<Message, String> {
     let to: Mailbox = item
         .recipient
         .parse()
         .map_err(|e| format!("recipient {:?}: {e}", item.recipient))?;
     let text = MultiPart::alternative()
-        .singlepart(SinglePart::plain(body(item)))
-        .singlepart(SinglePart::html(html_body(item)));
+        .singlepart(SinglePart::plain(body(item, unit)))
+        .singlepart(SinglePart::html(html_body(item, unit)));
     let mut content = MultiPart::mixed().multipart(text);
     if let Some(png) = chart {
         let png_type = ContentType::parse("image/png").map_err(|e| format!("content type: {e}"))?;
@@ -1446,51 +1435,13 @@ mod tests {
             event_kind: "opened".into(),
             event_at: "2026-03-01T08:30:00.000Z".into(),
             opening_lot: lot.into(),
-            alert: AlertRow {
-                df2: None,
-                id: 4,
-                source: source.into(),
-                characteristic: "mass_g".into(),
-                state: "open".into(),
-                opened_at: "2026-03-01T08:30:00.000Z".into(),
-                resolved_at: None,
-                lot: lot.into(),
-                lot_sampled_at: Some("2026-02-27".into()),
-                test: "welch".into(),
-                alternative: "two-sided".into(),
-                statistic: Some(-7.25),
-                df: Some(13.5),
-                p_value: Some(1.5e-6),
-                p_adjusted: Some(3.0e-6),
-                method: "holm".into(),
-                level: 0.01,
-                family_size: 2,
-                baseline_n: 240,
-                baseline_mean: 200.0,
-                baseline_sd: Some(1.0),
-                lot_n: 12,
-                lot_mean: 197.0,
-                lot_sd: Some(1.1),
-                estimate: Some(-3.0),
-                ci: Some([-3.7, -2.3]),
-                lots: 1,
-                kind: "mean".into(),
-                model: Some("units".into()),
-                note: None,
-                cpk: None,
-                acknowledged: None,
-                cusum_upper: None,
-                cusum_lower: None,
-                cusum_h: None,
-                events: Vec::new(),
-                acknowledgements: Vec::new(),
-            },
+            alert: AlertRow::example(source, lot),
         }
     }
 
     fn formatted(item: &OutboxItem, chart: Option<&[u8]>) -> String {
         let from: Mailbox = "lotdrift <lotdrift@example.org>".parse().unwrap();
-        String::from_utf8(alert_message(&from, item, chart).unwrap().formatted()).unwrap()
+        String::from_utf8(alert_message(&from, item, chart, None).unwrap().formatted()).unwrap()
     }
 
     fn headers(raw: &str) -> Vec<&str> {
@@ -1531,7 +1482,7 @@ mod tests {
 
     #[test]
     fn html_part_escapes_every_interpolated_value() {
-        let html = html_body(&item("<script>alert(1)</script>", "A&B\"'"));
+        let html = html_body(&item("<script>alert(1)</script>", "A&B\"'"), None);
         assert!(!html.contains("<script>"), "{html}");
         assert!(
             html.contains("&lt;script&gt;alert(1)&lt;/script&gt;"),
@@ -1544,9 +1495,9 @@ mod tests {
     #[test]
     fn plain_and_html_parts_carry_the_same_numbers() {
         let i = item("cedar-energy", "CE-9");
-        let text = body(&i);
-        let html = html_body(&i);
-        for (_, value) in facts(&i) {
+        let text = body(&i, None);
+        let html = html_body(&i, None);
+        for (_, value) in facts(&i, None) {
             assert!(text.contains(&value), "{value} missing in text");
             assert!(html.contains(&escape(&value)), "{value} missing in html");
         }
@@ -1575,18 +1526,42 @@ mod tests {
     }
 
     #[test]
+    fn a_message_gives_means_and_the_difference_in_the_unit_of_measure() {
+        let mut i = item("cedar-energy", "CE-9");
+        let text = body(&i, Some("g"));
+        assert!(
+            text.contains("n = 240, mean = 200.00 g, sd = 1.0000 g"),
+            "{text}"
+        );
+        assert!(
+            text.contains("-3.0000 g (lot − baseline), 95 % interval [-3.7000 g, -2.3000 g]"),
+            "{text}"
+        );
+        assert!(html_body(&i, Some("g")).contains("mean = 197.00 g"));
+        assert!(!body(&i, None).contains(" g"), "without a unit");
+        // A spread alert's difference is a ratio; a log-scale alert's numbers are of ln(value).
+        i.alert.kind = "spread".into();
+        let text = body(&i, Some("g"));
+        assert!(text.contains("mean = 200.00 g"), "{text}");
+        assert!(text.contains("-3.0000 (lot − baseline)"), "{text}");
+        i.alert.kind = "mean".into();
+        i.alert.note = Some(crate::engine::log_scale_note().to_string());
+        assert!(!body(&i, Some("g")).contains(" g,"));
+    }
+
+    #[test]
     fn an_f_tests_message_gives_both_dfs_and_numbers_as_people_write_them() {
         let mut i = item("cedar-energy", "CE-9");
         i.alert.test = "f-variance".into();
         i.alert.df = Some(9.0);
         i.alert.df2 = Some(620.0);
         i.alert.p_value = Some(0.000123);
-        let text = body(&i);
+        let text = body(&i, None);
         assert!(text.contains("df = 9 and 620"), "{text}");
         assert!(text.contains("p = 0.00012"), "{text}");
         assert!(!text.contains("e-4") && !text.contains("000000"), "{text}");
         i.alert.p_value = Some(1e-14);
-        assert!(body(&i).contains("p < 1e-9"));
+        assert!(body(&i, None).contains("p < 1e-9"));
     }
 
     fn silence_item(kind: &str, basis: &str) -> SilenceItem {

@@ -22,6 +22,7 @@ use crate::store::Store;
 
 mod check_file;
 mod conventions;
+mod logline;
 mod progress;
 
 use conventions::{AlternativeArg, MethodArg, TestArg, name_of, who};
@@ -372,6 +373,16 @@ pub fn main() -> ExitCode {
 }
 
 fn init_tracing(format: LogFormat, level: &str) {
+    init_tracing_for(
+        format,
+        level,
+        std::io::IsTerminal::is_terminal(&std::io::stderr()),
+    );
+}
+
+/// Logs of `format` at `level`; text `for_people` is wrapped to the terminal's width
+/// (`logline`), else one line per event as tracing writes it.
+fn init_tracing_for(format: LogFormat, level: &str, for_people: bool) {
     let builder = tracing_subscriber::fmt()
         .with_env_filter(conventions::log_filter(level))
         // Colour codes only on a terminal (and not with NO_COLOR): a log file or journal
@@ -380,8 +391,16 @@ fn init_tracing(format: LogFormat, level: &str) {
         .with_writer(std::io::stderr);
     let _ = match format {
         LogFormat::Json => builder.json().try_init(),
+        LogFormat::Text if for_people => builder.event_format(wrapped()).try_init(),
         LogFormat::Text => builder.try_init(),
     };
+}
+
+/// Text log lines wrapped to the terminal's width (100 columns when it is not known).
+fn wrapped() -> logline::Wrapped {
+    logline::Wrapped {
+        width: usize::from(report::width()),
+    }
 }
 
 /// Text logs with the progress line of `run --once` below them: the per-batch lines become
@@ -389,6 +408,7 @@ fn init_tracing(format: LogFormat, level: &str) {
 fn init_tracing_with_progress(level: &str, progress: &progress::Progress) {
     use tracing_subscriber::prelude::*;
     let lines = tracing_subscriber::fmt::layer()
+        .event_format(wrapped())
         .with_ansi(conventions::colour_on_stderr())
         .with_writer(progress.writer())
         .with_filter(tracing_subscriber::filter::filter_fn(|meta| {
@@ -490,7 +510,8 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
             }
         }
         Command::Demo { dir } => {
-            init_tracing(LogFormat::Text, "warn");
+            // The demo is read by a person, on a terminal or not.
+            init_tracing_for(LogFormat::Text, "warn", true);
             demo::run(&dir).await
         }
         Command::CheckConfig { config, json } => check_config(&config, json),

@@ -69,44 +69,52 @@ pub async fn run(dir: &Path) -> Result<(), Failure> {
         if let FileResult::Quarantined { reason, .. } = result {
             let name = path.file_name().unwrap_or_default().to_string_lossy();
             say!("  {name}");
-            say!("    {}", reason.lines().next().unwrap_or(""));
+            let reason = reason.lines().next().unwrap_or("");
+            say_part!(
+                "{}",
+                report::wrap(&format!("    {reason}"), WIDTH, "      ")
+            );
         }
     }
     say!();
-    say!(
+    let evaluation = format!(
         "Evaluation: each series' first {} lots form its baseline; {} later tests (lot mean \
          against the baseline lot means, spread, CUSUM) under a budget of one false alert per \
          {} lots per series.",
-        config.monitor.baseline_lots,
-        r.engine.evaluations,
-        config.monitor.false_alert_lots
+        config.monitor.baseline_lots, r.engine.evaluations, config.monitor.false_alert_lots
     );
+    say_part!("{}", report::wrap(&evaluation, WIDTH, ""));
     let alerts = store.alerts(false).await.context("demo alerts")?;
     say!("Alerts ({} opened):", alerts.len());
     say_part!("{}", indent(&report::alerts_text(&alerts, &config.units)));
     say!();
-    let db = abs(&config.paths.database);
-    let cfg = abs(&config_path);
-    say!("Database: {}", db.display());
-    say!("Next:");
-    say!("  lotdrift alerts --config {}", cfg.display());
-    say!(
-        "  lotdrift history cedar-energy capacity_mah --config {}",
-        cfg.display()
-    );
-    say!("  lotdrift status --json --config {}", cfg.display());
-    say!(
-        "  lotdrift report --out {} --config {}   # charts and alerts, one HTML file",
-        abs(dir).join("report.html").display(),
-        cfg.display()
-    );
-    say!(
-        "  sqlite3 {} \"SELECT source, characteristic, lot, kind, test, p_adjusted \
-         FROM decision_view WHERE significant = 1\"",
-        db.display()
-    );
+    say!("Database: {}", abs(&config.paths.database).display());
+    say_part!("{}", next_steps(&abs(dir)));
     store.close().await;
     Ok(())
+}
+
+/// The width the tour is written for: a terminal of 100 columns shows every line unbroken
+/// (only a long path of the user's own may make a line longer).
+const WIDTH: usize = 100;
+
+/// Commands to try next, run in the demo folder (so that none repeats its long path).
+const NEXT: [&str; 6] = [
+    "lotdrift alerts --config lotdrift.toml",
+    "lotdrift history cedar-energy capacity_mah --config lotdrift.toml",
+    "lotdrift status --json --config lotdrift.toml",
+    "lotdrift report --out report.html --config lotdrift.toml   # charts, alerts: one page",
+    "sqlite3 lotdrift.db \"SELECT source, characteristic, lot, kind, test, p_adjusted",
+    "  FROM decision_view WHERE significant = 1\"",
+];
+
+/// What to try next, in the demo folder `dir`.
+fn next_steps(dir: &Path) -> String {
+    let mut s = format!("Next, in the demo folder:\n  cd {}\n", dir.display());
+    for line in NEXT {
+        s.push_str(&format!("  {line}\n"));
+    }
+    s
 }
 
 fn indent(s: &str) -> String {
@@ -137,4 +145,19 @@ fn prepare(dir: &Path) -> Result<(), Failure> {
         .context("writing the demo marker")?;
     std::fs::write(dir.join("lotdrift.toml"), DEMO_CONFIG).context("writing the demo config")?;
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_next_steps_fit_the_tour_width() {
+        let next = next_steps(Path::new("/home/engineer/lotdrift-demo"));
+        assert!(
+            next.contains("\n  cd /home/engineer/lotdrift-demo\n"),
+            "{next}"
+        );
+        assert!(next.lines().all(|l| l.chars().count() <= WIDTH), "{next}");
+    }
 }

@@ -1055,6 +1055,18 @@ fn spread_evaluation(
 const LOG_SCALE_NOTE: &str = "tested on the log scale: means, estimate and interval are of \
      ln(value); exp(estimate) is the lot's geometric mean over the baseline's";
 
+/// Whether a decision's note says it was made on the log scale (its means, estimate and
+/// interval are then of ln(value) and carry no unit of measure).
+pub fn on_log_scale(note: Option<&str>) -> bool {
+    note.is_some_and(|n| n.contains(LOG_SCALE_NOTE))
+}
+
+/// The note a log-scale decision carries (for tests of what reads it).
+#[cfg(test)]
+pub fn log_scale_note() -> &'static str {
+    LOG_SCALE_NOTE
+}
+
 /// Two notes as one.
 fn join_notes(first: Option<String>, second: String) -> String {
     match first {

@@ -31,6 +31,9 @@ use crate::time::now_rfc3339;
 /// Files per store transaction, and values per transaction, whichever is reached first.
 const BATCH_FILES: usize = 256;
 const BATCH_VALUES: usize = 40_000;
+/// A batch at least this large (a year exported as one file) hands its freed memory back to
+/// the system once it is stored (see [`release_freed_memory`]).
+const LARGE_BATCH_VALUES: usize = 1_000_000;
 
 /// A failure that stops ingest (the database); a bad file never does.
 #[derive(Debug, thiserror::Error)]
@@ -166,12 +169,13 @@ pub async fn ingest_files(
 
     let mut failure = None;
     while let Some(batch) = rx.recv().await {
-        match write_batch(store, paths, batch, replace, &mut report).await {
-            Ok(()) => {}
-            Err(e) => {
-                failure = Some(e);
-                break;
-            }
+        let large = batch_values(&batch) >= LARGE_BATCH_VALUES;
+        if let Err(e) = write_batch(store, paths, batch, replace, &mut report).await {
+            failure = Some(e);
+            break;
+        }
+        if large {
+            release_freed_memory();
         }
     }
     drop(rx);
@@ -275,6 +279,29 @@ async fn write_batch(
     // of `run --once` on a terminal (cli::progress).
     tracing::info!(files = good.len(), taken, values, "batch stored");
     Ok(())
+}
+
+fn batch_values(batch: &[Prepared]) -> usize {
+    batch
+        .iter()
+        .filter_map(|p| match p {
+            Prepared::Good(_, f) => Some(f.samples.iter().map(|s| s.values.len()).sum::<usize>()),
+            _ => None,
+        })
+        .sum()
+}
+
+/// Returns the memory a large batch freed to the system. glibc keeps freed memory in the
+/// arena of the thread that allocated it: the parser thread's arena held a large file's
+/// values after they were stored, and the engine pass, on another thread, then grew its own
+/// on top (a peak of 1.1x the file's size where the values alone are 0.3x).
+fn release_freed_memory() {
+    #[cfg(all(target_os = "linux", target_env = "gnu"))]
+    // SAFETY: malloc_trim only walks glibc's own arenas under their locks; it takes no
+    // pointers from us.
+    unsafe {
+        libc::malloc_trim(0);
+    }
 }
 
 /// Unreadable files already reported in the log: a file that stays unreadable (permission

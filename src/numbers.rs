@@ -1,5 +1,21 @@
-//! Numbers as people write them in a table: values rounded to what the data support,
-//! p-values as `0.0012` or `< 1e-9`, never e-notation for an sd.
+//! Numbers as people write them in a table, on a page or in an email: values rounded to what
+//! the data support, p-values as `0.0012` or `< 1e-9`, never e-notation for an sd.
+//!
+//! **One convention**: tables (`report`), pages (`page`) and alert emails (`alert`) write
+//! p-values, degrees of freedom, missing values and units of measure through this module, so
+//! the same number reads the same everywhere.
+
+/// What stands for a value that is absent or not finite.
+pub const MISSING: &str = "-";
+
+/// A formatted value followed by its unit of measure, `3001.2 mAh` (the value alone without
+/// one, or when it is the missing mark).
+pub fn with_unit(value: String, unit: Option<&str>) -> String {
+    match unit {
+        Some(u) if value != MISSING => format!("{value} {u}"),
+        _ => value,
+    }
+}
 
 /// The decimals that show a quantity whose natural scale (its sd, say) is `scale` with two
 /// significant digits of that scale: scale 1.5 → 1 decimal, 0.012 → 3, 250 → 0.
@@ -14,7 +30,7 @@ pub fn decimals_for(scale: f64) -> usize {
 pub fn fixed(v: Option<f64>, decimals: usize) -> String {
     match v {
         Some(v) if v.is_finite() => format!("{v:.decimals$}"),
-        _ => "-".into(),
+        _ => MISSING.into(),
     }
 }
 
@@ -22,7 +38,7 @@ pub fn fixed(v: Option<f64>, decimals: usize) -> String {
 pub fn signed(v: Option<f64>, decimals: usize) -> String {
     match v {
         Some(v) if v.is_finite() => format!("{v:+.decimals$}"),
-        _ => "-".into(),
+        _ => MISSING.into(),
     }
 }
 
@@ -32,7 +48,7 @@ pub fn two_digits(v: Option<f64>) -> String {
     match v {
         Some(0.0) => "0".into(),
         Some(v) if v.is_finite() => fixed(Some(v), decimals_for(v.abs())),
-        _ => "-".into(),
+        _ => MISSING.into(),
     }
 }
 
@@ -40,18 +56,48 @@ pub fn two_digits(v: Option<f64>) -> String {
 /// reference distribution is not that precise, and nobody reads more digits).
 const P_FLOOR: f64 = 1e-9;
 
-/// A p-value (or a level) as people write it: two significant digits, plain decimals down to
-/// 0.001 (`0.31`, `0.047`, `0.0012`), then `2.3e-5`, and `< 1e-9` below that.
+/// Smallest p-value written in plain decimals (`0.00012`); below it `2.3e-5`.
+const P_PLAIN: f64 = 1e-4;
+
+/// A p-value (or a level) as people write it: two significant digits without trailing zeros,
+/// plain decimals down to 0.0001 (`0.31`, `0.047`, `0.0012`, `0.00012`), then `2.3e-5`, and
+/// `< 1e-9` below that; `-` when absent. The only p-value format of tables, pages and emails.
 pub fn p_value(p: Option<f64>) -> String {
     match p {
-        None => "-".into(),
-        Some(p) if !p.is_finite() => "-".into(),
+        None => MISSING.into(),
+        Some(p) if !p.is_finite() => MISSING.into(),
         Some(p) if p < P_FLOOR => "< 1e-9".into(),
-        Some(p) if p >= 0.001 => {
+        Some(p) if p >= P_PLAIN => {
             let s = fixed(Some(p), decimals_for(p).max(2));
             s.trim_end_matches('0').trim_end_matches('.').to_string()
         }
         Some(p) => format!("{p:.1e}"),
+    }
+}
+
+/// A p-value after its name: `= 0.0012` or `< 1e-9`.
+pub fn p_is(p: Option<f64>) -> String {
+    let s = p_value(p);
+    if s.starts_with('<') {
+        s
+    } else {
+        format!("= {s}")
+    }
+}
+
+/// Degrees of freedom: whole numbers as such, else one decimal; an F test's two (`9 and 620`).
+pub fn df(df: Option<f64>, df2: Option<f64>) -> String {
+    let one = |d: f64| {
+        if (d - d.round()).abs() < 1e-9 {
+            format!("{}", d.round())
+        } else {
+            format!("{d:.1}")
+        }
+    };
+    match (df, df2) {
+        (Some(a), Some(b)) => format!("{} and {}", one(a), one(b)),
+        (Some(a), None) => one(a),
+        (None, _) => MISSING.into(),
     }
 }
 
@@ -70,6 +116,21 @@ mod tests {
         assert_eq!(p_value(Some(3e-12)), "< 1e-9");
         assert_eq!(p_value(Some(0.0)), "< 1e-9");
         assert_eq!(p_value(None), "-");
+        assert_eq!(p_value(Some(0.000123)), "0.00012");
+        assert_eq!(p_value(Some(9.96e-5)), "1.0e-4");
+        assert_eq!(p_is(Some(0.0012)), "= 0.0012");
+        assert_eq!(p_is(Some(1e-12)), "< 1e-9");
+    }
+
+    #[test]
+    fn degrees_of_freedom_and_units_read_as_written_by_hand() {
+        assert_eq!(df(Some(19.0), None), "19");
+        assert_eq!(df(Some(13.52), None), "13.5");
+        assert_eq!(df(Some(9.0), Some(620.0)), "9 and 620");
+        assert_eq!(df(None, None), "-");
+        assert_eq!(with_unit("3001.2".into(), Some("mAh")), "3001.2 mAh");
+        assert_eq!(with_unit("3001.2".into(), None), "3001.2");
+        assert_eq!(with_unit(MISSING.into(), Some("mAh")), "-");
     }
 
     #[test]

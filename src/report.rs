@@ -155,8 +155,9 @@ pub struct SeriesStatus {
     pub test: &'static str,
     /// Cpk of the baseline [value, low, high] when specification limits are configured.
     pub baseline_cpk: Option<[f64; 3]>,
-    /// The characteristic's unit of measure (`characteristic.NAME.unit`), when configured.
-    #[serde(skip_serializing_if = "Option::is_none")]
+    /// The characteristic's unit of measure (`characteristic.NAME.unit`), when configured;
+    /// `unit_of_measure` in JSON, as everywhere (`unit` is a measured unit's serial).
+    #[serde(rename = "unit_of_measure", skip_serializing_if = "Option::is_none")]
     pub unit: Option<String>,
 }
 
@@ -384,17 +385,18 @@ struct AlertJson<'a> {
     #[serde(flatten)]
     row: &'a AlertRow,
     #[serde(skip_serializing_if = "Option::is_none")]
-    unit: Option<&'a str>,
+    unit_of_measure: Option<&'a str>,
 }
 
-/// `alerts --json`: an array of alerts; `unit` where the characteristic has one configured.
+/// `alerts --json`: an array of alerts; `unit_of_measure` where the characteristic has one
+/// configured (`unit` is a unit's serial in lot files and views, so the key says which unit).
 pub fn alerts_json(alerts: &[AlertRow], units: &Units) -> Value {
     json!(
         alerts
             .iter()
             .map(|a| AlertJson {
                 row: a,
-                unit: units.get(&a.characteristic).map(String::as_str),
+                unit_of_measure: units.get(&a.characteristic).map(String::as_str),
             })
             .collect::<Vec<_>>()
     )
@@ -437,11 +439,9 @@ fn alert_shift(a: &AlertRow, unit: Option<&str>) -> String {
             .map_or("-".into(), |e| format!("×{}", two_digits(Some(e))));
     }
     let d = decimals_for(a.baseline_sd.or(a.lot_sd).unwrap_or(f64::NAN));
-    let shift = signed(a.estimate, d);
-    match unit {
-        Some(u) if a.estimate.is_some() => format!("{shift} {u}"),
-        _ => shift,
-    }
+    // On the log scale the estimate is of ln(value): it has no unit.
+    let unit = unit.filter(|_| !crate::engine::on_log_scale(a.note.as_deref()));
+    crate::numbers::with_unit(signed(a.estimate, d), unit)
 }
 
 pub fn alerts_text(alerts: &[AlertRow], units: &Units) -> String {
@@ -487,7 +487,7 @@ fn date(t: Option<&str>) -> String {
 pub struct BaselineShow {
     pub source: String,
     pub characteristic: String,
-    #[serde(skip_serializing_if = "Option::is_none")]
+    #[serde(rename = "unit_of_measure", skip_serializing_if = "Option::is_none")]
     pub unit: Option<String>,
     /// The current baseline, or null while the next undecided lots are still to form it.
     pub baseline: Option<BaselineNow>,

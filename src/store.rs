@@ -89,6 +89,10 @@ impl<T> Doing<T> for std::result::Result<T, sqlx::Error> {
 /// to stay far below SQLite's bound-parameter limit (5 parameters a row here).
 const ROWS_PER_INSERT: usize = 500;
 
+/// Bytes of heap SQLite may hold in this process before its page caches stop growing: one
+/// connection's full cache (16 MiB) and as much again for the others.
+const SQLITE_HEAP_LIMIT: &str = "33554432";
+
 /// Ids of names already stored, so a batch does not look up the same source again for every
 /// file. Only committed ids enter the cache.
 #[derive(Default)]
@@ -623,6 +627,53 @@ pub struct AlertRow {
     pub acknowledgements: Vec<AckRow>,
 }
 
+#[cfg(test)]
+impl AlertRow {
+    /// An open mean alert of `source`'s mass_g opened by `lot` (a Welch test, p 1.5e-6),
+    /// for the tests of what formats alerts.
+    pub fn example(source: &str, lot: &str) -> AlertRow {
+        AlertRow {
+            df2: None,
+            id: 4,
+            source: source.into(),
+            characteristic: "mass_g".into(),
+            state: "open".into(),
+            opened_at: "2026-03-01T08:30:00.000Z".into(),
+            resolved_at: None,
+            lot: lot.into(),
+            lot_sampled_at: Some("2026-02-27".into()),
+            test: "welch".into(),
+            alternative: "two-sided".into(),
+            statistic: Some(-7.25),
+            df: Some(13.5),
+            p_value: Some(1.5e-6),
+            p_adjusted: Some(3.0e-6),
+            method: "holm".into(),
+            level: 0.01,
+            family_size: 2,
+            baseline_n: 240,
+            baseline_mean: 200.0,
+            baseline_sd: Some(1.0),
+            lot_n: 12,
+            lot_mean: 197.0,
+            lot_sd: Some(1.1),
+            estimate: Some(-3.0),
+            ci: Some([-3.7, -2.3]),
+            lots: 1,
+            kind: "mean".into(),
+            model: Some("units".into()),
+            note: None,
+            cpk: None,
+            acknowledged: None,
+            cusum_upper: None,
+            cusum_lower: None,
+            cusum_h: None,
+            events: Vec::new(),
+            acknowledgements: Vec::new(),
+        }
+    }
+}
+
 /// One state change of an alert.
 #[derive(Debug, Clone, serde::Serialize)]
 pub struct EventRow {
@@ -827,6 +878,11 @@ impl Store {
             // touches the indexes of lots, files and samples at random, and the default 2 MiB
             // makes it read pages back; 32 MiB each put a backfill's peak memory near 250 MiB.
             .pragma("cache_size", "-16384")
+            // SQLite's heap for the whole process (the pragma is process-wide): past it, a
+            // connection reuses its own least recently used pages instead of growing. Without
+            // it four full caches (64 MiB) came on top of a large file's parsed values at the
+            // start of the engine pass; one file now stays within its own size.
+            .pragma("soft_heap_limit", SQLITE_HEAP_LIMIT)
             // A backfill's large statements are expected; only report them at debug level.
             .log_slow_statements(tracing::log::LevelFilter::Debug, Duration::from_secs(5));
         let pool = SqlitePoolOptions::new()
@@ -2909,7 +2965,7 @@ fn alert_from_row(r: &SqliteRow, o: usize) -> AlertRow {
         alternative: r.get(o + 9),
         statistic: r.get(o + 10),
         df: r.get(o + 11),
-        df2: r.get(o + 36),
+        df2: r.get(o + 39),
         p_value: r.get(o + 12),
         p_adjusted: r.get(o + 13),
         method: r.get(o + 14),

@@ -252,9 +252,12 @@ async fn overview(State(shared): State<AppState>, headers: HeaderMap) -> Respons
         Ok(r) => r,
         Err(e) => return failed(&shared, &headers, crate::errors::chain(&e)),
     };
-    let series: Vec<_> = rows.into_iter().map(model::brief).collect();
+    let series: Vec<_> = rows
+        .into_iter()
+        .map(|r| model::brief(r, &shared.config))
+        .collect();
     let alerts = match shared.store.alerts(true).await {
-        Ok(a) => model::alert_lines(&a, &Scope::default()),
+        Ok(a) => model::alert_lines(&a, &Scope::default(), &shared.config),
         Err(e) => return failed(&shared, &headers, crate::errors::chain(&e)),
     };
     let ctx = context! {
@@ -288,7 +291,7 @@ async fn series(
         Err(e) => return failed(&shared, &headers, crate::errors::chain(&e)),
     };
     let alerts = match shared.store.alerts(false).await {
-        Ok(a) => model::alert_lines(&a, &scope),
+        Ok(a) => model::alert_lines(&a, &scope, &shared.config),
         Err(e) => return failed(&shared, &headers, crate::errors::chain(&e)),
     };
     let alerts: Vec<_> = alerts
@@ -313,7 +316,7 @@ async fn alerts_page(
     message: Option<(String, bool)>,
 ) -> Response {
     let alerts = match shared.store.alerts(false).await {
-        Ok(a) => model::alert_lines(&a, &Scope::default()),
+        Ok(a) => model::alert_lines(&a, &Scope::default(), &shared.config),
         Err(e) => return failed(shared, headers, crate::errors::chain(&e)),
     };
     let (message, bad) = message.unzip();

@@ -99,23 +99,28 @@ fn json_carries_the_unit_and_the_cusum() {
     let alerts = site.alerts();
     assert_eq!(alerts.len(), 1, "{alerts:#?}");
     let a = &alerts[0];
-    assert_eq!(a["unit"], "mAh");
+    assert_eq!(a["unit_of_measure"], "mAh");
+    assert!(a.get("unit").is_none(), "{a}");
     assert_eq!(a["kind"], "mean");
     assert!(a["cusum_h"].as_f64().unwrap() > 0.0, "{a}");
     assert!(a["cusum_upper"].is_f64(), "{a}");
-    // Characteristics without a unit have no `unit` key (history stays byte-stable).
+    // A mean test has one df: `df2` is not the CUSUM sum read from the column beside it
+    // (regression: it was, and pages and emails showed `df = 220 and 13.6`).
+    assert!(a["df2"].is_null(), "{a}");
+    // Characteristics without a unit have no `unit_of_measure` key (history stays
+    // byte-stable); `unit` is a unit's serial in lot files and views, never this.
     let hist = site.json(&["history", "alder-cells"]);
     for r in hist.as_array().unwrap() {
         match r["characteristic"].as_str().unwrap() {
-            "capacity_mah" => assert_eq!(r["unit"], "mAh"),
-            _ => assert!(r.get("unit").is_none(), "{r}"),
+            "capacity_mah" => assert_eq!(r["unit_of_measure"], "mAh"),
+            _ => assert!(r.get("unit_of_measure").is_none(), "{r}"),
         }
     }
     let status = site.status();
     let series = status["series"].as_array().unwrap();
-    assert!(series.iter().any(|s| s["unit"] == "mAh"));
+    assert!(series.iter().any(|s| s["unit_of_measure"] == "mAh"));
     let show = site.json(&["baseline", "show", "alder-cells", "capacity_mah"]);
-    assert_eq!(show["unit"], "mAh");
+    assert_eq!(show["unit_of_measure"], "mAh");
     assert_eq!(show["baseline"]["lots"].as_array().unwrap().len(), 20);
     assert!(show["changes"].as_array().unwrap().is_empty());
 }

@@ -306,3 +306,23 @@ fn dir_file(site: &Site, name: &str, content: &str) -> String {
     std::fs::write(&p, content).unwrap();
     p.to_str().unwrap().to_string()
 }
+
+/// The demo is read by a person: at 100 columns (no terminal, so the tour's own width) none of
+/// its lines, printed or logged, is cut, and the log lines keep their fields.
+#[test]
+fn the_demo_fits_a_100_column_terminal() {
+    let dir = tempfile::tempdir().unwrap();
+    let out = run_env(dir.path(), &[], &["demo", "--dir", "demo"]);
+    assert!(out.status.success(), "demo: {}", text(&out.stderr));
+    let (stdout, stderr) = (text(&out.stdout), text(&out.stderr));
+    assert!(stdout.contains("Alerts (2 opened)"), "{stdout}");
+    assert!(stderr.contains("WARN alert: "), "{stderr}");
+    assert!(stderr.contains(" p_adjusted="), "{stderr}");
+    for line in stdout.lines().chain(stderr.lines()) {
+        assert!(
+            line.chars().count() <= 100,
+            "{} columns: {line}",
+            line.chars().count()
+        );
+    }
+}

@@ -92,7 +92,7 @@ fn an_alert_reaches_every_recipient_once_with_headers_both_parts_and_the_chart()
         server.port,
         "[\"email\", \"log\"]",
         &[QUALITY, INCOMING],
-        "",
+        "[characteristic.capacity_mah]\nunit = \"mAh\"",
     );
     drifting_series(&site);
     site.once();
@@ -150,12 +150,13 @@ fn an_alert_reaches_every_recipient_once_with_headers_both_parts_and_the_chart()
         );
         let plain = m.body_text(0).unwrap();
         let html = m.body_html(0).unwrap();
-        // Numbers as people write them: 5 significant digits, p as 0.0012 or < 1e-9.
+        // Numbers as people write them: 5 significant digits in the unit of measure, p as
+        // 0.0012 or < 1e-9.
         let lot_mean = format!(
-            "mean = {}",
+            "mean = {} mAh",
             lotdrift::page::fmt::sig(alert["lot_mean"].as_f64().unwrap(), 5)
         );
-        let p = format!("p {}", lotdrift::page::fmt::p_is(alert["p_value"].as_f64()));
+        let p = format!("p {}", lotdrift::numbers::p_is(alert["p_value"].as_f64()));
         for needle in [
             lot_mean.as_str(),
             p.as_str(),

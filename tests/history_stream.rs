@@ -137,7 +137,7 @@ fn the_generated_history_has_every_kind_of_row() {
     assert_eq!(pending["decisions"], json!([]), "{pending}");
 }
 
-/// The implementation `history` had before it streamed (report.rs at 6193bd8), with the
+/// The implementation `history` had before it streamed (report.rs at 8e0c625), with the
 /// width passed in instead of read from the terminal, and `decisions` added to the JSON.
 mod oracle {
     use super::*;
@@ -147,7 +147,7 @@ mod oracle {
             rows.iter()
                 .map(|r| HistoryJson {
                     row: r,
-                    unit: units.get(&r.characteristic).map(String::as_str),
+                    unit_of_measure: units.get(&r.characteristic).map(String::as_str),
                 })
                 .collect::<Vec<_>>()
         );
@@ -175,7 +175,7 @@ mod oracle {
         #[serde(flatten)]
         row: &'a HistoryRow,
         #[serde(skip_serializing_if = "Option::is_none")]
-        unit: Option<&'a str>,
+        unit_of_measure: Option<&'a str>,
     }
 
     const HISTORY_HEADER: [&str; 15] = [

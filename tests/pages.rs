@@ -17,6 +17,9 @@ use common::{
 /// A source name that would run a script if a page inserted it unescaped.
 const HOSTILE: &str = "<script>alert(1)</script>";
 
+/// The unit of measure of one of the two characteristics (the other has none).
+const UNITS: &str = "[characteristic.capacity_mah]\nunit = \"mAh\"";
+
 /// Two sources of two characteristics, 26 lots each; alder-cells' capacity shifts by 4 unit
 /// sd from lot 22 on (an open alert).
 fn site(extra: &str) -> Site {
@@ -57,9 +60,38 @@ fn assert_shown_as_text(b: &mut Browser) {
     );
 }
 
+/// Every series of capacity_mah shows its unit of measure on its heading, its lot-mean axis,
+/// its lot table and its facts; mass_g's (no unit configured) nowhere; the open alert (of
+/// capacity) gives its means in mAh.
+fn assert_units_shown(b: &mut Browser) {
+    let per_series = b.eval(
+        "[...document.querySelectorAll('section.series')].map(s => [\
+         s.querySelector('h2').innerText.includes('capacity_mah'), \
+         s.querySelector('h2').innerText.includes('(mAh)'), \
+         s.querySelector('svg.chart').textContent.includes('lot mean (mAh)'), \
+         s.querySelector('table.lots thead').innerText.includes('mean (mAh)'), \
+         s.querySelector('dl.facts').innerText.includes(' mAh')])",
+    );
+    let rows = per_series.as_array().unwrap();
+    assert_eq!(rows.len(), 4, "{per_series}");
+    for row in rows {
+        let capacity = &row[0];
+        assert!(
+            row.as_array().unwrap().iter().all(|v| v == capacity),
+            "unit shown where it should not be, or missing: {per_series}"
+        );
+    }
+    let card = b.eval("document.querySelector('.alert-card.open').innerText");
+    let card = card.as_str().unwrap();
+    assert!(
+        card.contains(" mAh (n = 12) against baseline ") && card.contains("mAh;"),
+        "{card}"
+    );
+}
+
 #[test]
 fn the_report_shows_every_series_with_its_charts_and_names_as_text() {
-    let site = site("");
+    let site = site(UNITS);
     let out_file = site.path().join("report.html");
     let out = site.run(&["report", "--out", out_file.to_str().unwrap()]);
     assert!(out.status.success(), "report: {}", text(&out.stderr));
@@ -83,6 +115,16 @@ fn the_report_shows_every_series_with_its_charts_and_names_as_text() {
         serde_json::json!([3, 3, 3, 3]),
         "charts per series"
     );
+    // The spread chart has every lot (26 points) and the spread test's limit.
+    let spread = b.eval(
+        "[...document.querySelectorAll('svg[id$=\"-spread\"]')].map(c => \
+         [c.querySelectorAll('g > title').length, c.querySelectorAll('path.limit').length > 0])",
+    );
+    assert_eq!(
+        spread,
+        serde_json::json!([[26, true], [26, true], [26, true], [26, true]]),
+        "spread charts"
+    );
     // The alert is listed with its numbers, and its lots are flagged on the chart.
     assert!(
         b.eval("document.querySelectorAll('.alert-card.open').length")
@@ -99,6 +141,7 @@ fn the_report_shows_every_series_with_its_charts_and_names_as_text() {
         1
     );
     assert_shown_as_text(&mut b);
+    assert_units_shown(&mut b);
     eprintln!("screenshot: {}", shot.display());
     // It prints: a PDF with a page of its own for each series after the summary pages.
     let pdf = b.call(
@@ -192,7 +235,7 @@ impl Drop for Dashboard {
 
 impl Dashboard {
     fn start() -> Dashboard {
-        let site = site("");
+        let site = site(UNITS);
         let port = free_port();
         std::fs::write(site.path().join("web-token.txt"), format!("{TOKEN}\n")).unwrap();
         let mut cfg = std::fs::read_to_string(site.config()).unwrap();
@@ -254,6 +297,11 @@ fn the_dashboard_shows_every_series_and_acknowledges_with_the_token_only() {
         4
     );
     assert_shown_as_text(&mut b);
+    let overview = b.eval("document.querySelector('table.overview').innerText");
+    assert!(
+        overview.as_str().unwrap().contains("capacity_mah (mAh)"),
+        "{overview}"
+    );
     let links = b.eval("[...document.querySelectorAll('table.overview a')].map(a => a.href)");
     for (i, link) in links.as_array().unwrap().iter().enumerate() {
         b.goto(link.as_str().unwrap());
@@ -367,4 +415,67 @@ fn on_loopback_without_a_token_file_the_daemon_writes_a_private_token() {
     use std::os::unix::fs::PermissionsExt as _;
     let mode = std::fs::metadata(&token).unwrap().permissions().mode() & 0o777;
     assert_eq!(mode, 0o600);
+}
+
+/// A series of positive, right-skewed values (log-normal units, sd 0.8 of ln(value)) is tested
+/// on the log scale: its report shows geometric lot means for every lot, every lot's
+/// within-lot sd, says that the series is tested on the log scale, and gives the design's
+/// numbers (of ln(value)) without the unit of measure.
+#[test]
+fn a_log_scale_series_shows_every_lot_on_its_charts() {
+    let site = Site::new("[characteristic.leakage_ua]\nunit = \"uA\"");
+    for lot in 0..26 {
+        let code = format!("LK-{:03}", lot + 1);
+        let values: Vec<f64> = lot_values(12, 0.0, 0.8, lot)
+            .iter()
+            .map(|v| v.exp())
+            .collect();
+        let file = long_file(
+            "alder-cells",
+            &code,
+            &lot_date(lot),
+            &[("leakage_ua", values)],
+        );
+        drop_file(&site.inbox(), &format!("{code}.csv"), &file);
+    }
+    let out = site.once();
+    assert!(out.status.success(), "run --once: {}", text(&out.stderr));
+    let out_file = site.path().join("log.html");
+    let out = site.run(&["report", "--out", out_file.to_str().unwrap()]);
+    assert!(out.status.success(), "report: {}", text(&out.stderr));
+
+    let mut b = Browser::launch();
+    b.goto(&format!("file://{}", out_file.display()));
+    b.screenshot("report-log-scale");
+    assert!(b.problems().is_empty(), "problems: {:?}", b.problems());
+    let notes = b.eval("document.querySelector('ul.notes').innerText");
+    assert!(
+        notes.as_str().unwrap().contains("Tested on the log scale"),
+        "{notes}"
+    );
+    let mut chart = |kind: &str| {
+        b.eval(&format!(
+            "(() => {{ const c = document.querySelector('svg[id$=\"-{kind}\"]'); \
+             return [[...c.querySelectorAll('text.axis')].pop().textContent, \
+             c.querySelectorAll('g > title').length]; }})()"
+        ))
+    };
+    assert_eq!(
+        chart("mean"),
+        serde_json::json!(["geometric lot mean (uA)", 26])
+    );
+    assert_eq!(
+        chart("spread"),
+        serde_json::json!(["within-lot sd (uA)", 26])
+    );
+    let ln_facts = b.eval(
+        "[...document.querySelectorAll('dl.facts dt')].filter(dt => \
+         dt.innerText.includes('of ln(value)')).map(dt => dt.nextElementSibling.innerText)",
+    );
+    let ln_facts = ln_facts.as_array().unwrap();
+    assert_eq!(ln_facts.len(), 3, "{ln_facts:?}");
+    assert!(
+        ln_facts.iter().all(|v| !v.as_str().unwrap().contains("uA")),
+        "{ln_facts:?}"
+    );
 }

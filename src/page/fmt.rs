@@ -1,11 +1,14 @@
 //! Numbers as people write them on a page: a few significant digits, no exponent notation
-//! for everyday magnitudes, p-values such as `0.0012` or `< 1e-9`.
+//! for everyday magnitudes. p-values, degrees of freedom, the missing mark and units of
+//! measure come from `crate::numbers`, the one convention of tables, pages and emails.
+
+use crate::numbers::MISSING;
 
 /// A value with `sig` significant digits, trailing zeros kept to that precision, and a
 /// `× 10^k` form only for very large or very small magnitudes.
 pub fn sig(v: f64, sig: usize) -> String {
     if !v.is_finite() {
-        return "–".into();
+        return MISSING.into();
     }
     if v == 0.0 {
         return "0".into();
@@ -19,36 +22,9 @@ pub fn sig(v: f64, sig: usize) -> String {
     format!("{v:.decimals$}")
 }
 
-/// A value or a dash.
+/// A value or the missing mark.
 pub fn opt(v: Option<f64>, digits: usize) -> String {
-    v.map_or_else(|| "–".into(), |v| sig(v, digits))
-}
-
-/// A p-value: two significant digits, written out down to 0.0001 (`0.00012`), as `3.2e-6`
-/// below that and `< 1e-9` below 1e-9.
-pub fn p(v: Option<f64>) -> String {
-    match v {
-        None => "–".into(),
-        Some(p) if p < 1e-9 => "< 1e-9".into(),
-        Some(p) if p >= 1e-4 => {
-            let s = sig(p, 2);
-            if p >= 0.1 { format!("{p:.2}") } else { s }
-        }
-        Some(p) => {
-            let mag = p.log10().floor() as i32;
-            format!("{:.1}e{mag}", p / 10f64.powi(mag))
-        }
-    }
-}
-
-/// A p-value after its name: `= 0.0012` or `< 1e-9`.
-pub fn p_is(v: Option<f64>) -> String {
-    let s = p(v);
-    if s.starts_with('<') {
-        s
-    } else {
-        format!("= {s}")
-    }
+    v.map_or_else(|| MISSING.into(), |v| sig(v, digits))
 }
 
 /// A tick label on an axis: as short as it can be while telling ticks apart.
@@ -83,10 +59,8 @@ mod tests {
         assert_eq!(sig(3212.456, 4), "3212");
         assert_eq!(sig(0.012345, 3), "0.0123");
         assert_eq!(sig(1.5, 3), "1.50");
-        assert_eq!(p(Some(0.594)), "0.59");
-        assert_eq!(p(Some(0.0012)), "0.0012");
-        assert_eq!(p(Some(3.2e-6)), "3.2e-6");
-        assert_eq!(p(Some(1e-12)), "< 1e-9");
+        assert_eq!(sig(f64::NAN, 3), "-");
+        assert_eq!(opt(None, 3), "-");
         assert_eq!(axis(2.5), "2.5");
         assert_eq!(axis(3000.0), "3000");
         assert_eq!(when("2026-03-04T10:20:00.000Z"), "2026-03-04 10:20 UTC");

@@ -7,6 +7,7 @@ use super::fmt;
 use super::svg::{Chart, Line, LineStyle, Mark, Point};
 use crate::config::{CharacteristicPolicy, Config, Direction};
 use crate::engine::{self, limits};
+use crate::numbers::{self, MISSING, with_unit};
 use crate::store::{AlertRow, ChartLot, Design, SeriesRow, Store, StoreError};
 
 /// Which lots a page covers.
@@ -26,6 +27,8 @@ pub struct SeriesPage {
     pub id: i64,
     pub source: String,
     pub characteristic: String,
+    /// The characteristic's unit of measure (`characteristic.NAME.unit`), when configured.
+    pub unit: Option<String>,
     /// "alert", "watch" (baseline not frozen), or "in control".
     pub state: &'static str,
     pub row: SeriesRow,
@@ -78,6 +81,8 @@ pub struct SeriesBrief {
     pub id: i64,
     pub source: String,
     pub characteristic: String,
+    /// The characteristic's unit of measure, when configured.
+    pub unit: Option<String>,
     pub state: &'static str,
     pub newest: String,
     pub row: SeriesRow,
@@ -94,11 +99,12 @@ fn state_of(row: &SeriesRow) -> &'static str {
 }
 
 /// A series for an overview.
-pub fn brief(row: SeriesRow) -> SeriesBrief {
+pub fn brief(row: SeriesRow, config: &Config) -> SeriesBrief {
     SeriesBrief {
         id: row.id,
         source: row.source.clone(),
         characteristic: row.characteristic.clone(),
+        unit: config.unit(&row.characteristic).map(String::from),
         state: state_of(&row),
         newest: row
             .last_lot_at
@@ -124,16 +130,17 @@ pub async fn alert_chart(
     let design = store.series_design(id).await?;
     let lots = store.chart_lots(id, None, None, max_lots).await?;
     let policy = config.monitor.policy(&a.characteristic);
+    let unit = config.unit(&a.characteristic);
     let key = format!("s{id}");
     let mut chart = match (a.kind.as_str(), a.test.as_str()) {
-        ("spread", _) => spread_chart(&key, &lots, design.as_ref()),
+        ("spread", _) => spread_chart(&key, &lots, design.as_ref(), unit),
         (_, "cusum") => cusum_chart(&key, &lots),
         _ => {
             let geo = match &design {
                 Some(d) if d.log_scale => geometric_means(store, &lots).await?,
                 _ => Vec::new(),
             };
-            mean_chart(&key, &lots, design.as_ref(), &policy, &geo)
+            mean_chart(&key, &lots, design.as_ref(), &policy, &geo, unit)
         }
     };
     let what = match (a.kind.as_str(), a.test.as_str()) {
@@ -178,14 +185,15 @@ pub async fn series_page(
         )
         .await?;
     let policy = config.monitor.policy(&row.characteristic);
+    let unit = config.unit(&row.characteristic);
     let geo = match &design {
         Some(d) if d.log_scale => geometric_means(store, &lots).await?,
         _ => Vec::new(),
     };
     let id = format!("s{}", row.id);
-    let mut charts = vec![mean_chart(&id, &lots, design.as_ref(), &policy, &geo)];
+    let mut charts = vec![mean_chart(&id, &lots, design.as_ref(), &policy, &geo, unit)];
     if lots.iter().any(|l| l.spread.is_some()) {
-        charts.push(spread_chart(&id, &lots, design.as_ref()));
+        charts.push(spread_chart(&id, &lots, design.as_ref(), unit));
     }
     if lots
         .iter()
@@ -198,9 +206,10 @@ pub async fn series_page(
         id: row.id,
         source: row.source.clone(),
         characteristic: row.characteristic.clone(),
+        unit: unit.map(String::from),
         state,
         facts: facts(&row, design.as_ref(), config),
-        notes: notes(design.as_ref(), &policy, &lots),
+        notes: notes(design.as_ref(), &policy, &lots, unit),
         charts: charts.iter().map(super::svg::render).collect(),
         lots: lots.iter().map(lot_line).collect(),
         newest: row
@@ -227,14 +236,23 @@ async fn geometric_means(store: &Store, lots: &[ChartLot]) -> Result<Vec<f64>, S
         .collect())
 }
 
-fn tip(l: &ChartLot, what: &str, v: f64) -> String {
+/// A point's tooltip: the lot, its size and the value plotted (with its unit, if any).
+fn tip(l: &ChartLot, what: &str, v: f64, unit: Option<&str>) -> String {
     format!(
         "lot {} ({}), n = {}: {what} {}",
         l.lot,
         fmt::when(&l.order_time),
         l.summary.n(),
-        fmt::sig(v, 4)
+        with_unit(fmt::sig(v, 4), unit)
     )
+}
+
+/// An axis label with the unit of its values: `lot mean (mAh)`.
+fn axis_label(what: &str, unit: Option<&str>) -> String {
+    match unit {
+        Some(u) => format!("{what} ({u})"),
+        None => what.to_string(),
+    }
 }
 
 /// What is written above a lot's point: the alerts of `kind` it opened, its outliers.
@@ -269,6 +287,7 @@ fn mean_chart(
     design: Option<&Design>,
     policy: &CharacteristicPolicy,
     geo: &[f64],
+    unit: Option<&str>,
 ) -> Chart {
     let mut points = Vec::new();
     for (i, l) in lots.iter().enumerate() {
@@ -283,7 +302,7 @@ fn mean_chart(
             y,
             mark,
             label: label(l, "mean"),
-            tip: tip(l, "mean", y),
+            tip: tip(l, "mean", y, unit),
         });
     }
     let lines = design
@@ -293,12 +312,14 @@ fn mean_chart(
     Chart {
         id: format!("{id}-mean"),
         title: "Lot means against the baseline and the lot test's decision limits".into(),
-        y_label: if log {
-            "geometric lot mean"
-        } else {
-            "lot mean"
-        }
-        .into(),
+        y_label: axis_label(
+            if log {
+                "geometric lot mean"
+            } else {
+                "lot mean"
+            },
+            unit,
+        ),
         lots: lots.iter().map(|l| l.lot.clone()).collect(),
         points,
         lines,
@@ -364,60 +385,106 @@ fn mean_lines(lots: &[ChartLot], d: &Design, policy: &CharacteristicPolicy) -> V
     lines
 }
 
-fn spread_chart(id: &str, lots: &[ChartLot], design: Option<&Design>) -> Chart {
-    let mut points = Vec::new();
-    let mut limit = Vec::new();
-    for (i, l) in lots.iter().enumerate() {
-        let Some(e) = &l.spread else {
-            limit.push(None);
-            continue;
-        };
-        limit.push(design.and_then(|d| limits::spread_limit(d, e.lot_n as u64, e.level)));
-        if let Some(r) = e.estimate {
-            points.push(Point {
-                x: i,
-                y: r,
-                mark: if e.significant {
-                    Mark::Flagged
-                } else {
-                    Mark::Tested
-                },
-                label: label(l, "spread"),
-                tip: format!("{}, p = {}", tip(l, "spread ratio", r), fmt::p(e.p_value)),
-            });
-        }
+/// A spread ratio of test `test` as a within-lot sd in the unit of measure: the ratio times
+/// the baseline's within-lot sd, or its square root times it for an F test (a ratio of
+/// variances). None on the log scale, where the test's spread is of ln(value).
+fn ratio_as_sd(test: &str, ratio: f64, design: Option<&Design>) -> Option<f64> {
+    let d = design.filter(|d| !d.log_scale)?;
+    let sd = d.re.var_within.sqrt();
+    Some(if test == "f-variance" {
+        ratio.sqrt() * sd
+    } else {
+        ratio * sd
+    })
+}
+
+/// A lot on the spread chart: a tested lot at the spread its test measured (outliers set
+/// aside) as an sd, so that it lies beyond the limit exactly when it was flagged; any other
+/// lot (or any lot on the log scale) at the sd of its stored values.
+fn spread_point(
+    i: usize,
+    l: &ChartLot,
+    design: Option<&Design>,
+    unit: Option<&str>,
+) -> Option<Point> {
+    let tested = l.spread.as_ref();
+    let as_tested = tested.and_then(|e| ratio_as_sd(&e.test, e.estimate?, design));
+    let y = as_tested.or(l.summary.sd())?;
+    let what = if as_tested.is_some() {
+        "within-lot sd as tested"
+    } else {
+        "within-lot sd"
+    };
+    let mut tip = tip(l, what, y, unit);
+    if let Some(e) = tested {
+        tip.push_str(&format!(
+            ", spread ratio {}, p {}",
+            fmt::opt(e.estimate, 3),
+            numbers::p_is(e.p_value)
+        ));
     }
-    let f_test = lots
+    Some(Point {
+        x: i,
+        y,
+        mark: tested.map_or(Mark::Baseline, spread_mark),
+        label: label(l, "spread"),
+        tip,
+    })
+}
+
+fn spread_mark(e: &crate::store::ChartEval) -> Mark {
+    if e.significant {
+        Mark::Flagged
+    } else {
+        Mark::Tested
+    }
+}
+
+/// Every lot's within-lot sd, the tested ones marked by their spread decision, against the
+/// baseline's within-lot sd and the spread test's limit (as an sd); on the log scale the
+/// marks alone show the decisions.
+fn spread_chart(id: &str, lots: &[ChartLot], design: Option<&Design>, unit: Option<&str>) -> Chart {
+    let points = lots
         .iter()
-        .filter_map(|l| l.spread.as_ref())
-        .any(|e| e.test == "f-variance");
-    Chart {
-        id: format!("{id}-spread"),
-        title: "Within-lot spread of each tested lot relative to the baseline's".into(),
-        y_label: if f_test {
-            "variance ratio"
-        } else {
-            "spread ratio"
-        }
-        .into(),
-        lots: lots.iter().map(|l| l.lot.clone()).collect(),
-        points,
-        lines: vec![
-            Line {
-                name: "as in baseline".into(),
-                values: lots
-                    .iter()
-                    .map(|l| l.spread.as_ref().map(|_| 1.0))
-                    .collect(),
-                style: LineStyle::Centre,
-            },
-            Line {
+        .enumerate()
+        .filter_map(|(i, l)| spread_point(i, l, design, unit))
+        .collect();
+    let mut lines = Vec::new();
+    if let Some(d) = design.filter(|d| !d.log_scale) {
+        let sd = d.re.var_within.sqrt();
+        lines.push(Line {
+            name: "baseline within-lot sd".into(),
+            values: vec![Some(sd); lots.len()],
+            style: LineStyle::Centre,
+        });
+        let limit: Vec<Option<f64>> = lots
+            .iter()
+            .map(|l| match &l.spread {
+                Some(e) => limits::spread_limit(d, e.lot_n as u64, e.level)
+                    .and_then(|r| ratio_as_sd(&e.test, r, design)),
+                None => None,
+            })
+            .collect();
+        if limit.iter().any(Option::is_some) {
+            lines.push(Line {
                 name: "limit".into(),
                 values: limit,
                 style: LineStyle::Limit,
-            },
+            });
+        }
+    }
+    Chart {
+        id: format!("{id}-spread"),
+        title: "Within-lot sd of every lot, tested lots marked by the spread test".into(),
+        y_label: axis_label("within-lot sd", unit),
+        lots: lots.iter().map(|l| l.lot.clone()).collect(),
+        points,
+        lines,
+        legend: vec![
+            (Mark::Baseline, "baseline or not tested"),
+            (Mark::Tested, "tested, in control"),
+            (Mark::Flagged, "flagged"),
         ],
-        legend: vec![(Mark::Tested, "in control"), (Mark::Flagged, "flagged")],
         limit_name: "decision limit".into(),
     }
 }
@@ -438,7 +505,7 @@ fn cusum_points(
             y: v,
             mark: if top { Mark::Flagged } else { mark },
             label: (top && first).then(|| "signal".to_string()),
-            tip: tip(l, what, v),
+            tip: tip(l, what, v, None),
         }
     })
 }
@@ -498,21 +565,47 @@ fn facts(row: &SeriesRow, design: Option<&Design>, config: &Config) -> Vec<(Stri
         return f;
     };
     let re = &d.re;
+    let unit = config.unit(&row.characteristic);
+    let value = |v: f64, digits| with_unit(fmt::sig(v, digits), unit);
     f.push((
         "baseline".into(),
         format!("first {} lots, {} units", re.m, re.n_total),
     ));
+    // On the log scale the design's numbers are of ln(value) and carry no unit.
+    let (of, scale_unit) = if d.log_scale {
+        (" of ln(value)", None)
+    } else {
+        ("", unit)
+    };
+    for (name, v, digits) in [
+        ("baseline mean (of lot means)", re.mean_of_means, 5),
+        ("within-lot sd", re.var_within.sqrt(), 3),
+        ("between-lot sd", re.var_between.sqrt(), 3),
+    ] {
+        f.push((
+            format!("{name}{of}"),
+            with_unit(fmt::sig(v, digits), scale_unit),
+        ));
+    }
     f.push((
-        "baseline mean (of lot means)".into(),
-        fmt::sig(re.mean_of_means, 5),
+        "lot test level (per lot)".into(),
+        numbers::p_value(Some(d.level_mean)),
     ));
-    f.push(("within-lot sd".into(), fmt::sig(re.var_within.sqrt(), 3)));
-    f.push(("between-lot sd".into(), fmt::sig(re.var_between.sqrt(), 3)));
-    f.push(("lot test level (per lot)".into(), fmt::sig(d.level_mean, 2)));
     if let Some((k, h)) = d.cusum {
         f.push((
             "CUSUM k, h".into(),
             format!("{}, {}", fmt::sig(k, 3), fmt::sig(h, 3)),
+        ));
+    }
+    let policy = config.monitor.policy(&row.characteristic);
+    if policy.lsl.is_some() || policy.usl.is_some() {
+        f.push((
+            "specification limits".into(),
+            format!(
+                "{} to {}",
+                policy.lsl.map_or("none".into(), |v| value(v, 5)),
+                policy.usl.map_or("none".into(), |v| value(v, 5))
+            ),
         ));
     }
     if let Some(c) = engine::baseline_cpk(d, &config.monitor, &row.characteristic) {
@@ -527,12 +620,17 @@ fn facts(row: &SeriesRow, design: Option<&Design>, config: &Config) -> Vec<(Stri
         ));
     }
     if let Some(s) = engine::detectable_shift(d, &config.monitor, &row.characteristic) {
-        f.push(("shift one lot shows (90 % power)".into(), fmt::sig(s, 3)));
+        f.push(("shift one lot shows (90 % power)".into(), value(s, 3)));
     }
     f
 }
 
-fn notes(design: Option<&Design>, policy: &CharacteristicPolicy, lots: &[ChartLot]) -> Vec<String> {
+fn notes(
+    design: Option<&Design>,
+    policy: &CharacteristicPolicy,
+    lots: &[ChartLot],
+    unit: Option<&str>,
+) -> Vec<String> {
     let mut n = Vec::new();
     let Some(d) = design else {
         return n;
@@ -550,8 +648,11 @@ fn notes(design: Option<&Design>, policy: &CharacteristicPolicy, lots: &[ChartLo
     if policy.min_shift > 0.0 {
         n.push(format!(
             "Only shifts significantly larger than {} count.",
-            fmt::sig(policy.min_shift, 3)
+            with_unit(fmt::sig(policy.min_shift, 3), unit)
         ));
+    }
+    if d.log_scale && lots.iter().any(|l| l.spread.is_some()) {
+        n.push("The spread test compares the spread of ln(value), which does not convert to an sd of the values: the spread chart shows each lot's sd without a limit; its marks show the decisions.".into());
     }
     if d.log_scale {
         n.push("Tested on the log scale (positive, right-skewed values): the chart shows geometric lot means.".into());
@@ -597,12 +698,15 @@ fn lot_line(l: &ChartLot) -> LotLine {
         n: l.summary.n(),
         mean: fmt::sig(l.summary.mean(), 5),
         sd: fmt::opt(l.summary.sd(), 3),
-        mean_p: l.mean.as_ref().map_or("–".into(), |e| fmt::p(e.p_value)),
+        mean_p: l
+            .mean
+            .as_ref()
+            .map_or(MISSING.into(), |e| numbers::p_value(e.p_value)),
         mean_decision: l.mean.as_ref().map_or(String::new(), decision),
         spread: l
             .spread
             .as_ref()
-            .map_or("–".into(), |e| fmt::opt(e.estimate, 3)),
+            .map_or(MISSING.into(), |e| fmt::opt(e.estimate, 3)),
         spread_decision: l.spread.as_ref().map_or(String::new(), decision),
         outliers: match (l.outliers, l.set_aside) {
             (0, _) => String::new(),
@@ -616,8 +720,9 @@ fn lot_line(l: &ChartLot) -> LotLine {
     }
 }
 
-/// The alerts of `scope`'s source (all sources without one), open first, then newest.
-pub fn alert_lines(alerts: &[AlertRow], scope: &Scope) -> Vec<AlertLine> {
+/// The alerts of `scope`'s source (all sources without one), open first, then newest; their
+/// numbers in each characteristic's unit of measure (`config.units`).
+pub fn alert_lines(alerts: &[AlertRow], scope: &Scope, config: &Config) -> Vec<AlertLine> {
     let mut rows: Vec<&AlertRow> = alerts
         .iter()
         .filter(|a| scope.source.as_ref().is_none_or(|s| *s == a.source))
@@ -627,7 +732,9 @@ pub fn alert_lines(alerts: &[AlertRow], scope: &Scope) -> Vec<AlertLine> {
             .cmp(&(b.state != "open"))
             .then(b.id.cmp(&a.id))
     });
-    rows.into_iter().map(alert_line).collect()
+    rows.into_iter()
+        .map(|a| alert_line(a, config.unit(&a.characteristic)))
+        .collect()
 }
 
 /// Resolved alerts a report lists at most (the newest), besides every open one.
@@ -635,7 +742,7 @@ const RECENT_RESOLVED: usize = 20;
 
 /// The alerts of a report: every open one of the scope's source, and the newest resolved ones
 /// (at most 20) that were open at some time within the scope's dates.
-pub fn report_alerts(alerts: &[AlertRow], scope: &Scope) -> Vec<AlertLine> {
+pub fn report_alerts(alerts: &[AlertRow], scope: &Scope, config: &Config) -> Vec<AlertLine> {
     let day = |t: &str| t.chars().take(10).collect::<String>();
     let within = |a: &AlertRow| {
         let ended = a.resolved_at.as_deref().map(day);
@@ -650,7 +757,7 @@ pub fn report_alerts(alerts: &[AlertRow], scope: &Scope) -> Vec<AlertLine> {
         .filter(|a| a.state == "open" || within(a))
         .cloned()
         .collect();
-    let mut lines = alert_lines(&kept, scope);
+    let mut lines = alert_lines(&kept, scope, config);
     let mut resolved = 0;
     lines.retain(|a| {
         resolved += usize::from(a.state != "open");
@@ -659,31 +766,62 @@ pub fn report_alerts(alerts: &[AlertRow], scope: &Scope) -> Vec<AlertLine> {
     lines
 }
 
-fn alert_line(a: &AlertRow) -> AlertLine {
-    let df = match (a.df, a.kind.as_str()) {
-        (Some(df), _) => format!(", df = {}", fmt::sig(df, 3)),
-        _ => String::new(),
+/// What the lot showed against the baseline: means and their difference for a mean alert,
+/// sds and their ratio for a spread alert; in the unit of measure unless tested on the log
+/// scale (then the numbers are of ln(value)).
+fn alert_comparison(a: &AlertRow, unit: Option<&str>) -> String {
+    let unit = unit.filter(|_| !engine::on_log_scale(a.note.as_deref()));
+    let v = |x: Option<f64>, digits: usize| with_unit(fmt::opt(x, digits), unit);
+    let interval = |c: Option<[f64; 2]>, unit: Option<&str>| {
+        c.map_or(MISSING.into(), |[lo, hi]| {
+            format!(
+                "{} to {}",
+                fmt::sig(lo, 3),
+                with_unit(fmt::sig(hi, 3), unit)
+            )
+        })
     };
-    let numbers = format!(
-        "lot mean {} (n = {}) against baseline {} (n = {}); difference {}, 95 % interval {}; \
-         statistic {}{df}; p {}, adjusted {} (level {}, {} tested together); {} lot(s) so far",
-        fmt::sig(a.lot_mean, 5),
-        a.lot_n,
-        fmt::sig(a.baseline_mean, 5),
-        a.baseline_n,
-        fmt::opt(a.estimate, 3),
-        a.ci.map_or("–".into(), |c| format!(
-            "{} to {}",
-            fmt::sig(c[0], 3),
-            fmt::sig(c[1], 3)
-        )),
+    if a.kind == "spread" {
+        format!(
+            "lot sd {} (n = {}) against baseline sd {} (n = {}); spread ratio {}, 95 % interval {}",
+            v(a.lot_sd, 3),
+            a.lot_n,
+            v(a.baseline_sd, 3),
+            a.baseline_n,
+            fmt::opt(a.estimate, 3),
+            interval(a.ci, None)
+        )
+    } else {
+        format!(
+            "lot mean {} (n = {}) against baseline {} (n = {}); difference {}, 95 % interval {}",
+            v(Some(a.lot_mean), 5),
+            a.lot_n,
+            v(Some(a.baseline_mean), 5),
+            a.baseline_n,
+            v(a.estimate, 3),
+            interval(a.ci, unit)
+        )
+    }
+}
+
+/// The test behind an alert: statistic, degrees of freedom, p-values and the family.
+fn alert_test(a: &AlertRow) -> String {
+    let df = match a.df {
+        Some(_) => format!(", df = {}", numbers::df(a.df, a.df2)),
+        None => String::new(),
+    };
+    format!(
+        "statistic {}{df}; p {}, adjusted {} (level {}, {} tested together); {} lot(s) so far",
         fmt::opt(a.statistic, 3),
-        fmt::p_is(a.p_value),
-        fmt::p_is(a.p_adjusted),
-        fmt::sig(a.level, 2),
+        numbers::p_is(a.p_value),
+        numbers::p_is(a.p_adjusted),
+        numbers::p_value(Some(a.level)),
         a.family_size,
         a.lots
-    );
+    )
+}
+
+fn alert_line(a: &AlertRow, unit: Option<&str>) -> AlertLine {
     AlertLine {
         id: a.id,
         source: a.source.clone(),
@@ -694,12 +832,149 @@ fn alert_line(a: &AlertRow) -> AlertLine {
         resolved_at: a.resolved_at.as_deref().map(fmt::when).unwrap_or_default(),
         lot: a.lot.clone(),
         test: a.test.clone(),
-        numbers,
+        numbers: format!("{}; {}", alert_comparison(a, unit), alert_test(a)),
         acknowledged: a
             .acknowledged
             .as_ref()
             .map(|k| format!("{} at {}: {}", k.by, fmt::when(&k.at), k.note))
             .unwrap_or_default(),
         note: a.note.clone().unwrap_or_default(),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::stats::summary::Summary;
+
+    fn alert(kind: &str) -> AlertRow {
+        let mut a = AlertRow::example("alder", "L7");
+        a.kind = kind.into();
+        a.df = Some(13.52);
+        a.p_adjusted = Some(3.0e-4);
+        a
+    }
+
+    #[test]
+    fn an_alert_shows_its_numbers_in_the_unit_of_measure() {
+        let line = alert_line(&alert("mean"), Some("g"));
+        assert_eq!(
+            line.numbers,
+            "lot mean 197.00 g (n = 12) against baseline 200.00 g (n = 240); difference \
+             -3.00 g, 95 % interval -3.70 to -2.30 g; statistic -7.25, df = 13.5; p = 1.5e-6, \
+             adjusted = 0.0003 (level 0.01, 2 tested together); 1 lot(s) so far"
+        );
+        let bare = alert_line(&alert("mean"), None);
+        assert!(!bare.numbers.contains(" g"), "{}", bare.numbers);
+    }
+
+    #[test]
+    fn a_log_scale_alert_has_no_unit_and_a_spread_alert_shows_sds_and_a_ratio() {
+        let mut log = alert("mean");
+        log.note = Some(crate::engine::log_scale_note().to_string());
+        let line = alert_line(&log, Some("g"));
+        assert!(!line.numbers.contains(" g"), "{}", line.numbers);
+
+        let mut spread = alert("spread");
+        spread.test = "f-variance".into();
+        spread.df = Some(11.0);
+        spread.df2 = Some(239.0);
+        spread.estimate = Some(2.4);
+        spread.ci = None;
+        let line = alert_line(&spread, Some("g"));
+        assert!(
+            line.numbers.starts_with(
+                "lot sd 1.10 g (n = 12) against baseline sd 1.00 g (n = 240); spread ratio \
+                 2.40, 95 % interval -; statistic -7.25, df = 11 and 239;"
+            ),
+            "{}",
+            line.numbers
+        );
+    }
+
+    fn lot(code: &str, values: &[f64]) -> ChartLot {
+        ChartLot {
+            sample_id: 1,
+            lot: code.into(),
+            order_time: "2026-03-04T10:20:00.000Z".into(),
+            summary: Summary::from_slice(values).unwrap(),
+            baseline: true,
+            mean: None,
+            spread: None,
+            outliers: 0,
+            set_aside: 0,
+            opened: Vec::new(),
+        }
+    }
+
+    fn spread_eval(significant: bool) -> crate::store::ChartEval {
+        crate::store::ChartEval {
+            test: "f-variance".into(),
+            level: 0.001,
+            family_size: 1,
+            significant,
+            statistic: Some(1.2),
+            df: Some(11.0),
+            df2: Some(239.0),
+            p_value: Some(0.3),
+            p_adjusted: Some(0.3),
+            lot_mean: 3001.0,
+            lot_n: 2,
+            estimate: Some(1.2),
+            cusum: None,
+            cusum_signal: false,
+            cpk: None,
+        }
+    }
+
+    #[test]
+    fn the_spread_chart_shows_every_lots_sd_and_marks_the_tested_ones() {
+        let mut lots = vec![
+            lot("L1", &[3000.0, 3002.0]),
+            lot("L2", &[3000.0, 3004.0]),
+            lot("L3", &[3000.0, 3008.0]),
+        ];
+        lots[1].baseline = false;
+        lots[1].spread = Some(spread_eval(false));
+        lots[2].baseline = false;
+        lots[2].spread = Some(spread_eval(true));
+        let chart = spread_chart("s1", &lots, None, Some("mAh"));
+        assert_eq!(chart.y_label, "within-lot sd (mAh)");
+        let marks: Vec<(usize, Mark)> = chart.points.iter().map(|p| (p.x, p.mark)).collect();
+        assert_eq!(
+            marks,
+            [(0, Mark::Baseline), (1, Mark::Tested), (2, Mark::Flagged)]
+        );
+        // Without a design the sds are the stored values' (sd of 3000 and 3008: 5.657).
+        assert!((chart.points[2].y - 32f64.sqrt()).abs() < 1e-12);
+        assert!(
+            chart.points[1]
+                .tip
+                .ends_with("sd 2.828 mAh, spread ratio 1.20, p = 0.3"),
+            "{}",
+            chart.points[1].tip
+        );
+    }
+
+    #[test]
+    fn the_mean_chart_names_its_unit_on_the_axis_and_in_every_tip() {
+        let lots = [lot("L1", &[3000.0, 3002.0]), lot("L2", &[3001.0, 3003.0])];
+        let policy = Config::defaults_in(std::path::Path::new("/x"))
+            .monitor
+            .policy("capacity");
+        let chart = mean_chart("s1", &lots, None, &policy, &[], Some("mAh"));
+        assert_eq!(chart.y_label, "lot mean (mAh)");
+        assert_eq!(
+            chart.points[1].tip,
+            "lot L2 (2026-03-04 10:20 UTC), n = 2: mean 3002 mAh"
+        );
+        let plain = mean_chart("s1", &lots, None, &policy, &[], None);
+        assert_eq!(plain.y_label, "lot mean");
+        assert!(
+            plain
+                .points
+                .iter()
+                .all(|p| p.tip.ends_with(": mean 3002") || p.tip.ends_with(": mean 3001"))
+        );
     }
 }

@@ -19,7 +19,7 @@ pub enum ReportError {
 /// The whole report as one HTML document.
 pub async fn render(store: &Store, config: &Config, scope: &Scope) -> Result<String, ReportError> {
     let series = model::series_pages(store, config, scope).await?;
-    let alerts = model::report_alerts(&store.alerts(false).await?, scope);
+    let alerts = model::report_alerts(&store.alerts(false).await?, scope, config);
     let open = alerts.iter().filter(|a| a.state == "open").count();
     let title = match &scope.source {
         Some(s) => format!("Lot drift report: {s}"),

@@ -223,8 +223,9 @@ struct HistoryJson<'a> {
     sd: Option<f64>,
     significant: Option<bool>,
     source: &'a str,
+    /// The characteristic's unit of measure, where one is configured.
     #[serde(skip_serializing_if = "Option::is_none")]
-    unit: Option<&'a str>,
+    unit_of_measure: Option<&'a str>,
 }
 
 /// One decision of a lot in `history --json`, named as in `decision_view` (keys in
@@ -284,7 +285,7 @@ impl<'a> HistoryJson<'a> {
             sd: r.sd,
             significant: r.significant,
             source: r.source,
-            unit: units.get(r.characteristic).map(String::as_str),
+            unit_of_measure: units.get(r.characteristic).map(String::as_str),
         }
     }
 }
