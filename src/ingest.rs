@@ -169,13 +169,13 @@ pub async fn ingest_files(
 
     let mut failure = None;
     while let Some(batch) = rx.recv().await {
-        let large = batch_values(&batch) >= LARGE_BATCH_VALUES;
-        if let Err(e) = write_batch(store, paths, batch, replace, &mut report).await {
-            failure = Some(e);
-            break;
-        }
-        if large {
-            release_freed_memory();
+        match write_batch(store, paths, batch, replace, &mut report).await {
+            Ok(values) if values >= LARGE_BATCH_VALUES => release_freed_memory(),
+            Ok(_) => {}
+            Err(e) => {
+                failure = Some(e);
+                break;
+            }
         }
     }
     drop(rx);
@@ -186,13 +186,14 @@ pub async fn ingest_files(
     }
 }
 
+/// Stores one batch and moves its files; returns the number of unit values stored.
 async fn write_batch(
     store: &Store,
     paths: &Paths,
     batch: Vec<Prepared>,
     replace: Option<&Replacement<'_>>,
     report: &mut IngestReport,
-) -> Result<(), IngestError> {
+) -> Result<usize, IngestError> {
     let mut good_paths = Vec::new();
     let mut good = Vec::new();
     let taken = batch.len();
@@ -214,7 +215,7 @@ async fn write_batch(
     }
     if good.is_empty() {
         tracing::info!(files = 0, taken, values = 0, "batch stored");
-        return Ok(());
+        return Ok(0);
     }
     let values: usize = good
         .iter()
@@ -278,17 +279,7 @@ async fn write_batch(
     // `taken` (files of the batch, refused ones included) and `values` feed the progress line
     // of `run --once` on a terminal (cli::progress).
     tracing::info!(files = good.len(), taken, values, "batch stored");
-    Ok(())
-}
-
-fn batch_values(batch: &[Prepared]) -> usize {
-    batch
-        .iter()
-        .filter_map(|p| match p {
-            Prepared::Good(_, f) => Some(f.samples.iter().map(|s| s.values.len()).sum::<usize>()),
-            _ => None,
-        })
-        .sum()
+    Ok(values)
 }
 
 /// Returns the memory a large batch freed to the system. glibc keeps freed memory in the

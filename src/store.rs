@@ -879,9 +879,8 @@ impl Store {
             // makes it read pages back; 32 MiB each put a backfill's peak memory near 250 MiB.
             .pragma("cache_size", "-16384")
             // SQLite's heap for the whole process (the pragma is process-wide): past it, a
-            // connection reuses its own least recently used pages instead of growing. Without
-            // it four full caches (64 MiB) came on top of a large file's parsed values at the
-            // start of the engine pass; one file now stays within its own size.
+            // connection reuses its own least recently used pages instead of growing, so the
+            // four connections' caches (up to 64 MiB) do not all fill at once.
             .pragma("soft_heap_limit", SQLITE_HEAP_LIMIT)
             // A backfill's large statements are expected; only report them at debug level.
             .log_slow_statements(tracing::log::LevelFilter::Debug, Duration::from_secs(5));
