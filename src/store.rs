@@ -945,7 +945,8 @@ impl Store {
             .await
             .map_err(err)?;
         let (lots, measurements): (i64, i64) =
-            sqlx::query_as("SELECT (SELECT COUNT(*) FROM lot), (SELECT COUNT(*) FROM measurement)")
+            sqlx::query_as("SELECT (SELECT COUNT(*) FROM lot), \
+                 (SELECT COUNT(*) FROM sample_values sv JOIN json_each(sv.values_json))")
                 .fetch_one(&mut conn)
                 .await
                 .map_err(err)?;
@@ -1404,8 +1405,11 @@ impl Store {
         // about values the sample no longer has.
         sqlx::query(
             "INSERT INTO replaced_measurement (replacement_id, seq, unit, value, sampled_at) \
-             SELECT ?, seq, unit, value, sampled_at FROM measurement WHERE sample_id = ? \
-             ORDER BY seq",
+             SELECT ?, v.key, sv.units_json ->> v.key, v.value, \
+                    CASE WHEN sv.sampled_at_json IS NULL THEN sm.sampled_at \
+                         ELSE sv.sampled_at_json ->> v.key END \
+             FROM sample_values sv JOIN sample sm ON sm.id = sv.sample_id \
+             JOIN json_each(sv.values_json) v WHERE sv.sample_id = ? ORDER BY v.key",
         )
         .bind(replacement_id)
         .bind(old.id)
@@ -1417,7 +1421,7 @@ impl Store {
             .execute(&mut **tx)
             .await
             .doing("removing outliers of replaced values")?;
-        sqlx::query("DELETE FROM measurement WHERE sample_id = ?")
+        sqlx::query("DELETE FROM sample_values WHERE sample_id = ?")
             .bind(old.id)
             .execute(&mut **tx)
             .await
@@ -1701,10 +1705,11 @@ impl Store {
         let mut out = Vec::new();
         for chunk in sample_ids.chunks(ROWS_PER_INSERT) {
             let mut q = in_list(
-                "SELECT m.value - s.mean FROM measurement m JOIN sample s ON s.id = m.sample_id \
-                 WHERE m.sample_id IN",
+                "SELECT v.value - s.mean FROM sample_values sv \
+                 JOIN sample s ON s.id = sv.sample_id JOIN json_each(sv.values_json) v \
+                 WHERE sv.sample_id IN",
                 chunk,
-                " ORDER BY m.sample_id, m.seq",
+                " ORDER BY sv.sample_id, v.key",
             );
             for r in q
                 .build()
@@ -3447,7 +3452,10 @@ mod tests {
         assert_eq!(t, "1 3 7 2 0");
         // Every unit value came across, in (sample, seq) order.
         let values: Vec<f64> =
-            sqlx::query_scalar("SELECT value FROM measurement ORDER BY sample_id, seq")
+            sqlx::query_scalar(
+                "SELECT v.value FROM sample_values sv JOIN json_each(sv.values_json) v \
+                 ORDER BY sv.sample_id, v.key",
+            )
                 .fetch_all(&pool)
                 .await
                 .unwrap();
@@ -3510,6 +3518,84 @@ mod tests {
                 .await
                 .unwrap();
         assert_eq!(unit.as_deref(), Some("g"));
+    }
+
+    /// A database with one row per unit value (before migration 0009) keeps every value bit
+    /// for bit, its serial and its time, in the view and in the store's readers.
+    #[tokio::test]
+    async fn the_packed_values_migration_moves_every_value() {
+        let dir = tempfile::tempdir().unwrap();
+        let pool = database_before(dir.path(), "0009").await;
+        sqlx::raw_sql(
+            "INSERT INTO source VALUES (1, 'alder-cells'); \
+             INSERT INTO characteristic VALUES (1, 'mass_g'); \
+             INSERT INTO series VALUES (5, 1, 1); \
+             INSERT INTO ingested_file VALUES (1, 'h', 'f.csv', 't', 'long', 6); \
+             INSERT INTO lot VALUES (1, 1, 'L1', 'T1', 't'), (2, 1, 'L2', NULL, 't'); \
+             INSERT INTO sample (id, lot_id, series_id, file_id, n, mean, m2, min_value, \
+                 max_value, sampled_at, content_digest) VALUES \
+                 (1, 1, 5, 1, 4, 2, 8, 0, 4, 'T1', 'a'), (2, 2, 5, 1, 2, 1, 0, 1, 1, NULL, 'b');",
+        )
+        .execute(&pool)
+        .await
+        .unwrap();
+        let awkward = [0.1 + 0.2, 1e-300, 123456789.123456789, 5.0, 1e16, 7.25];
+        let rows = [
+            (1, 2, Some("u\"2"), "T1"),
+            (1, 0, Some("u0"), "T1"),
+            (1, 1, None, "T2"),
+            (1, 3, None, ""),
+            (2, 1, None, ""),
+            (2, 0, None, ""),
+        ];
+        for (k, (sample, seq, unit, time)) in rows.iter().enumerate() {
+            sqlx::query(
+                "INSERT INTO measurement (sample_id, seq, unit, value, sampled_at) \
+                 VALUES (?, ?, ?, ?, NULLIF(?, ''))",
+            )
+            .bind(sample)
+            .bind(seq)
+            .bind(unit)
+            .bind(awkward[k])
+            .bind(time)
+            .execute(&pool)
+            .await
+            .unwrap();
+        }
+        pool.close().await;
+        let store = Store::open(&dir.path().join("old.db")).await.unwrap();
+        let view: Vec<(i64, i64, Option<String>, Option<String>, f64)> = sqlx::query_as(
+            "SELECT sample_id, seq, unit, sampled_at, value FROM measurement_view \
+             ORDER BY sample_id, seq",
+        )
+        .fetch_all(&store.pool)
+        .await
+        .unwrap();
+        let bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
+        let in_order = [awkward[1], awkward[2], awkward[0], awkward[3], awkward[5], awkward[4]];
+        let values: Vec<f64> = view.iter().map(|r| r.4).collect();
+        assert_eq!(bits(&values), bits(&in_order));
+        let units: Vec<Option<&str>> = view.iter().map(|r| r.2.as_deref()).collect();
+        assert_eq!(units, [Some("u0"), None, Some("u\"2"), None, None, None]);
+        let times: Vec<Option<&str>> = view.iter().map(|r| r.3.as_deref()).collect();
+        assert_eq!(times, [Some("T1"), Some("T2"), Some("T1"), Some("T1"), None, None]);
+        let seqs: Vec<(i64, i64)> = view.iter().map(|r| (r.0, r.1)).collect();
+        assert_eq!(seqs, [(1, 0), (1, 1), (1, 2), (1, 3), (2, 0), (2, 1)]);
+        // Sample 2 had neither serials nor times of its own: NULL columns, not arrays of nulls.
+        let packed: (Option<String>, Option<String>) = sqlx::query_as(
+            "SELECT units_json, sampled_at_json FROM sample_values WHERE sample_id = 2",
+        )
+        .fetch_one(&store.pool)
+        .await
+        .unwrap();
+        assert_eq!(packed, (None, None));
+        let read = store.values(&[1, 2]).await.unwrap();
+        assert_eq!(bits(&read[&1]), bits(&in_order[..4]));
+        assert_eq!(bits(&read[&2]), bits(&in_order[4..]));
+        let status = store.status().await.unwrap();
+        assert_eq!(status.measurements, 6);
+        assert_eq!(Store::check_copy(&dir.path().join("old.db")).await.unwrap().measurements, 6);
+        store.close().await;
     }
 
     /// A database made before the digest (migration 0001 only) keeps its outbox rows when

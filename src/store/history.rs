@@ -122,11 +122,11 @@ const EVENTS: &str = "SELECT sample_id, group_concat(text, '; ') FROM ( \
      WHERE xa.series_id = ?1 ORDER BY xe.sample_id, ev.id) GROUP BY sample_id";
 
 const OUTLIERS: &str = "SELECT sample_id, group_concat(text, '; ') FROM ( \
-     SELECT o.sample_id, COALESCE(om.unit, '#' || o.seq) || ' = ' || o.value \
+     SELECT o.sample_id, COALESCE(om.units_json ->> o.seq, '#' || o.seq) || ' = ' || o.value \
             || ' (' || printf('%.1f', o.distance) || ' sd' \
             || CASE WHEN o.set_aside = 1 THEN ', set aside' ELSE '' END || ')' AS text \
      FROM outlier o CROSS JOIN sample os ON os.id = o.sample_id \
-     LEFT JOIN measurement om ON om.sample_id = o.sample_id AND om.seq = o.seq \
+     LEFT JOIN sample_values om ON om.sample_id = o.sample_id \
      WHERE os.series_id = ?1 ORDER BY o.sample_id, o.seq) GROUP BY sample_id";
 
 /// The alert of each decision (as `decision_view` has it): the first event (by id) that opened,
