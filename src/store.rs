@@ -1768,86 +1768,22 @@ impl Store {
             }
         }
 
-        // Evaluations, many rows per statement.
-        let mut eval_ids: HashMap<(i64, String), i64> = HashMap::new();
-        for chunk in pass.decisions.chunks(ROWS_PER_INSERT / 8) {
-            let mut q = QueryBuilder::<Sqlite>::new(
-                "INSERT INTO evaluation (sample_id, series_id, baseline_id, kind, decided_at, test, \
-                 model, alternative, delta, statistic, df, df2, p_value, p_adjusted, method, \
-                 family_size, level, significant, baseline_n, baseline_mean, baseline_sd, lot_n, \
-                 lot_mean, lot_sd, estimate, ci_low, ci_high, std_error, cusum_upper, \
-                 cusum_lower, cusum_h, cusum_signal, cpk, cpk_low, cpk_high, note) ",
-            );
-            let mut bad = None;
-            q.push_values(chunk, |mut r, d| {
-                let e = &d.evaluation;
-                let baseline_id = match baseline_ids.get(&e.series_id) {
-                    Some(id) => *id,
-                    None => {
-                        bad = Some(e.series_id);
-                        0
-                    }
-                };
-                r.push_bind(e.sample_id)
-                    .push_bind(e.series_id)
-                    .push_bind(baseline_id)
-                    .push_bind(e.kind)
-                    .push_bind(at)
-                    .push_bind(e.test)
-                    .push_bind(e.model)
-                    .push_bind(e.alternative)
-                    .push_bind(e.delta)
-                    .push_bind(e.statistic)
-                    .push_bind(e.df)
-                    .push_bind(e.df2)
-                    .push_bind(e.p_value)
-                    .push_bind(e.p_adjusted)
-                    .push_bind(e.method)
-                    .push_bind(e.family_size)
-                    .push_bind(e.level)
-                    .push_bind(e.significant as i64)
-                    .push_bind(e.baseline.n() as i64)
-                    .push_bind(e.baseline_mean)
-                    .push_bind(e.baseline.sd())
-                    .push_bind(e.lot.n() as i64)
-                    .push_bind(e.lot.mean())
-                    .push_bind(e.lot.sd())
-                    .push_bind(e.estimate)
-                    .push_bind(e.ci.map(|c| c.0).filter(|v| v.is_finite()))
-                    .push_bind(e.ci.map(|c| c.1).filter(|v| v.is_finite()))
-                    .push_bind(e.std_error)
-                    .push_bind(e.cusum.map(|c| c.0))
-                    .push_bind(e.cusum.map(|c| c.1))
-                    .push_bind(e.cusum.map(|c| c.2))
-                    .push_bind(e.cusum_signal as i64)
-                    .push_bind(e.cpk.map(|c| c.0))
-                    .push_bind(e.cpk.map(|c| c.1))
-                    .push_bind(e.cpk.map(|c| c.2))
-                    .push_bind(e.note.as_deref());
-            });
-            if let Some(series) = bad {
-                return Err(StoreError::Corrupt(format!(
-                    "decision for series {series} without a baseline"
-                )));
-            }
-            q.push(" RETURNING id, sample_id, kind");
-            for r in q
-                .build()
-                .fetch_all(&mut *tx)
+        // Evaluations, one prepared statement on the raw handle (see `bulk`).
+        let eval_ids = {
+            let mut handle = tx
+                .lock_handle()
                 .await
-                .doing("recording decisions")?
-            {
-                eval_ids.insert((r.get(1), r.get(2)), r.get(0));
-            }
-            counts.evaluations += chunk.len();
-        }
+                .doing("taking the connection for the decisions")?;
+            bulk::insert_evaluations(handle.as_raw_handle(), &pass.decisions, &baseline_ids, at)?
+        };
+        counts.evaluations += pass.decisions.len();
 
         // Alert changes, in decision order. The open alert of each series and kind is looked
         // up once and followed through the pass.
         let mut open: HashMap<(i64, &str), Option<i64>> = HashMap::new();
         for d in &pass.decisions {
             let kind = d.evaluation.kind;
-            let eval_id = eval_ids[&(d.evaluation.sample_id, kind.to_string())];
+            let eval_id = eval_ids[&(d.evaluation.sample_id, kind)];
             let series_id = d.evaluation.series_id;
             let key = (series_id, kind);
             if !matches!(

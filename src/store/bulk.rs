@@ -13,11 +13,19 @@ use std::ptr::NonNull;
 use rusqlite::Connection;
 use rusqlite::ffi::sqlite3;
 
-use super::{NewSample, Result, StoreError};
+use super::{Decision, NewEvaluation, NewSample, Result, StoreError};
 use crate::lotfile::Stamp;
 
 const INSERT_VALUES: &str = "INSERT INTO sample_values (sample_id, values_json, units_json, \
      sampled_at_json) VALUES (?1, ?2, ?3, ?4)";
+
+const INSERT_EVALUATION: &str = "INSERT INTO evaluation (sample_id, series_id, baseline_id, \
+     kind, decided_at, test, model, alternative, delta, statistic, df, df2, p_value, p_adjusted, \
+     method, family_size, level, significant, baseline_n, baseline_mean, baseline_sd, lot_n, \
+     lot_mean, lot_sd, estimate, ci_low, ci_high, std_error, cusum_upper, cusum_lower, cusum_h, \
+     cusum_signal, cpk, cpk_low, cpk_high, note) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, \
+     ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, ?27, \
+     ?28, ?29, ?30, ?31, ?32, ?33, ?34, ?35, ?36)";
 
 const SELECT_VALUES: &str = "SELECT values_json FROM sample_values WHERE sample_id = ?1";
 
@@ -66,6 +74,81 @@ pub(super) fn insert_measurements(
         stmt.raw_execute().doing("recording measurements")?;
     }
     Ok(())
+}
+
+/// Inserts the evaluation of every decision, one prepared statement stepped per row (an engine
+/// pass of a backfill writes hundreds of thousands), and returns each row's id by (sample
+/// id, kind). `baseline_ids` holds the current baseline of every decided series.
+pub(super) fn insert_evaluations(
+    handle: NonNull<sqlite3>,
+    decisions: &[Decision],
+    baseline_ids: &HashMap<i64, i64>,
+    at: &str,
+) -> Result<HashMap<(i64, &'static str), i64>> {
+    let conn = borrow(handle)?;
+    let mut stmt = conn
+        .prepare(INSERT_EVALUATION)
+        .doing("preparing the insert of decisions")?;
+    let mut ids = HashMap::with_capacity(decisions.len());
+    for d in decisions {
+        let e = &d.evaluation;
+        let baseline_id = *baseline_ids.get(&e.series_id).ok_or_else(|| {
+            StoreError::Corrupt(format!(
+                "decision for series {} without a baseline",
+                e.series_id
+            ))
+        })?;
+        bind_evaluation(&mut stmt, e, baseline_id, at).doing("recording decisions")?;
+        stmt.raw_execute().doing("recording decisions")?;
+        ids.insert((e.sample_id, e.kind), conn.last_insert_rowid());
+    }
+    Ok(ids)
+}
+
+/// Binds the 36 columns of [`INSERT_EVALUATION`] (an interval bound that is not finite is NULL).
+fn bind_evaluation(
+    stmt: &mut rusqlite::Statement<'_>,
+    e: &NewEvaluation,
+    baseline_id: i64,
+    at: &str,
+) -> rusqlite::Result<()> {
+    let finite = |v: f64| Some(v).filter(|v| v.is_finite());
+    stmt.raw_bind_parameter(1, e.sample_id)?;
+    stmt.raw_bind_parameter(2, e.series_id)?;
+    stmt.raw_bind_parameter(3, baseline_id)?;
+    stmt.raw_bind_parameter(4, e.kind)?;
+    stmt.raw_bind_parameter(5, at)?;
+    stmt.raw_bind_parameter(6, e.test)?;
+    stmt.raw_bind_parameter(7, e.model)?;
+    stmt.raw_bind_parameter(8, e.alternative)?;
+    stmt.raw_bind_parameter(9, e.delta)?;
+    stmt.raw_bind_parameter(10, e.statistic)?;
+    stmt.raw_bind_parameter(11, e.df)?;
+    stmt.raw_bind_parameter(12, e.df2)?;
+    stmt.raw_bind_parameter(13, e.p_value)?;
+    stmt.raw_bind_parameter(14, e.p_adjusted)?;
+    stmt.raw_bind_parameter(15, e.method)?;
+    stmt.raw_bind_parameter(16, e.family_size)?;
+    stmt.raw_bind_parameter(17, e.level)?;
+    stmt.raw_bind_parameter(18, e.significant as i64)?;
+    stmt.raw_bind_parameter(19, e.baseline.n() as i64)?;
+    stmt.raw_bind_parameter(20, e.baseline_mean)?;
+    stmt.raw_bind_parameter(21, e.baseline.sd())?;
+    stmt.raw_bind_parameter(22, e.lot.n() as i64)?;
+    stmt.raw_bind_parameter(23, e.lot.mean())?;
+    stmt.raw_bind_parameter(24, e.lot.sd())?;
+    stmt.raw_bind_parameter(25, e.estimate)?;
+    stmt.raw_bind_parameter(26, e.ci.and_then(|c| finite(c.0)))?;
+    stmt.raw_bind_parameter(27, e.ci.and_then(|c| finite(c.1)))?;
+    stmt.raw_bind_parameter(28, e.std_error)?;
+    stmt.raw_bind_parameter(29, e.cusum.map(|c| c.0))?;
+    stmt.raw_bind_parameter(30, e.cusum.map(|c| c.1))?;
+    stmt.raw_bind_parameter(31, e.cusum.map(|c| c.2))?;
+    stmt.raw_bind_parameter(32, e.cusum_signal as i64)?;
+    stmt.raw_bind_parameter(33, e.cpk.map(|c| c.0))?;
+    stmt.raw_bind_parameter(34, e.cpk.map(|c| c.1))?;
+    stmt.raw_bind_parameter(35, e.cpk.map(|c| c.2))?;
+    stmt.raw_bind_parameter(36, e.note.as_deref())
 }
 
 /// One sample's row of `sample_values` as text: its values, unit serials and sampling times
