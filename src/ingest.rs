@@ -510,20 +510,19 @@ fn summarise(name: &str, hash: &str, parsed: LotFile) -> Result<NewFile, String>
             )
         })?;
         let earliest = g
-            .sampled_at
+            .sampled_at()
             .iter()
             .filter_map(|t| t.get())
             .min()
             .map(|t| t.to_rfc3339());
-        let digest = sample_digest(&g.values, &g.units, &parsed.serials);
+        let digest = sample_digest(&g.values, g.units(), &parsed.serials);
         samples.push(NewSample {
             source: g.source,
             lot: g.lot,
             characteristic: g.characteristic,
             values: g.values,
-            units: g.units,
+            track: g.track,
             serials: parsed.serials.clone(),
-            sampled_at: g.sampled_at,
             summary,
             digest,
             earliest,

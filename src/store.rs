@@ -126,12 +126,11 @@ pub struct NewSample {
     pub lot: String,
     pub characteristic: String,
     pub values: Vec<f64>,
-    /// Per value, the id of its unit serial in `serials` ([`crate::lotfile::NO_UNIT`]: none).
-    pub units: Vec<u32>,
+    /// Per value, the id of its unit serial in `serials` ([`crate::lotfile::NO_UNIT`]: none)
+    /// and its sampling time (stored as fixed-width RFC 3339 UTC text) or none.
+    pub track: std::sync::Arc<crate::lotfile::Track>,
     /// The serials of the file the sample came from.
     pub serials: std::sync::Arc<crate::lotfile::Serials>,
-    /// Per value, its sampling time (stored as fixed-width RFC 3339 UTC text) or None.
-    pub sampled_at: Vec<crate::lotfile::Stamp>,
     pub summary: Summary,
     /// Order-independent digest of (unit, value) pairs: equal digests mean equal content.
     pub digest: String,

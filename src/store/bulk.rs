@@ -55,7 +55,7 @@ pub(super) fn insert_measurements(
         stmt.raw_bind_parameter(1, id)
             .doing("recording measurements")?;
         for (k, value) in s.values.iter().enumerate() {
-            let time = s.sampled_at[k].get();
+            let time = s.track.sampled_at[k].get();
             if bound_time != Some(time) {
                 stmt.raw_bind_parameter(5, time.map(|t| t.to_rfc3339()))
                     .doing("recording measurements")?;
@@ -63,7 +63,7 @@ pub(super) fn insert_measurements(
             }
             stmt.raw_bind_parameter(2, k as i64)
                 .doing("recording measurements")?;
-            stmt.raw_bind_parameter(3, s.serials.get(s.units[k]))
+            stmt.raw_bind_parameter(3, s.serials.get(s.track.units[k]))
                 .doing("recording measurements")?;
             stmt.raw_bind_parameter(4, value)
                 .doing("recording measurements")?;
