@@ -1311,6 +1311,40 @@ impl<'a, R: Read> Parser<'a, R> {
         Ok(())
     }
 
+    /// Makes the groups of a wide row's (source, lot) current, creating them together on one
+    /// track when the lot is new. Lots of one file usually have one sample size, so a new lot's
+    /// vectors start at the size of the lot before it: a large file then holds its values
+    /// without the slack of doubling (a quarter of their size on average). A lot that grows
+    /// past it grows as usual; one that stays smaller is shrunk when the file is read.
+    fn enter_wide_lot(&mut self, h: &Header, key: (u32, u32), names: (&str, &str), line: u64) {
+        let expect = self
+            .wide_groups
+            .first()
+            .map_or(0, |&g| self.groups[g as usize].values.len());
+        self.wide_groups.clear();
+        let mut track = None;
+        for &(col, cid) in &h.wide {
+            let name = h.names.get(col).map_or("", String::as_str);
+            let g = self.group((key.0, key.1, cid), (names.0, names.1, name), line, track);
+            let t = self.track_of[g as usize];
+            let values = &mut self.groups[g as usize].values;
+            if values.is_empty() {
+                values.reserve_exact(expect);
+                if track.is_none() {
+                    let t = t as usize;
+                    self.tracks[t].units.reserve_exact(expect);
+                    self.tracks[t].sampled_at.reserve_exact(expect);
+                    if h.unit.is_some() {
+                        self.lines[t].reserve_exact(expect);
+                    }
+                }
+            }
+            track = Some(t);
+            self.wide_groups.push(g);
+        }
+        self.wide_key = Some(key);
+    }
+
     fn wide_row(&mut self, h: &Header, record: &Record, line: u64) -> Result<(), LotFileError> {
         let source = self.required(record, line, h, h.source, "source")?;
         let lot = self.required(record, line, h, h.lot, "lot")?;
@@ -1329,16 +1363,7 @@ impl<'a, R: Read> Parser<'a, R> {
 
         let key = (self.names.intern(source), self.names.intern(lot));
         if self.wide_key != Some(key) {
-            // The (source, lot)'s groups are made together, on the first one's track.
-            self.wide_groups.clear();
-            let mut track = None;
-            for &(col, cid) in &h.wide {
-                let name = h.names.get(col).map_or("", String::as_str);
-                let g = self.group((key.0, key.1, cid), (source, lot, name), line, track);
-                track = Some(self.track_of[g as usize]);
-                self.wide_groups.push(g);
-            }
-            self.wide_key = Some(key);
+            self.enter_wide_lot(h, key, (source, lot), line);
         }
         if let Some(&first) = self.wide_groups.first() {
             self.track_value(h, first, unit, sampled_at, line);

@@ -1122,8 +1122,9 @@ impl Store {
         // Samples claimed by earlier files of this batch: (source, lot, characteristic) -> digest.
         let mut claimed: HashMap<(&str, &str, &str), (&str, &str)> = HashMap::new();
         let mut batch_hashes: HashMap<&str, &str> = HashMap::new();
-        // Per file: which samples to write (index) and which replace a stored sample.
-        let mut plans: Vec<Vec<(usize, Option<StoredSample>)>> = vec![Vec::new(); files.len()];
+        // Per file: which samples to write (index) and which replace a stored sample (boxed: a
+        // year's export plans a hundred thousand samples, nearly all new).
+        let mut plans: Vec<Vec<(usize, Option<Box<StoredSample>>)>> = vec![Vec::new(); files.len()];
         for (i, f) in files.iter().enumerate() {
             if let Some(first) = known.get(&f.hash) {
                 outcomes[i] = Some(FileOutcome::Duplicate {
@@ -1138,7 +1139,7 @@ impl Store {
                 continue;
             }
             let mut conflicts = Vec::new();
-            let mut plan = Vec::new();
+            let mut plan = Vec::with_capacity(f.samples.len());
             let mut already = 0usize;
             for (j, s) in f.samples.iter().enumerate() {
                 let key = (s.source.as_str(), s.lot.as_str(), s.characteristic.as_str());
@@ -1162,7 +1163,7 @@ impl Store {
                     .and_then(|lot_id| stored.get(&(*lot_id, series_id)));
                 match existing {
                     Some(st) if st.digest == s.digest => already += 1,
-                    Some(st) if replace.is_some() => plan.push((j, Some(st.clone()))),
+                    Some(st) if replace.is_some() => plan.push((j, Some(Box::new(st.clone())))),
                     Some(st) => conflicts.push(Conflict {
                         source: s.source.clone(),
                         lot: s.lot.clone(),
