@@ -2251,6 +2251,45 @@ mod tests {
         }
 
         #[test]
+        fn wide_round_trip_keeps_each_value_with_its_unit(
+            rows in prop::collection::vec((0u8..2, 0u8..3, -1e6f64..1e6, -1e6f64..1e6), 1..60),
+        ) {
+            // Lots come and go in any order and with any number of rows: each characteristic's
+            // values stay paired with their row's unit on the lot's shared track.
+            let mut text = String::from("source,lot,unit,a,b\n");
+            let mut want: Vec<((String, String, String), Vec<(String, String)>)> = Vec::new();
+            for (i, (src, lot, a, b)) in rows.iter().enumerate() {
+                let (src, lot, unit) = (format!("S{src}"), format!("L{lot}"), format!("U{i}"));
+                text.push_str(&format!("{src},{lot},{unit},{a:?},{b:?}\n"));
+                for (c, v) in [("a", a), ("b", b)] {
+                    let key = (src.clone(), lot.clone(), c.to_owned());
+                    let pair = (unit.clone(), format!("{v:?}"));
+                    match want.iter_mut().find(|(k, _)| *k == key) {
+                        Some((_, list)) => list.push(pair),
+                        None => want.push((key, vec![pair])),
+                    }
+                }
+            }
+            let f = parse("wide.csv", text.as_bytes()).map_err(|e| TestCaseError::fail(e.to_string()))?;
+            let got: Vec<((String, String, String), Vec<(String, String)>)> = f
+                .groups
+                .iter()
+                .map(|g| {
+                    prop_assert_eq!(g.units().len(), g.values.len());
+                    prop_assert_eq!(g.sampled_at().len(), g.values.len());
+                    let pairs = g
+                        .units()
+                        .iter()
+                        .zip(&g.values)
+                        .map(|(&u, v)| (f.serials.get(u).unwrap_or("-").to_owned(), format!("{v:?}")))
+                        .collect();
+                    Ok(((g.source.clone(), g.lot.clone(), g.characteristic.clone()), pairs))
+                })
+                .collect::<Result<_, TestCaseError>>()?;
+            prop_assert_eq!(got, want);
+        }
+
+        #[test]
         fn long_round_trip(
             rows in rows(),
             order in Just(vec![0usize, 1, 2, 3, 4]).prop_shuffle(),
