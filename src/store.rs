@@ -133,9 +133,25 @@ pub struct NewSample {
     pub serials: std::sync::Arc<crate::lotfile::Serials>,
     pub summary: Summary,
     /// Order-independent digest of (unit, value) pairs: equal digests mean equal content.
-    pub digest: String,
+    pub digest: SampleDigest,
     /// Earliest sampling time of the values.
     pub earliest: Option<String>,
+}
+
+/// A sample's content digest (SHA-256), held as bytes and stored as lower-case hex text (a
+/// year's export holds a hundred thousand samples; as text each cost 88 more bytes).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct SampleDigest(pub [u8; 32]);
+
+impl SampleDigest {
+    /// The stored form: 64 lower-case hex digits.
+    pub fn hex(&self) -> String {
+        use std::fmt::Write;
+        self.0.iter().fold(String::with_capacity(64), |mut s, b| {
+            let _ = write!(s, "{b:02x}");
+            s
+        })
+    }
 }
 
 /// What became of one file of a batch.
@@ -1120,7 +1136,7 @@ impl Store {
         // 4. Decide every file before writing anything of it.
         let mut outcomes: Vec<Option<FileOutcome>> = vec![None; files.len()];
         // Samples claimed by earlier files of this batch: (source, lot, characteristic) -> digest.
-        let mut claimed: HashMap<(&str, &str, &str), (&str, &str)> = HashMap::new();
+        let mut claimed: HashMap<(&str, &str, &str), (&SampleDigest, &str)> = HashMap::new();
         let mut batch_hashes: HashMap<&str, &str> = HashMap::new();
         // Per file: which samples to write (index) and which replace a stored sample (boxed: a
         // year's export plans a hundred thousand samples, nearly all new).
@@ -1144,7 +1160,7 @@ impl Store {
             for (j, s) in f.samples.iter().enumerate() {
                 let key = (s.source.as_str(), s.lot.as_str(), s.characteristic.as_str());
                 if let Some((digest, from)) = claimed.get(&key) {
-                    if *digest != s.digest {
+                    if **digest != s.digest {
                         conflicts.push(Conflict {
                             source: s.source.clone(),
                             lot: s.lot.clone(),
@@ -1162,7 +1178,7 @@ impl Store {
                     .get(&(source_id, s.lot.clone()))
                     .and_then(|lot_id| stored.get(&(*lot_id, series_id)));
                 match existing {
-                    Some(st) if st.digest == s.digest => already += 1,
+                    Some(st) if st.digest == s.digest.hex() => already += 1,
                     Some(st) if replace.is_some() => plan.push((j, Some(Box::new(st.clone())))),
                     Some(st) => conflicts.push(Conflict {
                         source: s.source.clone(),
@@ -1177,10 +1193,11 @@ impl Store {
                 outcomes[i] = Some(FileOutcome::Conflict(conflicts));
                 continue;
             }
-            for s in &f.samples {
+            // Only later files of the batch look claims up (a file's own samples are distinct).
+            for s in f.samples.iter().filter(|_| i + 1 < files.len()) {
                 claimed.insert(
                     (s.source.as_str(), s.lot.as_str(), s.characteristic.as_str()),
-                    (s.digest.as_str(), f.name.as_str()),
+                    (&s.digest, f.name.as_str()),
                 );
             }
             batch_hashes.insert(f.hash.as_str(), f.name.as_str());
@@ -1323,7 +1340,7 @@ impl Store {
                     .push_bind(s.min())
                     .push_bind(s.max())
                     .push_bind(p.sample.earliest.as_deref())
-                    .push_bind(&p.sample.digest)
+                    .push_bind(p.sample.digest.hex())
                     .push_bind(views::sd(s.n() as i64, s.m2()));
             });
             q.push(" RETURNING id, lot_id, series_id");
@@ -1434,7 +1451,7 @@ impl Store {
         .bind(s.min())
         .bind(s.max())
         .bind(new.earliest.as_deref())
-        .bind(&new.digest)
+        .bind(new.digest.hex())
         .bind(views::sd(s.n() as i64, s.m2()))
         .bind(old.id)
         .execute(&mut **tx)
