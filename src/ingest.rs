@@ -25,7 +25,7 @@ use crate::config::{Input, Paths, Profile};
 use crate::intake;
 use crate::lotfile::{Layout, LotFile, Serials};
 use crate::stats::Summary;
-use crate::store::{FileOutcome, NewFile, NewSample, Replacement, Store, StoreError};
+use crate::store::{FileOutcome, NewFile, NewSample, Replacement, SampleDigest, Store, StoreError};
 use crate::time::now_rfc3339;
 
 /// Files per store transaction, and values per transaction, whichever is reached first.
@@ -510,20 +510,19 @@ fn summarise(name: &str, hash: &str, parsed: LotFile) -> Result<NewFile, String>
             )
         })?;
         let earliest = g
-            .sampled_at
+            .sampled_at()
             .iter()
             .filter_map(|t| t.get())
             .min()
             .map(|t| t.to_rfc3339());
-        let digest = sample_digest(&g.values, &g.units, &parsed.serials);
+        let digest = sample_digest(&g.values, g.units(), &parsed.serials);
         samples.push(NewSample {
             source: g.source,
             lot: g.lot,
             characteristic: g.characteristic,
             values: g.values,
-            units: g.units,
+            track: g.track,
             serials: parsed.serials.clone(),
-            sampled_at: g.sampled_at,
             summary,
             digest,
             earliest,
@@ -540,7 +539,7 @@ fn summarise(name: &str, hash: &str, parsed: LotFile) -> Result<NewFile, String>
 
 /// Order-independent digest of a sample's (unit, value) pairs: a re-export that only reorders
 /// rows or changes comments is recognised as the same content.
-fn sample_digest(values: &[f64], units: &[u32], serials: &Serials) -> String {
+fn sample_digest(values: &[f64], units: &[u32], serials: &Serials) -> SampleDigest {
     let mut pairs: Vec<(Option<&str>, u64)> = values
         .iter()
         .zip(units)
@@ -562,7 +561,7 @@ fn sample_digest(values: &[f64], units: &[u32], serials: &Serials) -> String {
         }
         h.update(v.to_le_bytes());
     }
-    hex(&h.finalize())
+    SampleDigest(h.finalize().into())
 }
 
 fn hex(bytes: &[u8]) -> String {
@@ -787,6 +786,16 @@ mod tests {
             sample_digest(&[1.0, 2.0], &u, &serials),
             sample_digest(&[2.0, 1.0], &u, &serials)
         );
+    }
+
+    #[test]
+    fn sample_digests_are_stored_as_the_hex_text_of_earlier_versions() {
+        // Databases written before the digest was held as bytes compare against this text.
+        // SHA-256 of no input (FIPS 180-4; the value is from memory, and `content_hash` checks it).
+        let empty = SampleDigest(Sha256::digest(b"").into());
+        let want = "e3b0c44298fc1c149afbf4c8996fb92427ae41e4649b934ca495991b7852b855";
+        assert_eq!(empty.hex(), want);
+        assert_eq!(content_hash(b""), want);
     }
 
     #[test]

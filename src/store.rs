@@ -126,17 +126,32 @@ pub struct NewSample {
     pub lot: String,
     pub characteristic: String,
     pub values: Vec<f64>,
-    /// Per value, the id of its unit serial in `serials` ([`crate::lotfile::NO_UNIT`]: none).
-    pub units: Vec<u32>,
+    /// Per value, the id of its unit serial in `serials` ([`crate::lotfile::NO_UNIT`]: none)
+    /// and its sampling time (stored as fixed-width RFC 3339 UTC text) or none.
+    pub track: std::sync::Arc<crate::lotfile::Track>,
     /// The serials of the file the sample came from.
     pub serials: std::sync::Arc<crate::lotfile::Serials>,
-    /// Per value, its sampling time (stored as fixed-width RFC 3339 UTC text) or None.
-    pub sampled_at: Vec<crate::lotfile::Stamp>,
     pub summary: Summary,
     /// Order-independent digest of (unit, value) pairs: equal digests mean equal content.
-    pub digest: String,
+    pub digest: SampleDigest,
     /// Earliest sampling time of the values.
     pub earliest: Option<String>,
+}
+
+/// A sample's content digest (SHA-256), held as bytes and stored as lower-case hex text (a
+/// year's export holds a hundred thousand samples; as text each cost 88 more bytes).
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct SampleDigest(pub [u8; 32]);
+
+impl SampleDigest {
+    /// The stored form: 64 lower-case hex digits.
+    pub fn hex(&self) -> String {
+        use std::fmt::Write;
+        self.0.iter().fold(String::with_capacity(64), |mut s, b| {
+            let _ = write!(s, "{b:02x}");
+            s
+        })
+    }
 }
 
 /// What became of one file of a batch.
@@ -944,12 +959,13 @@ impl Store {
             .fetch_all(&mut conn)
             .await
             .map_err(err)?;
-        let (lots, measurements): (i64, i64) =
-            sqlx::query_as("SELECT (SELECT COUNT(*) FROM lot), \
-                 (SELECT COUNT(*) FROM sample_values sv JOIN json_each(sv.values_json))")
-                .fetch_one(&mut conn)
-                .await
-                .map_err(err)?;
+        let (lots, measurements): (i64, i64) = sqlx::query_as(
+            "SELECT (SELECT COUNT(*) FROM lot), \
+                 (SELECT COUNT(*) FROM sample_values sv JOIN json_each(sv.values_json))",
+        )
+        .fetch_one(&mut conn)
+        .await
+        .map_err(err)?;
         let _ = sqlx::Connection::close(conn).await;
         Ok(CopyCheck {
             integrity: findings.join("\n"),
@@ -1122,10 +1138,11 @@ impl Store {
         // 4. Decide every file before writing anything of it.
         let mut outcomes: Vec<Option<FileOutcome>> = vec![None; files.len()];
         // Samples claimed by earlier files of this batch: (source, lot, characteristic) -> digest.
-        let mut claimed: HashMap<(&str, &str, &str), (&str, &str)> = HashMap::new();
+        let mut claimed: HashMap<(&str, &str, &str), (&SampleDigest, &str)> = HashMap::new();
         let mut batch_hashes: HashMap<&str, &str> = HashMap::new();
-        // Per file: which samples to write (index) and which replace a stored sample.
-        let mut plans: Vec<Vec<(usize, Option<StoredSample>)>> = vec![Vec::new(); files.len()];
+        // Per file: which samples to write (index) and which replace a stored sample (boxed: a
+        // year's export plans a hundred thousand samples, nearly all new).
+        let mut plans: Vec<Vec<(usize, Option<Box<StoredSample>>)>> = vec![Vec::new(); files.len()];
         for (i, f) in files.iter().enumerate() {
             if let Some(first) = known.get(&f.hash) {
                 outcomes[i] = Some(FileOutcome::Duplicate {
@@ -1140,12 +1157,12 @@ impl Store {
                 continue;
             }
             let mut conflicts = Vec::new();
-            let mut plan = Vec::new();
+            let mut plan = Vec::with_capacity(f.samples.len());
             let mut already = 0usize;
             for (j, s) in f.samples.iter().enumerate() {
                 let key = (s.source.as_str(), s.lot.as_str(), s.characteristic.as_str());
                 if let Some((digest, from)) = claimed.get(&key) {
-                    if *digest != s.digest {
+                    if **digest != s.digest {
                         conflicts.push(Conflict {
                             source: s.source.clone(),
                             lot: s.lot.clone(),
@@ -1163,8 +1180,8 @@ impl Store {
                     .get(&(source_id, s.lot.clone()))
                     .and_then(|lot_id| stored.get(&(*lot_id, series_id)));
                 match existing {
-                    Some(st) if st.digest == s.digest => already += 1,
-                    Some(st) if replace.is_some() => plan.push((j, Some(st.clone()))),
+                    Some(st) if st.digest == s.digest.hex() => already += 1,
+                    Some(st) if replace.is_some() => plan.push((j, Some(Box::new(st.clone())))),
                     Some(st) => conflicts.push(Conflict {
                         source: s.source.clone(),
                         lot: s.lot.clone(),
@@ -1178,10 +1195,11 @@ impl Store {
                 outcomes[i] = Some(FileOutcome::Conflict(conflicts));
                 continue;
             }
-            for s in &f.samples {
+            // Only later files of the batch look claims up (a file's own samples are distinct).
+            for s in f.samples.iter().filter(|_| i + 1 < files.len()) {
                 claimed.insert(
                     (s.source.as_str(), s.lot.as_str(), s.characteristic.as_str()),
-                    (s.digest.as_str(), f.name.as_str()),
+                    (&s.digest, f.name.as_str()),
                 );
             }
             batch_hashes.insert(f.hash.as_str(), f.name.as_str());
@@ -1324,7 +1342,7 @@ impl Store {
                     .push_bind(s.min())
                     .push_bind(s.max())
                     .push_bind(p.sample.earliest.as_deref())
-                    .push_bind(&p.sample.digest)
+                    .push_bind(p.sample.digest.hex())
                     .push_bind(views::sd(s.n() as i64, s.m2()));
             });
             q.push(" RETURNING id, lot_id, series_id");
@@ -1438,7 +1456,7 @@ impl Store {
         .bind(s.min())
         .bind(s.max())
         .bind(new.earliest.as_deref())
-        .bind(&new.digest)
+        .bind(new.digest.hex())
         .bind(views::sd(s.n() as i64, s.m2()))
         .bind(old.id)
         .execute(&mut **tx)
@@ -3387,14 +3405,13 @@ mod tests {
         let t: String = sqlx::query_scalar(tally).fetch_one(&pool).await.unwrap();
         assert_eq!(t, "1 3 7 2 0");
         // Every unit value came across, in (sample, seq) order.
-        let values: Vec<f64> =
-            sqlx::query_scalar(
-                "SELECT v.value FROM sample_values sv JOIN json_each(sv.values_json) v \
+        let values: Vec<f64> = sqlx::query_scalar(
+            "SELECT v.value FROM sample_values sv JOIN json_each(sv.values_json) v \
                  ORDER BY sv.sample_id, v.key",
-            )
-                .fetch_all(&pool)
-                .await
-                .unwrap();
+        )
+        .fetch_all(&pool)
+        .await
+        .unwrap();
         assert_eq!(values, [1.5, 2.5, 3.5, 4.5, 5.5, 6.5, 7.5]);
 
         // The triggers keep both as rows come and go.
@@ -3458,6 +3475,8 @@ mod tests {
 
     /// A database with one row per unit value (before migration 0009) keeps every value bit
     /// for bit, its serial and its time, in the view and in the store's readers.
+    // More digits than a double holds, on purpose: the value a person typed.
+    #[allow(clippy::excessive_precision)]
     #[tokio::test]
     async fn the_packed_values_migration_moves_every_value() {
         let dir = tempfile::tempdir().unwrap();
@@ -3500,7 +3519,8 @@ mod tests {
         }
         pool.close().await;
         let store = Store::open(&dir.path().join("old.db")).await.unwrap();
-        let view: Vec<(i64, i64, Option<String>, Option<String>, f64)> = sqlx::query_as(
+        type Row = (i64, i64, Option<String>, Option<String>, f64);
+        let view: Vec<Row> = sqlx::query_as(
             "SELECT sample_id, seq, unit, sampled_at, value FROM measurement_view \
              ORDER BY sample_id, seq",
         )
@@ -3508,13 +3528,18 @@ mod tests {
         .await
         .unwrap();
         let bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
-        let in_order = [awkward[1], awkward[2], awkward[0], awkward[3], awkward[5], awkward[4]];
+        let in_order = [
+            awkward[1], awkward[2], awkward[0], awkward[3], awkward[5], awkward[4],
+        ];
         let values: Vec<f64> = view.iter().map(|r| r.4).collect();
         assert_eq!(bits(&values), bits(&in_order));
         let units: Vec<Option<&str>> = view.iter().map(|r| r.2.as_deref()).collect();
         assert_eq!(units, [Some("u0"), None, Some("u\"2"), None, None, None]);
         let times: Vec<Option<&str>> = view.iter().map(|r| r.3.as_deref()).collect();
-        assert_eq!(times, [Some("T1"), Some("T2"), Some("T1"), Some("T1"), None, None]);
+        assert_eq!(
+            times,
+            [Some("T1"), Some("T2"), Some("T1"), Some("T1"), None, None]
+        );
         let seqs: Vec<(i64, i64)> = view.iter().map(|r| (r.0, r.1)).collect();
         assert_eq!(seqs, [(1, 0), (1, 1), (1, 2), (1, 3), (2, 0), (2, 1)]);
         // Sample 2 had neither serials nor times of its own: NULL columns, not arrays of nulls.
@@ -3530,7 +3555,13 @@ mod tests {
         assert_eq!(bits(&read[&2]), bits(&in_order[4..]));
         let status = store.status().await.unwrap();
         assert_eq!(status.measurements, 6);
-        assert_eq!(Store::check_copy(&dir.path().join("old.db")).await.unwrap().measurements, 6);
+        assert_eq!(
+            Store::check_copy(&dir.path().join("old.db"))
+                .await
+                .unwrap()
+                .measurements,
+            6
+        );
         store.close().await;
     }
 

@@ -7,7 +7,9 @@ use lotdrift::ingest::build_file;
 use lotdrift::store::{FileOutcome, Replacement, Store};
 use rusqlite::Connection;
 
-/// Doubles whose shortest text is long, tiny, huge or signed zero.
+/// Doubles whose shortest text is long, tiny, huge or signed zero (one literal has more
+/// digits than a double holds, on purpose: the value a person typed).
+#[allow(clippy::excessive_precision)]
 const AWKWARD: [f64; 7] = [
     0.1 + 0.2,
     1e-300,
@@ -21,7 +23,11 @@ const AWKWARD: [f64; 7] = [
 fn long_file(lot: &str, values: &[f64], times: &[&str]) -> String {
     let mut text = String::from("source,characteristic,lot,unit,sampled_at,value\n");
     for (k, v) in values.iter().enumerate() {
-        let unit = if k == 1 { String::new() } else { format!("\"S,{k}\"\"q\"") };
+        let unit = if k == 1 {
+            String::new()
+        } else {
+            format!("\"S,{k}\"\"q\"")
+        };
         let time = times[k % times.len()];
         text.push_str(&format!("acme,mass_g,{lot},{unit},{time},{v:?}\n"));
     }
@@ -29,7 +35,12 @@ fn long_file(lot: &str, values: &[f64], times: &[&str]) -> String {
 }
 
 async fn store_file(store: &Store, name: &str, text: &str, replace: Option<&Replacement<'_>>) {
-    let file = build_file(name, &format!("hash-{name}-{}", text.len()), text.as_bytes()).unwrap();
+    let file = build_file(
+        name,
+        &format!("hash-{name}-{}", text.len()),
+        text.as_bytes(),
+    )
+    .unwrap();
     let outcome = store
         .ingest_batch(&[file], "2026-01-02T00:00:00.000Z", replace)
         .await
@@ -69,7 +80,13 @@ async fn awkward_doubles_come_back_bit_for_bit_through_the_view_and_the_store() 
     let times = ["2026-03-01T08:30:00Z", "2026-03-01T09:00:00Z", ""];
     store_file(&store, "a.csv", &long_file("L1", &AWKWARD, &times), None).await;
     // One time for every unit: the row keeps no times of its own, the view shows the lot's.
-    store_file(&store, "b.csv", &long_file("L2", &[1.5, 2.5], &["2026-03-02"]), None).await;
+    store_file(
+        &store,
+        "b.csv",
+        &long_file("L2", &[1.5, 2.5], &["2026-03-02"]),
+        None,
+    )
+    .await;
 
     let db = Connection::open(&path).unwrap();
     let rows = view_rows(&db, "L1");
@@ -85,7 +102,10 @@ async fn awkward_doubles_come_back_bit_for_bit_through_the_view_and_the_store() 
     assert_eq!(rows[2].2.as_deref(), Some("2026-03-01T08:30:00.000Z"));
     let l2 = view_rows(&db, "L2");
     assert_eq!(l2.len(), 2);
-    assert!(l2.iter().all(|r| r.2.as_deref() == Some("2026-03-02T00:00:00.000Z")));
+    assert!(
+        l2.iter()
+            .all(|r| r.2.as_deref() == Some("2026-03-02T00:00:00.000Z"))
+    );
     let (times_json, count): (Option<String>, i64) = db
         .query_row(
             "SELECT sv.sampled_at_json, (SELECT COUNT(*) FROM measurement_view) \
@@ -123,15 +143,19 @@ async fn a_replacement_keeps_the_old_values_serials_and_times() {
         by: "tester",
     };
     let new = [10.25, 11.5];
-    store_file(&store, "a2.csv", &long_file("L1", &new, &["2026-03-05"]), Some(&replace)).await;
+    store_file(
+        &store,
+        "a2.csv",
+        &long_file("L1", &new, &["2026-03-05"]),
+        Some(&replace),
+    )
+    .await;
 
     let db = Connection::open(&path).unwrap();
     let now: Vec<f64> = view_rows(&db, "L1").iter().map(|r| r.3).collect();
     assert_eq!(now, new);
     let mut stmt = db
-        .prepare(
-            "SELECT seq, unit, value, sampled_at FROM replaced_measurement ORDER BY seq",
-        )
+        .prepare("SELECT seq, unit, value, sampled_at FROM replaced_measurement ORDER BY seq")
         .unwrap();
     let kept: Vec<(i64, Option<String>, f64, Option<String>)> = stmt
         .query_map([], |r| Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?)))

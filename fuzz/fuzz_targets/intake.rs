@@ -43,6 +43,8 @@ fuzz_target!(|data: &[u8]| {
             for g in &file.groups {
                 assert!(g.values.iter().all(|v| v.is_finite()));
                 assert!(!g.values.is_empty());
+                assert_eq!(g.units().len(), g.values.len());
+                assert_eq!(g.sampled_at().len(), g.values.len());
             }
         }
     }

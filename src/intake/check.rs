@@ -123,14 +123,19 @@ fn summarise(out: &mut FileCheck, f: &LotFile) {
             out.characteristics.push(g.characteristic.clone());
         }
         let times: Vec<String> = g
-            .sampled_at
+            .sampled_at()
             .iter()
             .filter_map(|t| t.get())
             .map(|t| t.to_rfc3339())
             .collect();
         let lot = lot_entry(&mut out.lots, g);
         lot.characteristics.push(g.characteristic.clone());
-        let mut units: Vec<u32> = g.units.iter().copied().filter(|&u| u != NO_UNIT).collect();
+        let mut units: Vec<u32> = g
+            .units()
+            .iter()
+            .copied()
+            .filter(|&u| u != NO_UNIT)
+            .collect();
         units.sort();
         units.dedup();
         lot.units = lot.units.max(units.len());
@@ -147,9 +152,9 @@ fn summarise(out: &mut FileCheck, f: &LotFile) {
                 source: g.source.clone(),
                 lot: g.lot.clone(),
                 characteristic: g.characteristic.clone(),
-                unit: f.serials.get(g.units[i]).map(str::to_owned),
+                unit: f.serials.get(g.units()[i]).map(str::to_owned),
                 value: g.values[i],
-                sampled_at: g.sampled_at[i].get().map(|t| t.to_rfc3339()),
+                sampled_at: g.sampled_at()[i].get().map(|t| t.to_rfc3339()),
             });
         }
     }

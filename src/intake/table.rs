@@ -3,13 +3,14 @@
 //! date-times in its zone, and the same grouping and checks as the built-in parser.
 
 use std::collections::HashMap;
+use std::sync::Arc;
 
 use chrono::NaiveDateTime;
 
 use super::{Kind, Place, Problem};
 use crate::config::Profile;
 use crate::lotfile::{
-    self, ErrorKind, Group, Layout, LotFile, NO_UNIT, NumberError, Serials, Timestamp, found,
+    self, ErrorKind, Group, Layout, LotFile, NO_UNIT, NumberError, Serials, Timestamp, Track, found,
 };
 
 /// One cell as the file gave it.
@@ -147,12 +148,15 @@ pub(crate) fn to_lot_file(
     if !problems.is_empty() {
         return Err(problems);
     }
+    for (g, t) in b.groups.iter_mut().zip(b.tracks) {
+        g.track = Arc::new(t);
+    }
     Ok(LotFile {
         layout: cols.layout,
         groups: b.groups,
         rows: b.rows,
         values: b.values,
-        serials: std::sync::Arc::new(b.serials),
+        serials: Arc::new(b.serials),
     })
 }
 
@@ -511,7 +515,11 @@ use time::timestamp;
 
 #[derive(Default)]
 struct Builder {
+    /// The groups, each with an empty track until the file is read.
     groups: Vec<Group>,
+    /// Per group, the unit and time of each value (a group of its own: a profile's wide row
+    /// may leave cells empty, so a lot's characteristics need not share rows).
+    tracks: Vec<Track>,
     /// source → lot → characteristic → group (looked up without allocating).
     ids: HashMap<String, HashMap<String, HashMap<String, usize>>>,
     /// Per group: unit → row of its first measurement.
@@ -548,12 +556,8 @@ impl Builder {
                 self.check_repeat(ctx, cols, g, parsed.unit.as_deref(), row.number)
                     .map_err(|p| vec![p])?;
             }
-            let group = &mut self.groups[g];
-            group.values.push(value);
-            group.units.push(unit);
-            group
-                .sampled_at
-                .push(lotfile::Stamp::from(parsed.sampled_at));
+            self.groups[g].values.push(value);
+            self.tracks[g].push(unit, lotfile::Stamp::from(parsed.sampled_at));
             self.values += 1;
         }
         Ok(())
@@ -581,10 +585,10 @@ impl Builder {
             lot: lot.to_owned(),
             characteristic,
             values: Vec::new(),
-            units: Vec::new(),
-            sampled_at: Vec::new(),
+            track: Arc::default(),
             first_line: line,
         });
+        self.tracks.push(Track::default());
         self.seen.push(HashMap::new());
         g
     }

@@ -135,7 +135,7 @@ fn local_times_in_the_zone_and_clock_changes_are_errors() {
         b"source,lot,sampled_at,x\nS,L,2026-01-15 10:00,1\nS,L,2026-07-15T10:00:30,2\nS,L,2026-07-15,3\n",
     );
     let t: Vec<String> = f.groups[0]
-        .sampled_at
+        .sampled_at()
         .iter()
         .map(|t| t.get().unwrap().to_rfc3339())
         .collect();
@@ -165,11 +165,11 @@ fn date_format_with_and_without_time() {
     };
     let f = ok(&p, b"source,lot,sampled_at,x\nS,L,01.02.2026 07:05,1\n");
     assert_eq!(
-        f.groups[0].sampled_at[0].get().unwrap().to_rfc3339(),
+        f.groups[0].sampled_at()[0].get().unwrap().to_rfc3339(),
         "2026-02-01T06:05:00.000Z"
     );
     p.date_format = Some("%d/%m/%Y".to_owned());
-    let t = ok(&p, b"source,lot,sampled_at,x\nS,L,01/02/2026,1\n").groups[0].sampled_at[0]
+    let t = ok(&p, b"source,lot,sampled_at,x\nS,L,01/02/2026,1\n").groups[0].sampled_at()[0]
         .get()
         .unwrap();
     assert!(t.date_only);

@@ -14,7 +14,7 @@ use rusqlite::Connection;
 use rusqlite::ffi::sqlite3;
 
 use super::{Decision, NewEvaluation, NewSample, Result, StoreError};
-use crate::lotfile::Stamp;
+use crate::lotfile::{Serials, Stamp};
 
 const INSERT_VALUES: &str = "INSERT INTO sample_values (sample_id, values_json, units_json, \
      sampled_at_json) VALUES (?1, ?2, ?3, ?4)";
@@ -163,14 +163,16 @@ pub(super) struct Packed {
 impl Packed {
     /// Writes the arrays of `s` over the previous sample's.
     pub fn fill(&mut self, s: &NewSample) {
+        let n = s.values.len();
+        let (units, times) = (&s.track.units[..n], &s.track.sampled_at[..n]);
         pack_values(&s.values, &mut self.values);
         self.units.clear();
-        if s.units.iter().any(|u| s.serials.get(*u).is_some()) {
-            pack_units(s, &mut self.units);
+        if units.iter().any(|u| s.serials.get(*u).is_some()) {
+            pack_units(units, &s.serials, &mut self.units);
         }
         self.times.clear();
-        if s.sampled_at.iter().any(|t| *t != s.sampled_at[0]) {
-            pack_times(&s.sampled_at, &mut self.times);
+        if times.iter().any(|t| *t != times[0]) {
+            pack_times(times, &mut self.times);
         }
     }
 
@@ -201,13 +203,13 @@ fn pack_values(values: &[f64], out: &mut String) {
     out.push(']');
 }
 
-fn pack_units(s: &NewSample, out: &mut String) {
+fn pack_units(units: &[u32], serials: &Serials, out: &mut String) {
     out.push('[');
-    for (k, unit) in s.units.iter().enumerate() {
+    for (k, unit) in units.iter().enumerate() {
         if k > 0 {
             out.push(',');
         }
-        match s.serials.get(*unit) {
+        match serials.get(*unit) {
             Some(serial) => push_json_string(serial, out),
             None => out.push_str("null"),
         }
@@ -281,15 +283,11 @@ pub(super) fn unit_values(
             continue;
         };
         let text = row.get_ref(0).doing("reading unit values")?;
-        let values = text
-            .as_str()
-            .ok()
-            .and_then(unpack_values)
-            .ok_or_else(|| {
-                StoreError::Corrupt(format!(
-                    "the unit values of sample {id} are not a JSON array of numbers"
-                ))
-            })?;
+        let values = text.as_str().ok().and_then(unpack_values).ok_or_else(|| {
+            StoreError::Corrupt(format!(
+                "the unit values of sample {id} are not a JSON array of numbers"
+            ))
+        })?;
         if !values.is_empty() {
             out.insert(*id, (0..).zip(values).collect());
         }
@@ -303,6 +301,8 @@ pub(super) fn unit_values(
 mod tests {
     use super::*;
 
+    // More digits than a double holds, on purpose: the value a person typed.
+    #[allow(clippy::excessive_precision)]
     #[test]
     fn packed_values_read_back_bit_for_bit() {
         let values = [
@@ -323,9 +323,11 @@ mod tests {
         let bits = |v: &[f64]| v.iter().map(|x| x.to_bits()).collect::<Vec<_>>();
         assert_eq!(bits(&back), bits(&values));
         // Always a real for SQLite's JSON: a point or an exponent in every number.
-        assert!(text[1..text.len() - 1]
-            .split(',')
-            .all(|v| v.contains('.') || v.contains('e')));
+        assert!(
+            text[1..text.len() - 1]
+                .split(',')
+                .all(|v| v.contains('.') || v.contains('e'))
+        );
         pack_values(&[], &mut text);
         assert_eq!(unpack_values(&text), Some(vec![]));
         assert_eq!(unpack_values("[1.0,x]"), None);
