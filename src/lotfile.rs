@@ -13,7 +13,9 @@
 //!
 //! Memory: a stream is read through a small window ([`parse_reader`]), never
 //! held whole; values are kept as numbers, unit serials once per file
-//! ([`Serials`]), so a large export costs less than its own size.
+//! ([`Serials`]), and a wide row's unit and time once for all its
+//! characteristics ([`Track`]), so a large export costs less than its own size
+//! (DEVELOPERS.md, "One large file", has the figures).
 //!
 //! # Format decisions beyond the written contract
 //!
