@@ -13,7 +13,9 @@
 //!
 //! Memory: a stream is read through a small window ([`parse_reader`]), never
 //! held whole; values are kept as numbers, unit serials once per file
-//! ([`Serials`]), so a large export costs less than its own size.
+//! ([`Serials`]), and a wide row's unit and time once for all its
+//! characteristics ([`Track`]), so a large export costs less than its own size
+//! (DEVELOPERS.md, "One large file", has the figures).
 //!
 //! # Format decisions beyond the written contract
 //!
@@ -2225,6 +2227,9 @@ mod tests {
         }
     }
 
+    /// (source, lot, characteristic) of a group, as text.
+    type GroupKey = (String, String, String);
+
     proptest! {
         #[test]
         fn never_panics_on_bytes(bytes in prop::collection::vec(any::<u8>(), 0..600)) {
@@ -2257,7 +2262,7 @@ mod tests {
             // Lots come and go in any order and with any number of rows: each characteristic's
             // values stay paired with their row's unit on the lot's shared track.
             let mut text = String::from("source,lot,unit,a,b\n");
-            let mut want: Vec<((String, String, String), Vec<(String, String)>)> = Vec::new();
+            let mut want: Vec<(GroupKey, Vec<(String, String)>)> = Vec::new();
             for (i, (src, lot, a, b)) in rows.iter().enumerate() {
                 let (src, lot, unit) = (format!("S{src}"), format!("L{lot}"), format!("U{i}"));
                 text.push_str(&format!("{src},{lot},{unit},{a:?},{b:?}\n"));
@@ -2271,7 +2276,7 @@ mod tests {
                 }
             }
             let f = parse("wide.csv", text.as_bytes()).map_err(|e| TestCaseError::fail(e.to_string()))?;
-            let got: Vec<((String, String, String), Vec<(String, String)>)> = f
+            let got: Vec<(GroupKey, Vec<(String, String)>)> = f
                 .groups
                 .iter()
                 .map(|g| {
