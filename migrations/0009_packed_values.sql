@@ -37,6 +37,8 @@ DROP VIEW measurement_view;
 DROP TABLE measurement;
 
 -- One row per stored unit value: the same columns, names and rows as migration 0008's view.
+-- Written with json_each and json_extract only (no `->>`), so SQLite tools older than 3.38
+-- with the JSON functions read it too.
 -- `unit` is the measured unit's serial as the lot file gave it (NULL when it gave none; `seq`
 -- is then the only name of the unit); `unit_of_measure` is the characteristic's configured
 -- unit (mAh, g). `sampled_at` is the value's own sampling time, else its lot's. Replaced
@@ -45,8 +47,9 @@ CREATE VIEW measurement_view AS
 SELECT src.name AS source,
        ch.name AS characteristic,
        l.code AS lot,
-       COALESCE(sv.sampled_at_json ->> v.key, sm.sampled_at, l.sampled_at) AS sampled_at,
-       sv.units_json ->> v.key AS unit,
+       COALESCE(json_extract(sv.sampled_at_json, '$[' || v.key || ']'), sm.sampled_at,
+                l.sampled_at) AS sampled_at,
+       json_extract(sv.units_json, '$[' || v.key || ']') AS unit,
        v.value AS value,
        cu.unit AS unit_of_measure,
        v.key AS seq,
