@@ -24,6 +24,7 @@ use tokio_util::sync::CancellationToken;
 use crate::config::{Input, Paths, Profile};
 use crate::intake;
 use crate::lotfile::{Layout, LotFile, Serials};
+use crate::numbers::hex;
 use crate::stats::Summary;
 use crate::store::{FileOutcome, NewFile, NewSample, Replacement, SampleDigest, Store, StoreError};
 use crate::time::now_rfc3339;
@@ -562,15 +563,6 @@ fn sample_digest(values: &[f64], units: &[u32], serials: &Serials) -> SampleDige
         h.update(v.to_le_bytes());
     }
     SampleDigest(h.finalize().into())
-}
-
-fn hex(bytes: &[u8]) -> String {
-    use std::fmt::Write;
-    let mut s = String::with_capacity(bytes.len() * 2);
-    for b in bytes {
-        let _ = write!(s, "{b:02x}");
-    }
-    s
 }
 
 /// Hash of a file's bytes, as stored (for the CLI).

@@ -5,6 +5,17 @@
 //! p-values, degrees of freedom, missing values and units of measure through this module, so
 //! the same number reads the same everywhere.
 
+/// Bytes as lower-case hex, two digits each: content digests and tokens.
+pub fn hex(bytes: &[u8]) -> String {
+    use std::fmt::Write;
+    bytes
+        .iter()
+        .fold(String::with_capacity(bytes.len() * 2), |mut s, b| {
+            let _ = write!(s, "{b:02x}");
+            s
+        })
+}
+
 /// What stands for a value that is absent or not finite.
 pub const MISSING: &str = "-";
 

@@ -146,11 +146,7 @@ pub struct SampleDigest(pub [u8; 32]);
 impl SampleDigest {
     /// The stored form: 64 lower-case hex digits.
     pub fn hex(&self) -> String {
-        use std::fmt::Write;
-        self.0.iter().fold(String::with_capacity(64), |mut s, b| {
-            let _ = write!(s, "{b:02x}");
-            s
-        })
+        crate::numbers::hex(&self.0)
     }
 }
 

@@ -64,7 +64,7 @@ type AppState = Arc<Shared>;
 fn random_hex() -> String {
     use rand::Rng as _;
     let bytes: [u8; 16] = rand::rng().random();
-    bytes.iter().map(|b| format!("{b:02x}")).collect()
+    crate::numbers::hex(&bytes)
 }
 
 /// The access token: the first line of `web.token_file`, else a new token written to
