@@ -203,18 +203,10 @@ fn pack_values(values: &[f64], out: &mut String) {
     out.push(']');
 }
 
+/// `["serial",null,...]`, escaped as JSON strings by serde_json.
 fn pack_units(units: &[u32], serials: &Serials, out: &mut String) {
-    out.push('[');
-    for (k, unit) in units.iter().enumerate() {
-        if k > 0 {
-            out.push(',');
-        }
-        match serials.get(*unit) {
-            Some(serial) => push_json_string(serial, out),
-            None => out.push_str("null"),
-        }
-    }
-    out.push(']');
+    let serials: Vec<Option<&str>> = units.iter().map(|u| serials.get(*u)).collect();
+    out.push_str(&serde_json::to_string(&serials).expect("strings and nulls serialise"));
 }
 
 /// Units of a lot often share one sampling time: it is formatted once per run of equal times.
@@ -228,28 +220,17 @@ fn pack_times(times: &[Stamp], out: &mut String) {
         if last.as_ref().is_none_or(|(s, _)| s != stamp) {
             last = Some((*stamp, stamp.get().map(|t| t.to_rfc3339())));
         }
+        // RFC 3339 text (digits, `-:.TZ`) needs no escaping inside a JSON string.
         match last.as_ref().and_then(|(_, text)| text.as_deref()) {
-            Some(text) => push_json_string(text, out),
+            Some(text) => {
+                out.push('"');
+                out.push_str(text);
+                out.push('"');
+            }
             None => out.push_str("null"),
         }
     }
     out.push(']');
-}
-
-/// `text` as a JSON string: quotes, backslashes and control characters escaped.
-fn push_json_string(text: &str, out: &mut String) {
-    out.push('"');
-    for c in text.chars() {
-        match c {
-            '"' => out.push_str("\\\""),
-            '\\' => out.push_str("\\\\"),
-            c if u32::from(c) < 0x20 => {
-                out.push_str(&format!("\\u{:04x}", u32::from(c)));
-            }
-            c => out.push(c),
-        }
-    }
-    out.push('"');
 }
 
 /// The numbers of a `values_json` array, in seq order; None when the text is not an array of
@@ -336,10 +317,12 @@ mod tests {
 
     #[test]
     fn serials_are_escaped_as_json_strings() {
+        let mut serials = Serials::default();
+        let unit = serials.intern("a\"b\\c\u{1}é");
         let mut out = String::new();
-        push_json_string("a\"b\\c\u{1}é", &mut out);
-        assert_eq!(out, r#""a\"b\\c\u0001é""#);
-        let parsed: String = serde_json::from_str(&out).unwrap();
-        assert_eq!(parsed, "a\"b\\c\u{1}é");
+        pack_units(&[unit], &serials, &mut out);
+        assert_eq!(out, r#"["a\"b\\c\u0001é"]"#);
+        let parsed: Vec<String> = serde_json::from_str(&out).unwrap();
+        assert_eq!(parsed, ["a\"b\\c\u{1}é"]);
     }
 }
