@@ -18,7 +18,7 @@ use crate::demo;
 use crate::ingest;
 use crate::report;
 use crate::stats;
-use crate::store::Store;
+use crate::store::{Location, Store};
 
 mod check_file;
 mod conventions;
@@ -425,16 +425,27 @@ fn load(arg: &ConfigArg) -> Result<Config, Failure> {
     Ok(Config::load(&arg.config)?)
 }
 
+/// Opens the history the config names: the PostgreSQL database of `[database]`, else the
+/// SQLite file of `paths.database`.
 async fn open_store(config: &Config) -> Result<Store, Failure> {
-    Store::open(&config.paths.database)
-        .await
-        .map_err(|e| Failure::Runtime(e.into()))
+    let opened = match &config.database {
+        None => Store::connect(Location::Sqlite(&config.paths.database), &config.site).await,
+        Some(pg) => {
+            let password = pg.password().map_err(|e| Failure::Runtime(e.into()))?;
+            let location = Location::Postgres {
+                url: &pg.url,
+                password: password.as_deref(),
+            };
+            Store::connect(location, &config.site).await
+        }
+    };
+    opened.map_err(|e| Failure::Runtime(e.into()))
 }
 
 /// Opens the database for a read command; a database that does not exist yet is an error
 /// rather than silently created in the wrong place.
 async fn open_existing(config: &Config) -> Result<Store, Failure> {
-    if !config.paths.database.exists() {
+    if config.database.is_none() && !config.paths.database.exists() {
         return Err(Failure::Runtime(anyhow::anyhow!(
             "no database at {} (run `lotdrift run` first, or check paths.database in {})",
             config.paths.database.display(),

@@ -12,8 +12,10 @@ use std::time::Duration;
 
 use serde::Deserialize;
 
+mod database;
 mod input;
 mod web;
+pub use database::{PASSWORD_ENV, Postgres, RawDatabase, RawSite, redacted};
 /// The decoder type of [`Encoding::Fixed`] (re-exported so callers need no encoding_rs).
 pub use encoding_rs::Encoding as EncodingRs;
 pub use input::{Delimiter, Encoding, Input, OUR_COLUMNS, Profile, RawInput, RawProfile, Zone};
@@ -60,6 +62,10 @@ pub struct RawConfig {
     pub input: RawInput,
     #[serde(default)]
     pub web: RawWeb,
+    #[serde(default)]
+    pub database: RawDatabase,
+    #[serde(default)]
+    pub site: RawSite,
 }
 
 #[derive(Debug, Default, Deserialize)]
@@ -179,6 +185,10 @@ pub struct Config {
     pub web: Option<Web>,
     /// Unit of measure per characteristic (`characteristic.NAME.unit`), for display only.
     pub units: BTreeMap<String, String>,
+    /// `[database]`: a PostgreSQL history; None keeps the SQLite file of `paths.database`.
+    pub database: Option<Postgres>,
+    /// `site.name`: recorded with every file this daemon stores and decision it makes.
+    pub site: String,
 }
 
 impl Config {
@@ -896,6 +906,8 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
     };
     let input = input::validate_input(&mut p, raw.input);
     let web = web::validate_web(&mut p, base, raw.web);
+    let database = database::validate_database(&mut p, base, raw.database);
+    let site = database::validate_site(&mut p, raw.site);
 
     if !p.0.is_empty() {
         return Err(ConfigError::Invalid {
@@ -914,6 +926,8 @@ fn validate(path: &Path, base: &Path, raw: RawConfig) -> Result<Config, ConfigEr
         input,
         units,
         web,
+        database,
+        site,
     })
 }
 
@@ -1154,6 +1168,15 @@ inbox = "inbox"            # drop lot files here
 archive = "archive"        # stored files move to archive/<yyyy-mm>/
 quarantine = "quarantine"  # refused files, each with <file>.reason.txt beside it
 database = "lotdrift.db"   # SQLite; read it with any SQLite tool while the daemon runs
+
+# One history for several sites: a PostgreSQL database shared by one daemon per site (each
+# with its own inbox). Without a url the history is the SQLite file above.
+# [database]
+# url = "postgres://lotdrift@db.example:5432/lotdrift"
+# password_file = "db-password.txt"   # or LOTDRIFT_DATABASE_PASSWORD, or in the url
+
+# [site]
+# name = "plant-north"   # recorded with each stored file and decision; default: host name
 
 [watch]
 settle_seconds = 2.0   # a written file must keep its size and mtime this long before it is taken

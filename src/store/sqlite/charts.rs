@@ -4,7 +4,7 @@
 use sqlx::Row;
 use sqlx::sqlite::SqliteRow;
 
-use super::{DESIGN_COLUMNS, Design, Doing, Result, Store, design_from_row, summary_from_row};
+use super::{DESIGN_COLUMNS, Db, Design, Doing, Result, design_from_row, summary_from_row};
 use crate::stats::Summary;
 
 /// One series with its state, for an overview.
@@ -115,7 +115,7 @@ fn prefixed(alias: &str) -> String {
         .join(", ")
 }
 
-impl Store {
+impl Db {
     /// Every series (of one source, when given) with its counts and open alerts, by source
     /// and characteristic name.
     pub async fn series_list(&self, source: Option<&str>) -> Result<Vec<SeriesRow>> {

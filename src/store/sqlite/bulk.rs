@@ -23,9 +23,9 @@ const INSERT_EVALUATION: &str = "INSERT INTO evaluation (sample_id, series_id, b
      kind, decided_at, test, model, alternative, delta, statistic, df, df2, p_value, p_adjusted, \
      method, family_size, level, significant, baseline_n, baseline_mean, baseline_sd, lot_n, \
      lot_mean, lot_sd, estimate, ci_low, ci_high, std_error, cusum_upper, cusum_lower, cusum_h, \
-     cusum_signal, cpk, cpk_low, cpk_high, note) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, \
-     ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, ?27, \
-     ?28, ?29, ?30, ?31, ?32, ?33, ?34, ?35, ?36)";
+     cusum_signal, cpk, cpk_low, cpk_high, note, site) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, \
+     ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, \
+     ?27, ?28, ?29, ?30, ?31, ?32, ?33, ?34, ?35, ?36, ?37)";
 
 const SELECT_VALUES: &str = "SELECT values_json FROM sample_values WHERE sample_id = ?1";
 
@@ -78,17 +78,22 @@ pub(super) fn insert_measurements(
 
 /// Inserts the evaluation of every decision, one prepared statement stepped per row (an engine
 /// pass of a backfill writes hundreds of thousands), and returns each row's id by (sample
-/// id, kind). `baseline_ids` holds the current baseline of every decided series.
+/// id, kind). `baseline_ids` holds the current baseline of every decided series; `site` is
+/// the deciding daemon's.
 pub(super) fn insert_evaluations(
     handle: NonNull<sqlite3>,
     decisions: &[Decision],
     baseline_ids: &HashMap<i64, i64>,
     at: &str,
+    site: &str,
 ) -> Result<HashMap<(i64, &'static str), i64>> {
     let conn = borrow(handle)?;
     let mut stmt = conn
         .prepare(INSERT_EVALUATION)
         .doing("preparing the insert of decisions")?;
+    // Bindings outlive each step's reset: the site is bound once.
+    stmt.raw_bind_parameter(37, site)
+        .doing("recording decisions")?;
     let mut ids = HashMap::with_capacity(decisions.len());
     for d in decisions {
         let e = &d.evaluation;

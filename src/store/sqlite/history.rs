@@ -71,7 +71,7 @@ impl<'a> HistoryLot<'a> {
         self.decisions.iter().flatten()
     }
 
-    /// The lot without its decisions, as owned text ([`super::Store::history`]).
+    /// The lot without its decisions, as owned text ([`crate::store::Store::history`]).
     pub fn to_owned_row(&self) -> HistoryRow {
         HistoryRow {
             source: self.source.to_string(),

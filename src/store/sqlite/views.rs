@@ -6,12 +6,7 @@ use std::collections::BTreeMap;
 
 use sqlx::Row;
 
-use super::{Doing, Result, Store};
-
-/// The sample standard deviation from n and m2 (sum of squared deviations); None for one unit.
-pub(super) fn sd(n: i64, m2: f64) -> Option<f64> {
-    (n > 1).then(|| (m2 / (n - 1) as f64).sqrt())
-}
+use super::{Db, Doing, Result, sd};
 
 /// One decision on one lot, as `decision_view` gives it.
 #[derive(Debug, Clone, serde::Serialize)]
@@ -36,7 +31,7 @@ pub struct LotDecision {
     pub alert_id: Option<i64>,
 }
 
-impl Store {
+impl Db {
     /// Fills `sample.sd` for samples stored before migration 0008 (none after the first open;
     /// the partial index `sample_sd_missing` makes the check free).
     pub(super) async fn fill_missing_sd(&self) -> Result<()> {

@@ -1,0 +1,2 @@
+-- placeholder until the schema lands (branch pg-infra)
+SELECT 1;
