@@ -83,8 +83,16 @@ fn chunk_end(work: &[SeriesWork]) -> usize {
     end
 }
 
-/// Loads the undecided lots, decides them, and writes the decisions.
+/// Loads the undecided lots, decides them, and writes the decisions, as the only daemon
+/// deciding meanwhile (several daemons may share a PostgreSQL history).
 pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, EngineError> {
+    let lock = store.lock_engine().await?;
+    let result = evaluate_locked(store, config).await;
+    store.unlock_engine(lock).await?;
+    result
+}
+
+async fn evaluate_locked(store: &Store, config: &Config) -> Result<PassCounts, EngineError> {
     let mut work = store.pending_work().await?;
     let mut total = PassCounts::default();
     while !work.is_empty() {

@@ -14,6 +14,7 @@ use sqlx::Row;
 use sqlx::postgres::PgRow;
 use sqlx::sqlite::SqliteRow;
 
+mod plan;
 mod postgres;
 mod sqlite;
 
@@ -112,6 +113,9 @@ enum Backend {
     Postgres(postgres::Db),
 }
 
+/// Held while one daemon decides lots (see [`Store::lock_engine`]).
+pub struct EngineLock(Option<postgres::EngineLock>);
+
 /// Runs the same call on whichever backend the store has.
 macro_rules! on_backend {
     ($store:ident . $method:ident ( $($arg:expr),* $(,)? )) => {
@@ -200,6 +204,23 @@ impl Store {
         reason: &str,
     ) -> Result<()> {
         on_backend!(self.record_quarantine(hash, file_name, at, reason))
+    }
+
+    /// Makes this daemon the only one deciding lots until [`Store::unlock_engine`] (or until
+    /// the returned lock is dropped). On SQLite, where one daemon writes, it holds nothing.
+    pub async fn lock_engine(&self) -> Result<EngineLock> {
+        Ok(EngineLock(match &self.db {
+            Backend::Sqlite(_) => None,
+            Backend::Postgres(db) => Some(db.lock_engine().await?),
+        }))
+    }
+
+    /// Lets other daemons decide lots again.
+    pub async fn unlock_engine(&self, lock: EngineLock) -> Result<()> {
+        match (&self.db, lock.0) {
+            (Backend::Postgres(db), Some(lock)) => db.unlock_engine(lock).await,
+            _ => Ok(()),
+        }
     }
 
     /// Everything the engine needs for the series that have undecided samples, or no frozen
@@ -1372,6 +1393,7 @@ pub enum DeliveryOutcome {
     Expired { error: String },
 }
 
+/// A sample as stored, as far as a batch needs it to decide a file that brings its lot again.
 #[derive(Debug, Clone)]
 struct StoredSample {
     id: i64,
@@ -1381,6 +1403,20 @@ struct StoredSample {
     mean: f64,
     m2: f64,
     file_id: i64,
+}
+
+/// Reads the columns `s.id, s.lot_id, s.series_id, s.content_digest, f.file_name, s.n,
+/// s.mean, s.m2, s.file_id` of a stored sample `s` and its file `f`.
+fn stored_sample_from_row(r: &impl Cells) -> StoredSample {
+    StoredSample {
+        id: r.cell(0),
+        digest: r.cell(3),
+        file_name: r.cell(4),
+        n: r.cell(5),
+        mean: r.cell(6),
+        m2: r.cell(7),
+        file_id: r.cell(8),
+    }
 }
 
 const ALERT_COLUMNS: &str = "a.id, src.name, ch.name, a.state, a.opened_at, a.resolved_at, \
@@ -1501,14 +1537,6 @@ fn health_from_row(r: &impl Cells) -> HealthRow {
         last_error_at: r.cell(4),
         recovered_at: r.cell(5),
         notice_sent: r.cell(6),
-    }
-}
-
-fn earlier<'a>(a: Option<&'a str>, b: Option<&'a str>) -> Option<&'a str> {
-    match (a, b) {
-        (Some(x), Some(y)) => Some(if y < x { y } else { x }),
-        (x, None) => x,
-        (None, y) => y,
     }
 }
 

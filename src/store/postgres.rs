@@ -16,6 +16,9 @@ use sqlx::postgres::{PgConnectOptions, PgPool, PgPoolOptions};
 
 use super::*;
 
+pub(super) use engine::EngineLock;
+
+mod copy;
 mod engine;
 mod ingest;
 mod outbox;

@@ -17,6 +17,7 @@ use sqlx::sqlite::{
 };
 use sqlx::{ConnectOptions, QueryBuilder, Row, Sqlite, Transaction};
 
+use super::plan::{self, Lookups};
 use super::*;
 
 pub(super) mod bulk;
@@ -200,193 +201,60 @@ impl Db {
         replace: Option<&Replacement<'_>>,
         created: &mut NameCache,
     ) -> Result<Vec<FileOutcome>> {
-        // 1. Duplicates by content hash (stored before, or twice in this batch).
-        let mut known: HashMap<String, String> = HashMap::new();
-        for chunk in files.chunks(ROWS_PER_INSERT) {
-            let mut q = QueryBuilder::<Sqlite>::new(
-                "SELECT content_hash, file_name FROM ingested_file WHERE content_hash IN (",
-            );
-            let mut sep = q.separated(", ");
-            for f in chunk {
-                sep.push_bind(&f.hash);
-            }
-            q.push(")");
-            for row in q
-                .build()
-                .fetch_all(&mut **tx)
-                .await
-                .doing("looking up content hashes")?
-            {
-                known.insert(row.get(0), row.get(1));
-            }
+        let mut look = Lookups {
+            known: known_hashes(tx, files).await?,
+            ..Lookups::default()
+        };
+        for (source, characteristic) in Lookups::series_named(files) {
+            let source_id = self.source_id(tx, source, created).await?;
+            let ch_id = self.characteristic_id(tx, characteristic, created).await?;
+            let series_id = self.series_id(tx, source_id, ch_id, created).await?;
+            look.series_ids.insert((source, characteristic), series_id);
+            look.source_ids.insert(source, source_id);
         }
+        look.lot_ids = stored_lots(tx, look.lots_wanted(files)).await?;
+        look.stored = stored_samples(tx, &look.lot_ids).await?;
 
-        // 2. Ids of sources, characteristics and series (created where new).
-        let mut source_ids: HashMap<&str, i64> = HashMap::new();
-        let mut series_ids: HashMap<(&str, &str), i64> = HashMap::new();
-        for f in files {
-            for s in &f.samples {
-                let key = (s.source.as_str(), s.characteristic.as_str());
-                if let std::collections::hash_map::Entry::Vacant(slot) = series_ids.entry(key) {
-                    let source_id = self.source_id(tx, &s.source, created).await?;
-                    let ch_id = self
-                        .characteristic_id(tx, &s.characteristic, created)
-                        .await?;
-                    slot.insert(self.series_id(tx, source_id, ch_id, created).await?);
-                    source_ids.insert(&s.source, source_id);
-                }
-            }
-        }
+        let batch = plan::decide(files, &look, replace.is_some());
+        let to_store = batch.to_store();
+        let file_ids = self.insert_files(tx, files, &to_store, received_at).await?;
+        let lot_times = batch.lot_times(files, &look);
+        insert_lots(tx, &lot_times, &mut look.lot_ids, received_at).await?;
 
-        // 3. Lots that exist already, and their stored samples.
-        let mut lot_ids: HashMap<(i64, String), i64> = HashMap::new();
-        let mut wanted: Vec<(i64, &str)> = Vec::new();
-        let mut seen: HashSet<(i64, &str)> = HashSet::new();
-        for f in files {
-            for s in &f.samples {
-                let key = (source_ids[s.source.as_str()], s.lot.as_str());
-                if seen.insert(key) {
-                    wanted.push(key);
-                }
-            }
-        }
-        // One query per source and chunk, so the (source_id, code) index serves it.
-        let mut by_source: HashMap<i64, Vec<&str>> = HashMap::new();
-        for (source_id, code) in &wanted {
-            by_source.entry(*source_id).or_default().push(code);
-        }
-        for (source_id, codes) in &by_source {
-            for chunk in codes.chunks(ROWS_PER_INSERT) {
-                let mut q =
-                    QueryBuilder::<Sqlite>::new("SELECT id, code FROM lot WHERE source_id = ");
-                q.push_bind(*source_id).push(" AND code IN (");
-                let mut sep = q.separated(", ");
-                for code in chunk {
-                    sep.push_bind(*code);
-                }
-                q.push(")");
-                for row in q
-                    .build()
-                    .fetch_all(&mut **tx)
-                    .await
-                    .doing("looking up lots")?
-                {
-                    lot_ids.insert((*source_id, row.get(1)), row.get(0));
-                }
-            }
-        }
-        // (lot_id, series_id) -> (sample_id, digest, file name, n, mean, m2, file_id)
-        let mut stored: HashMap<(i64, i64), StoredSample> = HashMap::new();
-        let existing: Vec<i64> = lot_ids.values().copied().collect();
-        for chunk in existing.chunks(ROWS_PER_INSERT) {
-            let mut q = in_list(
-                "SELECT s.id, s.lot_id, s.series_id, s.content_digest, f.file_name, s.n, s.mean, \
-                 s.m2, s.file_id FROM sample s JOIN ingested_file f ON f.id = s.file_id \
-                 WHERE s.lot_id IN",
-                chunk,
-                "",
-            );
-            for row in q
-                .build()
-                .fetch_all(&mut **tx)
-                .await
-                .doing("looking up stored samples")?
-            {
-                stored.insert(
-                    (row.get(1), row.get(2)),
-                    StoredSample {
-                        id: row.get(0),
-                        digest: row.get(3),
-                        file_name: row.get(4),
-                        n: row.get(5),
-                        mean: row.get(6),
-                        m2: row.get(7),
-                        file_id: row.get(8),
-                    },
-                );
-            }
-        }
-
-        // 4. Decide every file before writing anything of it.
-        let mut outcomes: Vec<Option<FileOutcome>> = vec![None; files.len()];
-        // Samples claimed by earlier files of this batch: (source, lot, characteristic) -> digest.
-        let mut claimed: HashMap<(&str, &str, &str), (&SampleDigest, &str)> = HashMap::new();
-        let mut batch_hashes: HashMap<&str, &str> = HashMap::new();
-        // Per file: which samples to write (index) and which replace a stored sample (boxed: a
-        // year's export plans a hundred thousand samples, nearly all new).
-        let mut plans: Vec<Vec<(usize, Option<Box<StoredSample>>)>> = vec![Vec::new(); files.len()];
-        for (i, f) in files.iter().enumerate() {
-            if let Some(first) = known.get(&f.hash) {
-                outcomes[i] = Some(FileOutcome::Duplicate {
-                    first_name: first.clone(),
-                });
-                continue;
-            }
-            if let Some(first) = batch_hashes.get(f.hash.as_str()) {
-                outcomes[i] = Some(FileOutcome::Duplicate {
-                    first_name: (*first).to_string(),
-                });
-                continue;
-            }
-            let mut conflicts = Vec::new();
-            let mut plan = Vec::with_capacity(f.samples.len());
-            let mut already = 0usize;
-            for (j, s) in f.samples.iter().enumerate() {
-                let key = (s.source.as_str(), s.lot.as_str(), s.characteristic.as_str());
-                if let Some((digest, from)) = claimed.get(&key) {
-                    if **digest != s.digest {
-                        conflicts.push(Conflict {
-                            source: s.source.clone(),
-                            lot: s.lot.clone(),
-                            characteristic: s.characteristic.clone(),
-                            stored_from: format!("{from} (same batch)"),
-                        });
-                    } else {
-                        already += 1;
+        // Samples: replacements update in place (decisions keep the numbers they stored).
+        let mut inserts: Vec<PendingSample> = Vec::new();
+        let mut sample_ids: Vec<(i64, &NewSample)> = Vec::new();
+        for i in &to_store {
+            for (j, replaced) in &batch.plans[*i] {
+                let s = &files[*i].samples[*j];
+                match replaced {
+                    Some(old) => {
+                        self.replace_sample(tx, old, s, file_ids[i], received_at, replace)
+                            .await?;
+                        sample_ids.push((old.id, s));
                     }
-                    continue;
-                }
-                let source_id = source_ids[s.source.as_str()];
-                let series_id = series_ids[&(s.source.as_str(), s.characteristic.as_str())];
-                let existing = lot_ids
-                    .get(&(source_id, s.lot.clone()))
-                    .and_then(|lot_id| stored.get(&(*lot_id, series_id)));
-                match existing {
-                    Some(st) if st.digest == s.digest.hex() => already += 1,
-                    Some(st) if replace.is_some() => plan.push((j, Some(Box::new(st.clone())))),
-                    Some(st) => conflicts.push(Conflict {
-                        source: s.source.clone(),
-                        lot: s.lot.clone(),
-                        characteristic: s.characteristic.clone(),
-                        stored_from: st.file_name.clone(),
+                    None => inserts.push(PendingSample {
+                        sample: s,
+                        lot_id: look.lot_of(s).expect("every lot of the batch is stored"),
+                        series_id: look.series_of(s),
+                        file_id: file_ids[i],
                     }),
-                    None => plan.push((j, None)),
                 }
             }
-            if !conflicts.is_empty() {
-                outcomes[i] = Some(FileOutcome::Conflict(conflicts));
-                continue;
-            }
-            // Only later files of the batch look claims up (a file's own samples are distinct).
-            for s in f.samples.iter().filter(|_| i + 1 < files.len()) {
-                claimed.insert(
-                    (s.source.as_str(), s.lot.as_str(), s.characteristic.as_str()),
-                    (&s.digest, f.name.as_str()),
-                );
-            }
-            batch_hashes.insert(f.hash.as_str(), f.name.as_str());
-            outcomes[i] = Some(FileOutcome::Stored {
-                file_id: 0,
-                samples: plan.len(),
-                already_stored: already,
-            });
-            plans[i] = plan;
         }
+        insert_samples(tx, &inserts, &mut sample_ids).await?;
+        self.insert_measurements(tx, &sample_ids).await?;
+        Ok(batch.finish(&file_ids))
+    }
 
-        // 5. Write: files, lots, samples, measurements.
-        let to_store: Vec<usize> = (0..files.len())
-            .filter(|i| matches!(outcomes[*i], Some(FileOutcome::Stored { .. })))
-            .collect();
+    /// Records the files to store; returns each one's id by its index in `files`.
+    async fn insert_files(
+        &self,
+        tx: &mut Transaction<'static, Sqlite>,
+        files: &[NewFile],
+        to_store: &[usize],
+        received_at: &str,
+    ) -> Result<HashMap<usize, i64>> {
         let mut file_ids: HashMap<usize, i64> = HashMap::new();
         for chunk in to_store.chunks(ROWS_PER_INSERT) {
             let mut q = QueryBuilder::<Sqlite>::new(
@@ -415,141 +283,7 @@ impl Db {
                 file_ids.insert(*i, by_hash[&files[*i].hash]);
             }
         }
-
-        // Lots: earliest sampling time per lot across the batch; new lots inserted, existing
-        // lots get an earlier sampled_at if a file brings one.
-        let mut lot_times: HashMap<(i64, &str), Option<&str>> = HashMap::new();
-        for i in &to_store {
-            for (j, _) in &plans[*i] {
-                let s = &files[*i].samples[*j];
-                let key = (source_ids[s.source.as_str()], s.lot.as_str());
-                let entry = lot_times.entry(key).or_insert(None);
-                *entry = earlier(*entry, s.earliest.as_deref());
-            }
-        }
-        let mut new_lots: Vec<((i64, &str), Option<&str>)> = Vec::new();
-        for (key, time) in &lot_times {
-            match lot_ids.get(&(key.0, key.1.to_string())) {
-                Some(id) => {
-                    if let Some(t) = time {
-                        sqlx::query(
-                            "UPDATE lot SET sampled_at = ? WHERE id = ? \
-                             AND (sampled_at IS NULL OR sampled_at > ?)",
-                        )
-                        .bind(*t)
-                        .bind(id)
-                        .bind(*t)
-                        .execute(&mut **tx)
-                        .await
-                        .doing("updating a lot's sampling time")?;
-                    }
-                }
-                None => new_lots.push((*key, *time)),
-            }
-        }
-        new_lots.sort();
-        for chunk in new_lots.chunks(ROWS_PER_INSERT) {
-            let mut q = QueryBuilder::<Sqlite>::new(
-                "INSERT INTO lot (source_id, code, sampled_at, first_seen_at) ",
-            );
-            q.push_values(chunk, |mut b, ((source_id, code), time)| {
-                b.push_bind(*source_id)
-                    .push_bind(*code)
-                    .push_bind(*time)
-                    .push_bind(received_at);
-            });
-            q.push(" RETURNING id, source_id, code");
-            for row in q
-                .build()
-                .fetch_all(&mut **tx)
-                .await
-                .doing("recording lots")?
-            {
-                lot_ids.insert((row.get(1), row.get(2)), row.get(0));
-            }
-        }
-
-        // Samples: replacements update in place (decisions keep the numbers they stored).
-        struct Pending<'a> {
-            sample: &'a NewSample,
-            lot_id: i64,
-            series_id: i64,
-            file_id: i64,
-        }
-        let mut inserts: Vec<Pending> = Vec::new();
-        let mut sample_ids: Vec<(i64, &NewSample)> = Vec::new();
-        for i in &to_store {
-            let file_id = file_ids[i];
-            for (j, replaced) in &plans[*i] {
-                let s = &files[*i].samples[*j];
-                let source_id = source_ids[s.source.as_str()];
-                let series_id = series_ids[&(s.source.as_str(), s.characteristic.as_str())];
-                let lot_id = lot_ids[&(source_id, s.lot.clone())];
-                match replaced {
-                    Some(old) => {
-                        self.replace_sample(tx, old, s, file_id, received_at, replace)
-                            .await?;
-                        sample_ids.push((old.id, s));
-                    }
-                    None => inserts.push(Pending {
-                        sample: s,
-                        lot_id,
-                        series_id,
-                        file_id,
-                    }),
-                }
-            }
-        }
-        for chunk in inserts.chunks(ROWS_PER_INSERT / 2) {
-            let mut q = QueryBuilder::<Sqlite>::new(
-                "INSERT INTO sample (lot_id, series_id, file_id, n, mean, m2, min_value, \
-                 max_value, sampled_at, content_digest, sd) ",
-            );
-            q.push_values(chunk, |mut b, p| {
-                let s = &p.sample.summary;
-                b.push_bind(p.lot_id)
-                    .push_bind(p.series_id)
-                    .push_bind(p.file_id)
-                    .push_bind(s.n() as i64)
-                    .push_bind(s.mean())
-                    .push_bind(s.m2())
-                    .push_bind(s.min())
-                    .push_bind(s.max())
-                    .push_bind(p.sample.earliest.as_deref())
-                    .push_bind(p.sample.digest.hex())
-                    .push_bind(sd(s.n() as i64, s.m2()));
-            });
-            q.push(" RETURNING id, lot_id, series_id");
-            let ids: HashMap<(i64, i64), i64> = q
-                .build()
-                .fetch_all(&mut **tx)
-                .await
-                .doing("recording samples")?
-                .iter()
-                .map(|r| ((r.get(1), r.get(2)), r.get(0)))
-                .collect();
-            for p in chunk {
-                sample_ids.push((ids[&(p.lot_id, p.series_id)], p.sample));
-            }
-        }
-        self.insert_measurements(tx, &sample_ids).await?;
-
-        Ok(outcomes
-            .into_iter()
-            .enumerate()
-            .map(|(i, o)| match o.expect("every file decided") {
-                FileOutcome::Stored {
-                    samples,
-                    already_stored,
-                    ..
-                } => FileOutcome::Stored {
-                    file_id: file_ids[&i],
-                    samples,
-                    already_stored,
-                },
-                other => other,
-            })
-            .collect())
+        Ok(file_ids)
     }
 
     /// Writes the unit values of `samples` inside the open transaction, through the
@@ -2302,6 +2036,190 @@ impl Db {
         out.reverse();
         Ok(out)
     }
+}
+
+/// The content hashes of `files` stored before, with the name each was stored from.
+async fn known_hashes(
+    tx: &mut Transaction<'static, Sqlite>,
+    files: &[NewFile],
+) -> Result<HashMap<String, String>> {
+    let mut known = HashMap::new();
+    for chunk in files.chunks(ROWS_PER_INSERT) {
+        let mut q = QueryBuilder::<Sqlite>::new(
+            "SELECT content_hash, file_name FROM ingested_file WHERE content_hash IN (",
+        );
+        let mut sep = q.separated(", ");
+        for f in chunk {
+            sep.push_bind(&f.hash);
+        }
+        q.push(")");
+        for row in q
+            .build()
+            .fetch_all(&mut **tx)
+            .await
+            .doing("looking up content hashes")?
+        {
+            known.insert(row.get(0), row.get(1));
+        }
+    }
+    Ok(known)
+}
+
+/// Stored lots among `wanted` (lot codes by source id): (source id, code) → lot id. One
+/// query per source and chunk, so the (source_id, code) index serves it.
+async fn stored_lots(
+    tx: &mut Transaction<'static, Sqlite>,
+    wanted: HashMap<i64, Vec<&str>>,
+) -> Result<HashMap<(i64, String), i64>> {
+    let mut lot_ids = HashMap::new();
+    for (source_id, codes) in &wanted {
+        for chunk in codes.chunks(ROWS_PER_INSERT) {
+            let mut q = QueryBuilder::<Sqlite>::new("SELECT id, code FROM lot WHERE source_id = ");
+            q.push_bind(*source_id).push(" AND code IN (");
+            let mut sep = q.separated(", ");
+            for code in chunk {
+                sep.push_bind(*code);
+            }
+            q.push(")");
+            for row in q
+                .build()
+                .fetch_all(&mut **tx)
+                .await
+                .doing("looking up lots")?
+            {
+                lot_ids.insert((*source_id, row.get(1)), row.get(0));
+            }
+        }
+    }
+    Ok(lot_ids)
+}
+
+/// The stored samples of the given lots, by (lot id, series id).
+async fn stored_samples(
+    tx: &mut Transaction<'static, Sqlite>,
+    lot_ids: &HashMap<(i64, String), i64>,
+) -> Result<HashMap<(i64, i64), StoredSample>> {
+    let mut stored = HashMap::new();
+    let existing: Vec<i64> = lot_ids.values().copied().collect();
+    for chunk in existing.chunks(ROWS_PER_INSERT) {
+        let mut q = in_list(
+            "SELECT s.id, s.lot_id, s.series_id, s.content_digest, f.file_name, s.n, s.mean, \
+             s.m2, s.file_id FROM sample s JOIN ingested_file f ON f.id = s.file_id \
+             WHERE s.lot_id IN",
+            chunk,
+            "",
+        );
+        for row in q
+            .build()
+            .fetch_all(&mut **tx)
+            .await
+            .doing("looking up stored samples")?
+        {
+            stored.insert((row.get(1), row.get(2)), stored_sample_from_row(&row));
+        }
+    }
+    Ok(stored)
+}
+
+/// New lots inserted (their ids added to `lot_ids`); stored lots get an earlier sampling
+/// time if the batch brings one.
+async fn insert_lots(
+    tx: &mut Transaction<'static, Sqlite>,
+    lot_times: &HashMap<(i64, &str), Option<&str>>,
+    lot_ids: &mut HashMap<(i64, String), i64>,
+    received_at: &str,
+) -> Result<()> {
+    let mut new_lots: Vec<((i64, &str), Option<&str>)> = Vec::new();
+    for (key, time) in lot_times {
+        match lot_ids.get(&(key.0, key.1.to_string())) {
+            Some(id) => {
+                if let Some(t) = time {
+                    sqlx::query(
+                        "UPDATE lot SET sampled_at = ? WHERE id = ? \
+                         AND (sampled_at IS NULL OR sampled_at > ?)",
+                    )
+                    .bind(*t)
+                    .bind(id)
+                    .bind(*t)
+                    .execute(&mut **tx)
+                    .await
+                    .doing("updating a lot's sampling time")?;
+                }
+            }
+            None => new_lots.push((*key, *time)),
+        }
+    }
+    new_lots.sort();
+    for chunk in new_lots.chunks(ROWS_PER_INSERT) {
+        let mut q = QueryBuilder::<Sqlite>::new(
+            "INSERT INTO lot (source_id, code, sampled_at, first_seen_at) ",
+        );
+        q.push_values(chunk, |mut b, ((source_id, code), time)| {
+            b.push_bind(*source_id)
+                .push_bind(*code)
+                .push_bind(*time)
+                .push_bind(received_at);
+        });
+        q.push(" RETURNING id, source_id, code");
+        for row in q
+            .build()
+            .fetch_all(&mut **tx)
+            .await
+            .doing("recording lots")?
+        {
+            lot_ids.insert((row.get(1), row.get(2)), row.get(0));
+        }
+    }
+    Ok(())
+}
+
+/// A new sample with the ids it is stored under.
+struct PendingSample<'a> {
+    sample: &'a NewSample,
+    lot_id: i64,
+    series_id: i64,
+    file_id: i64,
+}
+
+/// Inserts new samples; appends (id, sample) of each to `sample_ids`.
+async fn insert_samples<'a>(
+    tx: &mut Transaction<'static, Sqlite>,
+    inserts: &[PendingSample<'a>],
+    sample_ids: &mut Vec<(i64, &'a NewSample)>,
+) -> Result<()> {
+    for chunk in inserts.chunks(ROWS_PER_INSERT / 2) {
+        let mut q = QueryBuilder::<Sqlite>::new(
+            "INSERT INTO sample (lot_id, series_id, file_id, n, mean, m2, min_value, \
+             max_value, sampled_at, content_digest, sd) ",
+        );
+        q.push_values(chunk, |mut b, p| {
+            let s = &p.sample.summary;
+            b.push_bind(p.lot_id)
+                .push_bind(p.series_id)
+                .push_bind(p.file_id)
+                .push_bind(s.n() as i64)
+                .push_bind(s.mean())
+                .push_bind(s.m2())
+                .push_bind(s.min())
+                .push_bind(s.max())
+                .push_bind(p.sample.earliest.as_deref())
+                .push_bind(p.sample.digest.hex())
+                .push_bind(sd(s.n() as i64, s.m2()));
+        });
+        q.push(" RETURNING id, lot_id, series_id");
+        let ids: HashMap<(i64, i64), i64> = q
+            .build()
+            .fetch_all(&mut **tx)
+            .await
+            .doing("recording samples")?
+            .iter()
+            .map(|r| ((r.get(1), r.get(2)), r.get(0)))
+            .collect();
+        for p in chunk {
+            sample_ids.push((ids[&(p.lot_id, p.series_id)], p.sample));
+        }
+    }
+    Ok(())
 }
 
 #[cfg(test)]
