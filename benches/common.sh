@@ -110,3 +110,40 @@ quiet_silence() {
 machine_note() {
     printf 'machine: %s cores, load average %s\n' "$(nproc)" "$(cut -d' ' -f1-3 /proc/loadavg)"
 }
+
+# --- a private PostgreSQL server (POSTGRES=1) ----------------------------------
+# Starts a throwaway cluster under $1 (initdb + pg_ctl from Debian's postgresql package, as
+# `nobody` when run as root), listening on a free port of 127.0.0.1 with trust authentication.
+# Sets PG_URL_BASE (postgres://postgres@127.0.0.1:PORT) and stops the server on EXIT.
+start_postgres() {
+    local dir="$1" bin port run=()
+    bin="${LOTDRIFT_PG_BIN:-$(ls -d /usr/lib/postgresql/*/bin 2>/dev/null | sort -V | tail -n 1)}"
+    [[ -x "$bin/initdb" ]] || die "no PostgreSQL server binaries (install Debian's postgresql)"
+    mkdir -p "$dir"
+    if [[ "$(id -u)" -eq 0 ]]; then
+        chmod a+x "$(dirname "$dir")" # mktemp -d made it 0700: the server user must pass
+        chown nobody: "$dir"
+        run=(runuser -u nobody --)
+    fi
+    "${run[@]}" "$bin/initdb" -D "$dir/data" -U postgres --auth=trust -E UTF8 --locale=C \
+        >"$dir/initdb.log" 2>&1 || die "initdb failed: see $dir/initdb.log"
+    port=$(python3 -c 'import socket; s = socket.socket(); s.bind(("127.0.0.1", 0)); print(s.getsockname()[1])')
+    # Durable commits, as a production server makes them (fsync on, the default).
+    "${run[@]}" "$bin/pg_ctl" -D "$dir/data" -w -l "$dir/server.log" \
+        -o "-p $port -k $dir -c listen_addresses=127.0.0.1" start >/dev/null \
+        || die "the PostgreSQL server did not start: see $dir/server.log"
+    PG_URL_BASE="postgres://postgres@127.0.0.1:$port"
+    PG_STOP=("${run[@]}" "$bin/pg_ctl" -D "$dir/data" -m fast stop)
+    PG_PSQL=("$bin/psql" -q -h 127.0.0.1 -p "$port" -U postgres)
+    say "PostgreSQL $("$bin/postgres" --version | awk '{print $3}') on 127.0.0.1:$port"
+}
+
+stop_postgres() {
+    [[ -n "${PG_STOP[*]:-}" ]] && "${PG_STOP[@]}" >/dev/null 2>&1 || true
+}
+
+# A fresh database NAME on the private server; prints its URL.
+postgres_database() {
+    "${PG_PSQL[@]}" -d postgres -c "CREATE DATABASE $1" >/dev/null || die "cannot create database $1"
+    printf '%s/%s' "$PG_URL_BASE" "$1"
+}

@@ -16,6 +16,10 @@
 #      (wall time, peak RSS),
 #   5. prints each run, the medians per binary, the ratio to the floor and, with B, B / A.
 #
+# With POSTGRES=1 each round also runs binary A on a PostgreSQL history (label P): a private
+# server started by this script (Debian's postgresql, fsync on), a fresh database per run,
+# `[database] url` in the run's config; the summary adds P / A (PostgreSQL against SQLite).
+#
 # Knobs (environment):
 #   LOTDRIFT_BIN, LOTDRIFT_BIN_B, WORKLOAD_BIN   binaries to measure (benches/common.sh)
 #   SOURCES=200 CHARACTERISTICS=3 LOTS=200 UNITS=32   workload size (default 3.84 M values)
@@ -27,6 +31,7 @@
 #   WORKLOAD_DIR=path      use this existing folder of lot files instead of generating one
 #   SKIP_FLOOR=1           do not run the floor (no ratio is printed)
 #   SKIP_LOTDRIFT=1        only generate and run the floor
+#   POSTGRES=1             also run binary A on PostgreSQL (label P) and print P / A
 #   KEEP=1                 keep the temp dir (workload, run dirs, logs) for inspection
 #   BENCH_TMP=/path        parent of the temp dir (default: $TMPDIR or /tmp)
 #
@@ -81,8 +86,12 @@ cleanup() {
         rm -rf "$work"
     fi
 }
-trap cleanup EXIT
+trap 'stop_postgres; cleanup' EXIT
 say "scratch dir: $work"
+if [[ "${POSTGRES:-0}" == 1 && "$SKIP_LOTDRIFT" != 1 ]]; then
+    start_postgres "$work/pg"
+    LABELS+=(P)
+fi
 
 # --- workload ---------------------------------------------------------------
 if [[ -n "${WORKLOAD_DIR:-}" ]]; then
@@ -139,11 +148,14 @@ fi
 declare -A WALLS RSSS # [label] = "v v v"
 run_lotdrift() { # label round
     local label="$1" i="$2" bin
-    bin="$(bin_of "$label")"
+    if [[ "$label" == P ]]; then bin="$BIN_A"; else bin="$(bin_of "$label")"; fi
     local run_dir="$work/run-$label-$i"
     "$bin" init "$run_dir" >"$work/init-$label-$i.log" 2>&1 \
         || { cat "$work/init-$label-$i.log" >&2; die "lotdrift init $run_dir failed"; }
     [[ -f "$run_dir/lotdrift.toml" ]] || die "lotdrift init did not write $run_dir/lotdrift.toml"
+    if [[ "$label" == P ]]; then
+        printf '\n[database]\nurl = "%s"\n' "$(postgres_database "bench_$i")" >>"$run_dir/lotdrift.toml"
+    fi
     mkdir -p "$run_dir/inbox"
     # Copy (not hard-link): lotdrift moves files out of the inbox. Then an mtime an hour
     # old: `run --once` takes settled files at once, and would otherwise wait up to the
@@ -210,8 +222,11 @@ for label in "${LABELS[@]}"; do
     if [[ -n "$floor_median" ]]; then
         printf ' ratio_to_floor=%s' "$(ratio "$wall_median" "$floor_median")"
     fi
-    printf '  (%s)\n' "$(bin_of "$label")"
+    if [[ "$label" == P ]]; then printf '  (A on PostgreSQL)\n'; else printf '  (%s)\n' "$(bin_of "$label")"; fi
 done
+if [[ -n "${WALL_MEDIAN[P]:-}" && -n "${WALL_MEDIAN[A]:-}" ]]; then
+    printf 'P / A wall time (PostgreSQL / SQLite): %s\n' "$(ratio "${WALL_MEDIAN[P]}" "${WALL_MEDIAN[A]}")"
+fi
 if [[ -n "${WALL_MEDIAN[B]:-}" && -n "${WALL_MEDIAN[A]:-}" ]]; then
     printf 'B / A wall time: %s\n' "$(ratio "${WALL_MEDIAN[B]}" "${WALL_MEDIAN[A]}")"
 fi
