@@ -301,4 +301,5 @@ impl Scenario {
         out
     }
 }
+pub mod pg;
 pub mod smtp;
