@@ -8,6 +8,7 @@ ALTER TABLE evaluation ADD COLUMN site TEXT;
 
 -- A message being sent is claimed by one daemon until `claimed_until` (RFC 3339 UTC), so that
 -- two daemons on one PostgreSQL history never send it twice, and a daemon that dies while
--- sending leaves it to another once the claim has run out. One SQLite daemon claims too.
+-- sending leaves it to another once the claim has run out. A SQLite history has one daemon,
+-- which does not claim: the columns stay NULL and keep the two schemas alike.
 ALTER TABLE outbox ADD COLUMN claimed_by TEXT;
 ALTER TABLE outbox ADD COLUMN claimed_until TEXT;

@@ -56,6 +56,11 @@ pub const CHART_LOTS: i64 = 40;
 /// Outbox rows read per query while draining.
 const DRAIN_BATCH: i64 = 100;
 
+/// A batch handed out by the store is sent within this time of being read, the rest left to
+/// a later drain: the store's claim on it (several daemons on one history) lasts twice as
+/// long, so no other daemon sends a message this one is still sending.
+const SEND_WITHIN: Duration = Duration::from_secs(crate::store::CLAIM_LEASE.as_secs() / 2);
+
 /// The notifier checks for silent sources when woken (new lots) and at least this often.
 const SILENCE_EVERY: Duration = Duration::from_secs(60);
 
@@ -94,7 +99,8 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
     let mut attempted: HashSet<i64> = HashSet::new();
     loop {
         let due = store.due_outbox(&now_rfc3339(), DRAIN_BATCH).await?;
-        let batch = due.len();
+        let read_at = std::time::Instant::now();
+        let mut batch = due.len();
         let fresh: Vec<OutboxItem> = due.into_iter().filter(|i| attempted.insert(i.id)).collect();
         if fresh.is_empty() {
             break;
@@ -104,6 +110,10 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
         // message is sent.
         let mut logged = Vec::new();
         for item in fresh {
+            if read_at.elapsed() > SEND_WITHIN {
+                batch = 0;
+                break;
+            }
             let outcome = match item.channel.as_str() {
                 "email" => {
                     let mailer = mailer.get_or_insert_with(|| build_mailer(config));
@@ -147,12 +157,17 @@ pub async fn drain_once(store: &Store, config: &Config) -> Result<DrainReport, A
     }
     loop {
         let due = store.due_digests(&now_rfc3339(), DRAIN_BATCH).await?;
-        let batch = due.len();
+        let read_at = std::time::Instant::now();
+        let mut batch = due.len();
         let fresh: Vec<DigestItem> = due.into_iter().filter(|i| attempted.insert(i.id)).collect();
         if fresh.is_empty() {
             break;
         }
         for item in fresh {
+            if read_at.elapsed() > SEND_WITHIN {
+                batch = 0;
+                break;
+            }
             let outcome = deliver(
                 &item.channel,
                 config,
@@ -296,7 +311,8 @@ where
 {
     loop {
         let due = due().await?;
-        let batch = due.len();
+        let read_at = std::time::Instant::now();
+        let mut batch = due.len();
         let fresh: Vec<T> = due
             .into_iter()
             .filter(|i| attempted.insert(i.outbox_id()))
@@ -305,6 +321,10 @@ where
             break;
         }
         for item in fresh {
+            if read_at.elapsed() > SEND_WITHIN {
+                batch = 0;
+                break;
+            }
             let outcome = deliver(
                 item.channel(),
                 config,

@@ -113,6 +113,12 @@ enum Backend {
     Postgres(postgres::Db),
 }
 
+/// How long a message handed out by a `due_*` read stays with the daemon that read it, where
+/// several daemons share the history (PostgreSQL): no other daemon gets it meanwhile. A
+/// drain sends a batch only within the first half of this (see `alert`), so a live daemon
+/// records every outcome before its claim runs out, however slow the mail server.
+pub const CLAIM_LEASE: std::time::Duration = std::time::Duration::from_secs(600);
+
 /// Held while one daemon decides lots (see [`Store::lock_engine`]).
 pub struct EngineLock(Option<postgres::EngineLock>);
 

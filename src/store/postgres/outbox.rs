@@ -20,10 +20,8 @@ use sqlx::{Postgres, Transaction};
 
 use super::*;
 
-/// How long a claimed message stays with the daemon that claimed it. Longer than a send with
-/// its SMTP timeouts (one SMTP exchange is cut off after `alerts.email.timeout_seconds`, 30 s
-/// by default), so a live daemon records the outcome well before its claim runs out.
-const CLAIM_LEASE: TimeDelta = TimeDelta::minutes(10);
+/// How long a claimed message stays with the daemon that claimed it ([`super::CLAIM_LEASE`]).
+const CLAIM_LEASE: TimeDelta = TimeDelta::seconds(super::CLAIM_LEASE.as_secs() as i64);
 
 /// Due pending rows whose claim (if any) has run out: the filter of every claim (`$1` is
 /// now).
