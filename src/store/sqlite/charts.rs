@@ -2,9 +2,8 @@
 //! lots with the numbers of both its decisions (mean, spread), outliers and alert openings.
 
 use sqlx::Row;
-use sqlx::sqlite::SqliteRow;
 
-use super::{DESIGN_COLUMNS, Db, Design, Doing, Result, design_from_row, summary_from_row};
+use super::{Cells, DESIGN_COLUMNS, Db, Design, Doing, Result, design_from_row, summary_from_row};
 use crate::stats::Summary;
 
 /// One series with its state, for an overview.
@@ -66,48 +65,52 @@ pub struct ChartLot {
     pub opened: Vec<(String, i64)>,
 }
 
-const EVAL_COLUMNS: &str = "test, level, family_size, significant, statistic, df, df2, p_value, \
+/// The columns [`eval_from_row`] reads, in its order (both backends).
+pub(in crate::store) const EVAL_COLUMNS: &str = "test, level, family_size, significant, statistic, df, df2, p_value, \
      p_adjusted, lot_mean, lot_n, estimate, cusum_upper, cusum_lower, cusum_h, cusum_signal, \
      cpk, cpk_low, cpk_high";
 
-fn eval_from_row(r: &SqliteRow, o: usize) -> Option<ChartEval> {
-    let test: Option<String> = r.get(o);
+/// A decision's numbers from [`EVAL_COLUMNS`] starting at column `o` (None when the lot has
+/// no decision of that kind: its columns are NULL).
+pub(in crate::store) fn eval_from_row(r: &impl Cells, o: usize) -> Option<ChartEval> {
+    let test: Option<String> = r.cell(o);
     let cusum = match (
-        r.get::<Option<f64>, _>(o + 12),
-        r.get::<Option<f64>, _>(o + 13),
-        r.get::<Option<f64>, _>(o + 14),
+        r.cell::<Option<f64>>(o + 12),
+        r.cell::<Option<f64>>(o + 13),
+        r.cell::<Option<f64>>(o + 14),
     ) {
         (Some(u), Some(l), Some(h)) => Some((u, l, h)),
         _ => None,
     };
     let cpk = match (
-        r.get::<Option<f64>, _>(o + 16),
-        r.get::<Option<f64>, _>(o + 17),
-        r.get::<Option<f64>, _>(o + 18),
+        r.cell::<Option<f64>>(o + 16),
+        r.cell::<Option<f64>>(o + 17),
+        r.cell::<Option<f64>>(o + 18),
     ) {
         (Some(a), Some(b), Some(c)) => Some([a, b, c]),
         _ => None,
     };
     Some(ChartEval {
         test: test?,
-        level: r.get(o + 1),
-        family_size: r.get(o + 2),
-        significant: r.get::<i64, _>(o + 3) != 0,
-        statistic: r.get(o + 4),
-        df: r.get(o + 5),
-        df2: r.get(o + 6),
-        p_value: r.get(o + 7),
-        p_adjusted: r.get(o + 8),
-        lot_mean: r.get(o + 9),
-        lot_n: r.get(o + 10),
-        estimate: r.get(o + 11),
+        level: r.cell(o + 1),
+        family_size: r.cell(o + 2),
+        significant: r.cell::<i64>(o + 3) != 0,
+        statistic: r.cell(o + 4),
+        df: r.cell(o + 5),
+        df2: r.cell(o + 6),
+        p_value: r.cell(o + 7),
+        p_adjusted: r.cell(o + 8),
+        lot_mean: r.cell(o + 9),
+        lot_n: r.cell(o + 10),
+        estimate: r.cell(o + 11),
         cusum,
-        cusum_signal: r.get::<i64, _>(o + 15) != 0,
+        cusum_signal: r.cell::<i64>(o + 15) != 0,
         cpk,
     })
 }
 
-fn prefixed(alias: &str) -> String {
+/// [`EVAL_COLUMNS`] of the table aliased `alias`.
+pub(in crate::store) fn prefixed(alias: &str) -> String {
     EVAL_COLUMNS
         .split(", ")
         .map(|c| format!("{alias}.{}", c.trim()))
