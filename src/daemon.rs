@@ -82,6 +82,7 @@ pub fn ensure_folders(config: &Config) -> Result<(), DaemonError> {
 /// silent sources, drains the outbox once.
 pub async fn run_once(store: &Store, config: &Config) -> Result<OnceReport, DaemonError> {
     ensure_folders(config)?;
+    release_claims(store).await?;
     // Files still changing after the settle interval (and a margin) are left for the next run.
     let files = watch::settled_files(
         &config.paths.inbox,
@@ -162,6 +163,19 @@ async fn notify_stuck(store: &Store, config: &Config) {
     }
 }
 
+/// Frees the messages an earlier daemon of this site claimed and did not finish (it died
+/// while sending), so they go out now rather than when the claims run out.
+async fn release_claims(store: &Store) -> Result<(), DaemonError> {
+    let released = store.release_claims().await?;
+    if released > 0 {
+        tracing::info!(
+            messages = released,
+            "messages an earlier daemon of this site claimed are due again"
+        );
+    }
+    Ok(())
+}
+
 /// Runs until SIGTERM/SIGINT (or `cancel`).
 pub async fn run(
     store: Arc<Store>,
@@ -169,6 +183,7 @@ pub async fn run(
     cancel: CancellationToken,
 ) -> Result<(), DaemonError> {
     ensure_folders(&config)?;
+    release_claims(&store).await?;
     let tracker = TaskTracker::new();
     let (ready_tx, mut ready_rx) = mpsc::channel::<Vec<std::path::PathBuf>>(16);
     let wake = Arc::new(Notify::new());

@@ -277,6 +277,16 @@ impl Store {
         on_backend!(self.write_pass(pass, at))
     }
 
+    /// Frees the messages this site's daemon had claimed before it (re)started: a daemon that
+    /// died while sending leaves them to its successor at once rather than after the claim
+    /// runs out. Called when a daemon starts; a site runs one daemon (names are unique).
+    pub async fn release_claims(&self) -> Result<u64> {
+        match &self.db {
+            Backend::Sqlite(_) => Ok(0),
+            Backend::Postgres(db) => db.release_claims().await,
+        }
+    }
+
     /// Alert messages due at `now`, oldest first.
     pub async fn due_outbox(&self, now: &str, limit: i64) -> Result<Vec<OutboxItem>> {
         on_backend!(self.due_outbox(now, limit))

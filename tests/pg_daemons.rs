@@ -45,16 +45,21 @@ fn lot_files() -> Vec<(String, String)> {
 
 /// Runs `sql` (one row of integers) on the shared database.
 fn counts(url: &str, sql: &str) -> Vec<i64> {
+    try_counts(url, sql).unwrap()
+}
+
+/// [`counts`], or the database's error (before the first daemon made the tables, say).
+fn try_counts(url: &str, sql: &str) -> Result<Vec<i64>, sqlx::Error> {
     let rt = tokio::runtime::Builder::new_current_thread()
         .enable_all()
         .build()
         .unwrap();
     rt.block_on(async {
-        let pool = sqlx::PgPool::connect(url).await.unwrap();
-        let row = sqlx::query(sql).fetch_one(&pool).await.unwrap();
-        let out = (0..row.len()).map(|i| row.get::<i64, _>(i)).collect();
+        let pool = sqlx::PgPool::connect(url).await?;
+        let row = sqlx::query(sql).fetch_one(&pool).await;
         pool.close().await;
-        out
+        let row = row?;
+        Ok((0..row.len()).map(|i| row.get::<i64, _>(i)).collect())
     })
 }
 
@@ -186,7 +191,10 @@ fn three_plants_share_one_history_store_once_decide_once_and_email_once() {
     }
 
     // Each file stored once, by one of the plants; the others archived it as a duplicate.
-    let stored = counts(&url, "SELECT COUNT(*), COUNT(DISTINCT content_hash) FROM ingested_file");
+    let stored = counts(
+        &url,
+        "SELECT COUNT(*), COUNT(DISTINCT content_hash) FROM ingested_file",
+    );
     assert_eq!(stored, [60, 60]);
     let by_site = counts(
         &url,
@@ -198,7 +206,11 @@ fn three_plants_share_one_history_store_once_decide_once_and_email_once() {
         assert!(p.files_in("quarantine").is_empty());
     }
     let archived: usize = plants.iter().map(|p| p.files_in("archive").len()).sum();
-    assert_eq!(archived, 40 + 3 * 20, "every received file archived, stored or duplicate");
+    assert_eq!(
+        archived,
+        40 + 3 * 20,
+        "every received file archived, stored or duplicate"
+    );
 
     // Decided once each, as one daemon decides the same files (SQLite, `run --once`).
     let reference = Site::new("");
@@ -207,7 +219,11 @@ fn three_plants_share_one_history_store_once_decide_once_and_email_once() {
     }
     reference.once();
     let expected = decisions_sqlite(&reference);
-    assert!(expected.iter().any(|d| d.starts_with("birchworks capacity_mah") && d.contains(" 1 ")));
+    assert!(
+        expected
+            .iter()
+            .any(|d| d.starts_with("birchworks capacity_mah") && d.contains(" 1 "))
+    );
     assert_eq!(decisions_pg(&url), expected);
 
     // One email per announced alert event and recipient, whoever sent it.
@@ -215,7 +231,11 @@ fn three_plants_share_one_history_store_once_decide_once_and_email_once() {
     assert!(announced >= 1);
     let ids = message_ids(&smtp);
     assert_eq!(ids.len() as i64, announced, "{ids:?}");
-    assert_eq!(ids.iter().collect::<HashSet<_>>().len(), ids.len(), "{ids:?}");
+    assert_eq!(
+        ids.iter().collect::<HashSet<_>>().len(),
+        ids.len(),
+        "{ids:?}"
+    );
 }
 
 #[test]
@@ -234,21 +254,49 @@ fn a_plant_killed_during_a_backfill_loses_and_doubles_nothing() {
             drop_file(&p.inbox(), name, text);
         }
     }
-    let mut survivor = south.spawn_daemon();
-    // North is killed at several moments of its backfill and started again each time.
-    for after_ms in [150, 400, 900] {
+    // North alone first, killed at three moments: as soon as it has stored its first batch,
+    // as soon as it has made its first decisions, and while it starts up.
+    let count = |sql| try_counts(&url, sql).map_or(0, |c| c[0]);
+    let stored_by_north = || count("SELECT COUNT(*) FROM ingested_file WHERE site = 'north'");
+    let decided = || count("SELECT COUNT(*) FROM evaluation");
+    let moments: [&dyn Fn() -> bool; 3] = [&|| stored_by_north() > 0, &|| decided() > 0, &|| true];
+    for moment in moments {
         let mut victim = north.spawn_daemon();
-        std::thread::sleep(Duration::from_millis(after_ms));
+        assert!(wait_until(LIMIT, moment));
         victim.kill().unwrap();
         victim.wait().unwrap();
     }
+    let (files_then, decided_then) = (stored_by_north(), decided());
+    assert!(files_then > 0 && decided_then > 0);
+    let mut survivor = south.spawn_daemon();
     let mut north_daemon = north.spawn_daemon();
-    assert!(wait_until(LIMIT, || settled(&url, &[&north, &south], 60)));
+    // Up (its first log line written) before it is asked to stop.
+    let log = north.path().join("daemon.log");
+    assert!(wait_until(LIMIT, || std::fs::metadata(&log).is_ok_and(|m| m.len() > 0)));
+    let done = wait_until(LIMIT, || settled(&url, &[&north, &south], 60));
+    if !done {
+        for p in [&north, &south] {
+            let log = std::fs::read_to_string(p.path().join("daemon.log")).unwrap_or_default();
+            let inbox: Vec<_> = std::fs::read_dir(p.inbox()).unwrap().collect();
+            eprintln!("inbox {} files; log:\n{log}", inbox.len());
+        }
+        panic!(
+            "not settled: {:?}",
+            counts(
+                &url,
+                "SELECT (SELECT COUNT(*) FROM sample), (SELECT COUNT(*) FROM pending_sample), \
+                 (SELECT COUNT(*) FROM outbox WHERE state = 'pending')"
+            )
+        );
+    }
     for d in [&north_daemon, &survivor] {
         sigterm(d);
     }
-    assert!(wait_exit(&mut north_daemon, Duration::from_secs(20)).success());
-    assert!(wait_exit(&mut survivor, Duration::from_secs(20)).success());
+    for (p, d) in [(&north, &mut north_daemon), (&south, &mut survivor)] {
+        let status = wait_exit(d, Duration::from_secs(20));
+        let log = std::fs::read_to_string(p.path().join("daemon.log")).unwrap_or_default();
+        assert!(status.success(), "{status:?}: {log}");
+    }
 
     let stored = counts(
         &url,
@@ -257,7 +305,11 @@ fn a_plant_killed_during_a_backfill_loses_and_doubles_nothing() {
          (SELECT COUNT(*) FROM evaluation WHERE kind = 'mean') \
            + (SELECT COUNT(DISTINCT sample_id) FROM baseline_lot)",
     );
-    assert_eq!(stored, [60, 60, 480, 480, 60], "files, samples, values, tally, decided");
+    assert_eq!(
+        stored,
+        [60, 60, 480, 480, 60],
+        "files, samples, values, tally, decided"
+    );
     for p in [&north, &south] {
         assert!(p.files_in("quarantine").is_empty());
         assert_eq!(p.files_in("archive").len(), 60);

@@ -29,6 +29,18 @@ const DUE_UNCLAIMED: &str = "state = 'pending' AND next_attempt_at <= $1 \
      AND (claimed_until IS NULL OR claimed_until < $1)";
 
 impl Db {
+    pub async fn release_claims(&self) -> Result<u64> {
+        let done = sqlx::query(
+            "UPDATE outbox SET claimed_by = NULL, claimed_until = NULL \
+             WHERE claimed_by = $1 AND state = 'pending'",
+        )
+        .bind(&self.site)
+        .execute(&self.pool)
+        .await
+        .doing("releasing this site's claims")?;
+        Ok(done.rows_affected())
+    }
+
     /// Alert event messages due at `now`, oldest first, claimed for this daemon.
     pub async fn due_outbox(&self, now: &str, limit: i64) -> Result<Vec<OutboxItem>> {
         let ids = self.claim("alert_event_id", now, limit).await?;
