@@ -170,6 +170,20 @@ enum Command {
         #[command(flatten)]
         config: ConfigArg,
     },
+    /// Copy the SQLite history (paths.database) into an empty PostgreSQL database, in one
+    /// transaction checked table by table before it commits. Stop the daemon first: what it
+    /// stores after the copy began is not copied.
+    MigrateStore {
+        /// The PostgreSQL database: postgres://USER@HOST:PORT/DATABASE.
+        #[arg(long, value_name = "URL")]
+        to: String,
+        /// A file whose first line is the password, when LOTDRIFT_DATABASE_PASSWORD is not set
+        /// (without either, the URL's).
+        #[arg(long, value_name = "FILE")]
+        password_file: Option<PathBuf>,
+        #[command(flatten)]
+        config: ConfigArg,
+    },
     /// Two-sample test of two files of numbers, or of two stored sources' lot means.
     Compare(CompareArgs),
     /// Adjust p-values for multiplicity.
@@ -678,6 +692,11 @@ async fn dispatch(command: Command) -> Result<(), Failure> {
         }
         Command::Adjust(args) => adjust(args),
         Command::Backup { file, config } => backup(&load(&config)?, &file).await,
+        Command::MigrateStore {
+            to,
+            password_file,
+            config,
+        } => migrate_store(&load(&config)?, to, password_file).await,
         Command::Report {
             out,
             source,
@@ -841,6 +860,56 @@ async fn backup(config: &Config, file: &Path) -> Result<(), Failure> {
         file.display(),
         check.lots,
         check.measurements
+    );
+    Ok(())
+}
+
+/// `lotdrift migrate-store --to URL`: the SQLite history of the config into an empty
+/// PostgreSQL database; one line per table, then what to change in the config.
+async fn migrate_store(
+    config: &Config,
+    url: String,
+    password_file: Option<PathBuf>,
+) -> Result<(), Failure> {
+    if let Some(pg) = &config.database {
+        return Err(usage(format!(
+            "{} already uses the PostgreSQL history {} ([database] url); migrate-store copies \
+             the SQLite file of paths.database: remove [database] to copy it",
+            config.file.display(),
+            crate::config::redacted(&pg.url)
+        )));
+    }
+    if !config.paths.database.is_file() {
+        return Err(Failure::Runtime(anyhow::anyhow!(
+            "no SQLite history at {} (check paths.database in {})",
+            config.paths.database.display(),
+            config.file.display()
+        )));
+    }
+    let target = crate::config::Postgres { url, password_file };
+    let password = target.password().map_err(|e| usage(e.to_string()))?;
+    let report = crate::store::copy_sqlite_to_postgres(
+        &config.paths.database,
+        &target.url,
+        password.as_deref(),
+    )
+    .await
+    .context("migrate-store")?;
+    for t in report.tables.iter().chain([&report.values]) {
+        say!(
+            "{:<22} {:>10} rows  sha256 {}",
+            t.table,
+            t.rows,
+            &t.checksum[..16]
+        );
+    }
+    say!(
+        "copied {} into {}; set [database] url = \"{}\" in {} (with the password in \
+         LOTDRIFT_DATABASE_PASSWORD or database.password_file) to use it",
+        config.paths.database.display(),
+        crate::config::redacted(&target.url),
+        crate::config::redacted(&target.url),
+        config.file.display()
     );
     Ok(())
 }

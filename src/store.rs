@@ -14,10 +14,12 @@ use sqlx::Row;
 use sqlx::postgres::PgRow;
 use sqlx::sqlite::SqliteRow;
 
+mod migrate;
 mod plan;
 mod postgres;
 mod sqlite;
 
+pub use migrate::{CopyReport, TableCopy, copy_sqlite_to_postgres};
 pub use sqlite::charts::{ChartEval, ChartLot, SeriesRow};
 pub use sqlite::history::{HistoryLot, LotTest};
 pub use sqlite::views::LotDecision;
@@ -49,6 +51,9 @@ pub enum StoreError {
     },
     #[error("{0}")]
     Unsupported(&'static str),
+    /// `migrate-store` refused or rolled back its copy (the message says why).
+    #[error("{0}")]
+    Migration(String),
     #[error("stored data is inconsistent: {0}")]
     Corrupt(String),
     #[error("cannot back up the database into {path}")]

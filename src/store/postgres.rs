@@ -18,7 +18,7 @@ use super::*;
 
 pub(super) use engine::EngineLock;
 
-mod copy;
+pub(super) mod copy;
 mod engine;
 mod ingest;
 mod outbox;
@@ -26,7 +26,7 @@ mod reads;
 
 /// The PostgreSQL store.
 pub(super) struct Db {
-    pool: PgPool,
+    pub(super) pool: PgPool,
     /// The `[site] name` recorded with each stored file and decision, and with outbox claims.
     site: String,
 }

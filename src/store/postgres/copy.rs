@@ -68,7 +68,7 @@ fn line(out: &mut String, id: i64, s: &NewSample) {
 }
 
 /// `{v0,v1,...}`, each the shortest text that reads back as the same double.
-fn values(out: &mut String, values: &[f64]) {
+pub(in crate::store) fn values(out: &mut String, values: &[f64]) {
     let mut buffer = ryu::Buffer::new();
     out.push('{');
     for (k, v) in values.iter().enumerate() {
@@ -94,7 +94,10 @@ fn stamps(out: &mut String, times: &[Stamp]) {
 
 /// `{"a",NULL,...}`: every element quoted, so any text (commas, braces, quotes, the word
 /// NULL) survives the array syntax; then escaped for COPY's text format.
-fn element_list<'a>(out: &mut String, items: impl Iterator<Item = Option<&'a str>>) {
+pub(in crate::store) fn element_list<'a>(
+    out: &mut String,
+    items: impl Iterator<Item = Option<&'a str>>,
+) {
     out.push('{');
     for (k, item) in items.enumerate() {
         if k > 0 {

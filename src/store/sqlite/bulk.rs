@@ -240,7 +240,7 @@ fn pack_times(times: &[Stamp], out: &mut String) {
 
 /// The numbers of a `values_json` array, in seq order; None when the text is not an array of
 /// finite numbers. Rust's float parsing is correctly rounded, so the stored bits come back.
-pub(super) fn unpack_values(text: &str) -> Option<Vec<f64>> {
+pub(in crate::store) fn unpack_values(text: &str) -> Option<Vec<f64>> {
     let inner = text.trim().strip_prefix('[')?.strip_suffix(']')?.trim();
     if inner.is_empty() {
         return Some(Vec::new());
