@@ -765,7 +765,7 @@ async fn status(config: &Config, json: bool) -> Result<(), Failure> {
             &health,
         ));
     } else {
-        let db = config.paths.database.display().to_string();
+        let db = config.history_shown();
         say_part!("{}", report::status_text(&counts, &undelivered, &db));
         say_part!("{}", report::series_text(&series));
         say_part!("{}", report::silent_text(&silent));

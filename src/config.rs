@@ -192,6 +192,15 @@ pub struct Config {
 }
 
 impl Config {
+    /// Where the history is, for people and scripts: the PostgreSQL URL (its password shown
+    /// as `***`) or the SQLite file's path.
+    pub fn history_shown(&self) -> String {
+        match &self.database {
+            Some(pg) => redacted(&pg.url),
+            None => self.paths.database.display().to_string(),
+        }
+    }
+
     /// The unit of measure configured for a characteristic, if any.
     pub fn unit(&self, characteristic: &str) -> Option<&str> {
         self.units.get(characteristic).map(String::as_str)

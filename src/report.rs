@@ -565,6 +565,8 @@ pub struct CheckConfigJson {
     #[serde(skip_serializing_if = "Option::is_none")]
     pub database: Option<String>,
     #[serde(skip_serializing_if = "Option::is_none")]
+    pub site: Option<String>,
+    #[serde(skip_serializing_if = "Option::is_none")]
     pub inbox: Option<String>,
     #[serde(skip_serializing_if = "Option::is_none")]
     pub channels: Option<Vec<&'static str>>,
@@ -582,7 +584,8 @@ impl CheckConfigJson {
             ok: true,
             file: c.file.display().to_string(),
             problems: Vec::new(),
-            database: Some(c.paths.database.display().to_string()),
+            database: Some(c.history_shown()),
+            site: Some(c.site.clone()),
             inbox: Some(c.paths.inbox.display().to_string()),
             channels: Some(c.alerts.channels.iter().map(|ch| ch.as_str()).collect()),
             baseline_lots: Some(c.monitor.baseline_lots),
@@ -597,6 +600,7 @@ impl CheckConfigJson {
             file: file.display().to_string(),
             problems,
             database: None,
+            site: None,
             inbox: None,
             channels: None,
             baseline_lots: None,

@@ -527,9 +527,9 @@ impl Db {
 /// The end of a claim made at `now` (RFC 3339 UTC text, as [`crate::time`] writes it), in the
 /// same fixed-width form, so text order is time order.
 fn lease_end(now: &str) -> Result<String> {
-    let at = crate::time::parse_utc(now).ok_or(StoreError::Unsupported(
-        "an outbox claim needs the current time as RFC 3339 UTC text",
-    ))?;
+    let at = crate::time::parse_utc(now).ok_or_else(|| {
+        StoreError::Corrupt(format!("an outbox claim at {now:?}: not RFC 3339 UTC text"))
+    })?;
     Ok(crate::time::format_utc(at + CLAIM_LEASE))
 }
 
