@@ -16,6 +16,7 @@ use sqlx::sqlite::SqliteRow;
 
 mod migrate;
 mod plan;
+mod portable;
 mod postgres;
 mod sqlite;
 
@@ -255,11 +256,6 @@ impl Store {
             .collect())
     }
 
-    /// The samples of a baseline.
-    pub async fn baseline_samples(&self, baseline_id: i64) -> Result<Vec<i64>> {
-        on_backend!(self.baseline_samples(baseline_id))
-    }
-
     /// Within-lot residuals (value − its lot's mean) of the given samples, at most `limit`
     /// of them (taken evenly through the samples when there are more).
     pub async fn residuals(&self, sample_ids: &[i64], limit: usize) -> Result<Vec<f64>> {
@@ -325,11 +321,6 @@ impl Store {
         on_backend!(self.alerts(open_only))
     }
 
-    /// The local date of the newest digest made, if any.
-    pub async fn latest_digest_date(&self) -> Result<Option<String>> {
-        on_backend!(self.latest_digest_date())
-    }
-
     /// Records the digest of `local_date` and queues its messages, in one transaction.
     /// Returns false, writing nothing, when that day's digest exists already.
     pub async fn create_digest(
@@ -372,16 +363,6 @@ impl Store {
     /// Messages about silences due at `now`, oldest first.
     pub async fn due_silence_messages(&self, now: &str, limit: i64) -> Result<Vec<SilenceItem>> {
         on_backend!(self.due_silence_messages(now, limit))
-    }
-
-    /// Sources with an open silence, longest silent first.
-    pub async fn silent_sources(&self) -> Result<Vec<SilentSource>> {
-        on_backend!(self.silent_sources())
-    }
-
-    /// The health of every component, "ingest" first.
-    pub async fn health(&self) -> Result<Vec<HealthRow>> {
-        on_backend!(self.health())
     }
 
     /// Records a failure of `component`: starts a failing streak at `at` unless one runs.
@@ -429,11 +410,6 @@ impl Store {
         on_backend!(self.acknowledge(alert_id, by, at, note))
     }
 
-    /// The series of a source and characteristic, if stored.
-    pub async fn series_named(&self, source: &str, characteristic: &str) -> Result<Option<i64>> {
-        on_backend!(self.series_named(source, characteristic))
-    }
-
     /// Every sample of a series in series order, with whether it was decided (kind mean).
     pub async fn series_samples(&self, series_id: i64) -> Result<Vec<SeriesSample>> {
         on_backend!(self.series_samples(series_id))
@@ -445,14 +421,6 @@ impl Store {
         series_id: i64,
     ) -> Result<Option<(String, String, String, Vec<String>)>> {
         on_backend!(self.baseline_of(series_id))
-    }
-
-    /// The audit trail of a series' baseline changes: (when, who, why, old, new).
-    pub async fn baseline_changes(
-        &self,
-        series_id: i64,
-    ) -> Result<Vec<(String, String, String, Option<String>, String)>> {
-        on_backend!(self.baseline_changes(series_id))
     }
 
     /// Retires the current baseline of a series (decisions made against it stay as they
@@ -468,26 +436,6 @@ impl Store {
         at: &str,
     ) -> Result<()> {
         on_backend!(self.change_baseline(series_id, new, new_definition, by, reason, at))
-    }
-
-    /// The frozen design of every series that has one, by source and characteristic.
-    pub async fn series_designs(&self) -> Result<Vec<(String, String, Design)>> {
-        on_backend!(self.series_designs())
-    }
-
-    /// Messages that could not be delivered (failed permanently or expired).
-    pub async fn undelivered(&self) -> Result<Vec<UndeliveredRow>> {
-        on_backend!(self.undelivered())
-    }
-
-    /// Lots stored per source (for summaries).
-    pub async fn lots_per_source(&self) -> Result<Vec<(String, i64)>> {
-        on_backend!(self.lots_per_source())
-    }
-
-    /// Quarantined files with their reasons, oldest first.
-    pub async fn quarantined(&self) -> Result<Vec<(String, String)>> {
-        on_backend!(self.quarantined())
     }
 
     /// One row per lot of a source (optionally one characteristic), in series order.
@@ -517,11 +465,6 @@ impl Store {
         each: impl FnMut(&HistoryLot<'_>) -> std::result::Result<(), E>,
     ) -> Result<std::result::Result<(), E>> {
         on_backend!(self.history_each(source, characteristic, each))
-    }
-
-    /// True when a source of that name is stored.
-    pub async fn source_exists(&self, name: &str) -> Result<bool> {
-        on_backend!(self.source_exists(name))
     }
 
     /// The last `limit` lots of the series `source` × `characteristic`, oldest first, in

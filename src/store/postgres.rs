@@ -68,6 +68,10 @@ impl Db {
         })
     }
 
+    pub(super) fn pool(&self) -> &PgPool {
+        &self.pool
+    }
+
     pub async fn close(self) {
         self.pool.close().await;
     }

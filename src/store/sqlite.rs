@@ -153,6 +153,10 @@ impl Db {
     }
 
     /// Closes the pool, checkpointing the WAL.
+    pub(super) fn pool(&self) -> &SqlitePool {
+        &self.pool
+    }
+
     pub async fn close(self) {
         self.pool.close().await;
     }
@@ -702,7 +706,7 @@ mod tests {
     #[tokio::test]
     async fn a_streak_is_noticed_once_and_its_end_once() {
         let dir = tempfile::tempdir().unwrap();
-        let store = Db::open(&dir.path().join("h.db"), "test").await.unwrap();
+        let store = Store::open(&dir.path().join("h.db")).await.unwrap();
         let log = [("log".to_string(), "log".to_string())];
         assert!(!store.health_stuck("ingest", "z", "t1", &log).await.unwrap());
         store

@@ -191,14 +191,6 @@ impl Db {
             .collect())
     }
 
-    pub async fn baseline_samples(&self, baseline_id: i64) -> Result<Vec<i64>> {
-        sqlx::query_scalar("SELECT sample_id FROM baseline_lot WHERE baseline_id = $1")
-            .bind(baseline_id)
-            .fetch_all(&self.pool)
-            .await
-            .doing("reading baseline lots")
-    }
-
     pub async fn residuals(&self, sample_ids: &[i64]) -> Result<Vec<f64>> {
         sqlx::query_scalar(
             "SELECT u.v - s.mean FROM sample_values sv JOIN sample s ON s.id = sv.sample_id \
@@ -347,24 +339,6 @@ impl Db {
         Ok(Some((row.get(1), row.get(2), row.get(3), lots)))
     }
 
-    pub async fn baseline_changes(
-        &self,
-        series_id: i64,
-    ) -> Result<Vec<(String, String, String, Option<String>, String)>> {
-        let rows = sqlx::query(
-            "SELECT changed_at, changed_by, reason, old_definition, new_definition \
-             FROM baseline_change WHERE series_id = $1 ORDER BY id",
-        )
-        .bind(series_id)
-        .fetch_all(&self.pool)
-        .await
-        .doing("reading baseline changes")?;
-        Ok(rows
-            .iter()
-            .map(|r| (r.get(0), r.get(1), r.get(2), r.get(3), r.get(4)))
-            .collect())
-    }
-
     pub async fn change_baseline(
         &self,
         series_id: i64,
@@ -413,22 +387,6 @@ impl Db {
             insert_baseline(&mut tx, b, at).await?;
         }
         tx.commit().await.doing("committing a baseline change")
-    }
-
-    pub async fn series_designs(&self) -> Result<Vec<(String, String, Design)>> {
-        let rows = sqlx::query(&format!(
-            "SELECT src.name, ch.name, {DESIGN_COLUMNS} \
-             FROM baseline b JOIN series se ON se.id = b.series_id AND b.retired_at IS NULL \
-             JOIN source src ON src.id = se.source_id \
-             JOIN characteristic ch ON ch.id = se.characteristic_id ORDER BY src.name, ch.name"
-        ))
-        .fetch_all(&self.pool)
-        .await
-        .doing("reading series designs")?;
-        Ok(rows
-            .iter()
-            .map(|r| (r.get(0), r.get(1), design_from_row(r, 2)))
-            .collect())
     }
 }
 

@@ -106,14 +106,6 @@ impl Db {
         tx.commit().await.doing("committing delivery attempts")
     }
 
-    /// The local date of the newest digest made, if any.
-    pub async fn latest_digest_date(&self) -> Result<Option<String>> {
-        sqlx::query_scalar("SELECT MAX(local_date) FROM digest")
-            .fetch_one(&self.pool)
-            .await
-            .doing("reading digests")
-    }
-
     /// Records the digest of `local_date` and queues its messages, in one transaction.
     /// Returns false, writing nothing, when that day's digest exists already (made by this
     /// daemon or another: a second insert of the date waits for the first to commit and then
@@ -342,46 +334,6 @@ impl Db {
                 silence: silence_from_row(r, 8),
             })
             .collect())
-    }
-
-    /// Sources with an open silence, longest silent first (names in SQLite's byte order).
-    pub async fn silent_sources(&self) -> Result<Vec<SilentSource>> {
-        let rows = sqlx::query(
-            "SELECT s.name, si.opened_at, si.last_lot_at, si.threshold_days FROM silence si \
-             JOIN source s ON s.id = si.source_id WHERE si.resolved_at IS NULL \
-             ORDER BY si.last_lot_at COLLATE \"C\", s.name COLLATE \"C\"",
-        )
-        .fetch_all(&self.pool)
-        .await
-        .doing("listing silent sources")?;
-        Ok(rows
-            .iter()
-            .map(|r| SilentSource {
-                source: r.get(0),
-                since: r.get(1),
-                last_lot_at: r.get(2),
-                threshold_days: r.get(3),
-            })
-            .collect())
-    }
-
-    /// The health of every component, "ingest" first.
-    ///
-    /// In this first version the health rows are shared by all daemons of the history: a
-    /// failure of any daemon's ingest or delivery starts or extends the one streak of that
-    /// component, a success of any daemon ends it, and one "stuck" notice (and one
-    /// "recovered") goes out per streak, whichever daemon notices. Per-site health is open
-    /// work.
-    pub async fn health(&self) -> Result<Vec<HealthRow>> {
-        let rows = sqlx::query(
-            "SELECT component, failing_since, failures, last_error, last_error_at, \
-             recovered_at, notice_event_id IS NOT NULL FROM health \
-             ORDER BY component = 'delivery', component",
-        )
-        .fetch_all(&self.pool)
-        .await
-        .doing("reading the health of ingest and delivery")?;
-        Ok(rows.iter().map(health_from_row).collect())
     }
 
     /// Records a failure of `component`: starts a failing streak at `at` unless one runs.

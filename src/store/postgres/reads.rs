@@ -142,70 +142,6 @@ impl Db {
         Ok(done.rows_affected() > 0)
     }
 
-    /// The series of a source and characteristic, if stored.
-    pub async fn series_named(&self, source: &str, characteristic: &str) -> Result<Option<i64>> {
-        sqlx::query_scalar(
-            "SELECT se.id FROM series se JOIN source src ON src.id = se.source_id \
-             JOIN characteristic ch ON ch.id = se.characteristic_id \
-             WHERE src.name = $1 AND ch.name = $2",
-        )
-        .bind(source)
-        .bind(characteristic)
-        .fetch_optional(&self.pool)
-        .await
-        .doing("looking up a series")
-    }
-
-    /// Messages that could not be delivered (failed permanently or expired).
-    pub async fn undelivered(&self) -> Result<Vec<UndeliveredRow>> {
-        let rows = sqlx::query(
-            "SELECT id, channel, recipient, state, attempts, last_error, \
-             CASE WHEN digest_id IS NOT NULL THEN 'digest' \
-             WHEN silence_event_id IS NOT NULL THEN 'silence' \
-             WHEN health_event_id IS NOT NULL THEN 'health' ELSE 'alert' END FROM outbox \
-             WHERE state IN ('failed', 'expired') ORDER BY id",
-        )
-        .fetch_all(&self.pool)
-        .await
-        .doing("listing undelivered messages")?;
-        Ok(rows
-            .iter()
-            .map(|r| UndeliveredRow {
-                id: r.get(0),
-                channel: r.get(1),
-                recipient: r.get(2),
-                state: r.get(3),
-                attempts: r.get(4),
-                last_error: r.get(5),
-                message: r.get(6),
-            })
-            .collect())
-    }
-
-    /// Lots stored per source (for summaries), by source name.
-    pub async fn lots_per_source(&self) -> Result<Vec<(String, i64)>> {
-        let rows = sqlx::query(
-            "SELECT s.name, COUNT(l.id) FROM source s LEFT JOIN lot l ON l.source_id = s.id \
-             GROUP BY s.name ORDER BY s.name",
-        )
-        .fetch_all(&self.pool)
-        .await
-        .doing("counting lots per source")?;
-        Ok(rows.iter().map(|r| (r.get(0), r.get(1))).collect())
-    }
-
-    /// Quarantined files with their reasons, oldest first.
-    pub async fn quarantined(&self) -> Result<Vec<(String, String)>> {
-        let rows = sqlx::query(
-            "SELECT file_name, reason FROM quarantined_file \
-             ORDER BY quarantined_at, id",
-        )
-        .fetch_all(&self.pool)
-        .await
-        .doing("listing quarantined files")?;
-        Ok(rows.iter().map(|r| (r.get(0), r.get(1))).collect())
-    }
-
     /// Hands every lot of a source (optionally one characteristic) to `each` in series order,
     /// as SQLite's `history::each_lot` does: one read snapshot, the lots streamed from the
     /// server and each handed over borrowed from its row. The first error of `each` stops the
@@ -251,15 +187,6 @@ impl Db {
         }
         tx.commit().await.doing(DOING)?;
         Ok(Ok(()))
-    }
-
-    /// True when a source of that name is stored.
-    pub async fn source_exists(&self, name: &str) -> Result<bool> {
-        sqlx::query_scalar("SELECT EXISTS (SELECT 1 FROM source WHERE name = $1)")
-            .bind(name)
-            .fetch_one(&self.pool)
-            .await
-            .doing("looking up a source")
     }
 
     /// The last `limit` lots of the series `source` × `characteristic`, oldest first, in

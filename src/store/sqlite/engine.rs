@@ -136,15 +136,6 @@ impl Db {
         bulk::unit_values(handle.as_raw_handle(), sample_ids)
     }
 
-    /// The samples of a baseline.
-    pub async fn baseline_samples(&self, baseline_id: i64) -> Result<Vec<i64>> {
-        sqlx::query_scalar("SELECT sample_id FROM baseline_lot WHERE baseline_id = ?")
-            .bind(baseline_id)
-            .fetch_all(&self.pool)
-            .await
-            .doing("reading baseline lots")
-    }
-
     /// Within-lot residuals (value − its lot's mean) of the given samples, in sample and
     /// unit order.
     pub async fn residuals(&self, sample_ids: &[i64]) -> Result<Vec<f64>> {
@@ -484,25 +475,6 @@ impl Db {
         Ok(Some((row.get(1), row.get(2), row.get(3), lots)))
     }
 
-    /// The audit trail of a series' baseline changes: (when, who, why, old, new).
-    pub async fn baseline_changes(
-        &self,
-        series_id: i64,
-    ) -> Result<Vec<(String, String, String, Option<String>, String)>> {
-        let rows = sqlx::query(
-            "SELECT changed_at, changed_by, reason, old_definition, new_definition \
-             FROM baseline_change WHERE series_id = ? ORDER BY id",
-        )
-        .bind(series_id)
-        .fetch_all(&self.pool)
-        .await
-        .doing("reading baseline changes")?;
-        Ok(rows
-            .iter()
-            .map(|r| (r.get(0), r.get(1), r.get(2), r.get(3), r.get(4)))
-            .collect())
-    }
-
     /// Retires the current baseline of a series (decisions made against it stay as they
     /// are), records the change, restarts the CUSUM, and freezes `new` if given. Without a new
     /// baseline the next undecided lots of the series form one (first N in order).
@@ -556,23 +528,6 @@ impl Db {
             insert_baseline(&mut tx, b, at).await?;
         }
         tx.commit().await.doing("committing a baseline change")
-    }
-
-    /// The frozen design of every series that has one, by source and characteristic.
-    pub async fn series_designs(&self) -> Result<Vec<(String, String, Design)>> {
-        let rows = sqlx::query(&format!(
-            "SELECT src.name, ch.name, {DESIGN_COLUMNS} \
-             FROM baseline b JOIN series se ON se.id = b.series_id AND b.retired_at IS NULL \
-             JOIN source src ON src.id = se.source_id \
-             JOIN characteristic ch ON ch.id = se.characteristic_id ORDER BY src.name, ch.name"
-        ))
-        .fetch_all(&self.pool)
-        .await
-        .doing("reading series designs")?;
-        Ok(rows
-            .iter()
-            .map(|r| (r.get(0), r.get(1), design_from_row(r, 2)))
-            .collect())
     }
 }
 

@@ -80,14 +80,6 @@ impl Db {
         tx.commit().await.doing("committing delivery attempts")
     }
 
-    /// The local date of the newest digest made, if any.
-    pub async fn latest_digest_date(&self) -> Result<Option<String>> {
-        sqlx::query_scalar("SELECT MAX(local_date) FROM digest")
-            .fetch_one(&self.pool)
-            .await
-            .doing("reading digests")
-    }
-
     /// Records the digest of `local_date` and queues its messages, in one transaction.
     /// Returns false, writing nothing, when that day's digest exists already.
     pub async fn create_digest(
@@ -333,40 +325,6 @@ impl Db {
                 silence: silence_from_row(r, 8),
             })
             .collect())
-    }
-
-    /// Sources with an open silence, longest silent first.
-    pub async fn silent_sources(&self) -> Result<Vec<SilentSource>> {
-        let rows = sqlx::query(
-            "SELECT s.name, si.opened_at, si.last_lot_at, si.threshold_days FROM silence si \
-             JOIN source s ON s.id = si.source_id WHERE si.resolved_at IS NULL \
-             ORDER BY si.last_lot_at, s.name",
-        )
-        .fetch_all(&self.pool)
-        .await
-        .doing("listing silent sources")?;
-        Ok(rows
-            .iter()
-            .map(|r| SilentSource {
-                source: r.get(0),
-                since: r.get(1),
-                last_lot_at: r.get(2),
-                threshold_days: r.get(3),
-            })
-            .collect())
-    }
-
-    /// The health of every component, "ingest" first.
-    pub async fn health(&self) -> Result<Vec<HealthRow>> {
-        let rows = sqlx::query(
-            "SELECT component, failing_since, failures, last_error, last_error_at, \
-             recovered_at, notice_event_id IS NOT NULL FROM health \
-             ORDER BY component = 'delivery', component",
-        )
-        .fetch_all(&self.pool)
-        .await
-        .doing("reading the health of ingest and delivery")?;
-        Ok(rows.iter().map(health_from_row).collect())
     }
 
     /// Records a failure of `component`: starts a failing streak at `at` unless one runs.
