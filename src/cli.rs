@@ -450,7 +450,10 @@ async fn open_store(config: &Config) -> Result<Store, Failure> {
                 url: &pg.url,
                 password: password.as_deref(),
             };
-            Store::connect(location, &config.site).await
+            let key = format!("database.url in {}", config.file.display());
+            return Store::connect(location, &config.site)
+                .await
+                .map_err(|e| Failure::Runtime(anyhow::Error::new(e).context(key)));
         }
     };
     opened.map_err(|e| Failure::Runtime(e.into()))

@@ -47,6 +47,10 @@ impl Db {
         if let Some(password) = password {
             options = options.password(password);
         }
+        // One connection first: the pool would retry until its timeout and report only
+        // that; this reports why (refused, unknown host, password, no such database).
+        let first = options.connect().await.map_err(open_err)?;
+        let _ = sqlx::Connection::close(first).await;
         let pool = PgPoolOptions::new()
             .max_connections(4)
             .acquire_timeout(Duration::from_secs(30))
