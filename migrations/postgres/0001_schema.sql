@@ -389,35 +389,41 @@ CREATE TABLE sample_values (
 );
 
 -- Triggers: the same effects as SQLite's (migration 0007), one function per trigger, named
--- after it.
+-- after it. The ones that fire on lotdrift's own inserts run once per statement over its new
+-- rows (a transition table): a backfill inserts thousands of rows per statement, and one
+-- UPDATE of the `tally` row per inserted row would leave that row thousands of versions
+-- deep inside one transaction. The ones for rows removed or changed by hand run per row.
 
 -- `pending_sample`: samples with neither a mean evaluation nor a place in a baseline.
 CREATE FUNCTION sample_awaits_decision() RETURNS trigger LANGUAGE plpgsql AS $$
 BEGIN
-    INSERT INTO pending_sample (sample_id, series_id) VALUES (NEW.id, NEW.series_id);
+    INSERT INTO pending_sample (sample_id, series_id) SELECT id, series_id FROM added;
     RETURN NULL;
 END;
 $$;
 CREATE TRIGGER sample_awaits_decision AFTER INSERT ON sample
-    FOR EACH ROW EXECUTE FUNCTION sample_awaits_decision();
+    REFERENCING NEW TABLE AS added FOR EACH STATEMENT EXECUTE FUNCTION sample_awaits_decision();
 
 CREATE FUNCTION evaluation_decides_sample() RETURNS trigger LANGUAGE plpgsql AS $$
 BEGIN
-    DELETE FROM pending_sample WHERE sample_id = NEW.sample_id;
+    DELETE FROM pending_sample p USING added a
+    WHERE a.kind = 'mean' AND p.sample_id = a.sample_id;
     RETURN NULL;
 END;
 $$;
 CREATE TRIGGER evaluation_decides_sample AFTER INSERT ON evaluation
-    FOR EACH ROW WHEN (NEW.kind = 'mean') EXECUTE FUNCTION evaluation_decides_sample();
+    REFERENCING NEW TABLE AS added FOR EACH STATEMENT
+    EXECUTE FUNCTION evaluation_decides_sample();
 
 CREATE FUNCTION baseline_lot_decides_sample() RETURNS trigger LANGUAGE plpgsql AS $$
 BEGIN
-    DELETE FROM pending_sample WHERE sample_id = NEW.sample_id;
+    DELETE FROM pending_sample p USING added a WHERE p.sample_id = a.sample_id;
     RETURN NULL;
 END;
 $$;
 CREATE TRIGGER baseline_lot_decides_sample AFTER INSERT ON baseline_lot
-    FOR EACH ROW EXECUTE FUNCTION baseline_lot_decides_sample();
+    REFERENCING NEW TABLE AS added FOR EACH STATEMENT
+    EXECUTE FUNCTION baseline_lot_decides_sample();
 
 -- Rows removed by hand (lotdrift never deletes them): the sample waits again if nothing
 -- else decided it.
@@ -451,30 +457,30 @@ CREATE TRIGGER baseline_lot_removed AFTER DELETE ON baseline_lot
 -- `tally`: running counts for `status`. Measurements are counted through their sample's n.
 CREATE FUNCTION tally_file() RETURNS trigger LANGUAGE plpgsql AS $$
 BEGIN
-    UPDATE tally SET files = files + 1 WHERE id = 1;
+    UPDATE tally SET files = files + (SELECT COUNT(*) FROM added) WHERE id = 1;
     RETURN NULL;
 END;
 $$;
 CREATE TRIGGER tally_file AFTER INSERT ON ingested_file
-    FOR EACH ROW EXECUTE FUNCTION tally_file();
+    REFERENCING NEW TABLE AS added FOR EACH STATEMENT EXECUTE FUNCTION tally_file();
 
 CREATE FUNCTION tally_lot() RETURNS trigger LANGUAGE plpgsql AS $$
 BEGIN
-    UPDATE tally SET lots = lots + 1 WHERE id = 1;
+    UPDATE tally SET lots = lots + (SELECT COUNT(*) FROM added) WHERE id = 1;
     RETURN NULL;
 END;
 $$;
 CREATE TRIGGER tally_lot AFTER INSERT ON lot
-    FOR EACH ROW EXECUTE FUNCTION tally_lot();
+    REFERENCING NEW TABLE AS added FOR EACH STATEMENT EXECUTE FUNCTION tally_lot();
 
 CREATE FUNCTION tally_sample() RETURNS trigger LANGUAGE plpgsql AS $$
 BEGIN
-    UPDATE tally SET measurements = measurements + NEW.n WHERE id = 1;
+    UPDATE tally SET measurements = measurements + (SELECT COALESCE(SUM(n), 0) FROM added) WHERE id = 1;
     RETURN NULL;
 END;
 $$;
 CREATE TRIGGER tally_sample AFTER INSERT ON sample
-    FOR EACH ROW EXECUTE FUNCTION tally_sample();
+    REFERENCING NEW TABLE AS added FOR EACH STATEMENT EXECUTE FUNCTION tally_sample();
 
 CREATE FUNCTION tally_sample_replaced() RETURNS trigger LANGUAGE plpgsql AS $$
 BEGIN
@@ -487,21 +493,21 @@ CREATE TRIGGER tally_sample_replaced AFTER UPDATE OF n ON sample
 
 CREATE FUNCTION tally_evaluation() RETURNS trigger LANGUAGE plpgsql AS $$
 BEGIN
-    UPDATE tally SET evaluations = evaluations + 1 WHERE id = 1;
+    UPDATE tally SET evaluations = evaluations + (SELECT COUNT(*) FROM added) WHERE id = 1;
     RETURN NULL;
 END;
 $$;
 CREATE TRIGGER tally_evaluation AFTER INSERT ON evaluation
-    FOR EACH ROW EXECUTE FUNCTION tally_evaluation();
+    REFERENCING NEW TABLE AS added FOR EACH STATEMENT EXECUTE FUNCTION tally_evaluation();
 
 CREATE FUNCTION tally_outlier() RETURNS trigger LANGUAGE plpgsql AS $$
 BEGIN
-    UPDATE tally SET outliers = outliers + 1 WHERE id = 1;
+    UPDATE tally SET outliers = outliers + (SELECT COUNT(*) FROM added) WHERE id = 1;
     RETURN NULL;
 END;
 $$;
 CREATE TRIGGER tally_outlier AFTER INSERT ON outlier
-    FOR EACH ROW EXECUTE FUNCTION tally_outlier();
+    REFERENCING NEW TABLE AS added FOR EACH STATEMENT EXECUTE FUNCTION tally_outlier();
 
 CREATE FUNCTION tally_outlier_removed() RETURNS trigger LANGUAGE plpgsql AS $$
 BEGIN
