@@ -72,8 +72,3 @@ impl Db {
         self.pool.close().await;
     }
 }
-
-/// The error of a store call not yet built for PostgreSQL.
-fn not_yet<T>(what: &'static str) -> Result<T> {
-    Err(StoreError::Unsupported(what))
-}
