@@ -8,6 +8,13 @@ use std::time::Duration;
 
 use common::*;
 
+both_backends!(
+    picks_up_a_renamed_file_and_exits_cleanly_on_sigterm,
+    a_file_written_slowly_in_chunks_is_not_taken_half_written,
+    a_killed_daemon_loses_nothing_and_doubles_nothing,
+    a_crash_between_commit_and_move_archives_the_file_as_a_duplicate,
+);
+
 const LIMIT: Duration = Duration::from_secs(60);
 
 fn lots(site: &Site) -> i64 {
@@ -20,14 +27,14 @@ fn lots(site: &Site) -> i64 {
         .unwrap_or(-1)
 }
 
-#[test]
-fn picks_up_a_renamed_file_and_exits_cleanly_on_sigterm() {
-    let site = Site::new("[watch]\nsettle_seconds = 30.0\nrescan_seconds = 3600.0\n");
+fn picks_up_a_renamed_file_and_exits_cleanly_on_sigterm(backend: Backend) {
+    let site = Site::on(
+        backend,
+        "[watch]\nsettle_seconds = 30.0\nrescan_seconds = 3600.0\n",
+    );
     let mut daemon = site.spawn_daemon();
-    assert!(wait_until(LIMIT, || site
-        .path()
-        .join("lotdrift.db")
-        .exists()));
+    // Up: the daemon has made the history (the SQLite file, or the PostgreSQL tables).
+    assert!(wait_until(LIMIT, || site.history_exists()));
     // A rename into the inbox is complete by declaration: taken at once, well before the
     // 30 s settle interval that a written file would need.
     let outside = site.path().join("staging.csv");
@@ -54,9 +61,11 @@ fn picks_up_a_renamed_file_and_exits_cleanly_on_sigterm() {
     assert!(status.success(), "exit status {status:?}");
 }
 
-#[test]
-fn a_file_written_slowly_in_chunks_is_not_taken_half_written() {
-    let site = Site::new("[watch]\nsettle_seconds = 3.0\nrescan_seconds = 0.5\n");
+fn a_file_written_slowly_in_chunks_is_not_taken_half_written(backend: Backend) {
+    let site = Site::on(
+        backend,
+        "[watch]\nsettle_seconds = 3.0\nrescan_seconds = 0.5\n",
+    );
     let mut daemon = site.spawn_daemon();
     assert!(wait_until(LIMIT, || lots(&site) == 0));
     let values: Vec<f64> = (0..40).map(|i| 46.0 + i as f64 / 100.0).collect();
@@ -90,8 +99,7 @@ fn a_file_written_slowly_in_chunks_is_not_taken_half_written() {
     assert!(wait_exit(&mut daemon, Duration::from_secs(10)).success());
 }
 
-#[test]
-fn a_killed_daemon_loses_nothing_and_doubles_nothing() {
+fn a_killed_daemon_loses_nothing_and_doubles_nothing(backend: Backend) {
     let scenario = Scenario {
         sources: (0..8).map(|i| format!("src-{i:02}")).collect(),
         chars: vec!["capacity_mah".into(), "mass_g".into(), "ir_mohm".into()],
@@ -104,7 +112,7 @@ fn a_killed_daemon_loses_nothing_and_doubles_nothing() {
     // Kill at different points of the ingest: early, midway, late.
     let mut killed_midway = 0;
     for (round, kill_after) in [1i64, total / 3, (2 * total) / 3].into_iter().enumerate() {
-        let site = Site::new("[watch]\nsettle_seconds = 0.0\n");
+        let site = Site::on(backend, "[watch]\nsettle_seconds = 0.0\n");
         for (name, text, _) in &files {
             drop_file(&site.inbox(), name, text);
         }
@@ -148,9 +156,8 @@ fn a_killed_daemon_loses_nothing_and_doubles_nothing() {
     );
 }
 
-#[test]
-fn a_crash_between_commit_and_move_archives_the_file_as_a_duplicate() {
-    let site = Site::new("[watch]\nsettle_seconds = 0.0\n");
+fn a_crash_between_commit_and_move_archives_the_file_as_a_duplicate(backend: Backend) {
+    let site = Site::on(backend, "[watch]\nsettle_seconds = 0.0\n");
     let text = long_file(
         "alder-cells",
         "AC-3",

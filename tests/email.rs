@@ -7,6 +7,23 @@ use common::smtp::{Received, SmtpServer, TlsFiles, free_port, test_pki};
 use common::*;
 use mail_parser::{MessageParser, MimeHeaders};
 
+both_backends!(
+    an_alert_reaches_every_recipient_once_with_headers_both_parts_and_the_chart,
+    server_down_the_alert_waits_in_the_outbox_and_is_delivered_exactly_once_later,
+    a_message_undeliverable_past_expire_hours_is_marked_expired_not_dropped,
+    a_4xx_reply_is_retried_and_the_retry_delivers,
+    a_5xx_reply_is_recorded_as_failed_with_the_reply_and_not_retried,
+    a_server_that_stops_answering_times_out_and_the_message_waits,
+    starttls_with_a_private_ca_and_auth_delivers_and_the_password_stays_out_of_the_log,
+    a_source_name_with_cr_lf_is_refused_at_ingest_so_it_never_reaches_a_header,
+    test_email_prints_the_server_reply_and_exits_1_when_refused,
+    an_alert_goes_to_the_default_list_plus_its_source_and_characteristic_lists_once_each,
+    opening_a_grown_shift_and_resolution_each_send_exactly_their_email_and_ack_stops_the_repeat,
+    the_daily_digest_lists_each_recipients_open_alerts_once_a_day_at_local_time,
+    with_when_empty_the_digest_is_sent_even_with_nothing_open_and_not_before_its_time,
+    a_backfill_whose_shift_grows_sends_one_message_not_an_opening_and_a_repeat,
+);
+
 const FROM: &str = "lotdrift@plant.example";
 const QUALITY: &str = "quality@plant.example";
 const INCOMING: &str = "incoming@plant.example";
@@ -14,20 +31,23 @@ const INCOMING: &str = "incoming@plant.example";
 /// Site config: the given channels, an [alerts.email] section for 127.0.0.1:`port`, retries
 /// due at once (so a second `--once` retries), and `extra` lines for [alerts.email]
 /// (`tls = "none"` unless `extra` sets `tls`).
-fn email_site(port: u16, channels: &str, to: &[&str], extra: &str) -> Site {
+fn email_site(backend: Backend, port: u16, channels: &str, to: &[&str], extra: &str) -> Site {
     let to: Vec<String> = to.iter().map(|t| format!("\"{t}\"")).collect();
     let tls = if extra.contains("tls =") {
         ""
     } else {
         "tls = \"none\"\n"
     };
-    Site::new(&format!(
-        "[watch]\nsettle_seconds = 0.0\n\
+    Site::on(
+        backend,
+        &format!(
+            "[watch]\nsettle_seconds = 0.0\n\
          [alerts]\nchannels = {channels}\nretry_initial_seconds = 0\n\
          [alerts.email]\nsmtp_host = \"127.0.0.1\"\nsmtp_port = {port}\n{tls}\
          from = \"lotdrift <{FROM}>\"\nto = [{}]\ntimeout_seconds = 5\n{extra}",
-        to.join(", ")
-    ))
+            to.join(", ")
+        ),
+    )
 }
 
 /// One source, one characteristic, 26 lots of 12 units; the mean rises by 3 sd from lot 23
@@ -85,10 +105,10 @@ fn stderr_of(out: &std::process::Output) -> String {
     text(&out.stderr)
 }
 
-#[test]
-fn an_alert_reaches_every_recipient_once_with_headers_both_parts_and_the_chart() {
+fn an_alert_reaches_every_recipient_once_with_headers_both_parts_and_the_chart(backend: Backend) {
     let server = SmtpServer::start();
     let site = email_site(
+        backend,
         server.port,
         "[\"email\", \"log\"]",
         &[QUALITY, INCOMING],
@@ -202,10 +222,9 @@ fn an_alert_reaches_every_recipient_once_with_headers_both_parts_and_the_chart()
     assert_eq!(server.received().len(), 2);
 }
 
-#[test]
-fn server_down_the_alert_waits_in_the_outbox_and_is_delivered_exactly_once_later() {
+fn server_down_the_alert_waits_in_the_outbox_and_is_delivered_exactly_once_later(backend: Backend) {
     let port = free_port();
-    let site = email_site(port, "[\"email\"]", &[QUALITY], "");
+    let site = email_site(backend, port, "[\"email\"]", &[QUALITY], "");
     drifting_series(&site);
     let first = site.once();
     let status = site.status();
@@ -229,12 +248,11 @@ fn server_down_the_alert_waits_in_the_outbox_and_is_delivered_exactly_once_later
     assert_eq!(server.attempts(), 1);
 }
 
-#[test]
-fn a_message_undeliverable_past_expire_hours_is_marked_expired_not_dropped() {
+fn a_message_undeliverable_past_expire_hours_is_marked_expired_not_dropped(backend: Backend) {
     // expire_hours = 0.0003 is about 1.1 s: the binary compares the message's age with the
     // wall clock, so the test waits that long between the two runs.
     let port = free_port();
-    let site = email_site(port, "[\"email\"]", &[QUALITY], "");
+    let site = email_site(backend, port, "[\"email\"]", &[QUALITY], "");
     let cfg = std::fs::read_to_string(site.config()).unwrap();
     std::fs::write(
         site.config(),
@@ -259,11 +277,10 @@ fn a_message_undeliverable_past_expire_hours_is_marked_expired_not_dropped() {
     assert!(error.to_lowercase().contains("connection"), "{error}");
 }
 
-#[test]
-fn a_4xx_reply_is_retried_and_the_retry_delivers() {
+fn a_4xx_reply_is_retried_and_the_retry_delivers(backend: Backend) {
     let server = SmtpServer::start();
     server.reply_next(451, "4.3.0 mailbox busy, try again later");
-    let site = email_site(server.port, "[\"email\"]", &[QUALITY], "");
+    let site = email_site(backend, server.port, "[\"email\"]", &[QUALITY], "");
     drifting_series(&site);
     let first = site.once();
     assert_eq!(server.attempts(), 1);
@@ -285,11 +302,10 @@ fn a_4xx_reply_is_retried_and_the_retry_delivers() {
     assert_eq!(status["outbox_failed"], 0, "{status:#}");
 }
 
-#[test]
-fn a_5xx_reply_is_recorded_as_failed_with_the_reply_and_not_retried() {
+fn a_5xx_reply_is_recorded_as_failed_with_the_reply_and_not_retried(backend: Backend) {
     let server = SmtpServer::start();
     server.reply_next(550, "5.7.1 refused by the test policy");
-    let site = email_site(server.port, "[\"email\"]", &[QUALITY], "");
+    let site = email_site(backend, server.port, "[\"email\"]", &[QUALITY], "");
     drifting_series(&site);
     site.once();
     assert_eq!(server.attempts(), 1);
@@ -312,8 +328,7 @@ fn a_5xx_reply_is_recorded_as_failed_with_the_reply_and_not_retried() {
     assert!(server.received().is_empty());
 }
 
-#[test]
-fn a_server_that_stops_answering_times_out_and_the_message_waits() {
+fn a_server_that_stops_answering_times_out_and_the_message_waits(backend: Backend) {
     // Accepts connections and never says a word (not even the greeting): a hung server.
     let listener = std::net::TcpListener::bind("127.0.0.1:0").unwrap();
     let port = listener.local_addr().unwrap().port();
@@ -323,7 +338,7 @@ fn a_server_that_stops_answering_times_out_and_the_message_waits() {
             held.push(conn);
         }
     });
-    let site = email_site(port, "[\"email\"]", &[QUALITY], "");
+    let site = email_site(backend, port, "[\"email\"]", &[QUALITY], "");
     let cfg = std::fs::read_to_string(site.config()).unwrap();
     std::fs::write(
         site.config(),
@@ -345,8 +360,9 @@ fn a_server_that_stops_answering_times_out_and_the_message_waits() {
     assert_eq!(status["outbox_pending"], 1, "{status:#}");
 }
 
-#[test]
-fn starttls_with_a_private_ca_and_auth_delivers_and_the_password_stays_out_of_the_log() {
+fn starttls_with_a_private_ca_and_auth_delivers_and_the_password_stays_out_of_the_log(
+    backend: Backend,
+) {
     let pki = tempfile::tempdir().unwrap();
     let (ca, cert, key) = test_pki(pki.path());
     let password = "s3cret-Pa55-for-the-test";
@@ -373,7 +389,7 @@ fn starttls_with_a_private_ca_and_auth_delivers_and_the_password_stays_out_of_th
     };
 
     // Without the CA the certificate is not trusted: nothing is sent, the message waits.
-    let untrusting = email_site(port, "[\"email\"]", &[QUALITY], &tls_section(""));
+    let untrusting = email_site(backend, port, "[\"email\"]", &[QUALITY], &tls_section(""));
     drifting_series(&untrusting);
     let log = run_once(&untrusting);
     assert!(server.received().is_empty());
@@ -382,7 +398,13 @@ fn starttls_with_a_private_ca_and_auth_delivers_and_the_password_stays_out_of_th
 
     // With the CA: STARTTLS, AUTH, delivered.
     let ca_line = format!("ca_file = \"{}\"\n", ca.display());
-    let site = email_site(port, "[\"email\"]", &[QUALITY], &tls_section(&ca_line));
+    let site = email_site(
+        backend,
+        port,
+        "[\"email\"]",
+        &[QUALITY],
+        &tls_section(&ca_line),
+    );
     drifting_series(&site);
     let log = run_once(&site);
     let got = server.received();
@@ -395,13 +417,12 @@ fn starttls_with_a_private_ca_and_auth_delivers_and_the_password_stays_out_of_th
     assert!(!text(&config_dump.stdout).contains(password));
 }
 
-#[test]
-fn a_source_name_with_cr_lf_is_refused_at_ingest_so_it_never_reaches_a_header() {
+fn a_source_name_with_cr_lf_is_refused_at_ingest_so_it_never_reaches_a_header(backend: Backend) {
     // The only way names enter the store is a lot file, and the parser refuses control
     // characters in them (the unit tests of `alert` check the message builder itself with
     // such names).
     let server = SmtpServer::start();
-    let site = email_site(server.port, "[\"email\"]", &[QUALITY], "");
+    let site = email_site(backend, server.port, "[\"email\"]", &[QUALITY], "");
     drifting_series(&site);
     let evil = "source,characteristic,lot,value\n\
                 \"alder-cells\r\nBcc: victim@else.example\",capacity_mah,AL-999,100.0\n";
@@ -418,10 +439,9 @@ fn a_source_name_with_cr_lf_is_refused_at_ingest_so_it_never_reaches_a_header() 
     assert!(!raw.to_ascii_lowercase().contains("\nbcc:"), "{raw}");
 }
 
-#[test]
-fn test_email_prints_the_server_reply_and_exits_1_when_refused() {
+fn test_email_prints_the_server_reply_and_exits_1_when_refused(backend: Backend) {
     let server = SmtpServer::start();
-    let site = email_site(server.port, "[\"log\"]", &[QUALITY, INCOMING], "");
+    let site = email_site(backend, server.port, "[\"log\"]", &[QUALITY, INCOMING], "");
 
     let ok = site.run(&["alerts", "test-email"]);
     assert!(ok.status.success(), "{}", stderr_of(&ok));
@@ -449,7 +469,7 @@ fn test_email_prints_the_server_reply_and_exits_1_when_refused() {
     assert_eq!(server.received().len(), 3);
 
     // No server at all: the connection error is printed, exit 1.
-    let down = email_site(free_port(), "[\"log\"]", &[QUALITY], "");
+    let down = email_site(backend, free_port(), "[\"log\"]", &[QUALITY], "");
     let out = down.run(&["alerts", "test-email"]);
     assert_eq!(out.status.code(), Some(1));
     assert!(
@@ -459,7 +479,7 @@ fn test_email_prints_the_server_reply_and_exits_1_when_refused() {
     );
 
     // No [alerts.email] section: a config error, exit 2, naming the section.
-    let plain = Site::new("");
+    let plain = Site::on(backend, "");
     let out = plain.run(&["alerts", "test-email"]);
     assert_eq!(out.status.code(), Some(2));
     assert!(
@@ -499,10 +519,11 @@ fn envelope_recipients(got: &[Received]) -> Vec<String> {
     to
 }
 
-#[test]
-fn an_alert_goes_to_the_default_list_plus_its_source_and_characteristic_lists_once_each() {
+fn an_alert_goes_to_the_default_list_plus_its_source_and_characteristic_lists_once_each(
+    backend: Backend,
+) {
     let server = SmtpServer::start();
-    let site = email_site(server.port, "[\"email\"]", &[QUALITY], ROUTING);
+    let site = email_site(backend, server.port, "[\"email\"]", &[QUALITY], ROUTING);
     two_sources(&site);
     site.once();
     let alerts = site.alerts();
@@ -552,11 +573,12 @@ fn subjects(server: &SmtpServer) -> Vec<String> {
         .collect()
 }
 
-#[test]
-fn opening_a_grown_shift_and_resolution_each_send_exactly_their_email_and_ack_stops_the_repeat() {
+fn opening_a_grown_shift_and_resolution_each_send_exactly_their_email_and_ack_stops_the_repeat(
+    backend: Backend,
+) {
     for ack in [false, true] {
         let server = SmtpServer::start();
-        let site = email_site(server.port, "[\"email\"]", &[QUALITY], "");
+        let site = email_site(backend, server.port, "[\"email\"]", &[QUALITY], "");
         // 20 baseline lots, 2 in control; lots 23-24 are 3 sd high: one alert, one email.
         for lot in 0..24 {
             capacity_lot(&site, lot, if lot < 22 { 0.0 } else { 3.0 });
@@ -683,8 +705,7 @@ fn once_in_zone(site: &Site, tz: &str) -> std::process::Output {
     out
 }
 
-#[test]
-fn the_daily_digest_lists_each_recipients_open_alerts_once_a_day_at_local_time() {
+fn the_daily_digest_lists_each_recipients_open_alerts_once_a_day_at_local_time(backend: Backend) {
     // A zone 3 h east of UTC (POSIX: "LDT-3"); the digest time is one minute ago there.
     let local_now = chrono::Utc::now() + chrono::Duration::hours(3);
     let at = (local_now - chrono::Duration::minutes(1))
@@ -692,6 +713,7 @@ fn the_daily_digest_lists_each_recipients_open_alerts_once_a_day_at_local_time()
         .to_string();
     let server = SmtpServer::start();
     let site = email_site(
+        backend,
         server.port,
         "[\"email\", \"log\"]",
         &[QUALITY],
@@ -756,8 +778,9 @@ fn the_daily_digest_lists_each_recipients_open_alerts_once_a_day_at_local_time()
     );
 }
 
-#[test]
-fn with_when_empty_the_digest_is_sent_even_with_nothing_open_and_not_before_its_time() {
+fn with_when_empty_the_digest_is_sent_even_with_nothing_open_and_not_before_its_time(
+    backend: Backend,
+) {
     let local_now = chrono::Utc::now() - chrono::Duration::hours(5);
     let past = (local_now - chrono::Duration::minutes(1))
         .format("%H:%M")
@@ -768,7 +791,13 @@ fn with_when_empty_the_digest_is_sent_even_with_nothing_open_and_not_before_its_
     let server = SmtpServer::start();
     let digest = |at: &str| format!("[alerts.digest]\nat = \"{at}\"\nwhen_empty = true\n");
     // Not yet due today, and yesterday's would be 23.5 h late: nothing.
-    let site = email_site(server.port, "[\"email\"]", &[QUALITY], &digest(&future));
+    let site = email_site(
+        backend,
+        server.port,
+        "[\"email\"]",
+        &[QUALITY],
+        &digest(&future),
+    );
     once_in_zone(&site, "LST+5");
     assert!(server.received().is_empty());
     let cfg = std::fs::read_to_string(site.config()).unwrap();
@@ -789,10 +818,9 @@ fn with_when_empty_the_digest_is_sent_even_with_nothing_open_and_not_before_its_
     );
 }
 
-#[test]
-fn a_backfill_whose_shift_grows_sends_one_message_not_an_opening_and_a_repeat() {
+fn a_backfill_whose_shift_grows_sends_one_message_not_an_opening_and_a_repeat(backend: Backend) {
     let server = SmtpServer::start();
-    let site = email_site(server.port, "[\"email\"]", &[QUALITY], "");
+    let site = email_site(backend, server.port, "[\"email\"]", &[QUALITY], "");
     for lot in 0..26 {
         let shift = match lot {
             0..=21 => 0.0,

@@ -4,6 +4,20 @@ mod common;
 
 use common::*;
 
+both_backends!(
+    a_drifting_series_alerts_and_no_other_does,
+    malformed_files_are_quarantined_with_a_reason_and_nothing_is_stored,
+    duplicates_are_archived_and_conflicting_resends_quarantined_until_replaced,
+    a_backfill_decides_like_files_arriving_one_by_one,
+    config_and_usage_errors_exit_2_naming_the_key_or_flag,
+    init_writes_a_config_that_accepts_anything,
+    a_rebaseline_is_audited_and_later_lots_are_judged_against_it,
+    compare_two_stored_sources_on_their_lot_means,
+    a_clearly_non_normal_baseline_is_tested_distribution_free_and_cpk_is_reported,
+    an_open_alert_is_announced_again_when_its_shift_grows_unless_acknowledged,
+    processes_opening_a_new_database_at_once_all_succeed,
+);
+
 fn scenario(shift: Option<(usize, usize, usize, f64)>) -> Scenario {
     Scenario {
         sources: vec!["alder-cells".into(), "birchworks".into()],
@@ -14,9 +28,8 @@ fn scenario(shift: Option<(usize, usize, usize, f64)>) -> Scenario {
     }
 }
 
-#[test]
-fn a_drifting_series_alerts_and_no_other_does() {
-    let site = Site::new("");
+fn a_drifting_series_alerts_and_no_other_does(backend: Backend) {
+    let site = Site::on(backend, "");
     // birchworks mass_g shifts by 3 sd from lot 23 on.
     for (name, text, _) in scenario(Some((1, 1, 22, 3.0))).files() {
         drop_file(&site.inbox(), &name, &text);
@@ -78,9 +91,8 @@ fn a_drifting_series_alerts_and_no_other_does() {
     assert_eq!(site.files_in("archive").len(), 52);
 }
 
-#[test]
-fn malformed_files_are_quarantined_with_a_reason_and_nothing_is_stored() {
-    let site = Site::new("");
+fn malformed_files_are_quarantined_with_a_reason_and_nothing_is_stored(backend: Backend) {
+    let site = Site::on(backend, "");
     let good = long_file(
         "alder-cells",
         "AC-1",
@@ -117,9 +129,8 @@ fn malformed_files_are_quarantined_with_a_reason_and_nothing_is_stored() {
     assert!(site.files_in("inbox").is_empty());
 }
 
-#[test]
-fn duplicates_are_archived_and_conflicting_resends_quarantined_until_replaced() {
-    let site = Site::new("");
+fn duplicates_are_archived_and_conflicting_resends_quarantined_until_replaced(backend: Backend) {
+    let site = Site::on(backend, "");
     let first = long_file(
         "cedar-energy",
         "CE-7",
@@ -175,29 +186,21 @@ fn duplicates_are_archived_and_conflicting_resends_quarantined_until_replaced() 
     assert_eq!(site.status()["measurements"], 5);
     // Regression: the replaced values themselves stay in the audit trail (they were deleted,
     // only n, mean and m2 were kept).
-    let db = site.path().join("lotdrift.db");
-    let kept: String = tokio::runtime::Runtime::new().unwrap().block_on(async {
-        let pool = sqlx::SqlitePool::connect(&format!("sqlite:{}", db.display()))
-            .await
-            .unwrap();
-        sqlx::query_scalar(
-            "SELECT group_concat(v, ' ') FROM (SELECT printf('%.1f', m.value) AS v \
-             FROM replaced_measurement m JOIN sample_replacement r ON r.id = m.replacement_id \
-             WHERE r.reason = 'typing error in unit 2' ORDER BY m.seq)",
-        )
-        .fetch_one(&pool)
-        .await
-        .unwrap()
-    });
+    let kept: Vec<f64> = site.db_column(
+        "SELECT m.value FROM replaced_measurement m \
+         JOIN sample_replacement r ON r.id = m.replacement_id \
+         WHERE r.reason = 'typing error in unit 2' ORDER BY m.seq",
+    );
+    let kept: Vec<String> = kept.iter().map(|v| format!("{v:.1}")).collect();
+    let kept = kept.join(" ");
     assert_eq!(kept, "46.5 46.6 46.4");
 }
 
-#[test]
-fn a_backfill_decides_like_files_arriving_one_by_one() {
+fn a_backfill_decides_like_files_arriving_one_by_one(backend: Backend) {
     let files = scenario(Some((0, 0, 21, 2.5))).files();
     // All at once, with file names in an order unrelated to sampling order.
     let fast = "[watch]\nsettle_seconds = 0.0\n";
-    let all = Site::new(fast);
+    let all = Site::on(backend, fast);
     for (name, text, _) in &files {
         drop_file(
             &all.inbox(),
@@ -207,7 +210,7 @@ fn a_backfill_decides_like_files_arriving_one_by_one() {
     }
     all.once();
     // One by one, in sampling order.
-    let single = Site::new(fast);
+    let single = Site::on(backend, fast);
     let mut ordered = files.clone();
     ordered.sort_by_key(|f| f.2);
     for (name, text, _) in &ordered {
@@ -248,15 +251,14 @@ fn a_backfill_decides_like_files_arriving_one_by_one() {
     assert_eq!(strip(&all).len(), 1);
 }
 
-#[test]
-fn config_and_usage_errors_exit_2_naming_the_key_or_flag() {
-    let site = Site::new("[monitor]\nbaseline_lotz = 5\n");
+fn config_and_usage_errors_exit_2_naming_the_key_or_flag(backend: Backend) {
+    let site = Site::on(backend, "[monitor]\nbaseline_lotz = 5\n");
     let out = site.run(&["run", "--once"]);
     assert_eq!(out.status.code(), Some(2));
     let err = text(&out.stderr);
     assert!(err.contains("baseline_lotz"), "{err}");
 
-    let site = Site::new("[monitor]\nbaseline_lots = 1\n");
+    let site = Site::on(backend, "[monitor]\nbaseline_lots = 1\n");
     let out = site.run(&["status"]);
     assert_eq!(out.status.code(), Some(2));
     assert!(text(&out.stderr).contains("monitor.baseline_lots"));
@@ -273,13 +275,19 @@ fn config_and_usage_errors_exit_2_naming_the_key_or_flag() {
     assert!(text(&out.stderr).contains("missing.toml"));
 }
 
-#[test]
-fn init_writes_a_config_that_accepts_anything() {
+fn init_writes_a_config_that_accepts_anything(backend: Backend) {
     let dir = tempfile::tempdir().unwrap();
     let out = cmd(dir.path()).args(["init", "site"]).output().unwrap();
     assert!(out.status.success());
     for sub in ["inbox", "archive", "quarantine"] {
         assert!(dir.path().join("site").join(sub).is_dir());
+    }
+    // On PostgreSQL the written config gets the history's sections, as an operator adds them.
+    let pg = (backend == Backend::Postgres).then(PgHistory::start);
+    if let Some(pg) = &pg {
+        let cfg = dir.path().join("site/lotdrift.toml");
+        let text = std::fs::read_to_string(&cfg).unwrap();
+        std::fs::write(&cfg, format!("{text}\n{}", pg.config_sections())).unwrap();
     }
     // Running from another folder: paths resolve against the config file.
     let out = cmd(dir.path())
@@ -287,14 +295,23 @@ fn init_writes_a_config_that_accepts_anything() {
         .output()
         .unwrap();
     assert!(out.status.success(), "{}", text(&out.stderr));
-    assert!(dir.path().join("site/lotdrift.db").exists());
+    let sqlite_file = dir.path().join("site/lotdrift.db");
+    match &pg {
+        None => assert!(sqlite_file.exists()),
+        Some(pg) => {
+            assert!(pg_has_tables(&pg.url), "the history was made in PostgreSQL");
+            assert!(
+                !sqlite_file.exists(),
+                "no SQLite file beside a PostgreSQL history"
+            );
+        }
+    }
     let out = cmd(dir.path()).args(["init", "site"]).output().unwrap();
     assert_eq!(out.status.code(), Some(2), "init does not overwrite");
 }
 
-#[test]
-fn a_rebaseline_is_audited_and_later_lots_are_judged_against_it() {
-    let site = Site::new("[watch]\nsettle_seconds = 0.0\n");
+fn a_rebaseline_is_audited_and_later_lots_are_judged_against_it(backend: Backend) {
+    let site = Site::on(backend, "[watch]\nsettle_seconds = 0.0\n");
     // alder-cells capacity shifts up by 3 sd from lot 23 (after a 20-lot baseline).
     let sc = Scenario {
         sources: vec!["alder-cells".into()],
@@ -362,9 +379,8 @@ fn a_rebaseline_is_audited_and_later_lots_are_judged_against_it() {
     assert_eq!(out.status.code(), Some(2));
 }
 
-#[test]
-fn compare_two_stored_sources_on_their_lot_means() {
-    let site = Site::new("[watch]\nsettle_seconds = 0.0\n");
+fn compare_two_stored_sources_on_their_lot_means(backend: Backend) {
+    let site = Site::on(backend, "[watch]\nsettle_seconds = 0.0\n");
     // birchworks mass_g is 3 units higher from lot 23 on; lot means wobble by a fixed,
     // source-independent pattern. Compare the latest 4 lots of each (lot means as observations).
     for (si, source) in ["alder-cells", "birchworks"].iter().enumerate() {
@@ -418,9 +434,9 @@ fn compare_two_stored_sources_on_their_lot_means() {
     assert_eq!(out.status.code(), Some(1));
 }
 
-#[test]
-fn a_clearly_non_normal_baseline_is_tested_distribution_free_and_cpk_is_reported() {
-    let site = Site::new(
+fn a_clearly_non_normal_baseline_is_tested_distribution_free_and_cpk_is_reported(backend: Backend) {
+    let site = Site::on(
+        backend,
         "[watch]\nsettle_seconds = 0.0\n[characteristic.leak_rate]\ndirection = \"lower-is-better\"\nusl = 30.0\n",
     );
     // Leak rate: a skewed (exponential-shaped) pattern of units, the same in every lot, so the
@@ -459,10 +475,9 @@ fn a_clearly_non_normal_baseline_is_tested_distribution_free_and_cpk_is_reported
     assert!(series["baseline_cpk"][0].as_f64().unwrap() > cpk[0].as_f64().unwrap());
 }
 
-#[test]
-fn an_open_alert_is_announced_again_when_its_shift_grows_unless_acknowledged() {
+fn an_open_alert_is_announced_again_when_its_shift_grows_unless_acknowledged(backend: Backend) {
     let run = |ack: bool| {
-        let site = Site::new("[watch]\nsettle_seconds = 0.0\n");
+        let site = Site::on(backend, "[watch]\nsettle_seconds = 0.0\n");
         // Lots 23-24 are 3 units high, lots 25-26 are 7 units high (the shift more than
         // doubled); every unit sd is 1.
         let file = |lot: usize| {
@@ -518,12 +533,11 @@ fn an_open_alert_is_announced_again_when_its_shift_grows_unless_acknowledged() {
     assert!(!log.contains("still shifted"), "{log}");
 }
 
-#[test]
-fn processes_opening_a_new_database_at_once_all_succeed() {
+fn processes_opening_a_new_database_at_once_all_succeed(backend: Backend) {
     // Regression: the daemon starting and `status` run beside it both applied the first
     // migration of a new database, and one failed with "table source already exists". Six
     // `run --once` on a new site create and migrate the database at the same moment.
-    let site = Site::new("");
+    let site = Site::on(backend, "");
     let children: Vec<_> = (0..6)
         .map(|_| {
             common::cmd(site.path())

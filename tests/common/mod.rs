@@ -6,27 +6,90 @@ use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Output, Stdio};
 use std::time::{Duration, Instant};
 
+use pg::PgServer;
+
 pub const BIN: &str = env!("CARGO_BIN_EXE_lotdrift");
 
-/// A temp folder with `lotdrift init` done in it.
+/// Where a site keeps its history.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Backend {
+    /// The SQLite file `lotdrift.db` of the site folder (the starter config's default).
+    Sqlite,
+    /// A database of a private PostgreSQL server owned by the site (`[database] url`).
+    Postgres,
+}
+
+/// The name PostgreSQL sites record (`[site] name`).
+pub const SITE_NAME: &str = "test-plant";
+
+/// A private PostgreSQL history: the server (stopped when dropped) and the URL of its
+/// `lotdrift` database.
+pub struct PgHistory {
+    pub server: PgServer,
+    pub url: String,
+}
+
+impl PgHistory {
+    /// Starts a private server and creates the (empty) `lotdrift` database in it.
+    pub fn start() -> PgHistory {
+        let server = PgServer::start();
+        let url = server.create_database("lotdrift");
+        PgHistory { server, url }
+    }
+
+    /// The config sections that select this history: `[database] url` and `[site] name`.
+    pub fn config_sections(&self) -> String {
+        format!(
+            "[database]\nurl = \"{}\"\n[site]\nname = \"{SITE_NAME}\"\n",
+            self.url
+        )
+    }
+}
+
+/// A temp folder with `lotdrift init` done in it, and on PostgreSQL the private server that
+/// keeps its history (declared after `dir`: dropped, and so stopped, after the folder).
 pub struct Site {
     pub dir: tempfile::TempDir,
+    pub pg: Option<PgHistory>,
 }
 
 impl Site {
     /// `lotdrift init`, then `extra` appended to the config (TOML sections), with the silence
     /// watch off: the scenarios' fixed sampling dates lie months behind the clock, so every
-    /// source would be silent and send a notice the test is not about.
+    /// source would be silent and send a notice the test is not about. SQLite history.
     pub fn new(extra: &str) -> Site {
-        let site = Site::watching_silence(extra);
+        Site::on(Backend::Sqlite, extra)
+    }
+
+    /// [`Site::new`] with the history on `backend`.
+    pub fn on(backend: Backend, extra: &str) -> Site {
+        let site = Site::watching_silence_on(backend, extra);
         let cfg = site.config();
         let text = std::fs::read_to_string(&cfg).unwrap();
         std::fs::write(&cfg, silence_off(&text)).unwrap();
         site
     }
 
-    /// `lotdrift init`, then `extra` appended to the config (TOML sections).
+    /// `lotdrift init`, then `extra` appended to the config (TOML sections). SQLite history.
     pub fn watching_silence(extra: &str) -> Site {
+        Site::watching_silence_on(Backend::Sqlite, extra)
+    }
+
+    /// [`Site::watching_silence`] with the history on `backend`: on PostgreSQL a private
+    /// server is started and its `[database]` and `[site]` sections follow `extra`.
+    pub fn watching_silence_on(backend: Backend, extra: &str) -> Site {
+        let pg = (backend == Backend::Postgres).then(PgHistory::start);
+        let extra = match &pg {
+            Some(pg) => format!("{extra}\n{}", pg.config_sections()),
+            None => extra.to_string(),
+        };
+        let mut site = Site::init(&extra);
+        site.pg = pg;
+        site
+    }
+
+    /// `lotdrift init`, then `extra` appended to the config (TOML sections).
+    fn init(extra: &str) -> Site {
         let dir = tempfile::tempdir().unwrap();
         let out = cmd(dir.path()).args(["init", "."]).output().unwrap();
         assert!(out.status.success(), "init failed: {}", text(&out.stderr));
@@ -39,7 +102,14 @@ impl Site {
             }
             std::fs::write(&cfg, format!("{starter}\n{extra}\n")).unwrap();
         }
-        Site { dir }
+        Site { dir, pg: None }
+    }
+
+    pub fn backend(&self) -> Backend {
+        match self.pg {
+            Some(_) => Backend::Postgres,
+            None => Backend::Sqlite,
+        }
     }
 
     pub fn path(&self) -> &Path {
@@ -104,6 +174,47 @@ impl Site {
             .unwrap()
     }
 
+    /// The SQLite file of the site (the starter config's `paths.database`).
+    pub fn sqlite_path(&self) -> PathBuf {
+        self.path().join("lotdrift.db")
+    }
+
+    /// Whether a process has opened (made) the history: the SQLite file exists, or the
+    /// PostgreSQL database has the tables (before the first migration it has none).
+    pub fn history_exists(&self) -> bool {
+        match &self.pg {
+            None => self.sqlite_path().exists(),
+            Some(pg) => pg_has_tables(&pg.url),
+        }
+    }
+
+    /// Runs `sql` (written to work on both backends) on the site's history and returns the
+    /// first column of every row.
+    pub fn db_column<T>(&self, sql: &str) -> Vec<T>
+    where
+        T: for<'r> sqlx::Decode<'r, sqlx::Sqlite> + sqlx::Type<sqlx::Sqlite>,
+        T: for<'r> sqlx::Decode<'r, sqlx::Postgres> + sqlx::Type<sqlx::Postgres>,
+        T: Send + Unpin,
+    {
+        block_on(async {
+            match &self.pg {
+                None => {
+                    let url = format!("sqlite:{}", self.sqlite_path().display());
+                    let pool = sqlx::SqlitePool::connect(&url).await.unwrap();
+                    let rows = sqlx::query_scalar(sql).fetch_all(&pool).await.unwrap();
+                    pool.close().await;
+                    rows
+                }
+                Some(pg) => {
+                    let pool = sqlx::PgPool::connect(&pg.url).await.unwrap();
+                    let rows = sqlx::query_scalar(sql).fetch_all(&pool).await.unwrap();
+                    pool.close().await;
+                    rows
+                }
+            }
+        })
+    }
+
     /// Files (recursively) below a folder of the site.
     pub fn files_in(&self, sub: &str) -> Vec<PathBuf> {
         let mut out = Vec::new();
@@ -121,6 +232,30 @@ impl Site {
         out.sort();
         out
     }
+}
+
+/// Runs a future to completion on a runtime of its own.
+fn block_on<F: std::future::Future>(f: F) -> F::Output {
+    tokio::runtime::Builder::new_current_thread()
+        .enable_all()
+        .build()
+        .unwrap()
+        .block_on(f)
+}
+
+/// Whether the PostgreSQL database at `url` answers and has lotdrift's tables.
+pub fn pg_has_tables(url: &str) -> bool {
+    block_on(async {
+        let Ok(pool) = sqlx::PgPool::connect(url).await else {
+            return false;
+        };
+        let made: Result<bool, _> =
+            sqlx::query_scalar("SELECT to_regclass('public.ingested_file') IS NOT NULL")
+                .fetch_one(&pool)
+                .await;
+        pool.close().await;
+        made.unwrap_or(false)
+    })
 }
 
 /// The config with `monitor.silence = false` (any other `silence =` line dropped).
@@ -303,3 +438,24 @@ impl Scenario {
 }
 pub mod pg;
 pub mod smtp;
+
+/// Makes each named test function `fn(Backend)` a module of two tests, `sqlite` and
+/// `postgres`, that run it on each backend.
+#[macro_export]
+macro_rules! both_backends {
+    ($($name:ident),* $(,)?) => {
+        $(
+            mod $name {
+                #[test]
+                fn sqlite() {
+                    super::$name($crate::common::Backend::Sqlite)
+                }
+
+                #[test]
+                fn postgres() {
+                    super::$name($crate::common::Backend::Postgres)
+                }
+            }
+        )*
+    };
+}
