@@ -16,6 +16,17 @@ use sqlx::Row;
 
 const LIMIT: Duration = Duration::from_secs(120);
 
+/// A daemon process that is killed when the test ends, passed or failed (a failed assertion
+/// must not leave daemons running against a removed folder).
+struct Daemon(std::process::Child);
+
+impl Drop for Daemon {
+    fn drop(&mut self) {
+        let _ = self.0.kill();
+        let _ = self.0.wait();
+    }
+}
+
 /// One plant's site: the shared database, its own name and inbox, email alerts to `smtp`.
 fn plant(url: &str, name: &str, smtp: u16) -> Site {
     Site::new(&format!(
@@ -167,7 +178,7 @@ fn three_plants_share_one_history_store_once_decide_once_and_email_once() {
     for (name, text) in &files[..40] {
         drop_file(&plants[0].inbox(), name, text);
     }
-    let mut daemons: Vec<_> = plants.iter().map(Site::spawn_daemon).collect();
+    let mut daemons: Vec<Daemon> = plants.iter().map(|p| Daemon(p.spawn_daemon())).collect();
     assert!(wait_until(LIMIT, || settled(&url, &[&plants[0]], 40)));
     // Then every later lot reaches all three plants at once (one lab result forwarded to
     // every plant that uses the part), one sampling date after the other.
@@ -184,10 +195,10 @@ fn three_plants_share_one_history_store_once_decide_once_and_email_once() {
         );
     }
     for d in &daemons {
-        sigterm(d);
+        sigterm(&d.0);
     }
     for d in &mut daemons {
-        assert!(wait_exit(d, Duration::from_secs(20)).success());
+        assert!(wait_exit(&mut d.0, Duration::from_secs(20)).success());
     }
 
     // Each file stored once, by one of the plants; the others archived it as a duplicate.
@@ -261,15 +272,15 @@ fn a_plant_killed_during_a_backfill_loses_and_doubles_nothing() {
     let decided = || count("SELECT COUNT(*) FROM evaluation");
     let moments: [&dyn Fn() -> bool; 3] = [&|| stored_by_north() > 0, &|| decided() > 0, &|| true];
     for moment in moments {
-        let mut victim = north.spawn_daemon();
+        let mut victim = Daemon(north.spawn_daemon());
         assert!(wait_until(LIMIT, moment));
-        victim.kill().unwrap();
-        victim.wait().unwrap();
+        victim.0.kill().unwrap();
+        victim.0.wait().unwrap();
     }
     let (files_then, decided_then) = (stored_by_north(), decided());
     assert!(files_then > 0 && decided_then > 0);
-    let mut survivor = south.spawn_daemon();
-    let mut north_daemon = north.spawn_daemon();
+    let mut survivor = Daemon(south.spawn_daemon());
+    let mut north_daemon = Daemon(north.spawn_daemon());
     // Up (its first log line written) before it is asked to stop.
     let log = north.path().join("daemon.log");
     assert!(wait_until(LIMIT, || std::fs::metadata(&log).is_ok_and(|m| m.len() > 0)));
@@ -290,10 +301,10 @@ fn a_plant_killed_during_a_backfill_loses_and_doubles_nothing() {
         );
     }
     for d in [&north_daemon, &survivor] {
-        sigterm(d);
+        sigterm(&d.0);
     }
     for (p, d) in [(&north, &mut north_daemon), (&south, &mut survivor)] {
-        let status = wait_exit(d, Duration::from_secs(20));
+        let status = wait_exit(&mut d.0, Duration::from_secs(20));
         let log = std::fs::read_to_string(p.path().join("daemon.log")).unwrap_or_default();
         assert!(status.success(), "{status:?}: {log}");
     }
