@@ -33,20 +33,24 @@ fn twins(server: &PgServer) -> (Site, Site) {
     (lite, pg)
 }
 
-/// `text` with every RFC 3339 time (`YYYY-MM-DDTHH:MM:SS...`) replaced by `<time>`: the
-/// moments the two runs decided or stored things differ; everything else must not.
+/// `text` with every time of day replaced by `<time>`: RFC 3339 (`YYYY-MM-DDTHH:MM:SS...`)
+/// and as pages and tables show it to people (`YYYY-MM-DD HH:MM`). The moments the two runs
+/// decided or stored things differ (they may even straddle a minute); everything else must
+/// not. The lots' sampling dates carry no time of day and are compared.
 fn without_times(text: &str) -> String {
     let b = text.as_bytes();
-    let shape = b"dddd-dd-ddTdd:dd:dd";
-    let mut out = String::with_capacity(text.len());
-    let mut i = 0;
-    while i < b.len() {
-        let matches = b.len() - i >= shape.len()
+    let shapes: [&[u8]; 2] = [b"dddd-dd-ddTdd:dd", b"dddd-dd-dd dd:dd"];
+    let at = |i: usize, shape: &[u8]| {
+        b.len() - i >= shape.len()
             && shape.iter().zip(&b[i..]).all(|(s, c)| match s {
                 b'd' => c.is_ascii_digit(),
                 s => s == c,
-            });
-        if matches {
+            })
+    };
+    let mut out = String::with_capacity(text.len());
+    let mut i = 0;
+    while i < b.len() {
+        if let Some(shape) = shapes.iter().find(|s| at(i, s)) {
             out.push_str("<time>");
             i += shape.len();
             while i < b.len() && (b[i].is_ascii_digit() || b".Z+:".contains(&b[i])) {
