@@ -1369,6 +1369,36 @@ struct StoredSample {
     file_id: i64,
 }
 
+/// A series with pending work, from the columns `s.id, src.name, ch.name, cusum_upper,
+/// cusum_lower, online_tests, online_rejected, lifecycle` (the state defaulted where none is
+/// stored); baselines, alerts and lots are filled in afterwards.
+fn series_work_from_row(r: &impl Cells) -> SeriesWork {
+    SeriesWork {
+        series_id: r.cell(0),
+        source: r.cell(1),
+        characteristic: r.cell(2),
+        baseline: None,
+        pending: Vec::new(),
+        open_mean: None,
+        open_spread: None,
+        cusum: (r.cell(3), r.cell(4)),
+        online: (
+            r.cell::<i64>(5) as u64,
+            r.cell::<String>(6)
+                .split(',')
+                .filter_map(|v| v.parse().ok())
+                .collect(),
+        ),
+        baseline_residuals: None,
+        units: None,
+        values: HashMap::new(),
+        lifecycle: r
+            .cell::<Option<String>>(7)
+            .and_then(|j| serde_json::from_str(&j).ok())
+            .unwrap_or_default(),
+    }
+}
+
 /// Reads the columns `s.id, s.lot_id, s.series_id, s.content_digest, f.file_name, s.n,
 /// s.mean, s.m2, s.file_id` of a stored sample `s` and its file `f`.
 fn stored_sample_from_row(r: &impl Cells) -> StoredSample {

@@ -10,7 +10,6 @@ use std::collections::HashSet;
 
 use futures_util::TryStreamExt;
 use sqlx::pool::PoolConnection;
-use sqlx::postgres::PgRow;
 use sqlx::{Postgres, QueryBuilder, Row, Transaction};
 
 use super::*;
@@ -387,33 +386,6 @@ impl Db {
             insert_baseline(&mut tx, b, at).await?;
         }
         tx.commit().await.doing("committing a baseline change")
-    }
-}
-
-fn series_work_from_row(r: &PgRow) -> SeriesWork {
-    SeriesWork {
-        series_id: r.get(0),
-        source: r.get(1),
-        characteristic: r.get(2),
-        baseline: None,
-        pending: Vec::new(),
-        open_mean: None,
-        open_spread: None,
-        cusum: (r.get(3), r.get(4)),
-        online: (
-            r.get::<i64, _>(5) as u64,
-            r.get::<String, _>(6)
-                .split(',')
-                .filter_map(|v| v.parse().ok())
-                .collect(),
-        ),
-        baseline_residuals: None,
-        units: None,
-        values: HashMap::new(),
-        lifecycle: r
-            .get::<Option<String>, _>(7)
-            .and_then(|j| serde_json::from_str(&j).ok())
-            .unwrap_or_default(),
     }
 }
 

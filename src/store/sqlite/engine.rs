@@ -19,33 +19,7 @@ impl Db {
         .fetch_all(&self.pool)
         .await
         .doing("finding series with new lots")?;
-        let mut work: Vec<SeriesWork> = rows
-            .iter()
-            .map(|r| SeriesWork {
-                series_id: r.get(0),
-                source: r.get(1),
-                characteristic: r.get(2),
-                baseline: None,
-                pending: Vec::new(),
-                open_mean: None,
-                open_spread: None,
-                cusum: (r.get(3), r.get(4)),
-                online: (
-                    r.get::<i64, _>(5) as u64,
-                    r.get::<String, _>(6)
-                        .split(',')
-                        .filter_map(|v| v.parse().ok())
-                        .collect(),
-                ),
-                baseline_residuals: None,
-                units: None,
-                values: HashMap::new(),
-                lifecycle: r
-                    .get::<Option<String>, _>(7)
-                    .and_then(|j| serde_json::from_str(&j).ok())
-                    .unwrap_or_default(),
-            })
-            .collect();
+        let mut work: Vec<SeriesWork> = rows.iter().map(series_work_from_row).collect();
         if work.is_empty() {
             return Ok(work);
         }
