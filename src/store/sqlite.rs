@@ -11,7 +11,6 @@ use std::str::FromStr;
 use std::sync::Mutex;
 use std::time::Duration;
 
-use futures_util::TryStreamExt;
 use sqlx::sqlite::{
     SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteSynchronous,
 };
@@ -74,6 +73,9 @@ impl Db {
             // connection reuses its own least recently used pages instead of growing, so the
             // four connections' caches (up to 64 MiB) do not all fill at once.
             .pragma("soft_heap_limit", SQLITE_HEAP_LIMIT)
+            // Statement journals (a write that fires triggers opens one per statement) in
+            // memory: on disk a backfill wrote gigabytes of them to /var/tmp, never read.
+            .pragma("temp_store", "memory")
             // A backfill's large statements are expected; only report them at debug level.
             .log_slow_statements(tracing::log::LevelFilter::Debug, Duration::from_secs(5));
         let pool = SqlitePoolOptions::new()

@@ -13,7 +13,7 @@ use std::ptr::NonNull;
 use rusqlite::Connection;
 use rusqlite::ffi::sqlite3;
 
-use super::{Decision, NewEvaluation, NewSample, Result, StoreError};
+use super::{Decision, NewEvaluation, NewSample, Result, SeriesSample, StoreError, Summary};
 use crate::lotfile::{Serials, Stamp};
 
 const INSERT_VALUES: &str = "INSERT INTO sample_values (sample_id, values_json, units_json, \
@@ -281,6 +281,51 @@ pub(super) fn unit_values(
     drop(stmt);
     snapshot.commit().doing("reading unit values")?;
     Ok(out)
+}
+
+/// Hands every sample waiting in `pending_sample` to `sink` as (series id, sample), in the
+/// queue's order (by sample id), read in one snapshot. CROSS JOIN keeps SQLite from walking
+/// every sample and probing the queue for each: the queue leads, then two primary-key seeks.
+pub(super) fn pending_samples(
+    handle: NonNull<sqlite3>,
+    mut sink: impl FnMut(i64, SeriesSample),
+) -> Result<()> {
+    const WHAT: &str = "loading new lots";
+    let conn = borrow(handle)?;
+    let snapshot = conn.unchecked_transaction().doing(WHAT)?;
+    let mut stmt = snapshot
+        .prepare(
+            "SELECT sm.series_id, sm.id, l.id, l.code, COALESCE(l.sampled_at, l.first_seen_at), \
+                    sm.n, sm.mean, sm.m2, sm.min_value, sm.max_value \
+             FROM pending_sample p CROSS JOIN sample sm ON sm.id = p.sample_id \
+             CROSS JOIN lot l ON l.id = sm.lot_id",
+        )
+        .doing(WHAT)?;
+    let mut rows = stmt.query([]).doing(WHAT)?;
+    while let Some(r) = rows.next().doing(WHAT)? {
+        let n: i64 = r.get(5).doing(WHAT)?;
+        let mean: f64 = r.get(6).doing(WHAT)?;
+        let parts = (r.get(7), r.get(8), r.get(9));
+        let (m2, min, max) = (
+            parts.0.doing(WHAT)?,
+            parts.1.doing(WHAT)?,
+            parts.2.doing(WHAT)?,
+        );
+        let summary = Summary::from_parts(n as u64, mean, m2, min, max)
+            .map_err(|e| StoreError::Corrupt(format!("stored summary n={n} mean={mean}: {e}")))?;
+        let sample = SeriesSample {
+            sample_id: r.get(1).doing(WHAT)?,
+            lot_id: r.get(2).doing(WHAT)?,
+            lot: r.get(3).doing(WHAT)?,
+            order_time: r.get(4).doing(WHAT)?,
+            summary,
+            evaluated: false,
+        };
+        sink(r.get(0).doing(WHAT)?, sample);
+    }
+    drop(rows);
+    drop(stmt);
+    snapshot.commit().doing(WHAT)
 }
 
 #[cfg(test)]

@@ -76,29 +76,20 @@ impl Db {
                 }
             }
         }
-        // CROSS JOIN keeps SQLite from walking every sample in series order (the index that
-        // would spare it the sort) and probing the queue for each: the queue leads.
-        // Streamed, not collected: a backfill has every sample of every series pending, and a
-        // materialised row costs far more memory than the few numbers kept from it.
-        let mut rows = sqlx::query(
-            "SELECT sm.series_id, sm.id, l.id, l.code, COALESCE(l.sampled_at, l.first_seen_at), \
-                    sm.n, sm.mean, sm.m2, sm.min_value, sm.max_value \
-             FROM pending_sample p CROSS JOIN sample sm ON sm.id = p.sample_id \
-             CROSS JOIN lot l ON l.id = sm.lot_id \
-             ORDER BY p.series_id, COALESCE(l.sampled_at, l.first_seen_at), l.code",
-        )
-        .fetch(&self.pool);
-        while let Some(r) = rows.try_next().await.doing("loading new lots")? {
-            if let Some(i) = index.get(&r.get::<i64, _>(0)) {
-                work[*i].pending.push(SeriesSample {
-                    sample_id: r.get(1),
-                    lot_id: r.get(2),
-                    lot: r.get(3),
-                    order_time: r.get(4),
-                    summary: summary_from_row(&r, 5)?,
-                    evaluated: false,
-                });
+        // Every pending sample, read on the connection's own handle in the queue's order (see
+        // `bulk::pending_samples`) and put in series order here: SQLite's sort of the whole
+        // queue and sqlx's copy of every cell cost a backfill more than the rest of the read.
+        let mut conn = self.pool.acquire().await.doing("loading new lots")?;
+        let mut handle = conn.lock_handle().await.doing("loading new lots")?;
+        bulk::pending_samples(handle.as_raw_handle(), |series_id, sample| {
+            if let Some(i) = index.get(&series_id) {
+                work[*i].pending.push(sample);
             }
+        })?;
+        for w in &mut work {
+            // Byte order, as SQLite's BINARY collation orders text.
+            w.pending
+                .sort_unstable_by(|a, b| (&a.order_time, &a.lot).cmp(&(&b.order_time, &b.lot)));
         }
         Ok(work)
     }
