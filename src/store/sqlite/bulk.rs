@@ -13,7 +13,9 @@ use std::ptr::NonNull;
 use rusqlite::Connection;
 use rusqlite::ffi::sqlite3;
 
-use super::{Decision, NewEvaluation, NewSample, Result, SeriesSample, StoreError, Summary};
+use super::{
+    Decision, NewEvaluation, NewFile, NewSample, Result, SeriesSample, StoreError, Summary, sd,
+};
 use crate::lotfile::{Serials, Stamp};
 
 const INSERT_VALUES: &str = "INSERT INTO sample_values (sample_id, values_json, units_json, \
@@ -48,6 +50,102 @@ pub(super) fn borrow(handle: NonNull<sqlite3>) -> Result<Connection> {
     // the returned connection lives (both end within the caller's synchronous section), so it
     // is open and no other thread uses it; `from_handle` never closes a handle it did not open.
     unsafe { Connection::from_handle(handle.as_ptr()) }.doing("borrowing the connection")
+}
+
+const INSERT_FILE: &str = "INSERT INTO ingested_file (content_hash, file_name, received_at, \
+     layout, row_count, site) VALUES (?1, ?2, ?3, ?4, ?5, ?6)";
+
+const INSERT_LOT: &str =
+    "INSERT INTO lot (source_id, code, sampled_at, first_seen_at) VALUES (?1, ?2, ?3, ?4)";
+
+const INSERT_SAMPLE: &str = "INSERT INTO sample (lot_id, series_id, file_id, n, mean, m2, \
+     min_value, max_value, sampled_at, content_digest, sd) \
+     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11)";
+
+/// A new sample with the ids it is stored under.
+pub(super) struct PendingSample<'a> {
+    pub sample: &'a NewSample,
+    pub lot_id: i64,
+    pub series_id: i64,
+    pub file_id: i64,
+}
+
+/// Records the files `to_store` (indexes into `files`); returns each one's id by its index.
+pub(super) fn insert_files(
+    handle: NonNull<sqlite3>,
+    files: &[NewFile],
+    to_store: &[usize],
+    received_at: &str,
+    site: &str,
+) -> Result<HashMap<usize, i64>> {
+    const WHAT: &str = "recording files";
+    let conn = borrow(handle)?;
+    let mut stmt = conn.prepare(INSERT_FILE).doing(WHAT)?;
+    stmt.raw_bind_parameter(3, received_at).doing(WHAT)?;
+    stmt.raw_bind_parameter(6, site).doing(WHAT)?;
+    let mut ids = HashMap::with_capacity(to_store.len());
+    for i in to_store {
+        let f = &files[*i];
+        stmt.raw_bind_parameter(1, f.hash.as_str()).doing(WHAT)?;
+        stmt.raw_bind_parameter(2, f.name.as_str()).doing(WHAT)?;
+        stmt.raw_bind_parameter(4, f.layout).doing(WHAT)?;
+        stmt.raw_bind_parameter(5, f.rows as i64).doing(WHAT)?;
+        stmt.raw_execute().doing(WHAT)?;
+        ids.insert(*i, conn.last_insert_rowid());
+    }
+    Ok(ids)
+}
+
+/// Inserts new lots ((source id, code), earliest sampling time); adds their ids to `lot_ids`.
+pub(super) fn insert_lots(
+    handle: NonNull<sqlite3>,
+    new_lots: &[((i64, &str), Option<&str>)],
+    received_at: &str,
+    lot_ids: &mut HashMap<(i64, String), i64>,
+) -> Result<()> {
+    const WHAT: &str = "recording lots";
+    let conn = borrow(handle)?;
+    let mut stmt = conn.prepare(INSERT_LOT).doing(WHAT)?;
+    stmt.raw_bind_parameter(4, received_at).doing(WHAT)?;
+    for ((source_id, code), time) in new_lots {
+        stmt.raw_bind_parameter(1, source_id).doing(WHAT)?;
+        stmt.raw_bind_parameter(2, code).doing(WHAT)?;
+        stmt.raw_bind_parameter(3, time).doing(WHAT)?;
+        stmt.raw_execute().doing(WHAT)?;
+        lot_ids.insert((*source_id, code.to_string()), conn.last_insert_rowid());
+    }
+    Ok(())
+}
+
+/// Inserts new samples; appends (id, sample) of each to `sample_ids`.
+pub(super) fn insert_samples<'a>(
+    handle: NonNull<sqlite3>,
+    inserts: &[PendingSample<'a>],
+    sample_ids: &mut Vec<(i64, &'a NewSample)>,
+) -> Result<()> {
+    const WHAT: &str = "recording samples";
+    let conn = borrow(handle)?;
+    let mut stmt = conn.prepare(INSERT_SAMPLE).doing(WHAT)?;
+    for p in inserts {
+        let s = &p.sample.summary;
+        let n = s.n() as i64;
+        stmt.raw_bind_parameter(1, p.lot_id).doing(WHAT)?;
+        stmt.raw_bind_parameter(2, p.series_id).doing(WHAT)?;
+        stmt.raw_bind_parameter(3, p.file_id).doing(WHAT)?;
+        stmt.raw_bind_parameter(4, n).doing(WHAT)?;
+        stmt.raw_bind_parameter(5, s.mean()).doing(WHAT)?;
+        stmt.raw_bind_parameter(6, s.m2()).doing(WHAT)?;
+        stmt.raw_bind_parameter(7, s.min()).doing(WHAT)?;
+        stmt.raw_bind_parameter(8, s.max()).doing(WHAT)?;
+        stmt.raw_bind_parameter(9, p.sample.earliest.as_deref())
+            .doing(WHAT)?;
+        stmt.raw_bind_parameter(10, p.sample.digest.hex())
+            .doing(WHAT)?;
+        stmt.raw_bind_parameter(11, sd(n, s.m2())).doing(WHAT)?;
+        stmt.raw_execute().doing(WHAT)?;
+        sample_ids.push((conn.last_insert_rowid(), p.sample));
+    }
+    Ok(())
 }
 
 /// Inserts the unit values of each `(sample id, sample)`: one `sample_values` row per sample

@@ -1,5 +1,6 @@
 //! Files and ingest on SQLite: content hashes, names, lots, samples and their unit values.
 
+use super::bulk::PendingSample;
 use super::*;
 
 impl Db {
@@ -99,35 +100,14 @@ impl Db {
         to_store: &[usize],
         received_at: &str,
     ) -> Result<HashMap<usize, i64>> {
-        let mut file_ids: HashMap<usize, i64> = HashMap::new();
-        for chunk in to_store.chunks(ROWS_PER_INSERT) {
-            let mut q = QueryBuilder::<Sqlite>::new(
-                "INSERT INTO ingested_file (content_hash, file_name, received_at, layout, row_count, \
-                 site) ",
-            );
-            q.push_values(chunk, |mut b, i| {
-                let f = &files[*i];
-                b.push_bind(&f.hash)
-                    .push_bind(&f.name)
-                    .push_bind(received_at)
-                    .push_bind(f.layout)
-                    .push_bind(f.rows as i64)
-                    .push_bind(&self.site);
-            });
-            q.push(" RETURNING id, content_hash");
-            let by_hash: HashMap<String, i64> = q
-                .build()
-                .fetch_all(&mut **tx)
-                .await
-                .doing("recording files")?
-                .iter()
-                .map(|r| (r.get(1), r.get(0)))
-                .collect();
-            for i in chunk {
-                file_ids.insert(*i, by_hash[&files[*i].hash]);
-            }
-        }
-        Ok(file_ids)
+        let mut handle = tx.lock_handle().await.doing("recording files")?;
+        bulk::insert_files(
+            handle.as_raw_handle(),
+            files,
+            to_store,
+            received_at,
+            &self.site,
+        )
     }
 
     /// Writes the unit values of `samples` inside the open transaction, through the
@@ -449,35 +429,9 @@ async fn insert_lots(
         }
     }
     new_lots.sort();
-    for chunk in new_lots.chunks(ROWS_PER_INSERT) {
-        let mut q = QueryBuilder::<Sqlite>::new(
-            "INSERT INTO lot (source_id, code, sampled_at, first_seen_at) ",
-        );
-        q.push_values(chunk, |mut b, ((source_id, code), time)| {
-            b.push_bind(*source_id)
-                .push_bind(*code)
-                .push_bind(*time)
-                .push_bind(received_at);
-        });
-        q.push(" RETURNING id, source_id, code");
-        for row in q
-            .build()
-            .fetch_all(&mut **tx)
-            .await
-            .doing("recording lots")?
-        {
-            lot_ids.insert((row.get(1), row.get(2)), row.get(0));
-        }
-    }
+    let mut handle = tx.lock_handle().await.doing("recording lots")?;
+    bulk::insert_lots(handle.as_raw_handle(), &new_lots, received_at, lot_ids)?;
     Ok(())
-}
-
-/// A new sample with the ids it is stored under.
-struct PendingSample<'a> {
-    sample: &'a NewSample,
-    lot_id: i64,
-    series_id: i64,
-    file_id: i64,
 }
 
 /// Inserts new samples; appends (id, sample) of each to `sample_ids`.
@@ -486,37 +440,6 @@ async fn insert_samples<'a>(
     inserts: &[PendingSample<'a>],
     sample_ids: &mut Vec<(i64, &'a NewSample)>,
 ) -> Result<()> {
-    for chunk in inserts.chunks(ROWS_PER_INSERT / 2) {
-        let mut q = QueryBuilder::<Sqlite>::new(
-            "INSERT INTO sample (lot_id, series_id, file_id, n, mean, m2, min_value, \
-             max_value, sampled_at, content_digest, sd) ",
-        );
-        q.push_values(chunk, |mut b, p| {
-            let s = &p.sample.summary;
-            b.push_bind(p.lot_id)
-                .push_bind(p.series_id)
-                .push_bind(p.file_id)
-                .push_bind(s.n() as i64)
-                .push_bind(s.mean())
-                .push_bind(s.m2())
-                .push_bind(s.min())
-                .push_bind(s.max())
-                .push_bind(p.sample.earliest.as_deref())
-                .push_bind(p.sample.digest.hex())
-                .push_bind(sd(s.n() as i64, s.m2()));
-        });
-        q.push(" RETURNING id, lot_id, series_id");
-        let ids: HashMap<(i64, i64), i64> = q
-            .build()
-            .fetch_all(&mut **tx)
-            .await
-            .doing("recording samples")?
-            .iter()
-            .map(|r| ((r.get(1), r.get(2)), r.get(0)))
-            .collect();
-        for p in chunk {
-            sample_ids.push((ids[&(p.lot_id, p.series_id)], p.sample));
-        }
-    }
-    Ok(())
+    let mut handle = tx.lock_handle().await.doing("recording samples")?;
+    bulk::insert_samples(handle.as_raw_handle(), inserts, sample_ids)
 }
