@@ -21,13 +21,34 @@ use crate::lotfile::{Serials, Stamp};
 const INSERT_VALUES: &str = "INSERT INTO sample_values (sample_id, values_json, units_json, \
      sampled_at_json) VALUES (?1, ?2, ?3, ?4)";
 
-const INSERT_EVALUATION: &str = "INSERT INTO evaluation (sample_id, series_id, baseline_id, \
-     kind, decided_at, test, model, alternative, delta, statistic, df, df2, p_value, p_adjusted, \
-     method, family_size, level, significant, baseline_n, baseline_mean, baseline_sd, lot_n, \
-     lot_mean, lot_sd, estimate, ci_low, ci_high, std_error, cusum_upper, cusum_lower, cusum_h, \
-     cusum_signal, cpk, cpk_low, cpk_high, note, site) VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, \
-     ?9, ?10, ?11, ?12, ?13, ?14, ?15, ?16, ?17, ?18, ?19, ?20, ?21, ?22, ?23, ?24, ?25, ?26, \
-     ?27, ?28, ?29, ?30, ?31, ?32, ?33, ?34, ?35, ?36, ?37)";
+const EVALUATION_COLUMNS: &str = "sample_id, series_id, baseline_id, kind, decided_at, test, \
+     model, alternative, delta, statistic, df, df2, p_value, p_adjusted, method, family_size, \
+     level, significant, baseline_n, baseline_mean, baseline_sd, lot_n, lot_mean, lot_sd, \
+     estimate, ci_low, ci_high, std_error, cusum_upper, cusum_lower, cusum_h, cusum_signal, cpk, \
+     cpk_low, cpk_high, note, site";
+
+/// Parameters of one evaluation row (the columns of [`EVALUATION_COLUMNS`]).
+const EVALUATION_PARAMS: usize = 37;
+
+/// Evaluation rows per INSERT statement. Each statement that fires triggers opens a statement
+/// journal holding a copy of every page it touches: per row, that copying cost a quarter of a
+/// backfill's engine pass; per 128 rows, the pages are mostly shared.
+const EVALUATIONS_PER_STATEMENT: usize = 128;
+
+/// `INSERT INTO evaluation (...) VALUES (?1, ..., ?37), (?38, ...)` for `rows` rows.
+fn insert_evaluations_sql(rows: usize) -> String {
+    use std::fmt::Write;
+    let mut sql = format!("INSERT INTO evaluation ({EVALUATION_COLUMNS}) VALUES ");
+    for r in 0..rows {
+        sql.push_str(if r == 0 { "(" } else { ", (" });
+        for c in 0..EVALUATION_PARAMS {
+            let sep = if c == 0 { "" } else { ", " };
+            write!(sql, "{sep}?{}", r * EVALUATION_PARAMS + c + 1).expect("writing to a String");
+        }
+        sql.push(')');
+    }
+    sql
+}
 
 const SELECT_VALUES: &str = "SELECT values_json FROM sample_values WHERE sample_id = ?1";
 
@@ -174,10 +195,10 @@ pub(super) fn insert_measurements(
     Ok(())
 }
 
-/// Inserts the evaluation of every decision, one prepared statement stepped per row (an engine
-/// pass of a backfill writes hundreds of thousands), and returns each row's id by (sample
-/// id, kind). `baseline_ids` holds the current baseline of every decided series; `site` is
-/// the deciding daemon's.
+/// Inserts the evaluation of every decision, [`EVALUATIONS_PER_STATEMENT`] rows per step of
+/// one prepared statement (an engine pass of a backfill writes hundreds of thousands), and
+/// returns each row's id by (sample id, kind), read back by id range. `baseline_ids` holds the
+/// current baseline of every decided series; `site` is the deciding daemon's.
 pub(super) fn insert_evaluations(
     handle: NonNull<sqlite3>,
     decisions: &[Decision],
@@ -185,73 +206,145 @@ pub(super) fn insert_evaluations(
     at: &str,
     site: &str,
 ) -> Result<HashMap<(i64, &'static str), i64>> {
+    const WHAT: &str = "recording decisions";
     let conn = borrow(handle)?;
-    let mut stmt = conn
-        .prepare(INSERT_EVALUATION)
+    let before: i64 = conn
+        .query_row("SELECT COALESCE(MAX(id), 0) FROM evaluation", [], |r| {
+            r.get(0)
+        })
+        .doing(WHAT)?;
+    let mut many = conn
+        .prepare(&insert_evaluations_sql(EVALUATIONS_PER_STATEMENT))
         .doing("preparing the insert of decisions")?;
-    // Bindings outlive each step's reset: the site is bound once.
-    stmt.raw_bind_parameter(37, site)
-        .doing("recording decisions")?;
+    let mut one = conn
+        .prepare(&insert_evaluations_sql(1))
+        .doing("preparing the insert of decisions")?;
+    let mut chunks = decisions.chunks_exact(EVALUATIONS_PER_STATEMENT);
+    for chunk in &mut chunks {
+        for (k, d) in chunk.iter().enumerate() {
+            let at_row = Row {
+                at,
+                site,
+                first: k * EVALUATION_PARAMS,
+            };
+            bind_evaluation(&mut many, &d.evaluation, baseline_ids, at_row)?;
+        }
+        many.raw_execute().doing(WHAT)?;
+    }
+    for d in chunks.remainder() {
+        let at_row = Row { at, site, first: 0 };
+        bind_evaluation(&mut one, &d.evaluation, baseline_ids, at_row)?;
+        one.raw_execute().doing(WHAT)?;
+    }
+    drop((many, one));
+    evaluation_ids(&conn, decisions, before)
+}
+
+/// The ids of the evaluations inserted after id `before`, by (sample id, kind); every decision
+/// must be among them.
+fn evaluation_ids(
+    conn: &Connection,
+    decisions: &[Decision],
+    before: i64,
+) -> Result<HashMap<(i64, &'static str), i64>> {
+    const WHAT: &str = "recording decisions";
+    let mut kinds: Vec<&'static str> = decisions.iter().map(|d| d.evaluation.kind).collect();
+    kinds.sort_unstable();
+    kinds.dedup();
+    let mut stmt = conn
+        .prepare("SELECT id, sample_id, kind FROM evaluation WHERE id > ?1")
+        .doing(WHAT)?;
+    let mut rows = stmt.query([before]).doing(WHAT)?;
     let mut ids = HashMap::with_capacity(decisions.len());
-    for d in decisions {
-        let e = &d.evaluation;
-        let baseline_id = *baseline_ids.get(&e.series_id).ok_or_else(|| {
-            StoreError::Corrupt(format!(
-                "decision for series {} without a baseline",
-                e.series_id
-            ))
-        })?;
-        bind_evaluation(&mut stmt, e, baseline_id, at).doing("recording decisions")?;
-        stmt.raw_execute().doing("recording decisions")?;
-        ids.insert((e.sample_id, e.kind), conn.last_insert_rowid());
+    while let Some(r) = rows.next().doing(WHAT)? {
+        let kind = r.get_ref(2).doing(WHAT)?;
+        let kind = kinds.iter().find(|k| kind.as_str().ok() == Some(**k));
+        if let Some(kind) = kind {
+            ids.insert((r.get(1).doing(WHAT)?, *kind), r.get(0).doing(WHAT)?);
+        }
+    }
+    if ids.len() != decisions.len() {
+        return Err(StoreError::Corrupt(format!(
+            "{} decisions written, {} read back by id",
+            decisions.len(),
+            ids.len()
+        )));
     }
     Ok(ids)
 }
 
-/// Binds the 36 columns of [`INSERT_EVALUATION`] (an interval bound that is not finite is NULL).
+/// Where one evaluation row's parameters start in a statement, and what every row shares.
+struct Row<'a> {
+    at: &'a str,
+    site: &'a str,
+    /// Parameters before this row's (0 for the first row).
+    first: usize,
+}
+
+/// Binds one row of [`EVALUATION_COLUMNS`] (an interval bound that is not finite is NULL).
 fn bind_evaluation(
+    stmt: &mut rusqlite::Statement<'_>,
+    e: &NewEvaluation,
+    baseline_ids: &HashMap<i64, i64>,
+    row: Row<'_>,
+) -> Result<()> {
+    let baseline_id = *baseline_ids.get(&e.series_id).ok_or_else(|| {
+        StoreError::Corrupt(format!(
+            "decision for series {} without a baseline",
+            e.series_id
+        ))
+    })?;
+    let at = row.at;
+    let p = |k: usize| row.first + k;
+    bind_columns(stmt, e, baseline_id, at, &p).doing("recording decisions")?;
+    stmt.raw_bind_parameter(p(37), row.site)
+        .doing("recording decisions")
+}
+
+fn bind_columns(
     stmt: &mut rusqlite::Statement<'_>,
     e: &NewEvaluation,
     baseline_id: i64,
     at: &str,
+    p: &dyn Fn(usize) -> usize,
 ) -> rusqlite::Result<()> {
     let finite = |v: f64| Some(v).filter(|v| v.is_finite());
-    stmt.raw_bind_parameter(1, e.sample_id)?;
-    stmt.raw_bind_parameter(2, e.series_id)?;
-    stmt.raw_bind_parameter(3, baseline_id)?;
-    stmt.raw_bind_parameter(4, e.kind)?;
-    stmt.raw_bind_parameter(5, at)?;
-    stmt.raw_bind_parameter(6, e.test)?;
-    stmt.raw_bind_parameter(7, e.model)?;
-    stmt.raw_bind_parameter(8, e.alternative)?;
-    stmt.raw_bind_parameter(9, e.delta)?;
-    stmt.raw_bind_parameter(10, e.statistic)?;
-    stmt.raw_bind_parameter(11, e.df)?;
-    stmt.raw_bind_parameter(12, e.df2)?;
-    stmt.raw_bind_parameter(13, e.p_value)?;
-    stmt.raw_bind_parameter(14, e.p_adjusted)?;
-    stmt.raw_bind_parameter(15, e.method)?;
-    stmt.raw_bind_parameter(16, e.family_size)?;
-    stmt.raw_bind_parameter(17, e.level)?;
-    stmt.raw_bind_parameter(18, e.significant as i64)?;
-    stmt.raw_bind_parameter(19, e.baseline.n() as i64)?;
-    stmt.raw_bind_parameter(20, e.baseline_mean)?;
-    stmt.raw_bind_parameter(21, e.baseline.sd())?;
-    stmt.raw_bind_parameter(22, e.lot.n() as i64)?;
-    stmt.raw_bind_parameter(23, e.lot.mean())?;
-    stmt.raw_bind_parameter(24, e.lot.sd())?;
-    stmt.raw_bind_parameter(25, e.estimate)?;
-    stmt.raw_bind_parameter(26, e.ci.and_then(|c| finite(c.0)))?;
-    stmt.raw_bind_parameter(27, e.ci.and_then(|c| finite(c.1)))?;
-    stmt.raw_bind_parameter(28, e.std_error)?;
-    stmt.raw_bind_parameter(29, e.cusum.map(|c| c.0))?;
-    stmt.raw_bind_parameter(30, e.cusum.map(|c| c.1))?;
-    stmt.raw_bind_parameter(31, e.cusum.map(|c| c.2))?;
-    stmt.raw_bind_parameter(32, e.cusum_signal as i64)?;
-    stmt.raw_bind_parameter(33, e.cpk.map(|c| c.0))?;
-    stmt.raw_bind_parameter(34, e.cpk.map(|c| c.1))?;
-    stmt.raw_bind_parameter(35, e.cpk.map(|c| c.2))?;
-    stmt.raw_bind_parameter(36, e.note.as_deref())
+    stmt.raw_bind_parameter(p(1), e.sample_id)?;
+    stmt.raw_bind_parameter(p(2), e.series_id)?;
+    stmt.raw_bind_parameter(p(3), baseline_id)?;
+    stmt.raw_bind_parameter(p(4), e.kind)?;
+    stmt.raw_bind_parameter(p(5), at)?;
+    stmt.raw_bind_parameter(p(6), e.test)?;
+    stmt.raw_bind_parameter(p(7), e.model)?;
+    stmt.raw_bind_parameter(p(8), e.alternative)?;
+    stmt.raw_bind_parameter(p(9), e.delta)?;
+    stmt.raw_bind_parameter(p(10), e.statistic)?;
+    stmt.raw_bind_parameter(p(11), e.df)?;
+    stmt.raw_bind_parameter(p(12), e.df2)?;
+    stmt.raw_bind_parameter(p(13), e.p_value)?;
+    stmt.raw_bind_parameter(p(14), e.p_adjusted)?;
+    stmt.raw_bind_parameter(p(15), e.method)?;
+    stmt.raw_bind_parameter(p(16), e.family_size)?;
+    stmt.raw_bind_parameter(p(17), e.level)?;
+    stmt.raw_bind_parameter(p(18), e.significant as i64)?;
+    stmt.raw_bind_parameter(p(19), e.baseline.n() as i64)?;
+    stmt.raw_bind_parameter(p(20), e.baseline_mean)?;
+    stmt.raw_bind_parameter(p(21), e.baseline.sd())?;
+    stmt.raw_bind_parameter(p(22), e.lot.n() as i64)?;
+    stmt.raw_bind_parameter(p(23), e.lot.mean())?;
+    stmt.raw_bind_parameter(p(24), e.lot.sd())?;
+    stmt.raw_bind_parameter(p(25), e.estimate)?;
+    stmt.raw_bind_parameter(p(26), e.ci.and_then(|c| finite(c.0)))?;
+    stmt.raw_bind_parameter(p(27), e.ci.and_then(|c| finite(c.1)))?;
+    stmt.raw_bind_parameter(p(28), e.std_error)?;
+    stmt.raw_bind_parameter(p(29), e.cusum.map(|c| c.0))?;
+    stmt.raw_bind_parameter(p(30), e.cusum.map(|c| c.1))?;
+    stmt.raw_bind_parameter(p(31), e.cusum.map(|c| c.2))?;
+    stmt.raw_bind_parameter(p(32), e.cusum_signal as i64)?;
+    stmt.raw_bind_parameter(p(33), e.cpk.map(|c| c.0))?;
+    stmt.raw_bind_parameter(p(34), e.cpk.map(|c| c.1))?;
+    stmt.raw_bind_parameter(p(35), e.cpk.map(|c| c.2))?;
+    stmt.raw_bind_parameter(p(36), e.note.as_deref())
 }
 
 /// One sample's row of `sample_values` as text: its values, unit serials and sampling times
