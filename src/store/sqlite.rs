@@ -2,8 +2,9 @@
 //!
 //! SQLite runs in WAL mode with a busy timeout, and every write transaction begins
 //! `IMMEDIATE`, so readers (the CLI, the user's own SQL tools) never block the daemon and a
-//! second writer waits instead of failing. The bulk paths (unit values, decisions, `history`)
-//! go through the connection's own SQLite handle with prepared statements (see [`bulk`]).
+//! second writer waits instead of failing. The bulk paths (a batch's files, lots, samples and
+//! unit values; the engine's pending samples and decisions; `history`) go through the
+//! connection's own SQLite handle with prepared statements (see [`bulk`]).
 
 use std::collections::{HashMap, HashSet};
 use std::path::Path;
