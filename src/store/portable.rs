@@ -253,32 +253,26 @@ macro_rules! bind_args {
     }};
 }
 
-impl sqlite::Db {
-    pub(super) async fn rows<T: FromCells>(
-        &self,
-        sql: &str,
-        args: &[Arg<'_>],
-        doing: &'static str,
-    ) -> Result<Vec<T>> {
-        let rows = bind_args!(sqlx::query(sql), args)
-            .fetch_all(self.pool())
-            .await
-            .doing(doing)?;
-        Ok(rows.iter().map(T::from_cells).collect())
-    }
+/// `rows`: runs `sql` with `args` and reads every row through [`FromCells`]. The same body for
+/// both backends; only the row type behind `fetch_all` differs.
+macro_rules! impl_rows {
+    ($db:ty) => {
+        impl $db {
+            pub(super) async fn rows<T: FromCells>(
+                &self,
+                sql: &str,
+                args: &[Arg<'_>],
+                doing: &'static str,
+            ) -> Result<Vec<T>> {
+                let rows = bind_args!(sqlx::query(sql), args)
+                    .fetch_all(self.pool())
+                    .await
+                    .doing(doing)?;
+                Ok(rows.iter().map(T::from_cells).collect())
+            }
+        }
+    };
 }
 
-impl postgres::Db {
-    pub(super) async fn rows<T: FromCells>(
-        &self,
-        sql: &str,
-        args: &[Arg<'_>],
-        doing: &'static str,
-    ) -> Result<Vec<T>> {
-        let rows = bind_args!(sqlx::query(sql), args)
-            .fetch_all(self.pool())
-            .await
-            .doing(doing)?;
-        Ok(rows.iter().map(T::from_cells).collect())
-    }
-}
+impl_rows!(sqlite::Db);
+impl_rows!(postgres::Db);
