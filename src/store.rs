@@ -1344,6 +1344,12 @@ fn summary_from_row(row: &impl Cells, first: usize) -> Result<Summary> {
     let m2: f64 = row.cell(first + 2);
     let min: f64 = row.cell(first + 3);
     let max: f64 = row.cell(first + 4);
+    stored_summary(n, mean, m2, min, max)
+}
+
+/// A sample's summary from its stored columns (n, mean, m2, min, max); a row that cannot be
+/// one is corrupt.
+fn stored_summary(n: i64, mean: f64, m2: f64, min: f64, max: f64) -> Result<Summary> {
     Summary::from_parts(n as u64, mean, m2, min, max)
         .map_err(|e| StoreError::Corrupt(format!("stored summary n={n} mean={mean}: {e}")))
 }

@@ -14,7 +14,8 @@ use rusqlite::Connection;
 use rusqlite::ffi::sqlite3;
 
 use super::{
-    Decision, NewEvaluation, NewFile, NewSample, Result, SeriesSample, StoreError, Summary, sd,
+    Decision, NewEvaluation, NewFile, NewSample, Result, SeriesSample, StoreError, sd,
+    stored_summary,
 };
 use crate::lotfile::{Serials, Stamp};
 
@@ -219,21 +220,26 @@ pub(super) fn insert_evaluations(
     let mut one = conn
         .prepare(&insert_evaluations_sql(1))
         .doing("preparing the insert of decisions")?;
+    // Binds decision `d` as the statement's row starting after parameter `first`.
+    let bind = |stmt: &mut rusqlite::Statement<'_>, first: usize, d: &Decision| {
+        let e = &d.evaluation;
+        let baseline_id = *baseline_ids.get(&e.series_id).ok_or_else(|| {
+            StoreError::Corrupt(format!(
+                "decision for series {} without a baseline",
+                e.series_id
+            ))
+        })?;
+        bind_evaluation(stmt, first, e, baseline_id, at, site).doing(WHAT)
+    };
     let mut chunks = decisions.chunks_exact(EVALUATIONS_PER_STATEMENT);
     for chunk in &mut chunks {
         for (k, d) in chunk.iter().enumerate() {
-            let at_row = Row {
-                at,
-                site,
-                first: k * EVALUATION_PARAMS,
-            };
-            bind_evaluation(&mut many, &d.evaluation, baseline_ids, at_row)?;
+            bind(&mut many, k * EVALUATION_PARAMS, d)?;
         }
         many.raw_execute().doing(WHAT)?;
     }
     for d in chunks.remainder() {
-        let at_row = Row { at, site, first: 0 };
-        bind_evaluation(&mut one, &d.evaluation, baseline_ids, at_row)?;
+        bind(&mut one, 0, d)?;
         one.raw_execute().doing(WHAT)?;
     }
     drop((many, one));
@@ -273,41 +279,17 @@ fn evaluation_ids(
     Ok(ids)
 }
 
-/// Where one evaluation row's parameters start in a statement, and what every row shares.
-struct Row<'a> {
-    at: &'a str,
-    site: &'a str,
-    /// Parameters before this row's (0 for the first row).
-    first: usize,
-}
-
-/// Binds one row of [`EVALUATION_COLUMNS`] (an interval bound that is not finite is NULL).
+/// Binds one row of [`EVALUATION_COLUMNS`] as parameters `first + 1` to `first + 37` (an
+/// interval bound that is not finite is NULL).
 fn bind_evaluation(
     stmt: &mut rusqlite::Statement<'_>,
-    e: &NewEvaluation,
-    baseline_ids: &HashMap<i64, i64>,
-    row: Row<'_>,
-) -> Result<()> {
-    let baseline_id = *baseline_ids.get(&e.series_id).ok_or_else(|| {
-        StoreError::Corrupt(format!(
-            "decision for series {} without a baseline",
-            e.series_id
-        ))
-    })?;
-    let at = row.at;
-    let p = |k: usize| row.first + k;
-    bind_columns(stmt, e, baseline_id, at, &p).doing("recording decisions")?;
-    stmt.raw_bind_parameter(p(37), row.site)
-        .doing("recording decisions")
-}
-
-fn bind_columns(
-    stmt: &mut rusqlite::Statement<'_>,
+    first: usize,
     e: &NewEvaluation,
     baseline_id: i64,
     at: &str,
-    p: &dyn Fn(usize) -> usize,
+    site: &str,
 ) -> rusqlite::Result<()> {
+    let p = |k: usize| first + k;
     let finite = |v: f64| Some(v).filter(|v| v.is_finite());
     stmt.raw_bind_parameter(p(1), e.sample_id)?;
     stmt.raw_bind_parameter(p(2), e.series_id)?;
@@ -344,7 +326,8 @@ fn bind_columns(
     stmt.raw_bind_parameter(p(33), e.cpk.map(|c| c.0))?;
     stmt.raw_bind_parameter(p(34), e.cpk.map(|c| c.1))?;
     stmt.raw_bind_parameter(p(35), e.cpk.map(|c| c.2))?;
-    stmt.raw_bind_parameter(p(36), e.note.as_deref())
+    stmt.raw_bind_parameter(p(36), e.note.as_deref())?;
+    stmt.raw_bind_parameter(p(37), site)
 }
 
 /// One sample's row of `sample_values` as text: its values, unit serials and sampling times
@@ -494,16 +477,13 @@ pub(super) fn pending_samples(
         .doing(WHAT)?;
     let mut rows = stmt.query([]).doing(WHAT)?;
     while let Some(r) = rows.next().doing(WHAT)? {
-        let n: i64 = r.get(5).doing(WHAT)?;
-        let mean: f64 = r.get(6).doing(WHAT)?;
-        let parts = (r.get(7), r.get(8), r.get(9));
-        let (m2, min, max) = (
-            parts.0.doing(WHAT)?,
-            parts.1.doing(WHAT)?,
-            parts.2.doing(WHAT)?,
-        );
-        let summary = Summary::from_parts(n as u64, mean, m2, min, max)
-            .map_err(|e| StoreError::Corrupt(format!("stored summary n={n} mean={mean}: {e}")))?;
+        let summary = stored_summary(
+            r.get(5).doing(WHAT)?,
+            r.get(6).doing(WHAT)?,
+            r.get(7).doing(WHAT)?,
+            r.get(8).doing(WHAT)?,
+            r.get(9).doing(WHAT)?,
+        )?;
         let sample = SeriesSample {
             sample_id: r.get(1).doing(WHAT)?,
             lot_id: r.get(2).doing(WHAT)?,
