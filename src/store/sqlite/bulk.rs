@@ -22,34 +22,119 @@ use crate::lotfile::{Serials, Stamp};
 const INSERT_VALUES: &str = "INSERT INTO sample_values (sample_id, values_json, units_json, \
      sampled_at_json) VALUES (?1, ?2, ?3, ?4)";
 
-const EVALUATION_COLUMNS: &str = "sample_id, series_id, baseline_id, kind, decided_at, test, \
-     model, alternative, delta, statistic, df, df2, p_value, p_adjusted, method, family_size, \
-     level, significant, baseline_n, baseline_mean, baseline_sd, lot_n, lot_mean, lot_sd, \
-     estimate, ci_low, ci_high, std_error, cusum_upper, cusum_lower, cusum_h, cusum_signal, cpk, \
-     cpk_low, cpk_high, note, site";
+/// Rows per multi-row INSERT. Every statement on a table with triggers (the counts, the queue
+/// of undecided samples) opens a statement journal holding a copy of each page it touches: one
+/// statement per row made that copying a quarter of a backfill's writes; per 128 rows the
+/// pages are mostly shared.
+const ROWS_PER_STATEMENT: usize = 128;
 
-/// Parameters of one evaluation row (the columns of [`EVALUATION_COLUMNS`]).
-const EVALUATION_PARAMS: usize = 37;
-
-/// Evaluation rows per INSERT statement. Each statement that fires triggers opens a statement
-/// journal holding a copy of every page it touches: per row, that copying cost a quarter of a
-/// backfill's engine pass; per 128 rows, the pages are mostly shared.
-const EVALUATIONS_PER_STATEMENT: usize = 128;
-
-/// `INSERT INTO evaluation (...) VALUES (?1, ..., ?37), (?38, ...)` for `rows` rows.
-fn insert_evaluations_sql(rows: usize) -> String {
+/// `INSERT INTO table (columns) VALUES (?1, ..., ?k), (?k+1, ...)`: `rows` rows of `params`.
+fn insert_sql(table: &str, columns: &str, params: usize, rows: usize) -> String {
     use std::fmt::Write;
-    let mut sql = format!("INSERT INTO evaluation ({EVALUATION_COLUMNS}) VALUES ");
+    let mut sql = format!("INSERT INTO {table} ({columns}) VALUES ");
     for r in 0..rows {
         sql.push_str(if r == 0 { "(" } else { ", (" });
-        for c in 0..EVALUATION_PARAMS {
+        for c in 0..params {
             let sep = if c == 0 { "" } else { ", " };
-            write!(sql, "{sep}?{}", r * EVALUATION_PARAMS + c + 1).expect("writing to a String");
+            write!(sql, "{sep}?{}", r * params + c + 1).expect("writing to a String");
         }
         sql.push(')');
     }
     sql
 }
+
+/// One table's multi-row insert: its name, columns and parameters per row.
+struct Rows {
+    table: &'static str,
+    columns: &'static str,
+    params: usize,
+    what: &'static str,
+}
+
+impl Rows {
+    /// Inserts one row per item, [`ROWS_PER_STATEMENT`] per statement; `bind(stmt, first,
+    /// item)` binds the item's parameters `first + 1 ..= first + params`. Returns the rowid of
+    /// the first item: item k's is that plus k.
+    ///
+    /// SQLite gives a new row the largest rowid plus one, so the rows of one write transaction
+    /// are numbered in insert order. That is checked, not assumed: the largest rowid must grow
+    /// by exactly the number of items (it would not after a rowid reached its maximum, when
+    /// SQLite picks free ones at random), else nothing is returned and the batch rolls back.
+    fn insert<T>(
+        &self,
+        conn: &Connection,
+        items: &[T],
+        mut bind: impl FnMut(&mut rusqlite::Statement<'_>, usize, &T) -> Result<()>,
+    ) -> Result<i64> {
+        let largest = |conn: &Connection| -> Result<i64> {
+            let sql = format!("SELECT COALESCE(MAX(rowid), 0) FROM {}", self.table);
+            conn.query_row(&sql, [], |r| r.get(0)).doing(self.what)
+        };
+        let before = largest(conn)?;
+        let mut chunks = items.chunks_exact(ROWS_PER_STATEMENT);
+        if chunks.len() > 0 {
+            let sql = insert_sql(self.table, self.columns, self.params, ROWS_PER_STATEMENT);
+            let mut many = conn.prepare(&sql).doing(self.what)?;
+            for chunk in &mut chunks {
+                for (k, item) in chunk.iter().enumerate() {
+                    bind(&mut many, k * self.params, item)?;
+                }
+                many.raw_execute().doing(self.what)?;
+            }
+        }
+        let rest = chunks.remainder();
+        if !rest.is_empty() {
+            let sql = insert_sql(self.table, self.columns, self.params, rest.len());
+            let mut last = conn.prepare(&sql).doing(self.what)?;
+            for (k, item) in rest.iter().enumerate() {
+                bind(&mut last, k * self.params, item)?;
+            }
+            last.raw_execute().doing(self.what)?;
+        }
+        let after = largest(conn)?;
+        if after - before != items.len() as i64 {
+            return Err(StoreError::Corrupt(format!(
+                "{} rows written to {}, but its largest id went from {before} to {after}",
+                items.len(),
+                self.table
+            )));
+        }
+        Ok(before + 1)
+    }
+}
+
+const EVALUATIONS: Rows = Rows {
+    table: "evaluation",
+    columns: "sample_id, series_id, baseline_id, kind, decided_at, test, model, alternative, \
+        delta, statistic, df, df2, p_value, p_adjusted, method, family_size, level, \
+        significant, baseline_n, baseline_mean, baseline_sd, lot_n, lot_mean, lot_sd, estimate, \
+        ci_low, ci_high, std_error, cusum_upper, cusum_lower, cusum_h, cusum_signal, cpk, \
+        cpk_low, cpk_high, note, site",
+    params: 37,
+    what: "recording decisions",
+};
+
+const FILES: Rows = Rows {
+    table: "ingested_file",
+    columns: "content_hash, file_name, received_at, layout, row_count, site",
+    params: 6,
+    what: "recording files",
+};
+
+const LOTS: Rows = Rows {
+    table: "lot",
+    columns: "source_id, code, sampled_at, first_seen_at",
+    params: 4,
+    what: "recording lots",
+};
+
+const SAMPLES: Rows = Rows {
+    table: "sample",
+    columns: "lot_id, series_id, file_id, n, mean, m2, min_value, max_value, sampled_at, \
+        content_digest, sd",
+    params: 11,
+    what: "recording samples",
+};
 
 const SELECT_VALUES: &str = "SELECT values_json FROM sample_values WHERE sample_id = ?1";
 
@@ -74,16 +159,6 @@ pub(super) fn borrow(handle: NonNull<sqlite3>) -> Result<Connection> {
     unsafe { Connection::from_handle(handle.as_ptr()) }.doing("borrowing the connection")
 }
 
-const INSERT_FILE: &str = "INSERT INTO ingested_file (content_hash, file_name, received_at, \
-     layout, row_count, site) VALUES (?1, ?2, ?3, ?4, ?5, ?6)";
-
-const INSERT_LOT: &str =
-    "INSERT INTO lot (source_id, code, sampled_at, first_seen_at) VALUES (?1, ?2, ?3, ?4)";
-
-const INSERT_SAMPLE: &str = "INSERT INTO sample (lot_id, series_id, file_id, n, mean, m2, \
-     min_value, max_value, sampled_at, content_digest, sd) \
-     VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11)";
-
 /// A new sample with the ids it is stored under.
 pub(super) struct PendingSample<'a> {
     pub sample: &'a NewSample,
@@ -100,22 +175,18 @@ pub(super) fn insert_files(
     received_at: &str,
     site: &str,
 ) -> Result<HashMap<usize, i64>> {
-    const WHAT: &str = "recording files";
     let conn = borrow(handle)?;
-    let mut stmt = conn.prepare(INSERT_FILE).doing(WHAT)?;
-    stmt.raw_bind_parameter(3, received_at).doing(WHAT)?;
-    stmt.raw_bind_parameter(6, site).doing(WHAT)?;
-    let mut ids = HashMap::with_capacity(to_store.len());
-    for i in to_store {
+    let first = FILES.insert(&conn, to_store, |stmt, at, i| {
         let f = &files[*i];
-        stmt.raw_bind_parameter(1, f.hash.as_str()).doing(WHAT)?;
-        stmt.raw_bind_parameter(2, f.name.as_str()).doing(WHAT)?;
-        stmt.raw_bind_parameter(4, f.layout).doing(WHAT)?;
-        stmt.raw_bind_parameter(5, f.rows as i64).doing(WHAT)?;
-        stmt.raw_execute().doing(WHAT)?;
-        ids.insert(*i, conn.last_insert_rowid());
-    }
-    Ok(ids)
+        stmt.raw_bind_parameter(at + 1, f.hash.as_str())
+            .and_then(|()| stmt.raw_bind_parameter(at + 2, f.name.as_str()))
+            .and_then(|()| stmt.raw_bind_parameter(at + 3, received_at))
+            .and_then(|()| stmt.raw_bind_parameter(at + 4, f.layout))
+            .and_then(|()| stmt.raw_bind_parameter(at + 5, f.rows as i64))
+            .and_then(|()| stmt.raw_bind_parameter(at + 6, site))
+            .doing(FILES.what)
+    })?;
+    Ok(to_store.iter().copied().zip(first..).collect())
 }
 
 /// Inserts new lots ((source id, code), earliest sampling time); adds their ids to `lot_ids`.
@@ -125,16 +196,16 @@ pub(super) fn insert_lots(
     received_at: &str,
     lot_ids: &mut HashMap<(i64, String), i64>,
 ) -> Result<()> {
-    const WHAT: &str = "recording lots";
     let conn = borrow(handle)?;
-    let mut stmt = conn.prepare(INSERT_LOT).doing(WHAT)?;
-    stmt.raw_bind_parameter(4, received_at).doing(WHAT)?;
-    for ((source_id, code), time) in new_lots {
-        stmt.raw_bind_parameter(1, source_id).doing(WHAT)?;
-        stmt.raw_bind_parameter(2, code).doing(WHAT)?;
-        stmt.raw_bind_parameter(3, time).doing(WHAT)?;
-        stmt.raw_execute().doing(WHAT)?;
-        lot_ids.insert((*source_id, code.to_string()), conn.last_insert_rowid());
+    let first = LOTS.insert(&conn, new_lots, |stmt, at, ((source_id, code), time)| {
+        stmt.raw_bind_parameter(at + 1, source_id)
+            .and_then(|()| stmt.raw_bind_parameter(at + 2, code))
+            .and_then(|()| stmt.raw_bind_parameter(at + 3, time))
+            .and_then(|()| stmt.raw_bind_parameter(at + 4, received_at))
+            .doing(LOTS.what)
+    })?;
+    for (((source_id, code), _), id) in new_lots.iter().zip(first..) {
+        lot_ids.insert((*source_id, code.to_string()), id);
     }
     Ok(())
 }
@@ -145,29 +216,33 @@ pub(super) fn insert_samples<'a>(
     inserts: &[PendingSample<'a>],
     sample_ids: &mut Vec<(i64, &'a NewSample)>,
 ) -> Result<()> {
-    const WHAT: &str = "recording samples";
     let conn = borrow(handle)?;
-    let mut stmt = conn.prepare(INSERT_SAMPLE).doing(WHAT)?;
-    for p in inserts {
-        let s = &p.sample.summary;
-        let n = s.n() as i64;
-        stmt.raw_bind_parameter(1, p.lot_id).doing(WHAT)?;
-        stmt.raw_bind_parameter(2, p.series_id).doing(WHAT)?;
-        stmt.raw_bind_parameter(3, p.file_id).doing(WHAT)?;
-        stmt.raw_bind_parameter(4, n).doing(WHAT)?;
-        stmt.raw_bind_parameter(5, s.mean()).doing(WHAT)?;
-        stmt.raw_bind_parameter(6, s.m2()).doing(WHAT)?;
-        stmt.raw_bind_parameter(7, s.min()).doing(WHAT)?;
-        stmt.raw_bind_parameter(8, s.max()).doing(WHAT)?;
-        stmt.raw_bind_parameter(9, p.sample.earliest.as_deref())
-            .doing(WHAT)?;
-        stmt.raw_bind_parameter(10, p.sample.digest.hex())
-            .doing(WHAT)?;
-        stmt.raw_bind_parameter(11, sd(n, s.m2())).doing(WHAT)?;
-        stmt.raw_execute().doing(WHAT)?;
-        sample_ids.push((conn.last_insert_rowid(), p.sample));
-    }
+    let first = SAMPLES.insert(&conn, inserts, |stmt, at, p| {
+        bind_sample(stmt, at, p).doing(SAMPLES.what)
+    })?;
+    sample_ids.extend((first..).zip(inserts.iter().map(|p| p.sample)));
     Ok(())
+}
+
+/// Binds one row of [`SAMPLES`] as parameters `first + 1` to `first + 11`.
+fn bind_sample(
+    stmt: &mut rusqlite::Statement<'_>,
+    first: usize,
+    p: &PendingSample<'_>,
+) -> rusqlite::Result<()> {
+    let s = &p.sample.summary;
+    let n = s.n() as i64;
+    stmt.raw_bind_parameter(first + 1, p.lot_id)?;
+    stmt.raw_bind_parameter(first + 2, p.series_id)?;
+    stmt.raw_bind_parameter(first + 3, p.file_id)?;
+    stmt.raw_bind_parameter(first + 4, n)?;
+    stmt.raw_bind_parameter(first + 5, s.mean())?;
+    stmt.raw_bind_parameter(first + 6, s.m2())?;
+    stmt.raw_bind_parameter(first + 7, s.min())?;
+    stmt.raw_bind_parameter(first + 8, s.max())?;
+    stmt.raw_bind_parameter(first + 9, p.sample.earliest.as_deref())?;
+    stmt.raw_bind_parameter(first + 10, p.sample.digest.hex())?;
+    stmt.raw_bind_parameter(first + 11, sd(n, s.m2()))
 }
 
 /// Inserts the unit values of each `(sample id, sample)`: one `sample_values` row per sample
@@ -196,10 +271,9 @@ pub(super) fn insert_measurements(
     Ok(())
 }
 
-/// Inserts the evaluation of every decision, [`EVALUATIONS_PER_STATEMENT`] rows per step of
-/// one prepared statement (an engine pass of a backfill writes hundreds of thousands), and
-/// returns each row's id by (sample id, kind), read back by id range. `baseline_ids` holds the
-/// current baseline of every decided series; `site` is the deciding daemon's.
+/// Inserts the evaluation of every decision (an engine pass of a backfill writes hundreds of
+/// thousands) and returns each row's id by (sample id, kind). `baseline_ids` holds the current
+/// baseline of every decided series; `site` is the deciding daemon's.
 pub(super) fn insert_evaluations(
     handle: NonNull<sqlite3>,
     decisions: &[Decision],
@@ -207,21 +281,8 @@ pub(super) fn insert_evaluations(
     at: &str,
     site: &str,
 ) -> Result<HashMap<(i64, &'static str), i64>> {
-    const WHAT: &str = "recording decisions";
     let conn = borrow(handle)?;
-    let before: i64 = conn
-        .query_row("SELECT COALESCE(MAX(id), 0) FROM evaluation", [], |r| {
-            r.get(0)
-        })
-        .doing(WHAT)?;
-    let mut many = conn
-        .prepare(&insert_evaluations_sql(EVALUATIONS_PER_STATEMENT))
-        .doing("preparing the insert of decisions")?;
-    let mut one = conn
-        .prepare(&insert_evaluations_sql(1))
-        .doing("preparing the insert of decisions")?;
-    // Binds decision `d` as the statement's row starting after parameter `first`.
-    let bind = |stmt: &mut rusqlite::Statement<'_>, first: usize, d: &Decision| {
+    let first = EVALUATIONS.insert(&conn, decisions, |stmt, first, d| {
         let e = &d.evaluation;
         let baseline_id = *baseline_ids.get(&e.series_id).ok_or_else(|| {
             StoreError::Corrupt(format!(
@@ -229,57 +290,15 @@ pub(super) fn insert_evaluations(
                 e.series_id
             ))
         })?;
-        bind_evaluation(stmt, first, e, baseline_id, at, site).doing(WHAT)
-    };
-    let mut chunks = decisions.chunks_exact(EVALUATIONS_PER_STATEMENT);
-    for chunk in &mut chunks {
-        for (k, d) in chunk.iter().enumerate() {
-            bind(&mut many, k * EVALUATION_PARAMS, d)?;
-        }
-        many.raw_execute().doing(WHAT)?;
-    }
-    for d in chunks.remainder() {
-        bind(&mut one, 0, d)?;
-        one.raw_execute().doing(WHAT)?;
-    }
-    drop((many, one));
-    evaluation_ids(&conn, decisions, before)
+        bind_evaluation(stmt, first, e, baseline_id, at, site).doing(EVALUATIONS.what)
+    })?;
+    let keys = decisions
+        .iter()
+        .map(|d| (d.evaluation.sample_id, d.evaluation.kind));
+    Ok(keys.zip(first..).collect())
 }
 
-/// The ids of the evaluations inserted after id `before`, by (sample id, kind); every decision
-/// must be among them.
-fn evaluation_ids(
-    conn: &Connection,
-    decisions: &[Decision],
-    before: i64,
-) -> Result<HashMap<(i64, &'static str), i64>> {
-    const WHAT: &str = "recording decisions";
-    let mut kinds: Vec<&'static str> = decisions.iter().map(|d| d.evaluation.kind).collect();
-    kinds.sort_unstable();
-    kinds.dedup();
-    let mut stmt = conn
-        .prepare("SELECT id, sample_id, kind FROM evaluation WHERE id > ?1")
-        .doing(WHAT)?;
-    let mut rows = stmt.query([before]).doing(WHAT)?;
-    let mut ids = HashMap::with_capacity(decisions.len());
-    while let Some(r) = rows.next().doing(WHAT)? {
-        let kind = r.get_ref(2).doing(WHAT)?;
-        let kind = kinds.iter().find(|k| kind.as_str().ok() == Some(**k));
-        if let Some(kind) = kind {
-            ids.insert((r.get(1).doing(WHAT)?, *kind), r.get(0).doing(WHAT)?);
-        }
-    }
-    if ids.len() != decisions.len() {
-        return Err(StoreError::Corrupt(format!(
-            "{} decisions written, {} read back by id",
-            decisions.len(),
-            ids.len()
-        )));
-    }
-    Ok(ids)
-}
-
-/// Binds one row of [`EVALUATION_COLUMNS`] as parameters `first + 1` to `first + 37` (an
+/// Binds one row of [`EVALUATIONS`] as parameters `first + 1` to `first + 37` (an
 /// interval bound that is not finite is NULL).
 fn bind_evaluation(
     stmt: &mut rusqlite::Statement<'_>,
@@ -502,6 +521,58 @@ pub(super) fn pending_samples(
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    const NUMBERS: Rows = Rows {
+        table: "t",
+        columns: "v, w",
+        params: 2,
+        what: "test rows",
+    };
+
+    fn numbers_table() -> Connection {
+        let conn = Connection::open_in_memory().unwrap();
+        conn.execute_batch("CREATE TABLE t (id INTEGER PRIMARY KEY, v INTEGER, w TEXT)")
+            .unwrap();
+        conn
+    }
+
+    fn bind_number(stmt: &mut rusqlite::Statement<'_>, at: usize, v: &i64) -> Result<()> {
+        stmt.raw_bind_parameter(at + 1, v)
+            .and_then(|()| stmt.raw_bind_parameter(at + 2, format!("w{v}")))
+            .doing("test rows")
+    }
+
+    /// Full statements and a remainder, after rows already there: item k is row first + k.
+    #[test]
+    fn multi_row_inserts_give_each_item_its_id() {
+        let conn = numbers_table();
+        conn.execute("INSERT INTO t (id, v) VALUES (41, -1)", [])
+            .unwrap();
+        for n in [0, 1, ROWS_PER_STATEMENT, 2 * ROWS_PER_STATEMENT + 44] {
+            let items: Vec<i64> = (0..n as i64).map(|k| k * 7).collect();
+            let first = NUMBERS.insert(&conn, &items, bind_number).unwrap();
+            for (k, v) in items.iter().enumerate() {
+                let (got_v, got_w): (i64, String) = conn
+                    .query_row(
+                        "SELECT v, w FROM t WHERE id = ?1",
+                        [first + k as i64],
+                        |r| Ok((r.get(0)?, r.get(1)?)),
+                    )
+                    .unwrap();
+                assert_eq!((got_v, got_w), (*v, format!("w{v}")));
+            }
+        }
+    }
+
+    /// Past the largest rowid SQLite numbers new rows at random: refused, not mis-numbered.
+    #[test]
+    fn ids_that_are_not_consecutive_are_an_error() {
+        let conn = numbers_table();
+        conn.execute("INSERT INTO t (id, v) VALUES (9223372036854775807, 0)", [])
+            .unwrap();
+        let err = NUMBERS.insert(&conn, &[1, 2, 3], bind_number).unwrap_err();
+        assert!(matches!(err, StoreError::Corrupt(_)), "{err}");
+    }
 
     // More digits than a double holds, on purpose: the value a person typed.
     #[allow(clippy::excessive_precision)]
