@@ -92,79 +92,43 @@ pub async fn evaluate(store: &Store, config: &Config) -> Result<PassCounts, Engi
     result
 }
 
+/// The chunks are pipelined: while one chunk is decided on a blocking thread (pure
+/// computation), the next chunk's unit values are read and the previous chunk's decisions are
+/// written. Chunks never share a series, and the state every decision starts from was read
+/// before the first chunk, so no chunk's reads depend on another's writes.
 async fn evaluate_locked(store: &Store, config: &Config) -> Result<PassCounts, EngineError> {
     let mut work = store.pending_work().await?;
     let mut total = PassCounts::default();
-    while !work.is_empty() {
-        let end = chunk_end(&work);
-        let mut chunk: Vec<SeriesWork> = work.drain(..end).collect();
-        // Unit values of every lot to be screened: the pending lots (a baseline about to be
-        // frozen is among them). Read once; the checks below use them too.
-        for w in &mut chunk {
-            let ids: Vec<i64> = w.pending.iter().map(|s| s.sample_id).collect();
-            w.values = store.unit_values(&ids).await?;
-        }
-        // Baselines about to be frozen get their residuals' normality checked; series whose
-        // baseline is clearly non-normal without a between-lot component are tested on their
-        // unit values, distribution-free.
-        for w in &mut chunk {
-            let n = config.monitor.baseline_lots;
-            let baseline_ids: Option<Vec<i64>> = match &w.baseline {
-                Some(b) if distribution_free(&b.design) => {
-                    Some(store.baseline_samples(b.id).await?)
-                }
-                Some(_) => None,
-                None if w.pending.len() >= n => {
-                    let ids: Vec<i64> = w.pending[..n].iter().map(|s| s.sample_id).collect();
-                    let residuals = residuals_of(&w.values, &w.pending[..n], RESIDUALS_LIMIT);
-                    let summaries: Vec<Summary> =
-                        w.pending[..n].iter().map(|s| s.summary).collect();
-                    let non_normal = crate::stats::normality::shapiro_wilk(&residuals)
-                        .is_ok_and(|r| r.p_value < NON_NORMAL_P);
-                    let no_between = monitoring::random_effects(&summaries)
-                        .is_ok_and(|re| re.var_between == 0.0);
-                    w.baseline_residuals = Some(residuals);
-                    (non_normal && no_between).then_some(ids)
-                }
-                None => None,
-            };
-            if let Some(base_ids) = baseline_ids {
-                let lots = w
-                    .values
-                    .iter()
-                    .filter(|(id, _)| !base_ids.contains(id))
-                    .map(|(id, units)| (*id, units.iter().map(|u| u.1).collect()))
-                    .collect();
-                let base = store.values(&base_ids).await?;
-                w.units = Some(crate::store::UnitValues {
-                    baseline: base.into_values().flatten().collect(),
-                    lots,
-                });
-            }
-        }
-        let mut pass = decide_at(
-            &chunk,
-            &config.monitor,
-            config.alerts.repeat,
-            chrono::Utc::now(),
-        );
-        pass.recipients = chunk
-            .iter()
-            .map(|w| {
-                (
-                    w.series_id,
-                    recipients(config, &w.source, &w.characteristic),
-                )
+    let mut deciding: Option<tokio::task::JoinHandle<(Vec<SeriesWork>, EnginePass)>> = None;
+    loop {
+        let next = if work.is_empty() {
+            None
+        } else {
+            let end = chunk_end(&work);
+            Some(read_chunk(store, config, work.drain(..end).collect()).await?)
+        };
+        let decided = match deciding.take() {
+            // A panic while deciding is the engine's own bug: it surfaces here as it was.
+            Some(handle) => Some(
+                handle
+                    .await
+                    .unwrap_or_else(|e| std::panic::resume_unwind(e.into_panic())),
+            ),
+            None => None,
+        };
+        deciding = next.map(|chunk| {
+            let (monitor, repeat) = (config.monitor.clone(), config.alerts.repeat);
+            tokio::task::spawn_blocking(move || {
+                let pass = decide_at(&chunk, &monitor, repeat, chrono::Utc::now());
+                (chunk, pass)
             })
-            .collect();
-        let counts = store.write_pass(&pass, &now_rfc3339()).await?;
-        log_outliers(&chunk, &pass);
-        total.baselines += counts.baselines;
-        total.evaluations += counts.evaluations;
-        total.opened += counts.opened;
-        total.resolved += counts.resolved;
-        total.reopened += counts.reopened;
-        total.outliers += counts.outliers;
+        });
+        if let Some((chunk, pass)) = decided {
+            write_chunk(store, config, &chunk, pass, &mut total).await?;
+        }
+        if deciding.is_none() {
+            break;
+        }
     }
     if total.evaluations > 0 || total.baselines > 0 {
         tracing::info!(
@@ -178,6 +142,85 @@ async fn evaluate_locked(store: &Store, config: &Config) -> Result<PassCounts, E
         );
     }
     Ok(total)
+}
+
+/// Reads what deciding `chunk` needs beyond the pending work: the unit values of its lots and,
+/// for series tested distribution-free, their baseline's.
+async fn read_chunk(
+    store: &Store,
+    config: &Config,
+    mut chunk: Vec<SeriesWork>,
+) -> Result<Vec<SeriesWork>, EngineError> {
+    // Unit values of every lot to be screened: the pending lots (a baseline about to be
+    // frozen is among them). Read once; the checks below use them too.
+    for w in &mut chunk {
+        let ids: Vec<i64> = w.pending.iter().map(|s| s.sample_id).collect();
+        w.values = store.unit_values(&ids).await?;
+    }
+    // Baselines about to be frozen get their residuals' normality checked; series whose
+    // baseline is clearly non-normal without a between-lot component are tested on their
+    // unit values, distribution-free.
+    for w in &mut chunk {
+        let n = config.monitor.baseline_lots;
+        let baseline_ids: Option<Vec<i64>> = match &w.baseline {
+            Some(b) if distribution_free(&b.design) => Some(store.baseline_samples(b.id).await?),
+            Some(_) => None,
+            None if w.pending.len() >= n => {
+                let ids: Vec<i64> = w.pending[..n].iter().map(|s| s.sample_id).collect();
+                let residuals = residuals_of(&w.values, &w.pending[..n], RESIDUALS_LIMIT);
+                let summaries: Vec<Summary> = w.pending[..n].iter().map(|s| s.summary).collect();
+                let non_normal = crate::stats::normality::shapiro_wilk(&residuals)
+                    .is_ok_and(|r| r.p_value < NON_NORMAL_P);
+                let no_between =
+                    monitoring::random_effects(&summaries).is_ok_and(|re| re.var_between == 0.0);
+                w.baseline_residuals = Some(residuals);
+                (non_normal && no_between).then_some(ids)
+            }
+            None => None,
+        };
+        if let Some(base_ids) = baseline_ids {
+            let lots = w
+                .values
+                .iter()
+                .filter(|(id, _)| !base_ids.contains(id))
+                .map(|(id, units)| (*id, units.iter().map(|u| u.1).collect()))
+                .collect();
+            let base = store.values(&base_ids).await?;
+            w.units = Some(crate::store::UnitValues {
+                baseline: base.into_values().flatten().collect(),
+                lots,
+            });
+        }
+    }
+    Ok(chunk)
+}
+
+/// Writes the decisions of `chunk` and adds their counts to `total`.
+async fn write_chunk(
+    store: &Store,
+    config: &Config,
+    chunk: &[SeriesWork],
+    mut pass: EnginePass,
+    total: &mut PassCounts,
+) -> Result<(), EngineError> {
+    pass.recipients = chunk
+        .iter()
+        .map(|w| {
+            (
+                w.series_id,
+                recipients(config, &w.source, &w.characteristic),
+            )
+        })
+        .collect();
+    let counts = store.write_pass(&pass, &now_rfc3339()).await?;
+    log_outliers(chunk, &pass);
+    total.baselines += counts.baselines;
+    total.evaluations += counts.evaluations;
+    total.opened += counts.opened;
+    total.resolved += counts.resolved;
+    total.reopened += counts.reopened;
+    total.outliers += counts.outliers;
+    Ok(())
 }
 
 /// Most baseline residuals given to the normality check.
