@@ -29,9 +29,11 @@ use crate::stats::Summary;
 use crate::store::{FileOutcome, NewFile, NewSample, Replacement, SampleDigest, Store, StoreError};
 use crate::time::now_rfc3339;
 
-/// Files per store transaction, and values per transaction, whichever is reached first.
-const BATCH_FILES: usize = 256;
-const BATCH_VALUES: usize = 40_000;
+/// Files per store transaction, and values per transaction, whichever is reached first. A
+/// batch costs a commit (an fsync and a WAL checkpoint now and then), the plan's lookups and
+/// partly filled multi-row inserts; 1,024 small files hold about 100,000 values, a few MB.
+const BATCH_FILES: usize = 1024;
+const BATCH_VALUES: usize = 160_000;
 /// A batch at least this large (a year exported as one file) hands its freed memory back to
 /// the system once it is stored (see [`release_freed_memory`]).
 const LARGE_BATCH_VALUES: usize = 1_000_000;
