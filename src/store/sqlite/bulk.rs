@@ -71,25 +71,21 @@ impl Rows {
             conn.query_row(&sql, [], |r| r.get(0)).doing(self.what)
         };
         let before = largest(conn)?;
-        let mut chunks = items.chunks_exact(ROWS_PER_STATEMENT);
-        if chunks.len() > 0 {
-            let sql = insert_sql(self.table, self.columns, self.params, ROWS_PER_STATEMENT);
-            let mut many = conn.prepare(&sql).doing(self.what)?;
-            for chunk in &mut chunks {
-                for (k, item) in chunk.iter().enumerate() {
-                    bind(&mut many, k * self.params, item)?;
-                }
-                many.raw_execute().doing(self.what)?;
+        // One statement per chunk length: the full chunks share one, the remainder has its own.
+        let mut prepared: Option<(usize, rusqlite::Statement<'_>)> = None;
+        for chunk in items.chunks(ROWS_PER_STATEMENT) {
+            if prepared
+                .as_ref()
+                .is_none_or(|(rows, _)| *rows != chunk.len())
+            {
+                let sql = insert_sql(self.table, self.columns, self.params, chunk.len());
+                prepared = Some((chunk.len(), conn.prepare(&sql).doing(self.what)?));
             }
-        }
-        let rest = chunks.remainder();
-        if !rest.is_empty() {
-            let sql = insert_sql(self.table, self.columns, self.params, rest.len());
-            let mut last = conn.prepare(&sql).doing(self.what)?;
-            for (k, item) in rest.iter().enumerate() {
-                bind(&mut last, k * self.params, item)?;
+            let (_, stmt) = prepared.as_mut().expect("prepared above");
+            for (k, item) in chunk.iter().enumerate() {
+                bind(stmt, k * self.params, item)?;
             }
-            last.raw_execute().doing(self.what)?;
+            stmt.raw_execute().doing(self.what)?;
         }
         let after = largest(conn)?;
         if after - before != items.len() as i64 {
