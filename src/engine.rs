@@ -105,7 +105,7 @@ async fn evaluate_locked(store: &Store, config: &Config) -> Result<PassCounts, E
             None
         } else {
             let end = chunk_end(&work);
-            Some(read_chunk(store, config, work.drain(..end).collect()).await?)
+            Some(read_chunk(store, work.drain(..end).collect()).await?)
         };
         let decided = match deciding.take() {
             // A panic while deciding is the engine's own bug: it surfaces here as it was.
@@ -119,6 +119,10 @@ async fn evaluate_locked(store: &Store, config: &Config) -> Result<PassCounts, E
         deciding = next.map(|chunk| {
             let (monitor, repeat) = (config.monitor.clone(), config.alerts.repeat);
             tokio::task::spawn_blocking(move || {
+                let mut chunk = chunk;
+                for w in &mut chunk {
+                    about_to_freeze(w, monitor.baseline_lots);
+                }
                 let pass = decide_at(&chunk, &monitor, repeat, chrono::Utc::now());
                 (chunk, pass)
             })
@@ -148,51 +152,75 @@ async fn evaluate_locked(store: &Store, config: &Config) -> Result<PassCounts, E
 /// for series tested distribution-free, their baseline's.
 async fn read_chunk(
     store: &Store,
-    config: &Config,
     mut chunk: Vec<SeriesWork>,
 ) -> Result<Vec<SeriesWork>, EngineError> {
     // Unit values of every lot to be screened: the pending lots (a baseline about to be
     // frozen is among them). Read once; the checks below use them too.
     for w in &mut chunk {
-        let ids: Vec<i64> = w.pending.iter().map(|s| s.sample_id).collect();
-        w.values = store.unit_values(&ids).await?;
+        w.values = store.pending_values(&w.pending).await?;
     }
-    // Baselines about to be frozen get their residuals' normality checked; series whose
-    // baseline is clearly non-normal without a between-lot component are tested on their
-    // unit values, distribution-free.
+    // Series on a frozen distribution-free baseline are tested on unit values: their
+    // baseline's too. (A baseline about to be frozen is checked by `about_to_freeze`, in the
+    // deciding step: its lots are among the pending ones.)
     for w in &mut chunk {
-        let n = config.monitor.baseline_lots;
-        let baseline_ids: Option<Vec<i64>> = match &w.baseline {
-            Some(b) if distribution_free(&b.design) => Some(store.baseline_samples(b.id).await?),
-            Some(_) => None,
-            None if w.pending.len() >= n => {
-                let ids: Vec<i64> = w.pending[..n].iter().map(|s| s.sample_id).collect();
-                let residuals = residuals_of(&w.values, &w.pending[..n], RESIDUALS_LIMIT);
-                let summaries: Vec<Summary> = w.pending[..n].iter().map(|s| s.summary).collect();
-                let non_normal = crate::stats::normality::shapiro_wilk(&residuals)
-                    .is_ok_and(|r| r.p_value < NON_NORMAL_P);
-                let no_between =
-                    monitoring::random_effects(&summaries).is_ok_and(|re| re.var_between == 0.0);
-                w.baseline_residuals = Some(residuals);
-                (non_normal && no_between).then_some(ids)
-            }
-            None => None,
+        let Some(b) = w.baseline.as_ref().filter(|b| distribution_free(&b.design)) else {
+            continue;
         };
-        if let Some(base_ids) = baseline_ids {
-            let lots = w
-                .values
-                .iter()
-                .filter(|(id, _)| !base_ids.contains(id))
-                .map(|(id, units)| (*id, units.iter().map(|u| u.1).collect()))
-                .collect();
-            let base = store.values(&base_ids).await?;
-            w.units = Some(crate::store::UnitValues {
-                baseline: base.into_values().flatten().collect(),
-                lots,
-            });
-        }
+        let base_ids = store.baseline_samples(b.id).await?;
+        let base = store.values(&base_ids).await?;
+        w.units = Some(unit_values_beside(
+            &w.values,
+            &base_ids,
+            base.into_values().flatten(),
+        ));
     }
     Ok(chunk)
+}
+
+/// Unit values for the distribution-free tests: the baseline's, and those of every other lot
+/// of `values` by sample id.
+fn unit_values_beside(
+    values: &std::collections::HashMap<i64, Vec<(i64, f64)>>,
+    base_ids: &[i64],
+    baseline: impl Iterator<Item = f64>,
+) -> crate::store::UnitValues {
+    let lots = values
+        .iter()
+        .filter(|(id, _)| !base_ids.contains(id))
+        .map(|(id, units)| (*id, units.iter().map(|u| u.1).collect()))
+        .collect();
+    crate::store::UnitValues {
+        baseline: baseline.collect(),
+        lots,
+    }
+}
+
+/// For a series whose baseline is about to be frozen (`n` lots pending, no baseline yet):
+/// the within-lot residuals of those lots for the normality check, and, when they are clearly
+/// non-normal and the lots show no between-lot component, the unit values to test it on
+/// distribution-free. Pure computation on values already read, so it runs in the deciding
+/// step, off the writer's thread.
+fn about_to_freeze(w: &mut SeriesWork, n: usize) {
+    if w.baseline.is_some() || w.pending.len() < n {
+        return;
+    }
+    let lots = &w.pending[..n];
+    let residuals = residuals_of(&w.values, lots, RESIDUALS_LIMIT);
+    let summaries: Vec<Summary> = lots.iter().map(|s| s.summary).collect();
+    let non_normal =
+        crate::stats::normality::shapiro_wilk(&residuals).is_ok_and(|r| r.p_value < NON_NORMAL_P);
+    let no_between = monitoring::random_effects(&summaries).is_ok_and(|re| re.var_between == 0.0);
+    if non_normal && no_between {
+        let ids: Vec<i64> = lots.iter().map(|s| s.sample_id).collect();
+        let baseline = ids
+            .iter()
+            .filter_map(|id| w.values.get(id))
+            .flatten()
+            .map(|u| u.1);
+        let units = unit_values_beside(&w.values, &ids, baseline);
+        w.units = Some(units);
+    }
+    w.baseline_residuals = Some(residuals);
 }
 
 /// Writes the decisions of `chunk` and adds their counts to `total`.
@@ -1336,6 +1364,7 @@ mod chunk_tests {
                 order_time: String::new(),
                 summary,
                 evaluated: false,
+                file_id: 0,
             })
             .collect();
         w

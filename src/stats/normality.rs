@@ -61,34 +61,7 @@ pub fn shapiro_wilk(x: &[f64]) -> Result<ShapiroWilkResult, StatsError> {
     }
     let nf = n as f64;
     let half = n / 2;
-    // Coefficients a[0..half] for the pairs (x_(n−1−i), x_(i)).
-    let mut a = vec![0.0; half];
-    if n == 3 {
-        a[0] = std::f64::consts::FRAC_1_SQRT_2;
-    } else {
-        let m: Vec<f64> = (1..=half)
-            .map(|i| norm_quantile_for_sw((i as f64 - 0.375) / (nf + 0.25)))
-            .collect();
-        let summ2 = 2.0 * m.iter().map(|v| v * v).sum::<f64>();
-        let ssumm2 = summ2.sqrt();
-        let rsn = 1.0 / nf.sqrt();
-        let a1 = poly(&C1, rsn) - m[0] / ssumm2;
-        let (first, fac) = if n > 5 {
-            let a2 = -m[1] / ssumm2 + poly(&C2, rsn);
-            let fac = ((summ2 - 2.0 * m[0] * m[0] - 2.0 * m[1] * m[1])
-                / (1.0 - 2.0 * a1 * a1 - 2.0 * a2 * a2))
-                .sqrt();
-            a[1] = a2;
-            (2, fac)
-        } else {
-            let fac = ((summ2 - 2.0 * m[0] * m[0]) / (1.0 - 2.0 * a1 * a1)).sqrt();
-            (1, fac)
-        };
-        a[0] = a1;
-        for i in first..half {
-            a[i] = -m[i] / fac;
-        }
-    }
+    let a = coefficients(n);
     // W = (Σ a_i (x_(n−i) − x_(i)))² / Σ (x − x̄)², on data scaled by the range.
     let scaled: Vec<f64> = xs.iter().map(|&v| (v - xs[0]) / range).collect();
     let mean = scaled.iter().sum::<f64>() / nf;
@@ -106,6 +79,63 @@ pub fn shapiro_wilk(x: &[f64]) -> Result<ShapiroWilkResult, StatsError> {
         p_value: p_value.clamp(0.0, 1.0),
         n,
     })
+}
+
+/// The Shapiro–Wilk coefficients for `n` values, from a process-wide memo: they depend on
+/// `n` alone, and a backfill tests hundreds of baselines of the same size (computing them is
+/// `n / 2` normal quantiles, most of the cost of a test). At most [`MEMO_SIZES`] sizes are
+/// kept: a daemon that meets more starts the memo afresh.
+fn coefficients(n: usize) -> std::sync::Arc<[f64]> {
+    let mut memo = MEMO
+        .lock()
+        .unwrap_or_else(std::sync::PoisonError::into_inner);
+    if memo.len() >= MEMO_SIZES && !memo.contains_key(&n) {
+        memo.clear();
+    }
+    memo.entry(n)
+        .or_insert_with(|| compute_coefficients(n).into())
+        .clone()
+}
+
+/// Sample sizes whose coefficients [`coefficients`] keeps (at most 20 KB each).
+const MEMO_SIZES: usize = 64;
+
+type Memo = std::collections::HashMap<usize, std::sync::Arc<[f64]>>;
+static MEMO: std::sync::LazyLock<std::sync::Mutex<Memo>> =
+    std::sync::LazyLock::new(Default::default);
+
+/// Coefficients a[0..n/2] for the pairs (x_(n−1−i), x_(i)), 3 ≤ n.
+fn compute_coefficients(n: usize) -> Vec<f64> {
+    let nf = n as f64;
+    let half = n / 2;
+    let mut a = vec![0.0; half];
+    if n == 3 {
+        a[0] = std::f64::consts::FRAC_1_SQRT_2;
+        return a;
+    }
+    let m: Vec<f64> = (1..=half)
+        .map(|i| norm_quantile_for_sw((i as f64 - 0.375) / (nf + 0.25)))
+        .collect();
+    let summ2 = 2.0 * m.iter().map(|v| v * v).sum::<f64>();
+    let ssumm2 = summ2.sqrt();
+    let rsn = 1.0 / nf.sqrt();
+    let a1 = poly(&C1, rsn) - m[0] / ssumm2;
+    let (first, fac) = if n > 5 {
+        let a2 = -m[1] / ssumm2 + poly(&C2, rsn);
+        let fac = ((summ2 - 2.0 * m[0] * m[0] - 2.0 * m[1] * m[1])
+            / (1.0 - 2.0 * a1 * a1 - 2.0 * a2 * a2))
+            .sqrt();
+        a[1] = a2;
+        (2, fac)
+    } else {
+        let fac = ((summ2 - 2.0 * m[0] * m[0]) / (1.0 - 2.0 * a1 * a1)).sqrt();
+        (1, fac)
+    };
+    a[0] = a1;
+    for i in first..half {
+        a[i] = -m[i] / fac;
+    }
+    a
 }
 
 /// Royston's p-value for W.
@@ -129,4 +159,28 @@ fn sw_p_value(w: f64, n: usize) -> f64 {
         (w1, poly(&C5, ln_n), poly(&C6, ln_n).exp())
     };
     norm_sf_raw((y - m) / s)
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// The memo hands out the coefficients it would compute, stays bounded when more sizes
+    /// come than it keeps, and leaves the statistic bit for bit as before.
+    #[test]
+    fn memo_gives_the_computed_coefficients_and_stays_bounded() {
+        for n in 3..(3 + MEMO_SIZES + 10) {
+            assert_eq!(*coefficients(n), *compute_coefficients(n), "n = {n}");
+        }
+        assert!(MEMO.lock().unwrap().len() <= MEMO_SIZES);
+        let x: Vec<f64> = (0..40)
+            .map(|i| ((i * 37) % 23) as f64 + 0.5 * i as f64)
+            .collect();
+        let first = shapiro_wilk(&x).unwrap();
+        for n in 100..(100 + MEMO_SIZES + 1) {
+            coefficients(n);
+        }
+        assert!(MEMO.lock().unwrap().len() <= MEMO_SIZES);
+        assert_eq!(shapiro_wilk(&x).unwrap(), first);
+    }
 }
