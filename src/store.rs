@@ -241,6 +241,22 @@ impl Store {
         on_backend!(self.pending_work())
     }
 
+    /// (seq, value) of every unit of the given pending samples, in seq order, as
+    /// [`Store::unit_values`] reads them. On SQLite, values this process stored since the
+    /// last read come from memory when the sample still comes from the same file.
+    pub async fn pending_values(
+        &self,
+        samples: &[SeriesSample],
+    ) -> Result<HashMap<i64, Vec<(i64, f64)>>> {
+        match &self.db {
+            Backend::Sqlite(db) => db.pending_values(samples).await,
+            Backend::Postgres(db) => {
+                let ids: Vec<i64> = samples.iter().map(|s| s.sample_id).collect();
+                db.unit_values(&ids).await
+            }
+        }
+    }
+
     /// (seq, value) of every unit of the given samples, in seq order.
     pub async fn unit_values(&self, sample_ids: &[i64]) -> Result<HashMap<i64, Vec<(i64, f64)>>> {
         on_backend!(self.unit_values(sample_ids))
@@ -672,6 +688,9 @@ pub struct SeriesSample {
     pub order_time: String,
     pub summary: Summary,
     pub evaluated: bool,
+    /// The stored file its values came from: a replacement changes it, so (sample id, file
+    /// id) names one set of unit values.
+    pub file_id: i64,
 }
 
 /// The monitoring design of a series, fixed when its baseline is frozen (built by `engine`,

@@ -263,6 +263,7 @@ pub fn run(scenario: &Scenario, monitor: &Monitor) -> Outcome {
                 order_time: format!("{l:08}"),
                 summary: Summary::from_slice(&values).expect("finite values"),
                 evaluated: false,
+                file_id: id,
             });
             w.values.insert(id, units);
         }

@@ -26,6 +26,7 @@ pub(super) mod history;
 pub(super) mod views;
 
 mod engine;
+mod fresh;
 mod ingest;
 mod outbox;
 mod reads;
@@ -53,6 +54,8 @@ pub(super) struct Db {
     names: Mutex<NameCache>,
     /// The `[site] name` recorded with each stored file and decision.
     site: String,
+    /// Unit values of samples stored by this process and not yet read by the engine.
+    fresh: Mutex<fresh::Fresh>,
 }
 
 impl Db {
@@ -111,6 +114,7 @@ impl Db {
         let store = Db {
             pool,
             names: Mutex::new(NameCache::default()),
+            fresh: Mutex::default(),
             site: site.to_string(),
         };
         store.fill_missing_sd().await?;

@@ -81,7 +81,7 @@ impl Db {
         self.open_alerts(&mut work, &index).await?;
         let mut rows = sqlx::query(
             "SELECT sm.series_id, sm.id, l.id, l.code, COALESCE(l.sampled_at, l.first_seen_at), \
-                    sm.n, sm.mean, sm.m2, sm.min_value, sm.max_value \
+                    sm.n, sm.mean, sm.m2, sm.min_value, sm.max_value, sm.file_id \
              FROM pending_sample p JOIN sample sm ON sm.id = p.sample_id \
              JOIN lot l ON l.id = sm.lot_id \
              ORDER BY p.series_id, COALESCE(l.sampled_at, l.first_seen_at), l.code",
@@ -96,6 +96,7 @@ impl Db {
                     order_time: r.get(4),
                     summary: summary_from_row(&r, 5)?,
                     evaluated: false,
+                    file_id: r.get(10),
                 });
             }
         }
@@ -289,7 +290,7 @@ impl Db {
         let rows = sqlx::query(
             "SELECT sm.id, l.id, l.code, COALESCE(l.sampled_at, l.first_seen_at), \
                     sm.n, sm.mean, sm.m2, sm.min_value, sm.max_value, \
-                    EXISTS (SELECT 1 FROM evaluation e WHERE e.sample_id = sm.id) \
+                    EXISTS (SELECT 1 FROM evaluation e WHERE e.sample_id = sm.id), sm.file_id \
              FROM sample sm JOIN lot l ON l.id = sm.lot_id WHERE sm.series_id = $1 \
              ORDER BY COALESCE(l.sampled_at, l.first_seen_at), l.code",
         )
@@ -306,6 +307,7 @@ impl Db {
                     order_time: r.get(3),
                     summary: summary_from_row(r, 4)?,
                     evaluated: r.cell(9),
+                    file_id: r.get(10),
                 })
             })
             .collect()

@@ -485,7 +485,7 @@ pub(super) fn pending_samples(
     let mut stmt = snapshot
         .prepare(
             "SELECT sm.series_id, sm.id, l.id, l.code, COALESCE(l.sampled_at, l.first_seen_at), \
-                    sm.n, sm.mean, sm.m2, sm.min_value, sm.max_value \
+                    sm.n, sm.mean, sm.m2, sm.min_value, sm.max_value, sm.file_id \
              FROM pending_sample p CROSS JOIN sample sm ON sm.id = p.sample_id \
              CROSS JOIN lot l ON l.id = sm.lot_id",
         )
@@ -506,6 +506,7 @@ pub(super) fn pending_samples(
             order_time: r.get(4).doing(WHAT)?,
             summary,
             evaluated: false,
+            file_id: r.get(10).doing(WHAT)?,
         };
         sink(r.get(0).doing(WHAT)?, sample);
     }

@@ -94,6 +94,20 @@ impl Db {
         Ok(work)
     }
 
+    /// (seq, value) of every unit of the given pending samples: those kept since this process
+    /// stored them (see [`super::fresh`]), the rest read as [`Db::unit_values`] does.
+    pub async fn pending_values(
+        &self,
+        samples: &[SeriesSample],
+    ) -> Result<HashMap<i64, Vec<(i64, f64)>>> {
+        let wanted: Vec<(i64, i64)> = samples.iter().map(|s| (s.sample_id, s.file_id)).collect();
+        let (mut found, missing) = self.fresh.lock().expect("fresh values lock").take(&wanted);
+        if !missing.is_empty() {
+            found.extend(self.unit_values(&missing).await?);
+        }
+        Ok(found)
+    }
+
     /// (seq, value) of every unit of the given samples, in seq order (see [`bulk`]).
     pub async fn unit_values(&self, sample_ids: &[i64]) -> Result<HashMap<i64, Vec<(i64, f64)>>> {
         let mut conn = self.pool.acquire().await.doing("reading unit values")?;
@@ -389,7 +403,7 @@ impl Db {
         let rows = sqlx::query(
             "SELECT sm.id, l.id, l.code, COALESCE(l.sampled_at, l.first_seen_at), \
                     sm.n, sm.mean, sm.m2, sm.min_value, sm.max_value, \
-                    EXISTS (SELECT 1 FROM evaluation e WHERE e.sample_id = sm.id) \
+                    EXISTS (SELECT 1 FROM evaluation e WHERE e.sample_id = sm.id), sm.file_id \
              FROM sample sm JOIN lot l ON l.id = sm.lot_id WHERE sm.series_id = ? \
              ORDER BY COALESCE(l.sampled_at, l.first_seen_at), l.code",
         )
@@ -406,6 +420,7 @@ impl Db {
                     order_time: r.get(3),
                     summary: summary_from_row(r, 4)?,
                     evaluated: r.get::<i64, _>(9) != 0,
+                    file_id: r.get(10),
                 })
             })
             .collect()

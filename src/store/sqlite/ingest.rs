@@ -27,10 +27,14 @@ impl Db {
     ) -> Result<Vec<FileOutcome>> {
         let mut tx = self.begin().await?;
         let mut created = NameCache::default();
-        let outcomes = self
+        let (outcomes, stored) = self
             .ingest_in(&mut tx, files, received_at, replace, &mut created)
             .await?;
         tx.commit().await.doing("committing a batch of files")?;
+        let values = stored
+            .iter()
+            .map(|(id, file, s)| (*id, *file, &s.values[..]));
+        self.fresh.lock().expect("fresh values lock").keep(values);
         let mut cache = self.names.lock().expect("name cache lock");
         cache.sources.extend(created.sources);
         cache.characteristics.extend(created.characteristics);
@@ -38,14 +42,17 @@ impl Db {
         Ok(outcomes)
     }
 
-    async fn ingest_in(
+    /// Stores `files` inside `tx`; returns each file's outcome and (sample id, file id,
+    /// sample) of every sample inserted (a replaced sample was decided before, or is read
+    /// back).
+    async fn ingest_in<'a>(
         &self,
         tx: &mut Transaction<'static, Sqlite>,
-        files: &[NewFile],
+        files: &'a [NewFile],
         received_at: &str,
         replace: Option<&Replacement<'_>>,
         created: &mut NameCache,
-    ) -> Result<Vec<FileOutcome>> {
+    ) -> Result<(Vec<FileOutcome>, Vec<(i64, i64, &'a NewSample)>)> {
         let mut look = Lookups {
             known: known_hashes(tx, files).await?,
             ..Lookups::default()
@@ -87,9 +94,16 @@ impl Db {
                 }
             }
         }
+        let replaced = sample_ids.len();
         insert_samples(tx, &inserts, &mut sample_ids).await?;
+        // `insert_samples` appends the inserted samples' ids in the order of `inserts`.
+        let stored = sample_ids[replaced..]
+            .iter()
+            .zip(&inserts)
+            .map(|((id, s), p)| (*id, p.file_id, *s))
+            .collect();
         self.insert_measurements(tx, &sample_ids).await?;
-        Ok(batch.finish(&file_ids))
+        Ok((batch.finish(&file_ids), stored))
     }
 
     /// Records the files to store; returns each one's id by its index in `files`.
