@@ -13,6 +13,10 @@ use std::collections::HashMap;
 /// Most unit values kept (8 bytes each, so 32 MiB); a batch beyond that is read back.
 pub(super) const FRESH_VALUES_MAX: usize = 4_000_000;
 
+/// A batch with more values than this (a year's export in one file) is not kept: holding its
+/// values twice while it is stored would raise the peak memory of a large file by a sixth.
+pub(super) const FRESH_BATCH_MAX: usize = 200_000;
+
 /// Values by sample id, each with the id of the file it was stored from.
 #[derive(Default)]
 pub(super) struct Fresh {
@@ -21,10 +25,14 @@ pub(super) struct Fresh {
 }
 
 impl Fresh {
-    /// Keeps the values of committed samples, given as (sample id, file id, values), while
-    /// the total stays within [`FRESH_VALUES_MAX`]. A sample kept before is replaced.
-    pub fn keep<'a>(&mut self, stored: impl IntoIterator<Item = (i64, i64, &'a [f64])>) {
-        for (sample, file, values) in stored {
+    /// Keeps the values of a committed batch's samples, given as (sample id, file id,
+    /// values), while the total stays within [`FRESH_VALUES_MAX`]; none of a batch larger
+    /// than [`FRESH_BATCH_MAX`]. A sample kept before is replaced.
+    pub fn keep(&mut self, stored: &[(i64, i64, &[f64])]) {
+        if stored.iter().map(|s| s.2.len()).sum::<usize>() > FRESH_BATCH_MAX {
+            return;
+        }
+        for &(sample, file, values) in stored {
             if let Some((_, old)) = self.by_sample.remove(&sample) {
                 self.values -= old.len();
             }
@@ -72,7 +80,7 @@ mod tests {
     #[test]
     fn values_are_taken_once_and_only_from_the_same_file() {
         let mut fresh = Fresh::default();
-        fresh.keep([
+        fresh.keep(&[
             (1, 10, &[1.5, 2.5][..]),
             (2, 10, &[3.0][..]),
             (3, 11, &[4.0][..]),
@@ -94,22 +102,36 @@ mod tests {
     #[test]
     fn keeping_again_replaces_and_the_bound_holds() {
         let mut fresh = Fresh::default();
-        fresh.keep([(1, 10, &[1.0, 2.0][..])]);
-        fresh.keep([(1, 12, &[5.0][..])]);
+        fresh.keep(&[(1, 10, &[1.0, 2.0][..])]);
+        fresh.keep(&[(1, 12, &[5.0][..])]);
         assert_eq!(fresh.len(), 1);
         let (found, _) = fresh.take(&[(1, 12)]);
         assert_eq!(found[&1], vec![(0, 5.0)]);
 
-        let big = vec![0.5; FRESH_VALUES_MAX - 1];
-        fresh.keep([
-            (7, 1, &big[..]),
-            (8, 1, &[1.0, 2.0][..]),
-            (9, 1, &[3.0][..]),
-        ]);
+        // Filled to one value below the bound, in batches within the batch bound.
+        let big = vec![0.5; FRESH_BATCH_MAX];
+        let mut id = 100;
+        while fresh.len() + FRESH_BATCH_MAX < FRESH_VALUES_MAX {
+            fresh.keep(&[(id, 1, &big[..])]);
+            id += 1;
+        }
+        let fill = vec![0.5; FRESH_VALUES_MAX - fresh.len() - 1];
+        fresh.keep(&[(id, 1, &fill[..])]);
+        fresh.keep(&[(8, 1, &[1.0, 2.0][..]), (9, 1, &[3.0][..])]);
         // The second sample would pass the bound and is left to be read back; the third fits.
         assert_eq!(fresh.len(), FRESH_VALUES_MAX);
         let (found, missing) = fresh.take(&[(8, 1), (9, 1)]);
         assert_eq!(missing, vec![8]);
         assert!(found.contains_key(&9));
+    }
+
+    #[test]
+    fn a_batch_above_the_batch_bound_is_not_kept() {
+        let mut fresh = Fresh::default();
+        let half = vec![1.0; FRESH_BATCH_MAX / 2 + 1];
+        fresh.keep(&[(1, 1, &half[..]), (2, 1, &half[..])]);
+        assert_eq!(fresh.len(), 0);
+        fresh.keep(&[(1, 1, &half[..])]);
+        assert_eq!(fresh.len(), half.len());
     }
 }

@@ -31,10 +31,11 @@ impl Db {
             .ingest_in(&mut tx, files, received_at, replace, &mut created)
             .await?;
         tx.commit().await.doing("committing a batch of files")?;
-        let values = stored
+        let values: Vec<(i64, i64, &[f64])> = stored
             .iter()
-            .map(|(id, file, s)| (*id, *file, &s.values[..]));
-        self.fresh.lock().expect("fresh values lock").keep(values);
+            .map(|(id, file, s)| (*id, *file, &s.values[..]))
+            .collect();
+        self.fresh.lock().expect("fresh values lock").keep(&values);
         let mut cache = self.names.lock().expect("name cache lock");
         cache.sources.extend(created.sources);
         cache.characteristics.extend(created.characteristics);
