@@ -55,7 +55,7 @@ pub(super) struct Db {
     /// The `[site] name` recorded with each stored file and decision.
     site: String,
     /// Unit values of samples stored by this process and not yet read by the engine.
-    fresh: Mutex<fresh::Fresh>,
+    fresh: Box<Mutex<fresh::Fresh>>,
 }
 
 impl Db {
@@ -114,7 +114,7 @@ impl Db {
         let store = Db {
             pool,
             names: Mutex::new(NameCache::default()),
-            fresh: Mutex::default(),
+            fresh: Box::default(),
             site: site.to_string(),
         };
         store.fill_missing_sd().await?;

@@ -17,6 +17,9 @@ pub(super) const FRESH_VALUES_MAX: usize = 4_000_000;
 /// values twice while it is stored would raise the peak memory of a large file by a sixth.
 pub(super) const FRESH_BATCH_MAX: usize = 200_000;
 
+/// (seq, value) of every unit, in seq order, by sample id.
+type ValuesById = HashMap<i64, Vec<(i64, f64)>>;
+
 /// Values by sample id, each with the id of the file it was stored from.
 #[derive(Default)]
 pub(super) struct Fresh {
@@ -47,7 +50,7 @@ impl Fresh {
     /// Takes the kept values of `wanted` (sample id, file id) as (seq, value) in seq order,
     /// as the database read gives them; returns them with the sample ids not found (or kept
     /// from another file), which are to be read from the database.
-    pub fn take(&mut self, wanted: &[(i64, i64)]) -> (HashMap<i64, Vec<(i64, f64)>>, Vec<i64>) {
+    pub fn take(&mut self, wanted: &[(i64, i64)]) -> (ValuesById, Vec<i64>) {
         let mut found = HashMap::with_capacity(wanted.len());
         let mut missing = Vec::new();
         for &(sample, file) in wanted {
