@@ -802,4 +802,50 @@ mod tests {
         );
         store.close().await;
     }
+
+    /// Values kept after a batch are the stored ones; a kept entry is taken once; a sample
+    /// replaced since (another file) is read from the database.
+    #[tokio::test]
+    async fn kept_values_match_the_stored_ones_and_a_replacement_is_read_back() {
+        let dir = tempfile::tempdir().unwrap();
+        let store = Db::open(&dir.path().join("kept.db"), "test").await.unwrap();
+        let file = |name: &str, lot: &str, values: &str| {
+            let mut csv = String::from("source,characteristic,lot,value\n");
+            for v in values.split(' ') {
+                csv.push_str(&format!("s,c,{lot},{v}\n"));
+            }
+            crate::ingest::build_file(name, name, csv.as_bytes()).unwrap()
+        };
+        let at = "2026-01-01T00:00:00Z";
+        let a = file("a.csv", "L1", "0.1 2.25 1e-3");
+        store.ingest_batch(&[a], at, None).await.unwrap();
+        let pending = store.pending_work().await.unwrap().remove(0).pending;
+        let ids: Vec<i64> = pending.iter().map(|s| s.sample_id).collect();
+        let stored = store.unit_values(&ids).await.unwrap();
+        assert_eq!(stored[&ids[0]], vec![(0, 0.1), (1, 2.25), (2, 1e-3)]);
+        assert_eq!(store.pending_values(&pending).await.unwrap(), stored);
+        assert_eq!(
+            store.fresh.lock().unwrap().len(),
+            0,
+            "taken by the first read"
+        );
+        assert_eq!(store.pending_values(&pending).await.unwrap(), stored);
+
+        // Kept, then replaced by another file before the engine reads it.
+        let b = file("b.csv", "L2", "7.5 8.5");
+        store.ingest_batch(&[b], at, None).await.unwrap();
+        assert_eq!(store.fresh.lock().unwrap().len(), 2);
+        let replace = Replacement {
+            reason: "re-measured",
+            by: "test",
+        };
+        let c = file("c.csv", "L2", "7.5 9.5");
+        store.ingest_batch(&[c], at, Some(&replace)).await.unwrap();
+        let pending = store.pending_work().await.unwrap().remove(0).pending;
+        let l2 = pending.iter().find(|s| s.lot == "L2").unwrap().sample_id;
+        let values = store.pending_values(&pending).await.unwrap();
+        assert_eq!(values[&l2], vec![(0, 7.5), (1, 9.5)]);
+        assert_eq!(store.fresh.lock().unwrap().len(), 0);
+        store.close().await;
+    }
 }
