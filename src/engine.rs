@@ -155,7 +155,7 @@ async fn read_chunk(
     mut chunk: Vec<SeriesWork>,
 ) -> Result<Vec<SeriesWork>, EngineError> {
     // Unit values of every lot to be screened: the pending lots (a baseline about to be
-    // frozen is among them). Read once; the checks below use them too.
+    // frozen is among them). Read once; the deciding step's normality check uses them too.
     for w in &mut chunk {
         w.values = store.pending_values(&w.pending).await?;
     }
@@ -1368,6 +1368,53 @@ mod chunk_tests {
             })
             .collect();
         w
+    }
+
+    /// A series of `lots` lots, lot `l` with the units `units(l)`, in the chunk's `values`.
+    fn lots_of(lots: usize, units: impl Fn(usize) -> Vec<f64>) -> SeriesWork {
+        let mut w = work("s", lots);
+        for (l, s) in w.pending.iter_mut().enumerate() {
+            let v = units(l);
+            s.summary = Summary::from_slice(&v).unwrap();
+            w.values.insert(s.sample_id, (0..).zip(v).collect());
+        }
+        w
+    }
+
+    #[test]
+    fn a_clearly_skewed_baseline_about_to_be_frozen_gets_its_unit_values() {
+        // Every lot holds the fourth powers of 1 to 10 (in turn rotated): strongly skewed
+        // units, and lots with equal means, so no between-lot component.
+        let skewed = |l: usize| {
+            let mut v: Vec<f64> = (1..=10).map(|i| (i as f64).powi(4)).collect();
+            v.rotate_left(l % 10);
+            v
+        };
+        let mut w = lots_of(21, skewed);
+        about_to_freeze(&mut w, 20);
+        assert_eq!(w.baseline_residuals.as_ref().map(Vec::len), Some(200));
+        let units = w.units.expect("tested on unit values");
+        assert_eq!(units.baseline.len(), 200);
+        assert_eq!(units.lots.len(), 1, "the one lot after the baseline");
+
+        // Normal scores of 200 points dealt out to 20 lots: not clearly non-normal.
+        let normal = |l: usize| {
+            (0..10)
+                .map(|k| {
+                    let p = ((k * 20 + l % 20) as f64 + 0.5) / 200.0;
+                    crate::stats::dist::normal_quantile(p).unwrap()
+                })
+                .collect()
+        };
+        let mut w = lots_of(21, normal);
+        about_to_freeze(&mut w, 20);
+        assert!(w.baseline_residuals.is_some());
+        assert!(w.units.is_none());
+
+        // Too few lots for a baseline: nothing to check.
+        let mut w = lots_of(19, skewed);
+        about_to_freeze(&mut w, 20);
+        assert!(w.baseline_residuals.is_none() && w.units.is_none());
     }
 
     #[test]
