@@ -31,11 +31,7 @@ impl Db {
             .ingest_in(&mut tx, files, received_at, replace, &mut created)
             .await?;
         tx.commit().await.doing("committing a batch of files")?;
-        let values: Vec<(i64, i64, &[f64])> = stored
-            .iter()
-            .map(|(id, file, s)| (*id, *file, &s.values[..]))
-            .collect();
-        self.fresh.lock().expect("fresh values lock").keep(&values);
+        self.fresh.lock().expect("fresh values lock").keep(&stored);
         let mut cache = self.names.lock().expect("name cache lock");
         cache.sources.extend(created.sources);
         cache.characteristics.extend(created.characteristics);
@@ -44,8 +40,8 @@ impl Db {
     }
 
     /// Stores `files` inside `tx`; returns each file's outcome and (sample id, file id,
-    /// sample) of every sample inserted (a replaced sample was decided before, or is read
-    /// back).
+    /// unit values) of every sample inserted (a replaced sample was decided before, or is
+    /// read back).
     async fn ingest_in<'a>(
         &self,
         tx: &mut Transaction<'static, Sqlite>,
@@ -53,7 +49,7 @@ impl Db {
         received_at: &str,
         replace: Option<&Replacement<'_>>,
         created: &mut NameCache,
-    ) -> Result<(Vec<FileOutcome>, Vec<(i64, i64, &'a NewSample)>)> {
+    ) -> Result<(Vec<FileOutcome>, Vec<(i64, i64, &'a [f64])>)> {
         let mut look = Lookups {
             known: known_hashes(tx, files).await?,
             ..Lookups::default()
@@ -101,7 +97,7 @@ impl Db {
         let stored = sample_ids[replaced..]
             .iter()
             .zip(&inserts)
-            .map(|((id, s), p)| (*id, p.file_id, *s))
+            .map(|((id, s), p)| (*id, p.file_id, &s.values[..]))
             .collect();
         self.insert_measurements(tx, &sample_ids).await?;
         Ok((batch.finish(&file_ids), stored))
