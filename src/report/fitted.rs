@@ -63,7 +63,7 @@ fn measure(columns: usize, wrap: &[usize], rows: &dyn Rows) -> io::Result<Measur
                     }
                     continue;
                 }
-                let w = line.width();
+                let w = width_of(line);
                 if w > widths[i] {
                     widths[i] = w;
                     m.widest[i] = line.to_string();
@@ -153,7 +153,7 @@ fn padded(block: &mut String, widths: &[usize], cells: &[&str]) -> bool {
         let start = block.len();
         for (i, (cell, w)) in cells.iter().zip(widths).enumerate() {
             let text = cell.split('\n').nth(k).unwrap_or("");
-            let text_width = text.width();
+            let text_width = width_of(text);
             if text_width > *w {
                 return false;
             }
@@ -170,6 +170,16 @@ fn padded(block: &mut String, widths: &[usize], cells: &[&str]) -> bool {
         block.push('\n');
     }
     true
+}
+
+/// The columns `text` takes in a terminal: its length when it is printable ASCII (almost
+/// every cell; counted without a table lookup per character), else its Unicode width.
+fn width_of(text: &str) -> usize {
+    if text.bytes().all(|b| (b' '..=b'~').contains(&b)) {
+        text.len()
+    } else {
+        text.width()
+    }
 }
 
 /// Rows with a line to break, through comfy-table with every column's width fixed.

@@ -7,7 +7,8 @@
 
 use std::io::{self, Write};
 
-use super::{Units, cusum_text, date, decimals_for, fitted, p_value, with_unit};
+use super::{Units, cusum_text, date, decimals_for, fitted, with_unit};
+use crate::numbers::{push_fixed, push_p_value};
 use crate::store::{HistoryLot, LotTest};
 
 /// How `history` is written.
@@ -290,23 +291,92 @@ impl<'a> HistoryJson<'a> {
     }
 }
 
-/// Writes one lot as a pretty-printed object indented as an element of the top-level array
-/// (a JSON string holds no raw newline, so every newline of the object is a line break).
+/// Writes one lot as a pretty-printed object indented as an element of the top-level array.
 fn write_element(
     out: &mut impl Write,
     object: &mut Vec<u8>,
     r: &HistoryLot<'_>,
     units: &Units,
 ) -> io::Result<()> {
+    use serde::Serialize as _;
     object.clear();
-    serde_json::to_writer_pretty(&mut *object, &HistoryJson::of(r, units))?;
-    for (i, line) in object.split(|b| *b == b'\n').enumerate() {
-        if i > 0 {
-            out.write_all(b"\n  ")?;
+    let mut json = serde_json::Serializer::with_formatter(&mut *object, Element::default());
+    HistoryJson::of(r, units).serialize(&mut json)?;
+    out.write_all(object)
+}
+
+/// `serde_json`'s pretty layout (two spaces a level) one level in: an element of an array
+/// whose brackets are written by hand.
+struct Element {
+    level: usize,
+    has_value: bool,
+}
+
+impl Default for Element {
+    fn default() -> Element {
+        Element {
+            level: 1,
+            has_value: false,
         }
-        out.write_all(line)?;
     }
-    Ok(())
+}
+
+impl Element {
+    fn open<W: ?Sized + Write>(&mut self, out: &mut W, bracket: &[u8]) -> io::Result<()> {
+        self.level += 1;
+        self.has_value = false;
+        out.write_all(bracket)
+    }
+
+    fn close<W: ?Sized + Write>(&mut self, out: &mut W, bracket: &[u8]) -> io::Result<()> {
+        self.level -= 1;
+        if self.has_value {
+            self.new_line(out)?;
+        }
+        out.write_all(bracket)
+    }
+
+    fn next<W: ?Sized + Write>(&mut self, out: &mut W, first: bool) -> io::Result<()> {
+        out.write_all(if first { b"" } else { b"," })?;
+        self.new_line(out)
+    }
+
+    fn new_line<W: ?Sized + Write>(&self, out: &mut W) -> io::Result<()> {
+        out.write_all(b"\n")?;
+        (0..self.level).try_for_each(|_| out.write_all(b"  "))
+    }
+}
+
+impl serde_json::ser::Formatter for Element {
+    fn begin_array<W: ?Sized + Write>(&mut self, out: &mut W) -> io::Result<()> {
+        self.open(out, b"[")
+    }
+    fn end_array<W: ?Sized + Write>(&mut self, out: &mut W) -> io::Result<()> {
+        self.close(out, b"]")
+    }
+    fn begin_array_value<W: ?Sized + Write>(&mut self, out: &mut W, first: bool) -> io::Result<()> {
+        self.next(out, first)
+    }
+    fn end_array_value<W: ?Sized + Write>(&mut self, _: &mut W) -> io::Result<()> {
+        self.has_value = true;
+        Ok(())
+    }
+    fn begin_object<W: ?Sized + Write>(&mut self, out: &mut W) -> io::Result<()> {
+        self.open(out, b"{")
+    }
+    fn end_object<W: ?Sized + Write>(&mut self, out: &mut W) -> io::Result<()> {
+        self.close(out, b"}")
+    }
+    fn begin_object_key<W: ?Sized + Write>(&mut self, out: &mut W, first: bool) -> io::Result<()> {
+        self.next(out, first)
+    }
+    fn begin_object_value<W: ?Sized + Write>(&mut self, out: &mut W) -> io::Result<()> {
+        out.write_all(b": ")
+    }
+    fn end_object_value<W: ?Sized + Write>(&mut self, _: &mut W) -> io::Result<()> {
+        self.has_value = true;
+        Ok(())
+    }
 }
 
 /// The lots of one series as the table shows them, kept until the series is complete: the
@@ -448,17 +518,6 @@ impl<'a> Rounded<'a> {
     }
 }
 
-/// [`super::fixed`] written into `out`.
-fn push_fixed(out: &mut String, v: Option<f64>, decimals: usize) {
-    use std::fmt::Write as _;
-    match v {
-        Some(v) if v.is_finite() => {
-            let _ = write!(out, "{v:.decimals$}");
-        }
-        _ => out.push('-'),
-    }
-}
-
 /// The cells of row `i` of a table kept as one string and the end of each cell.
 fn cells_of<'t, const N: usize>(text: &'t str, ends: &[usize], i: usize) -> [&'t str; N] {
     let mut start = if i == 0 { 0 } else { ends[i * N - 1] };
@@ -500,7 +559,7 @@ fn decision_text(out: &mut String, d: Option<&LotTest<'_>>) {
         return;
     };
     out.push_str("p ");
-    out.push_str(&p_value(d.p_adjusted.or(d.p_value)));
+    push_p_value(out, d.p_adjusted.or(d.p_value));
     if d.cusum_signal {
         out.push_str(", ");
         out.push_str(&cusum_text(d.cusum_upper, d.cusum_lower, d.cusum_h));
