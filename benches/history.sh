@@ -13,7 +13,9 @@
 #      old (so `run --once` takes it at once instead of waiting for it to settle), and time
 #      `lotdrift run --once` (stores 1 file, decides 3 lots); then time
 #      `lotdrift history SOURCE`, `lotdrift history SOURCE --csv` (when the binary has
-#      --csv) and `lotdrift status` on that database (output to /dev/null).
+#      --csv), the one series `lotdrift history SOURCE CHARACTERISTIC` as text and with
+#      --json (`series`, `series_json`: the issue's "history of a 100,000-lot series") and
+#      `lotdrift status` on that database (output to /dev/null).
 #   3. prints every run, then per binary the medians (ms) for both lengths and the ratio
 #      long / short, and with B the ratio B / A.
 #
@@ -47,6 +49,7 @@ for v in REPEAT SHORT_LOTS LONG_LOTS UNITS SEED; do positive_int "$v"; done
 (( SHORT_LOTS > 20 )) || die "SHORT_LOTS must exceed the 20 baseline lots"
 
 SOURCE=source-001
+CHARACTERISTIC=char-001
 resolve_binaries
 
 work="$(mktemp -d "${BENCH_TMP:-${TMPDIR:-/tmp}}/lotdrift-history-bench.XXXXXX")"
@@ -179,6 +182,12 @@ one_round() { # label length round
         record "$label" "$length" history_csv "$ms"
         printf ' history_csv_ms=%s' "$ms"
     fi
+    ms=$(timed "$bin" history --config "$config" "$SOURCE" "$CHARACTERISTIC")
+    record "$label" "$length" series "$ms"
+    printf ' series_ms=%s' "$ms"
+    ms=$(timed "$bin" history --config "$config" "$SOURCE" "$CHARACTERISTIC" --json)
+    record "$label" "$length" series_json "$ms"
+    printf ' series_json_ms=%s' "$ms"
     ms=$(timed "$bin" status --config "$config")
     record "$label" "$length" status "$ms"
     printf ' status_ms=%s\n' "$ms"
@@ -212,7 +221,7 @@ for label in "${LABELS[@]}"; do
 done
 [[ -n "$BIN_B" ]] && printf ' %10s %10s' "B/A short" "B/A long"
 printf '\n'
-for measure in run_once history history_csv status; do
+for measure in run_once history history_csv series series_json status; do
     printf '%-12s' "$measure"
     declare -A m=()
     for label in "${LABELS[@]}"; do
