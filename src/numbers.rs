@@ -151,8 +151,8 @@ pub fn p_value(p: Option<f64>) -> String {
 /// [`p_value`] appended to `out`.
 pub fn push_p_value(out: &mut String, p: Option<f64>) {
     match p {
-        Some(p) if !p.is_finite() => out.push_str(MISSING),
         None => out.push_str(MISSING),
+        Some(p) if !p.is_finite() => out.push_str(MISSING),
         Some(p) if p < P_FLOOR => out.push_str("< 1e-9"),
         Some(p) if p >= P_PLAIN => {
             let start = out.len();

@@ -56,6 +56,7 @@ const TABLE_HEADER: [&str; 9] = [
 const TABLE_WRAP: [usize; 3] = [6, 7, 8];
 
 /// Writes `history` in one of its forms; [`HistoryWriter::finish`] writes what is still owed.
+/// Text goes to `out` a line at a time and JSON a lot at a time: give it a buffered writer.
 pub struct HistoryWriter<'u, W: Write> {
     units: &'u Units,
     to: To<W>,
@@ -76,6 +77,8 @@ enum To<W: Write> {
     Json {
         out: W,
         lots: usize,
+        /// One lot's JSON, written to `out` at once: `serde_json`'s many small writes cost
+        /// less into a `Vec` than through a `BufWriter` (3 % of `history --json`).
         object: Vec<u8>,
     },
 }
@@ -337,7 +340,9 @@ impl Element {
     }
 
     fn next<W: ?Sized + Write>(&mut self, out: &mut W, first: bool) -> io::Result<()> {
-        out.write_all(if first { b"" } else { b"," })?;
+        if !first {
+            out.write_all(b",")?;
+        }
         self.new_line(out)
     }
 
