@@ -29,6 +29,9 @@ use crate::stats::Summary;
 use crate::store::{FileOutcome, NewFile, NewSample, Replacement, SampleDigest, Store, StoreError};
 use crate::time::now_rfc3339;
 
+mod moves;
+use moves::{Mover, free_name, move_entry};
+
 /// Files per store transaction, and values per transaction, whichever is reached first. A
 /// batch costs a commit (an fsync and a WAL checkpoint now and then), the plan's lookups and
 /// partly filled multi-row inserts; 1,024 small files hold about 100,000 values, a few MB.
@@ -233,6 +236,7 @@ async fn write_batch(
         std::process::abort();
     }
     let month = &received_at[..7];
+    let mut mover = Mover::default();
     for ((path, file), outcome) in good_paths.into_iter().zip(&good).zip(outcomes) {
         let result = match outcome {
             FileOutcome::Stored {
@@ -240,7 +244,7 @@ async fn write_batch(
                 already_stored,
                 ..
             } => {
-                let dest = move_into(&path, &paths.archive.join(month))?;
+                let dest = mover.move_into(&path, &paths.archive.join(month))?;
                 tracing::debug!(file = %path.display(), samples, already_stored, "stored");
                 FileResult::Stored {
                     samples,
@@ -249,7 +253,7 @@ async fn write_batch(
                 }
             }
             FileOutcome::Duplicate { first_name } => {
-                let dest = move_into(&path, &paths.archive.join(month).join("duplicates"))?;
+                let dest = mover.move_into(&path, &paths.archive.join(month).join("duplicates"))?;
                 tracing::info!(file = %path.display(), first = %first_name, "duplicate of a stored file; archived, not stored again");
                 FileResult::Duplicate {
                     first_name,
@@ -631,117 +635,6 @@ fn write_atomically(path: &Path, bytes: &[u8]) -> std::io::Result<()> {
     std::fs::rename(&tmp, path)
 }
 
-/// Moves `path` into folder `dir` under its own name (or a free variant of it).
-fn move_into(path: &Path, dir: &Path) -> Result<PathBuf, IngestError> {
-    let err = |source| IngestError::Move {
-        from: path.into(),
-        to: dir.into(),
-        source,
-    };
-    std::fs::create_dir_all(dir).map_err(err)?;
-    let name = path
-        .file_name()
-        .map(|n| n.to_string_lossy().into_owned())
-        .unwrap_or_default();
-    let dest = free_name(dir, &name);
-    match move_entry(path, &dest) {
-        Ok(()) => Ok(dest),
-        // Taken away meanwhile: the store already has it, nothing is lost.
-        Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(dest),
-        Err(source) => Err(IngestError::Move {
-            from: path.into(),
-            to: dest,
-            source,
-        }),
-    }
-}
-
-/// Moves `from` to `to` (a free name): a rename, or across file systems (archive or quarantine
-/// on another mount) a copy under a temporary name in the destination folder, fsynced, renamed
-/// into place, the folder fsynced, and only then the source removed.
-///
-/// A crash in between leaves the file in the inbox as well as at `to`. That is safe: a stored
-/// file's content hash is already in the store, so the file is taken again and archived as a
-/// duplicate; a refused file is refused again. A leftover temporary file is hidden (`.` name).
-fn move_entry(from: &Path, to: &Path) -> std::io::Result<()> {
-    match std::fs::rename(from, to) {
-        Err(e) if is_cross_device(&e) => copy_across(from, to),
-        other => other,
-    }
-}
-
-fn is_cross_device(e: &std::io::Error) -> bool {
-    e.kind() == std::io::ErrorKind::CrossesDevices || e.raw_os_error() == Some(18)
-}
-
-/// The cross-file-system half of [`move_entry`]. A symbolic link is moved as a link (never
-/// followed); other entries that are not regular files cannot be copied and keep the error.
-fn copy_across(from: &Path, to: &Path) -> std::io::Result<()> {
-    let dir = to.parent().unwrap_or(Path::new("."));
-    let name = to
-        .file_name()
-        .map(|n| n.to_string_lossy())
-        .unwrap_or_default();
-    let tmp = dir.join(format!(".{name}.{}.tmp", std::process::id()));
-    let meta = std::fs::symlink_metadata(from)?;
-    let copied = if meta.file_type().is_symlink() {
-        std::fs::read_link(from).and_then(|target| std::os::unix::fs::symlink(target, &tmp))
-    } else if std::os::unix::fs::FileTypeExt::is_fifo(&meta.file_type()) {
-        make_fifo(&tmp)
-    } else if meta.is_file() {
-        copy_synced(from, &tmp)
-    } else {
-        return Err(std::io::Error::from_raw_os_error(18));
-    };
-    let placed = copied.and_then(|()| std::fs::rename(&tmp, to));
-    if let Err(e) = placed {
-        let _ = std::fs::remove_file(&tmp);
-        return Err(e);
-    }
-    std::fs::File::open(dir)?.sync_all()?;
-    std::fs::remove_file(from)
-}
-
-/// A new named pipe at `path` (a pipe holds no data: this is its move across file systems).
-fn make_fifo(path: &Path) -> std::io::Result<()> {
-    use std::os::unix::ffi::OsStrExt;
-    let c = std::ffi::CString::new(path.as_os_str().as_bytes())
-        .map_err(|e| std::io::Error::new(std::io::ErrorKind::InvalidInput, e))?;
-    // SAFETY: `c` is a valid NUL-terminated path that lives across the call.
-    if unsafe { libc::mkfifo(c.as_ptr(), 0o600) } == 0 {
-        Ok(())
-    } else {
-        Err(std::io::Error::last_os_error())
-    }
-}
-
-/// Copies a regular file's bytes to a new file `to` and fsyncs it.
-fn copy_synced(from: &Path, to: &Path) -> std::io::Result<()> {
-    let mut src = std::fs::File::open(from)?;
-    let mut dst = std::fs::OpenOptions::new()
-        .write(true)
-        .create_new(true)
-        .open(to)?;
-    std::io::copy(&mut src, &mut dst)?;
-    dst.sync_all()
-}
-
-/// `dir/name`, or `dir/stem-2.ext`, `dir/stem-3.ext`... when taken.
-fn free_name(dir: &Path, name: &str) -> PathBuf {
-    let first = dir.join(name);
-    if !first.exists() {
-        return first;
-    }
-    let (stem, ext) = match name.rfind('.') {
-        Some(i) if i > 0 => (&name[..i], &name[i..]),
-        _ => (name, ""),
-    };
-    (2u32..)
-        .map(|k| dir.join(format!("{stem}-{k}{ext}")))
-        .find(|p| !p.exists())
-        .expect("some free name exists")
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -832,44 +725,5 @@ mod tests {
             prepare(dir.path(), dir.path(), &Input::default()),
             Prepared::Unreadable(..)
         ));
-    }
-
-    /// The copy path of a cross-file-system move, run on one file system (the tmpfs test in
-    /// tests/moves.rs runs it for real).
-    #[test]
-    fn copying_across_moves_files_links_and_pipes() {
-        use std::os::unix::fs::FileTypeExt;
-        let src = tempfile::tempdir().unwrap();
-        let dst = tempfile::tempdir().unwrap();
-        let file = src.path().join("a.csv");
-        std::fs::write(&file, b"bytes").unwrap();
-        copy_across(&file, &dst.path().join("a.csv")).unwrap();
-        assert_eq!(std::fs::read(dst.path().join("a.csv")).unwrap(), b"bytes");
-        let link = src.path().join("l.csv");
-        std::os::unix::fs::symlink("/nowhere", &link).unwrap();
-        copy_across(&link, &dst.path().join("l.csv")).unwrap();
-        assert_eq!(
-            std::fs::read_link(dst.path().join("l.csv")).unwrap(),
-            PathBuf::from("/nowhere")
-        );
-        let pipe = src.path().join("p.csv");
-        make_fifo(&pipe).unwrap();
-        copy_across(&pipe, &dst.path().join("p.csv")).unwrap();
-        let moved = std::fs::symlink_metadata(dst.path().join("p.csv")).unwrap();
-        assert!(moved.file_type().is_fifo());
-        assert_eq!(std::fs::read_dir(src.path()).unwrap().count(), 0);
-        assert_eq!(
-            std::fs::read_dir(dst.path()).unwrap().count(),
-            3,
-            "no temporary left"
-        );
-    }
-
-    #[test]
-    fn free_names_do_not_overwrite() {
-        let dir = tempfile::tempdir().unwrap();
-        std::fs::write(dir.path().join("a.csv"), b"x").unwrap();
-        assert_eq!(free_name(dir.path(), "a.csv"), dir.path().join("a-2.csv"));
-        assert_eq!(free_name(dir.path(), "b.csv"), dir.path().join("b.csv"));
     }
 }
