@@ -175,3 +175,76 @@ async fn a_replacement_keeps_the_old_values_serials_and_times() {
     assert_eq!(kept[2].3, None);
     store.close().await;
 }
+
+/// A wide file's characteristics share one row of units: their serials and times are packed
+/// once and must still reach every characteristic's rows, and a second file of the same size
+/// in the same batch must keep its own.
+#[tokio::test]
+async fn wide_files_keep_each_units_serial_and_time_for_every_characteristic() {
+    let dir = tempfile::tempdir().unwrap();
+    let path = dir.path().join("lotdrift.db");
+    let store = Store::open(&path).await.unwrap();
+    let wide = |lot: &str, hour: u32| {
+        let mut text = String::from("source,lot,sampled_at,unit,mass_g,height_mm\n");
+        for k in 0..3 {
+            text.push_str(&format!(
+                "acme,{lot},2026-03-01T{hour:02}:0{k}:00Z,{lot}-u{k},{}.5,{}.25\n",
+                10 + k,
+                20 + k
+            ));
+        }
+        text
+    };
+    let files: Vec<_> = [("W1", 8), ("W2", 9)]
+        .iter()
+        .map(|(lot, hour)| {
+            let text = wide(lot, *hour);
+            build_file(
+                &format!("{lot}.csv"),
+                &format!("hash-{lot}"),
+                text.as_bytes(),
+            )
+            .unwrap()
+        })
+        .collect();
+    let outcomes = store
+        .ingest_batch(&files, "2026-03-02T00:00:00.000Z", None)
+        .await
+        .unwrap();
+    assert!(
+        outcomes
+            .iter()
+            .all(|o| matches!(o, FileOutcome::Stored { .. }))
+    );
+
+    let db = Connection::open(&path).unwrap();
+    for (lot, hour) in [("W1", 8), ("W2", 9)] {
+        for (characteristic, base) in [("mass_g", 10.5), ("height_mm", 20.25)] {
+            let mut stmt = db
+                .prepare(
+                    "SELECT seq, unit, sampled_at, value FROM measurement_view \
+                     WHERE lot = ?1 AND characteristic = ?2 ORDER BY seq",
+                )
+                .unwrap();
+            let rows: Vec<(i64, String, String, f64)> = stmt
+                .query_map([lot, characteristic], |r| {
+                    Ok((r.get(0)?, r.get(1)?, r.get(2)?, r.get(3)?))
+                })
+                .unwrap()
+                .collect::<Result<_, _>>()
+                .unwrap();
+            let expected: Vec<(i64, String, String, f64)> = (0..3)
+                .map(|k| {
+                    (
+                        k,
+                        format!("{lot}-u{k}"),
+                        format!("2026-03-01T{hour:02}:0{k}:00.000Z"),
+                        base + k as f64,
+                    )
+                })
+                .collect();
+            assert_eq!(rows, expected, "{lot} {characteristic}");
+        }
+    }
+    store.close().await;
+}

@@ -9,6 +9,7 @@
 
 use std::collections::HashMap;
 use std::ptr::NonNull;
+use std::sync::Arc;
 
 use rusqlite::Connection;
 use rusqlite::ffi::sqlite3;
@@ -17,7 +18,7 @@ use super::{
     Decision, NewEvaluation, NewFile, NewSample, Result, SeriesSample, StoreError, sd,
     stored_summary,
 };
-use crate::lotfile::{Serials, Stamp};
+use crate::lotfile::{Serials, Stamp, Track};
 
 const INSERT_VALUES: &str = "INSERT INTO sample_values (sample_id, values_json, units_json, \
      sampled_at_json) VALUES (?1, ?2, ?3, ?4)";
@@ -352,14 +353,23 @@ pub(super) struct Packed {
     pub values: String,
     units: String,
     times: String,
+    /// The track, serials and length the unit and time arrays were written from: the samples
+    /// of one wide file share them (one track per row of units), so they are written once.
+    from: Option<(Arc<Track>, Arc<Serials>, usize)>,
 }
 
 impl Packed {
     /// Writes the arrays of `s` over the previous sample's.
     pub fn fill(&mut self, s: &NewSample) {
         let n = s.values.len();
-        let (units, times) = (&s.track.units[..n], &s.track.sampled_at[..n]);
         pack_values(&s.values, &mut self.values);
+        let same = self.from.as_ref().is_some_and(|(track, serials, len)| {
+            Arc::ptr_eq(track, &s.track) && Arc::ptr_eq(serials, &s.serials) && *len == n
+        });
+        if same {
+            return;
+        }
+        let (units, times) = (&s.track.units[..n], &s.track.sampled_at[..n]);
         self.units.clear();
         if units.iter().any(|u| s.serials.get(*u).is_some()) {
             pack_units(units, &s.serials, &mut self.units);
@@ -368,6 +378,7 @@ impl Packed {
         if times.iter().any(|t| *t != times[0]) {
             pack_times(times, &mut self.times);
         }
+        self.from = Some((s.track.clone(), s.serials.clone(), n));
     }
 
     /// `units_json`: NULL when no unit has a serial.
