@@ -401,11 +401,12 @@ fn read_failed(path: &Path, failure: ReadFailure) -> Prepared {
     }
 }
 
-/// A reader that hashes and counts the bytes it passes on.
+/// A reader that hashes and counts the bytes it passes on, and notes the end of its input.
 struct Hashing<R> {
     inner: R,
     sha: Sha256,
     len: u64,
+    at_end: bool,
 }
 
 impl<R: std::io::Read> std::io::Read for Hashing<R> {
@@ -413,6 +414,7 @@ impl<R: std::io::Read> std::io::Read for Hashing<R> {
         let n = self.inner.read(buf)?;
         self.sha.update(&buf[..n]);
         self.len += n as u64;
+        self.at_end |= n == 0 && !buf.is_empty();
         Ok(n)
     }
 }
@@ -462,13 +464,18 @@ fn parse_stream(
         inner: file,
         sha: Sha256::new(),
         len: 0,
+        at_end: false,
     };
     let parsed = match intake::read_stream(name, &mut src) {
         Ok(f) => Ok(f),
         Err(intake::StreamFailure::Io(e)) => return Err(e),
         Err(intake::StreamFailure::Refused(r)) => Err(r.to_string()),
     };
-    std::io::copy(&mut src, &mut std::io::sink())?;
+    // The rest of a file the parser stopped reading early (a refusal) is hashed too; a file
+    // read to its end costs no further read.
+    if !src.at_end {
+        std::io::copy(&mut src, &mut std::io::sink())?;
+    }
     let parsed = if src.len == 0 {
         Err(EMPTY_FILE.to_string())
     } else {
@@ -725,5 +732,26 @@ mod tests {
             prepare(dir.path(), dir.path(), &Input::default()),
             Prepared::Unreadable(..)
         ));
+    }
+
+    /// The hash of a streamed file covers every byte, whether the parser read it to its end
+    /// (no read after the end) or refused it early (the rest is read for the hash).
+    #[test]
+    fn streamed_hashes_cover_every_byte() {
+        let dir = tempfile::tempdir().unwrap();
+        let mut good = String::from("source,characteristic,lot,value\n");
+        for k in 0..20_000 {
+            good.push_str(&format!("acme,mass_g,L{},{k}.5\n", k / 50));
+        }
+        let mut bad = String::from("source,characteristic,lot,value\nacme,mass_g,L1,oops\n");
+        bad.push_str(&good[good.len() / 2..]);
+        for (name, text, stored) in [("good.csv", &good, true), ("bad.csv", &bad, false)] {
+            let path = dir.path().join(name);
+            std::fs::write(&path, text).unwrap();
+            let file = std::fs::File::open(&path).unwrap();
+            let (hash, parsed) = parse_stream(name, file).unwrap();
+            assert_eq!(parsed.is_ok(), stored, "{name}");
+            assert_eq!(hash, content_hash(text.as_bytes()), "{name}");
+        }
     }
 }
