@@ -11,22 +11,36 @@ use csv_core::ReadRecordResult;
 /// Bytes asked of the stream per read.
 const READ_CHUNK: usize = 64 * 1024;
 
+/// The largest read buffer kept for the next file (a record longer than this grew it).
+const SPARE_BUFFER_MAX: usize = 4 * READ_CHUNK;
+
 thread_local! {
-    /// A csv reader with the settings for lot files, kept per thread between files: building
-    /// one compiles a DFA, which cost a quarter of the parse time of a small file when it was
-    /// done per file. (Not a clone of one template: csv-core 0.1.13's `Clone` for its DFA
-    /// copies only the transition table, and the clone misreads every byte.)
-    static SPARE: std::cell::Cell<Option<csv_core::Reader>> = const { std::cell::Cell::new(None) };
+    /// A csv reader with the settings for lot files, and the read buffer, kept per thread
+    /// between files: building the reader compiles a DFA, which cost a quarter of the parse
+    /// time of a small file when it was done per file, and a fresh zeroed buffer per file
+    /// cost a tenth of the rest. (Not a clone of one template: csv-core 0.1.13's `Clone` for
+    /// its DFA copies only the transition table, and the clone misreads every byte.)
+    static SPARE: std::cell::Cell<Option<(csv_core::Reader, Vec<u8>)>> =
+        const { std::cell::Cell::new(None) };
 }
 
-fn lot_file_reader() -> csv_core::Reader {
-    match SPARE.take() {
-        Some(mut r) => {
+/// The thread's spare reader (reset) and buffer (at least `READ_CHUNK` bytes, stale content),
+/// or new ones.
+fn reader_and_buffer() -> (csv_core::Reader, Vec<u8>) {
+    let (reader, buf) = match SPARE.take() {
+        Some((mut r, buf)) => {
             r.reset();
-            r
+            (r, buf)
         }
-        None => csv_core::ReaderBuilder::new().comment(Some(b'#')).build(),
+        None => (
+            csv_core::ReaderBuilder::new().comment(Some(b'#')).build(),
+            Vec::new(),
+        ),
+    };
+    if buf.len() < READ_CHUNK {
+        return (reader, vec![0; READ_CHUNK]);
     }
+    (reader, buf)
 }
 
 /// One record's fields, unescaped.
@@ -71,10 +85,11 @@ pub(super) struct Window<R> {
 
 impl<R: Read> Window<R> {
     pub(super) fn new(inner: R) -> Self {
+        let (core, buf) = reader_and_buffer();
         Window {
             inner,
-            core: lot_file_reader(),
-            buf: vec![0; READ_CHUNK],
+            core,
+            buf,
             pos: 0,
             filled: 0,
             base: 0,
@@ -174,7 +189,11 @@ impl<R: Read> Window<R> {
 
 impl<R> Drop for Window<R> {
     fn drop(&mut self) {
-        SPARE.set(Some(std::mem::take(&mut self.core)));
+        let mut buf = std::mem::take(&mut self.buf);
+        if buf.len() > SPARE_BUFFER_MAX {
+            buf = Vec::new();
+        }
+        SPARE.set(Some((std::mem::take(&mut self.core), buf)));
     }
 }
 
@@ -202,5 +221,20 @@ mod tests {
             second,
             vec![vec![b"x".to_vec(), b"y".to_vec()], vec![b"z".to_vec()]]
         );
+    }
+
+    #[test]
+    fn a_reused_buffer_shows_nothing_of_the_file_before() {
+        // A long first file fills (and grows) the buffer with its bytes; the short second
+        // file, read with the same buffer, must see only its own. Then a record longer than
+        // the largest kept buffer, and a short file after it again.
+        let long: Vec<u8> = (0..30_000)
+            .flat_map(|k| format!("row{k},{k}\n").into_bytes())
+            .collect();
+        assert_eq!(records(&long).len(), 30_000);
+        assert_eq!(records(b"x,1"), vec![vec![b"x".to_vec(), b"1".to_vec()]]);
+        let huge = vec![b'q'; SPARE_BUFFER_MAX + 10];
+        assert_eq!(records(&huge), vec![vec![huge.clone()]]);
+        assert_eq!(records(b"\n\ny\n"), vec![vec![b"y".to_vec()]]);
     }
 }
