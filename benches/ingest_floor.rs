@@ -34,6 +34,12 @@
 //! - `LOTDRIFT_BENCH_THREADS`: parser threads (default: available cores).
 //! - `LOTDRIFT_BENCH_DB_DIR`: where the scratch SQLite files go (default: temp dir).
 //! - `LOTDRIFT_BENCH_KEEP_DB=1`: keep them (to inspect) instead of deleting them.
+//! - `LOTDRIFT_BENCH_ARCHIVE=dir`: the floor with lotdrift's file guarantees, for comparison
+//!   (not the yardstick of issue 10): each file's SHA-256, a row per file under a unique
+//!   content hash (a file whose hash is stored is not stored again), a commit (synchronous,
+//!   durable) every 1,024 files, and each file renamed into `dir` after the commit that
+//!   stored it. This moves the files out of `LOTDRIFT_BENCH_DIR`: give it a copy, and one
+//!   run per copy (`LOTDRIFT_BENCH_REPEAT=1`).
 //!
 //! Output: one `ingest_floor: run i/n: ...` line per run, then
 //! `ingest_floor: median wall_s=... values_per_s=... runs=... values=... batch=...`
@@ -47,6 +53,7 @@ use std::time::Instant;
 
 use anyhow::{Context, Result, bail};
 use rusqlite::{Connection, Statement};
+use sha2::{Digest, Sha256};
 use statrs::distribution::{ContinuousCDF, StudentsT};
 
 const BASELINE_LOTS: usize = 20;
@@ -76,6 +83,11 @@ CREATE TABLE measurement_packed (
     units TEXT,
     sampled_at TEXT,
     vals TEXT NOT NULL
+);
+CREATE TABLE ingested_file (
+    id INTEGER PRIMARY KEY,
+    content_hash TEXT NOT NULL UNIQUE,
+    name TEXT NOT NULL
 );
 CREATE TABLE evaluation (
     sample INTEGER PRIMARY KEY,
@@ -177,6 +189,9 @@ struct ParsedFile {
     groups: Vec<Group>,
     rows: Vec<Row>,
     text: String,
+    path: PathBuf,
+    /// SHA-256 of the file's bytes as hex, when files are kept (`LOTDRIFT_BENCH_ARCHIVE`).
+    hash: Option<String>,
 }
 
 impl ParsedFile {
@@ -254,8 +269,17 @@ fn parse_value(text: &str) -> Result<f64> {
     Ok(value)
 }
 
-fn parse_file(path: &Path) -> Result<ParsedFile> {
+fn parse_file(path: &Path, hash: bool) -> Result<ParsedFile> {
     let bytes = std::fs::read(path)?;
+    let hash = hash.then(|| {
+        const HEX: &[u8; 16] = b"0123456789abcdef";
+        let mut text = String::with_capacity(64);
+        for b in Sha256::digest(&bytes) {
+            text.push(HEX[usize::from(b >> 4)] as char);
+            text.push(HEX[usize::from(b & 15)] as char);
+        }
+        text
+    });
     let mut reader = csv::ReaderBuilder::new()
         .comment(Some(b'#'))
         .has_headers(true)
@@ -273,6 +297,8 @@ fn parse_file(path: &Path) -> Result<ParsedFile> {
         groups: Vec::new(),
         rows: Vec::new(),
         text: String::new(),
+        path: path.to_owned(),
+        hash,
     };
     let mut record = csv::StringRecord::new();
     fn field(record: &csv::StringRecord, col: Option<usize>) -> Option<&str> {
@@ -605,12 +631,69 @@ impl<'c> Packer<'c> {
     }
 }
 
+/// Files per commit when files are kept (lotdrift's batch).
+const KEPT_BATCH_FILES: usize = 1024;
+
+/// lotdrift's file guarantees (`LOTDRIFT_BENCH_ARCHIVE`): a row per content hash, a durable
+/// commit per batch of files, each file renamed into the archive after its commit.
+struct Keeper<'c> {
+    conn: &'c Connection,
+    known: Statement<'c>,
+    insert: Statement<'c>,
+    archive: PathBuf,
+    /// Files of the open transaction, to archive once it commits.
+    pending: Vec<PathBuf>,
+}
+
+impl<'c> Keeper<'c> {
+    fn new(conn: &'c Connection, archive: PathBuf) -> Result<Self> {
+        std::fs::create_dir_all(&archive)?;
+        Ok(Keeper {
+            conn,
+            known: conn.prepare("SELECT 1 FROM ingested_file WHERE content_hash = ?1")?,
+            insert: conn
+                .prepare("INSERT INTO ingested_file (content_hash, name) VALUES (?1, ?2)")?,
+            archive,
+            pending: Vec::new(),
+        })
+    }
+
+    /// Records the file; false when its content is stored already (archived, not stored).
+    fn record(&mut self, file: &ParsedFile) -> Result<bool> {
+        let hash = file
+            .hash
+            .as_deref()
+            .context("files are kept but were not hashed")?;
+        let new = !self.known.exists([hash])?;
+        if new {
+            let name = file.path.file_name().map(|n| n.to_string_lossy());
+            self.insert.execute(rusqlite::params![hash, name])?;
+        }
+        self.pending.push(file.path.clone());
+        if self.pending.len() >= KEPT_BATCH_FILES {
+            self.conn.execute_batch("COMMIT; BEGIN")?;
+            self.archive_pending()?;
+        }
+        Ok(new)
+    }
+
+    /// Renames the files of the last committed transaction into the archive.
+    fn archive_pending(&mut self) -> Result<()> {
+        for path in self.pending.drain(..) {
+            let name = path.file_name().context("a lot file without a name")?;
+            std::fs::rename(&path, self.archive.join(name))?;
+        }
+        Ok(())
+    }
+}
+
 /// The writer's loop: every parsed file into the store, in arrival order.
 fn write_all(
     conn: &Connection,
     batch: usize,
     receiver: mpsc::Receiver<Result<ParsedFile>>,
     files: usize,
+    keeper: &mut Option<Keeper<'_>>,
 ) -> Result<(Vec<Sample>, u64)> {
     let mut writer = Writer {
         inserter: Inserter::new(conn, batch)?,
@@ -624,8 +707,14 @@ fn write_all(
     };
     let mut received = 0;
     for parsed in receiver {
-        writer.write(&parsed?)?;
+        let parsed = parsed?;
         received += 1;
+        if let Some(keeper) = keeper.as_mut()
+            && !keeper.record(&parsed)?
+        {
+            continue;
+        }
+        writer.write(&parsed)?;
     }
     if received != files {
         bail!("only {received} of {files} files were parsed");
@@ -738,10 +827,21 @@ fn open(db_path: &Path) -> Result<Connection> {
     Ok(conn)
 }
 
-fn ingest(files: &[PathBuf], db_path: &Path, batch: usize, threads: usize) -> Result<RunResult> {
+fn ingest(
+    files: &[PathBuf],
+    db_path: &Path,
+    (batch, threads): (usize, usize),
+    archive: Option<&Path>,
+) -> Result<RunResult> {
     let started = Instant::now();
-    let mut conn = open(db_path)?;
-    let tx = conn.transaction()?;
+    let conn = open(db_path)?;
+    // Transactions by hand: the keeper commits every batch of files while the writer's
+    // prepared statements stay open (statements survive a commit, a `Transaction` would not).
+    conn.execute_batch("BEGIN")?;
+    let mut keeper = archive
+        .map(|dir| Keeper::new(&conn, dir.to_owned()))
+        .transpose()?;
+    let hash = keeper.is_some();
     let next = AtomicUsize::new(0);
     let (sender, receiver) = mpsc::sync_channel::<Result<ParsedFile>>(64);
     let (samples, values) = std::thread::scope(|scope| -> Result<(Vec<Sample>, u64)> {
@@ -752,8 +852,8 @@ fn ingest(files: &[PathBuf], db_path: &Path, batch: usize, threads: usize) -> Re
                 loop {
                     let i = next.fetch_add(1, Ordering::Relaxed);
                     let Some(path) = files.get(i) else { break };
-                    let parsed =
-                        parse_file(path).with_context(|| format!("parsing {}", path.display()));
+                    let parsed = parse_file(path, hash)
+                        .with_context(|| format!("parsing {}", path.display()));
                     let failed = parsed.is_err();
                     if sender.send(parsed).is_err() || failed {
                         break;
@@ -764,10 +864,10 @@ fn ingest(files: &[PathBuf], db_path: &Path, batch: usize, threads: usize) -> Re
         drop(sender);
         // The receiver moves into `write_all`: on an error it is dropped there, so the
         // parsers' sends fail and the scope can join them.
-        write_all(&tx, batch, receiver, files.len())
+        write_all(&conn, batch, receiver, files.len(), &mut keeper)
     })?;
     {
-        let mut stmt = tx.prepare(INSERT_SAMPLE)?;
+        let mut stmt = conn.prepare(INSERT_SAMPLE)?;
         for (i, s) in samples.iter().enumerate() {
             stmt.execute(rusqlite::params![
                 i as i64 + 1,
@@ -791,7 +891,7 @@ fn ingest(files: &[PathBuf], db_path: &Path, batch: usize, threads: usize) -> Re
     let adjusted = benjamini_hochberg(&p);
     let mut rejected = 0;
     {
-        let mut stmt = tx.prepare(INSERT_EVALUATION)?;
+        let mut stmt = conn.prepare(INSERT_EVALUATION)?;
         for (test, &q) in tests.iter().zip(&adjusted) {
             let reject = q <= FDR_LEVEL;
             rejected += usize::from(reject);
@@ -808,7 +908,11 @@ fn ingest(files: &[PathBuf], db_path: &Path, batch: usize, threads: usize) -> Re
     let stats_s = stats_started.elapsed().as_secs_f64();
 
     let commit_started = Instant::now();
-    tx.commit()?;
+    conn.execute_batch("COMMIT")?;
+    if let Some(keeper) = keeper.as_mut() {
+        keeper.archive_pending()?;
+    }
+    drop(keeper);
     let commit_s = commit_started.elapsed().as_secs_f64();
     let wall_s = started.elapsed().as_secs_f64();
     let db_bytes = db_size(db_path);
@@ -896,6 +1000,10 @@ fn main() -> Result<()> {
     }
 
     let layout = std::env::var("LOTDRIFT_BENCH_LAYOUT").unwrap_or_else(|_| "rows".into());
+    let archive = std::env::var_os("LOTDRIFT_BENCH_ARCHIVE").map(PathBuf::from);
+    if archive.is_some() && repeat > 1 {
+        bail!("LOTDRIFT_BENCH_ARCHIVE moves the files: one run per copy (LOTDRIFT_BENCH_REPEAT=1)");
+    }
     let mut walls = Vec::with_capacity(repeat);
     let mut values = 0;
     for run in 1..=repeat {
@@ -904,7 +1012,7 @@ fn main() -> Result<()> {
             std::process::id()
         ));
         remove_db(&db_path);
-        let result = ingest(&files, &db_path, batch, threads);
+        let result = ingest(&files, &db_path, (batch, threads), archive.as_deref());
         if keep_db {
             println!("ingest_floor: kept {}", db_path.display());
         } else {
@@ -914,7 +1022,8 @@ fn main() -> Result<()> {
         println!(
             "ingest_floor: run {run}/{repeat}: files={} values={} samples={} tests={} \
              rejected={} wall_s={:.3} values_per_s={:.0} store_s={:.3} stats_s={:.3} \
-             commit_s={:.3} db_mib={:.1} batch={batch} threads={threads} layout={layout}",
+             commit_s={:.3} db_mib={:.1} batch={batch} threads={threads} layout={layout} \
+             files_kept={}",
             r.files,
             r.values,
             r.samples,
@@ -925,7 +1034,8 @@ fn main() -> Result<()> {
             r.store_s,
             r.stats_s,
             r.commit_s,
-            r.db_bytes as f64 / (1024.0 * 1024.0)
+            r.db_bytes as f64 / (1024.0 * 1024.0),
+            archive.is_some()
         );
         values = r.values;
         walls.push(r.wall_s);
