@@ -72,19 +72,28 @@ impl Mover {
         dir: &Path,
         name: &str,
     ) -> Result<PathBuf, (PathBuf, std::io::Error)> {
-        let mut k = 1;
+        let (mut k, mut across) = (1, false);
         while !self.no_exclusive_rename {
             let to = candidate(dir, name, k);
             match rename_exclusive(from, &to) {
                 Ok(()) => return Ok(to),
                 Err(e) if e.kind() == ErrorKind::AlreadyExists => k += 1,
                 Err(e) if is_unsupported(&e) => self.no_exclusive_rename = true,
-                Err(e) if is_cross_device(&e) => break,
+                Err(e) if is_cross_device(&e) => {
+                    across = true;
+                    break;
+                }
                 Err(e) => return Err((to, e)),
             }
         }
         let to = free_name_from(dir, name, k);
-        match move_entry(from, &to) {
+        // Across file systems the rename has already failed: straight to the copy.
+        let moved = if across {
+            copy_across(from, &to)
+        } else {
+            move_entry(from, &to)
+        };
+        match moved {
             Ok(()) => Ok(to),
             Err(e) => Err((to, e)),
         }
@@ -123,12 +132,7 @@ fn free_name_from(dir: &Path, name: &str, first: u32) -> PathBuf {
 /// Renames `from` to `to` unless `to` exists (then `AlreadyExists`), in one system call.
 #[cfg(all(target_os = "linux", target_env = "gnu"))]
 fn rename_exclusive(from: &Path, to: &Path) -> std::io::Result<()> {
-    use std::os::unix::ffi::OsStrExt;
-    let c = |p: &Path| {
-        std::ffi::CString::new(p.as_os_str().as_bytes())
-            .map_err(|e| std::io::Error::new(ErrorKind::InvalidInput, e))
-    };
-    let (from, to) = (c(from)?, c(to)?);
+    let (from, to) = (c_path(from)?, c_path(to)?);
     // SAFETY: both are valid NUL-terminated paths that live across the call.
     let rc = unsafe {
         libc::renameat2(
@@ -205,15 +209,20 @@ fn copy_across(from: &Path, to: &Path) -> std::io::Result<()> {
 
 /// A new named pipe at `path` (a pipe holds no data: this is its move across file systems).
 fn make_fifo(path: &Path) -> std::io::Result<()> {
-    use std::os::unix::ffi::OsStrExt;
-    let c = std::ffi::CString::new(path.as_os_str().as_bytes())
-        .map_err(|e| std::io::Error::new(std::io::ErrorKind::InvalidInput, e))?;
+    let c = c_path(path)?;
     // SAFETY: `c` is a valid NUL-terminated path that lives across the call.
     if unsafe { libc::mkfifo(c.as_ptr(), 0o600) } == 0 {
         Ok(())
     } else {
         Err(std::io::Error::last_os_error())
     }
+}
+
+/// `path` as a C string for a system call (a path with a NUL byte is invalid input).
+fn c_path(path: &Path) -> std::io::Result<std::ffi::CString> {
+    use std::os::unix::ffi::OsStrExt;
+    std::ffi::CString::new(path.as_os_str().as_bytes())
+        .map_err(|e| std::io::Error::new(ErrorKind::InvalidInput, e))
 }
 
 /// Copies a regular file's bytes to a new file `to` and fsyncs it.
